@@ -1,0 +1,1 @@
+"""The command-line interface: a thin typer layer over the library recipes."""

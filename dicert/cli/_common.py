@@ -1,0 +1,123 @@
+"""Shared pieces of the CLI: error handling, JSON output, consoles, progress bars.
+
+Every command is wrapped with :func:`handle_errors`, which turns a :class:`DicertError`
+into ONE line on stderr and the error's exit code (2 for bad input), never a traceback.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import math
+import sys
+from collections.abc import Callable
+from typing import Annotated, Any, TypeVar
+
+import typer
+
+from dicert.errors import DicertError
+
+F = TypeVar("F", bound=Callable[..., Any])
+
+CAUTION = (
+    "Certificates hold only under the stated assumptions: no communication between the "
+    "stations during a trial, settings independent of the devices and of any adversary, "
+    "trusted classical post-processing, and the side-information model of the method. "
+    "For production use, defer to applicable standards and accredited review."
+)
+
+JsonFlag = Annotated[bool, typer.Option("--json", help="Print machine-readable JSON on stdout.")]
+
+
+def handle_errors(func: F) -> F:
+    """Map dicert errors to a one-line message and an exit code."""
+
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return func(*args, **kwargs)
+        except DicertError as exc:
+            msg = " ".join(str(exc).split())
+            typer.echo(f"dicert: error: {msg}", err=True)
+            raise typer.Exit(code=exc.exit_code) from None
+        except FileNotFoundError as exc:
+            typer.echo(f"dicert: error: {exc.filename}: no such file", err=True)
+            raise typer.Exit(code=2) from None
+
+    return wrapper  # type: ignore[return-value]
+
+
+def _jsonable(obj: Any) -> Any:
+    import dataclasses
+
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: _jsonable(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if hasattr(obj, "tolist"):  # numpy arrays and scalars
+        return _jsonable(obj.tolist())
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None if math.isnan(obj) else ("inf" if obj > 0 else "-inf")
+    if hasattr(obj, "__fspath__"):
+        return str(obj)
+    return obj
+
+
+def to_jsonable(obj: Any) -> Any:
+    """Convert dataclasses, numpy values and paths into plain JSON values."""
+    return _jsonable(obj)
+
+
+def emit_json(obj: Any) -> None:
+    """Write ``obj`` as JSON on stdout (one document, sorted keys)."""
+    sys.stdout.write(json.dumps(_jsonable(obj), indent=2, sort_keys=True) + "\n")
+    sys.stdout.flush()
+
+
+def stdout_console():
+    from rich.console import Console
+
+    return Console()
+
+
+def stderr_console():
+    from rich.console import Console
+
+    return Console(stderr=True)
+
+
+def progress_bar(transient: bool = True):
+    """A rich progress bar on stderr (hidden when stderr is not a terminal)."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(
+        TextColumn("[progress.description]{task.description}"),
+        BarColumn(),
+        TextColumn("{task.percentage:>3.0f}%"),
+        TimeRemainingColumn(),
+        console=stderr_console(),
+        transient=transient,
+        disable=not sys.stderr.isatty(),
+    )
+
+
+def kv_table(title: str, rows: list[tuple[str, Any]]):
+    """A two-column rich table of labelled values."""
+    from rich.table import Table
+
+    table = Table(title=title, show_header=False, title_justify="left")
+    table.add_column("quantity", style="bold")
+    table.add_column("value")
+    for key, value in rows:
+        table.add_row(key, value if isinstance(value, str) else _fmt(value))
+    return table
+
+
+def _fmt(value: Any) -> str:
+    if isinstance(value, float):
+        if value == 0 or 1e-4 <= abs(value) < 1e7:
+            return f"{value:.6g}"
+        return f"{value:.4e}"
+    return str(value)
