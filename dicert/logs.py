@@ -1,0 +1,1000 @@
+"""Trial logs: reading, validating, streaming, counting, writing and converting.
+
+This module and :mod:`dicert.audit` are the only places that touch files; every later stage
+takes arrays or counts.
+
+Supported formats (see the README, section "Trial-log formats", for the contract):
+
+``csv``
+    Text with a header row naming the columns. Required ``x,y,a,b`` (settings and outcomes,
+    each 0 or 1); optional ``t`` (1 = test round, 0 = generation round); other columns (for
+    example timestamps) are allowed and ignored. Lines starting with ``#`` are comments; blank
+    lines are skipped. ``.gz`` files are decompressed transparently.
+``binary`` (extension ``.btl``, "binary trial log")
+    Our compact format, one byte per trial, specified byte by byte in
+    ``protocols/binary-trial-log.md`` and in :class:`BinaryLogWriter`.
+``npz``
+    NumPy archive with integer or boolean arrays ``x, y, a, b`` and optionally ``t``.
+
+A log may be one file, a directory (its log files in sorted name order) or a glob pattern
+(sorted); such a multi-file log is one run.
+
+Every trial is coded in one byte, ``code = (t<<4) | (x<<3) | (y<<2) | (a<<1) | b``. Logs without
+a ``t`` column carry t = 0 in the code but *every* trial is a test round; :func:`summarize_log`
+therefore files their counts under t = 1.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import dataclasses
+import glob as _glob
+import gzip
+import hashlib
+import io
+import os
+import struct
+import zipfile
+from collections.abc import Callable, Iterable, Iterator
+from pathlib import Path
+
+import numpy as np
+
+from dicert._io import atomic_writer
+from dicert.errors import LogFormatError, ParameterError
+
+BIT_B, BIT_A, BIT_Y, BIT_X, BIT_T = 1, 2, 4, 8, 16
+FORMATS = ("csv", "binary", "npz")
+
+#: Magic bytes opening a binary trial log (8 bytes; the high first byte and CR LF SUB LF catch
+#: text-mode transfers, as in PNG).
+BINARY_MAGIC = b"\x8bDTL\r\n\x1a\n"
+BINARY_VERSION = 1
+BINARY_HEADER = struct.Struct("<8sBB6sQ")  # magic, version, flags, reserved, trial count
+BINARY_HEADER_SIZE = BINARY_HEADER.size  # 24
+#: Trial count value meaning "not known when the header was written; see the trailer".
+COUNT_STREAMED = 0xFFFF_FFFF_FFFF_FFFF
+#: First byte of the trailer of a streamed file (reserved bits set: never a valid trial).
+TRAILER_MARK = 0xFF
+TRAILER = struct.Struct("<BQ")  # mark, trial count
+FLAG_HAS_T = 0x01
+
+DEFAULT_CHUNK_TRIALS = 1 << 24
+DEFAULT_BLOCK_TRIALS = 1 << 20
+
+_LOG_SUFFIXES = (".csv", ".csv.gz", ".txt", ".txt.gz", ".btl", ".npz")
+
+
+# --------------------------------------------------------------------------------------------
+# In-memory representations
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True, slots=True, eq=False)
+class TrialArrays:
+    """Per-trial settings and outcomes held in memory (uint8 arrays of equal length).
+
+    ``t`` is ``None`` when the log has no test-round column (every trial is then a test round).
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    a: np.ndarray
+    b: np.ndarray
+    t: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        n = len(self.x)
+        for name in ("y", "a", "b") + (("t",) if self.t is not None else ()):
+            if len(getattr(self, name)) != n:
+                raise ParameterError(f"TrialArrays: column {name!r} has a different length")
+
+    def __len__(self) -> int:
+        return len(self.x)
+
+    @property
+    def has_test_flag(self) -> bool:
+        return self.t is not None
+
+    def codes(self) -> np.ndarray:
+        """The one-byte trial codes ``(t<<4)|(x<<3)|(y<<2)|(a<<1)|b``."""
+        c = (
+            (np.asarray(self.x, np.uint8) << 3)
+            | (np.asarray(self.y, np.uint8) << 2)
+            | (np.asarray(self.a, np.uint8) << 1)
+            | np.asarray(self.b, np.uint8)
+        )
+        if self.t is not None:
+            c |= np.asarray(self.t, np.uint8) << 4
+        return c.astype(np.uint8, copy=False)
+
+    @classmethod
+    def from_codes(cls, codes: np.ndarray, has_test_flag: bool) -> TrialArrays:
+        codes = np.asarray(codes, dtype=np.uint8)
+        return cls(
+            x=(codes >> 3) & 1,
+            y=(codes >> 2) & 1,
+            a=(codes >> 1) & 1,
+            b=codes & 1,
+            t=((codes >> 4) & 1) if has_test_flag else None,
+        )
+
+
+@dataclasses.dataclass(frozen=True, slots=True, eq=False)
+class LogChunk:
+    """A contiguous run of trials read from a log: ``codes[i]`` is trial ``start + i``."""
+
+    codes: np.ndarray
+    start: int
+    has_test_flag: bool
+
+    def __len__(self) -> int:
+        return self.codes.size
+
+    @property
+    def x(self) -> np.ndarray:
+        return (self.codes >> 3) & 1
+
+    @property
+    def y(self) -> np.ndarray:
+        return (self.codes >> 2) & 1
+
+    @property
+    def a(self) -> np.ndarray:
+        return (self.codes >> 1) & 1
+
+    @property
+    def b(self) -> np.ndarray:
+        return self.codes & 1
+
+    @property
+    def t(self) -> np.ndarray:
+        """Test-round flags; all ones when the log has no ``t`` column."""
+        if self.has_test_flag:
+            return (self.codes >> 4) & 1
+        return np.ones(self.codes.size, dtype=np.uint8)
+
+    def arrays(self) -> TrialArrays:
+        return TrialArrays.from_codes(self.codes, self.has_test_flag)
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class FileInfo:
+    """One file of a log: path, format, size in bytes, SHA-256 of its bytes, trials in it."""
+
+    path: str
+    format: str
+    size_bytes: int
+    sha256: str | None
+    trials: int
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True, eq=False)
+class LogSummary:
+    """Everything one streaming pass over a log yields.
+
+    Attributes
+    ----------
+    trials : int
+        Number of trials.
+    counts : ndarray, shape (2, 2, 2, 2, 2), int64
+        ``counts[t, x, y, a, b]``; logs without a ``t`` column have every trial under t = 1.
+    block_trials : int
+        Trials per block of ``block_counts`` (the last block may be shorter).
+    block_counts : ndarray, shape (nblocks, 2, 2, 2, 2, 2), int64
+        The same counts per block of trials, to see drift.
+    has_test_flag : bool
+        Whether the log has a ``t`` column.
+    sha256 : str or None
+        SHA-256 of the log's bytes (the concatenation of its files' bytes, in order).
+    size_bytes : int
+        Total size of the log's files.
+    files : tuple of FileInfo
+    """
+
+    trials: int
+    counts: np.ndarray
+    block_trials: int
+    block_counts: np.ndarray
+    has_test_flag: bool
+    sha256: str | None
+    size_bytes: int
+    files: tuple[FileInfo, ...]
+
+
+# --------------------------------------------------------------------------------------------
+# Locating and opening logs
+# --------------------------------------------------------------------------------------------
+
+
+def detect_format(path: str | os.PathLike[str]) -> str:
+    """Format of a log file from its extension, or from its first bytes if the extension is unknown."""
+    name = str(path).lower()
+    if name.endswith(".btl"):
+        return "binary"
+    if name.endswith(".npz"):
+        return "npz"
+    if name.endswith((".csv", ".csv.gz", ".txt", ".txt.gz", ".tsv")):
+        return "csv"
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(8)
+    except FileNotFoundError:
+        raise LogFormatError(path, "", "no such file") from None
+    except IsADirectoryError:
+        raise LogFormatError(path, "", "is a directory, not a log file") from None
+    if head == BINARY_MAGIC:
+        return "binary"
+    if head[:4] == b"PK\x03\x04":
+        return "npz"
+    return "csv"
+
+
+def format_from_name(path: str | os.PathLike[str], explicit: str | None = None) -> str:
+    """Output format from an explicit choice or the file extension (for writers)."""
+    if explicit is not None:
+        fmt = {"csv": "csv", "csv.gz": "csv", "binary": "binary", "btl": "binary", "npz": "npz"}.get(
+            explicit.lower()
+        )
+        if fmt is None:
+            raise ParameterError(f"unknown log format {explicit!r}; choose csv, binary or npz")
+        return fmt
+    name = str(path).lower()
+    if name.endswith(".btl"):
+        return "binary"
+    if name.endswith(".npz"):
+        return "npz"
+    if name.endswith((".csv", ".csv.gz", ".txt", ".txt.gz")):
+        return "csv"
+    raise ParameterError(
+        f"{path}: cannot tell the log format from the extension; use .csv, .csv.gz, .btl or .npz, "
+        "or pass --format"
+    )
+
+
+def resolve_sources(source: str | os.PathLike[str] | Iterable[str | os.PathLike[str]]) -> list[Path]:
+    """The files of a log: a file, a directory (sorted log files) or a glob pattern (sorted)."""
+    if not isinstance(source, (str, os.PathLike)):
+        paths = [Path(p) for p in source]
+        if not paths:
+            raise ParameterError("no log files given")
+        return paths
+    p = Path(source)
+    if p.is_dir():
+        files = sorted(
+            q for q in p.iterdir() if q.is_file() and q.name.lower().endswith(_LOG_SUFFIXES)
+        )
+        if not files:
+            raise LogFormatError(p, "", "directory holds no log files (.csv, .csv.gz, .btl, .npz)")
+        return files
+    if p.exists():
+        return [p]
+    if any(ch in str(source) for ch in "*?["):
+        files = sorted(Path(q) for q in _glob.glob(str(source)) if Path(q).is_file())
+        if not files:
+            raise LogFormatError(source, "", "no file matches this pattern")
+        return files
+    raise LogFormatError(p, "", "no such file")
+
+
+class _HashingReader(io.RawIOBase):
+    """A raw reader that feeds every byte it returns into a SHA-256 object."""
+
+    def __init__(self, fh, hasher) -> None:
+        self._fh = fh
+        self._h = hasher
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, b) -> int:
+        n = self._fh.readinto(b)
+        if n:
+            self._h.update(memoryview(b)[:n])
+        return n
+
+
+class TrialLog:
+    """A (possibly multi-file) trial log opened for streaming.
+
+    Parameters
+    ----------
+    source : path, directory or glob pattern (or a list of paths)
+    format : {"csv", "binary", "npz"}, optional
+        Force the format of every file instead of detecting it.
+    """
+
+    def __init__(self, source, format: str | None = None) -> None:
+        self.files = resolve_sources(source)
+        self.formats = [format_from_name(f, format) if format else detect_format(f) for f in self.files]
+        flags = {self._peek_test_flag(f, fmt) for f, fmt in zip(self.files, self.formats)}
+        if len(flags) > 1:
+            raise LogFormatError(
+                self.files[0], "", "the files of this log disagree on whether a t column is present"
+            )
+        self.has_test_flag = flags.pop()
+        self.file_infos: list[FileInfo] = []
+        self._hasher = None
+
+    # -- header inspection ------------------------------------------------------------------
+    @staticmethod
+    def _peek_test_flag(path: Path, fmt: str) -> bool:
+        if fmt == "binary":
+            with _open_checked(path) as fh:
+                return bool(_read_binary_header(fh, path)[0] & FLAG_HAS_T)
+        if fmt == "npz":
+            try:
+                with zipfile.ZipFile(path) as zf:
+                    names = {n.removesuffix(".npy") for n in zf.namelist()}
+            except zipfile.BadZipFile:
+                raise LogFormatError(path, "", "not a valid .npz archive") from None
+            return "t" in names
+        with _open_checked(path) as raw:
+            fh = _maybe_gunzip(raw, path)
+            cols, _ = _read_csv_header(fh, path)
+        return "t" in cols
+
+    # -- streaming ----------------------------------------------------------------------------
+    def iter_chunks(
+        self, chunk_trials: int = DEFAULT_CHUNK_TRIALS, *, hasher=None
+    ) -> Iterator[LogChunk]:
+        """Yield the trials in order, ``chunk_trials`` at a time (memory stays flat).
+
+        If ``hasher`` (a hashlib object) is given, every byte of every file is fed into it.
+        ``file_infos`` is filled as files are completed.
+        """
+        if chunk_trials <= 0:
+            raise ParameterError("chunk_trials must be positive")
+        start = 0
+        self.file_infos = []
+        for path, fmt in zip(self.files, self.formats):
+            file_hasher = hashlib.sha256()
+            hashers = [file_hasher] + ([hasher] if hasher is not None else [])
+            reader = {"csv": _iter_csv, "binary": _iter_binary, "npz": _iter_npz}[fmt]
+            trials_here = 0
+            for codes in reader(path, chunk_trials, _MultiHash(hashers)):
+                if codes.size == 0:
+                    continue
+                yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
+                start += codes.size
+                trials_here += codes.size
+            if trials_here == 0:
+                raise LogFormatError(path, "", "contains no trials")
+            self.file_infos.append(
+                FileInfo(
+                    path=str(path),
+                    format=fmt,
+                    size_bytes=path.stat().st_size,
+                    sha256=file_hasher.hexdigest(),
+                    trials=trials_here,
+                )
+            )
+
+
+class _MultiHash:
+    """Feeds the same bytes to several hashlib objects (in a worker thread when large)."""
+
+    def __init__(self, hashers) -> None:
+        self._hashers = hashers
+
+    def update(self, data) -> None:
+        for h in self._hashers:
+            h.update(data)
+
+
+def open_log(source, format: str | None = None) -> TrialLog:
+    """Open a log (file, directory or glob) for streaming; see :class:`TrialLog`."""
+    return TrialLog(source, format=format)
+
+
+def _open_checked(path: Path):
+    try:
+        return open(path, "rb")
+    except FileNotFoundError:
+        raise LogFormatError(path, "", "no such file") from None
+    except IsADirectoryError:
+        raise LogFormatError(path, "", "is a directory, not a log file") from None
+    except PermissionError:
+        raise LogFormatError(path, "", "permission denied") from None
+
+
+# --------------------------------------------------------------------------------------------
+# Binary format
+# --------------------------------------------------------------------------------------------
+
+
+def _read_binary_header(fh, path) -> tuple[int, int, bytes]:
+    head = fh.read(BINARY_HEADER_SIZE)
+    if len(head) < 8 or head[:8] != BINARY_MAGIC:
+        raise LogFormatError(path, "byte offset 0", "wrong magic bytes: not a dicert binary trial log")
+    if len(head) < BINARY_HEADER_SIZE:
+        raise LogFormatError(path, f"byte offset {len(head)}", "truncated header (24 bytes expected)")
+    _, version, flags, reserved, count = BINARY_HEADER.unpack(head)
+    if version != BINARY_VERSION:
+        raise LogFormatError(
+            path, "byte offset 8", f"unsupported format version {version} (this reader knows {BINARY_VERSION})"
+        )
+    if flags & ~FLAG_HAS_T:
+        raise LogFormatError(path, "byte offset 9", f"reserved header flag bits set (0x{flags:02x})")
+    if any(reserved):
+        raise LogFormatError(path, "byte offset 10", "reserved header bytes are not zero")
+    return flags, count, head
+
+
+def _iter_binary(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
+    size = path.stat().st_size
+    with _open_checked(path) as fh:
+        flags, count, head = _read_binary_header(fh, path)
+        hasher.update(head)
+        body = size - BINARY_HEADER_SIZE
+        if count == COUNT_STREAMED:
+            if body < TRAILER.size or _read_at(path, size - TRAILER.size, 1)[0] != TRAILER_MARK:
+                raise LogFormatError(
+                    path, f"byte offset {size}", "truncated: a streamed log must end with its trailer"
+                )
+            mark, count = TRAILER.unpack(_read_at(path, size - TRAILER.size, TRAILER.size))
+            if count != body - TRAILER.size:
+                raise LogFormatError(
+                    path,
+                    f"byte offset {size - TRAILER.size}",
+                    f"trailer says {count} trials but the file holds {body - TRAILER.size}",
+                )
+            tail = TRAILER.size
+        else:
+            tail = 0
+            if body < count:
+                raise LogFormatError(
+                    path,
+                    f"byte offset {size}",
+                    f"truncated: header promises {count} trials, file holds {max(body, 0)}",
+                )
+            if body > count:
+                raise LogFormatError(
+                    path,
+                    f"byte offset {BINARY_HEADER_SIZE + count}",
+                    f"{body - count} unexpected bytes after the last trial",
+                )
+        valid_mask = 0x1F if flags & FLAG_HAS_T else 0x0F
+        remaining = count
+        offset = BINARY_HEADER_SIZE
+        pool = concurrent.futures.ThreadPoolExecutor(max_workers=1)
+        pending = None
+        try:
+            while remaining > 0:
+                want = min(chunk_trials, remaining)
+                data = fh.read(want)
+                if len(data) < want:
+                    raise LogFormatError(path, f"byte offset {offset + len(data)}", "truncated")
+                if pending is not None:
+                    pending.result()
+                pending = pool.submit(hasher.update, data)  # hashing overlaps counting
+                codes = np.frombuffer(data, dtype=np.uint8)
+                _check_reserved(codes, valid_mask, path, offset)
+                yield codes
+                offset += want
+                remaining -= want
+            if pending is not None:
+                pending.result()
+            if tail:
+                hasher.update(fh.read(tail))
+        finally:
+            pool.shutdown(wait=True)
+
+
+def _read_at(path: Path, offset: int, n: int) -> bytes:
+    with open(path, "rb") as fh:
+        fh.seek(offset)
+        return fh.read(n)
+
+
+def _check_reserved(codes: np.ndarray, valid_mask: int, path, offset: int) -> None:
+    """Cheap check that no code has bits outside ``valid_mask`` (exact offset on failure)."""
+    if codes.size and int(codes.max()) > valid_mask:
+        bad = np.flatnonzero(codes & (~valid_mask & 0xFF))
+        if bad.size:
+            i = int(bad[0])
+            what = "test-round bit set but the header declares no t column" if (
+                codes[i] & 0xE0
+            ) == 0 else "reserved bits set"
+            raise LogFormatError(
+                path, f"byte offset {offset + i}", f"{what} (byte 0x{int(codes[i]):02x}, trial {i})"
+            )
+
+
+class BinaryLogWriter:
+    """Writer of the binary trial-log format, for acquisition code.
+
+    Layout (all integers little-endian):
+
+    ========  =====  ==============================================================
+    offset    size   content
+    ========  =====  ==============================================================
+    0         8      magic ``8B 44 54 4C 0D 0A 1A 0A`` (``\\x8bDTL\\r\\n\\x1a\\n``)
+    8         1      format version, 1
+    9         1      flags: bit 0 = a t (test-round) column is present; bits 1-7 zero
+    10        6      reserved, zero
+    16        8      trial count N, or ``FF..FF`` if not known when the header was written
+    24        N      one byte per trial: bit 0 b, bit 1 a, bit 2 y, bit 3 x, bit 4 t
+                     (zero if no t column), bits 5-7 zero
+    24+N      9      only when the count field is ``FF..FF``: trailer byte ``FF`` and the
+                     trial count as a 64-bit integer (marks a complete file)
+    ========  =====  ==============================================================
+
+    With ``streamed=False`` (default) the count is patched into the header on close and the
+    file is written to a temporary name and renamed (nothing half-written). With
+    ``streamed=True`` bytes go straight to ``path`` so that a follower can read a growing log;
+    :meth:`close` appends the trailer.
+    """
+
+    def __init__(self, path, *, has_test_flag: bool, streamed: bool = False) -> None:
+        self.path = Path(path)
+        self.has_test_flag = has_test_flag
+        self.streamed = streamed
+        self.count = 0
+        self._mask = 0x1F if has_test_flag else 0x0F
+        flags = FLAG_HAS_T if has_test_flag else 0
+        header = BINARY_HEADER.pack(BINARY_MAGIC, BINARY_VERSION, flags, bytes(6), COUNT_STREAMED)
+        if streamed:
+            self._ctx = None
+            self._fh = open(self.path, "wb")
+        else:
+            self._ctx = atomic_writer(self.path, "wb")
+            self._fh = self._ctx.__enter__()
+        self._fh.write(header)
+
+    def append(self, codes: np.ndarray) -> None:
+        codes = np.ascontiguousarray(codes, dtype=np.uint8)
+        if codes.size and int(codes.max()) > self._mask:
+            raise ParameterError("trial codes have bits outside the declared columns")
+        self._fh.write(codes.tobytes())
+        self.count += codes.size
+        if self.streamed:
+            self._fh.flush()
+
+    def close(self) -> None:
+        if self.streamed:
+            self._fh.write(TRAILER.pack(TRAILER_MARK, self.count))
+            self._fh.close()
+            return
+        self._fh.seek(16)
+        self._fh.write(struct.pack("<Q", self.count))
+        self._fh.seek(0, 2)
+        self._ctx.__exit__(None, None, None)
+
+    def abort(self) -> None:
+        if self.streamed:
+            self._fh.close()
+        else:
+            try:
+                raise RuntimeError("aborted")
+            except RuntimeError as exc:
+                self._ctx.__exit__(type(exc), exc, exc.__traceback__)
+
+    def __enter__(self) -> BinaryLogWriter:
+        return self
+
+    def __exit__(self, et, ev, tb) -> None:
+        if et is None:
+            self.close()
+        else:
+            self.abort()
+
+
+# --------------------------------------------------------------------------------------------
+# CSV format
+# --------------------------------------------------------------------------------------------
+
+_CSV_BLOCK_BYTES = 1 << 24
+
+
+def _maybe_gunzip(raw, path):
+    head = raw.peek(2)[:2] if hasattr(raw, "peek") else b""
+    if head == b"\x1f\x8b":
+        return io.BufferedReader(gzip.GzipFile(fileobj=raw, mode="rb"), buffer_size=1 << 20)
+    return raw
+
+
+def _read_csv_header(fh, path) -> tuple[list[str], int]:
+    """Return (column names, line number of the header) and leave fh after the header line."""
+    lineno = 0
+    while True:
+        try:
+            line = fh.readline()
+        except (OSError, EOFError, gzip.BadGzipFile) as exc:
+            raise LogFormatError(path, f"line {lineno + 1}", f"cannot decompress: {exc}") from None
+        lineno += 1
+        if not line:
+            raise LogFormatError(path, "", "empty file: no header row")
+        text = line.strip()
+        if not text or text.startswith(b"#"):
+            continue
+        try:
+            names = [c.strip().lower() for c in text.decode("utf-8").split(",")]
+        except UnicodeDecodeError:
+            raise LogFormatError(path, f"line {lineno}", "header row is not UTF-8 text") from None
+        for req in ("x", "y", "a", "b"):
+            if req not in names:
+                raise LogFormatError(
+                    path, f"line {lineno}", f"header has no column {req!r} (required: x,y,a,b; optional t)"
+                )
+        dup = {c for c in names if names.count(c) > 1 and c in ("x", "y", "a", "b", "t")}
+        if dup:
+            raise LogFormatError(path, f"line {lineno}", f"column {sorted(dup)[0]!r} appears twice")
+        return names, lineno
+
+
+def _iter_csv(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
+    with _open_checked(path) as raw0:
+        raw = io.BufferedReader(_HashingReader(raw0, hasher), buffer_size=1 << 20)
+        fh = _maybe_gunzip(raw, path)
+        names, lineno = _read_csv_header(fh, path)
+        ncol = len(names)
+        want = [names.index(c) for c in ("x", "y", "a", "b")]
+        tcol = names.index("t") if "t" in names else None
+        carry = b""
+        pending: list[np.ndarray] = []
+        pending_n = 0
+        while True:
+            try:
+                block = fh.read(_CSV_BLOCK_BYTES)
+            except (OSError, EOFError, gzip.BadGzipFile) as exc:
+                raise LogFormatError(path, f"after line {lineno}", f"cannot decompress: {exc}") from None
+            if not block:
+                if carry.strip():
+                    block = b"\n"  # a last line without newline
+                else:
+                    break
+            data = carry + block
+            cut = data.rfind(b"\n")
+            if cut < 0:
+                carry = data
+                continue
+            carry = data[cut + 1 :]
+            codes, nlines = _parse_csv_block(data[: cut + 1], ncol, want, tcol, path, lineno + 1)
+            lineno += nlines
+            if codes.size:
+                pending.append(codes)
+                pending_n += codes.size
+            while pending_n >= chunk_trials:
+                allc = np.concatenate(pending) if len(pending) > 1 else pending[0]
+                yield allc[:chunk_trials]
+                rest = allc[chunk_trials:]
+                pending = [rest] if rest.size else []
+                pending_n = rest.size
+        if pending_n:
+            yield np.concatenate(pending) if len(pending) > 1 else pending[0]
+        # drain so the hash covers every byte of the file
+        while raw.read(1 << 20):
+            pass
+
+
+def _parse_csv_block(data: bytes, ncol, want, tcol, path, first_line) -> tuple[np.ndarray, int]:
+    """Parse complete lines; fast vectorised path, exact per-line path on any irregularity."""
+    buf = np.frombuffer(data, dtype=np.uint8)
+    nl = np.flatnonzero(buf == 10)
+    nlines = nl.size
+    codes = _parse_csv_fast(buf, nl, ncol, want, tcol)
+    if codes is None:
+        codes = _parse_csv_slow(data, ncol, want, tcol, path, first_line)
+    return codes, nlines
+
+
+def _parse_csv_fast(buf: np.ndarray, nl: np.ndarray, ncol, want, tcol) -> np.ndarray | None:
+    if nl.size == 0:
+        return np.zeros(0, np.uint8)
+    if (buf == 13).any():
+        return None
+    starts = np.empty(nl.size, dtype=np.int64)
+    starts[0] = 0
+    starts[1:] = nl[:-1] + 1
+    first = buf[starts]
+    if ((first == 35) | (first == 10)).any():  # comment or blank line
+        return None
+    seps = np.flatnonzero((buf == 44) | (buf == 10))
+    if seps.size != nl.size * ncol:
+        return None
+    seps = seps.reshape(nl.size, ncol)
+    if not np.array_equal(seps[:, -1], nl):
+        return None
+    code = np.zeros(nl.size, dtype=np.uint8)
+    cols = list(zip(want, (3, 2, 1, 0)))
+    if tcol is not None:
+        cols.append((tcol, 4))
+    for col, shift in cols:
+        beg = starts if col == 0 else seps[:, col - 1] + 1
+        if not np.array_equal(seps[:, col] - beg, np.ones_like(beg)):
+            return None
+        v = buf[beg] - 48
+        if (v > 1).any():
+            return None
+        code |= v << shift
+    return code
+
+
+def _parse_csv_slow(data: bytes, ncol, want, tcol, path, first_line) -> np.ndarray:
+    out = []
+    cols = list(zip(("x", "y", "a", "b"), want))
+    if tcol is not None:
+        cols.append(("t", tcol))
+    shifts = {"x": 3, "y": 2, "a": 1, "b": 0, "t": 4}
+    for k, raw_line in enumerate(data.split(b"\n")[:-1]):
+        lineno = first_line + k
+        line = raw_line.rstrip(b"\r")
+        stripped = line.strip()
+        if not stripped or stripped.startswith(b"#"):
+            continue
+        fields = line.split(b",")
+        if len(fields) != ncol:
+            raise LogFormatError(
+                path, f"line {lineno}", f"expected {ncol} fields as in the header, found {len(fields)}"
+            )
+        code = 0
+        for name, idx in cols:
+            val = fields[idx].strip()
+            if val not in (b"0", b"1"):
+                shown = val.decode("utf-8", "replace")[:20]
+                raise LogFormatError(
+                    path, f"line {lineno}", f"column {name!r} has value {shown!r}; expected 0 or 1"
+                )
+            code |= (val[0] - 48) << shifts[name]
+        out.append(code)
+    return np.array(out, dtype=np.uint8)
+
+
+# --------------------------------------------------------------------------------------------
+# npz format
+# --------------------------------------------------------------------------------------------
+
+
+def _iter_npz(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
+    with _open_checked(path) as fh:
+        data = fh.read()
+    hasher.update(data)
+    try:
+        arc = np.load(io.BytesIO(data), allow_pickle=False)
+    except Exception as exc:  # numpy raises several types for corrupt archives
+        raise LogFormatError(path, "", f"not a valid .npz archive ({type(exc).__name__})") from None
+    with arc:
+        missing = [k for k in ("x", "y", "a", "b") if k not in arc.files]
+        if missing:
+            raise LogFormatError(path, "", f"array {missing[0]!r} missing (required: x, y, a, b; optional t)")
+        names = ["x", "y", "a", "b"] + (["t"] if "t" in arc.files else [])
+        try:
+            arrays = {k: arc[k] for k in names}
+        except ValueError as exc:
+            raise LogFormatError(path, "", f"cannot read array: {exc}") from None
+    n = None
+    for k, arr in arrays.items():
+        if arr.ndim != 1:
+            raise LogFormatError(path, f"array {k!r}", f"must be one-dimensional, has shape {arr.shape}")
+        if n is None:
+            n = arr.size
+        elif arr.size != n:
+            raise LogFormatError(path, f"array {k!r}", f"has {arr.size} entries, array 'x' has {n}")
+        if arr.dtype.kind not in "biuf":
+            raise LogFormatError(path, f"array {k!r}", f"has dtype {arr.dtype}; expected integers 0/1")
+        bad = np.flatnonzero(~((arr == 0) | (arr == 1)))
+        if bad.size:
+            i = int(bad[0])
+            raise LogFormatError(path, f"array {k!r}, index {i}", f"value {arr[i]!r}; expected 0 or 1")
+    codes = TrialArrays(**{k: arrays[k].astype(np.uint8) for k in names}).codes()
+    for lo in range(0, codes.size, chunk_trials):
+        yield codes[lo : lo + chunk_trials]
+
+
+# --------------------------------------------------------------------------------------------
+# One streaming pass: counts, block counts, digest
+# --------------------------------------------------------------------------------------------
+
+
+def summarize_log(
+    source,
+    *,
+    block_trials: int = DEFAULT_BLOCK_TRIALS,
+    chunk_trials: int = DEFAULT_CHUNK_TRIALS,
+    digest: bool = True,
+    format: str | None = None,
+    on_chunk: Callable[[LogChunk], object] | None = None,
+    progress: Callable[[int, int], object] | None = None,
+) -> LogSummary:
+    """Read a log once, streaming, and return its counts (total and per block) and digest.
+
+    Parameters
+    ----------
+    source : path, directory or glob
+    block_trials : int
+        Block size for per-block counts (drift diagnostics).
+    digest : bool
+        Compute the SHA-256 of the log's bytes (overlapped with counting).
+    on_chunk : callable, optional
+        Called with every :class:`LogChunk` in order (e.g. to harvest outcome bits in the same
+        pass).
+    progress : callable, optional
+        Called as ``progress(bytes_done, bytes_total)``.
+    """
+    from dicert._kernels import count_blocks
+
+    if block_trials <= 0:
+        raise ParameterError("block_trials must be positive")
+    log = open_log(source, format=format)
+    total_bytes = sum(f.stat().st_size for f in log.files)
+    hasher = hashlib.sha256() if digest else None
+    blocks: list[np.ndarray] = []
+    partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
+    in_partial = 0
+    trials = 0
+    for chunk in log.iter_chunks(chunk_trials, hasher=hasher):
+        codes = chunk.codes
+        pos = 0
+        if in_partial:
+            take = min(block_trials - in_partial, codes.size)
+            c, _ = count_blocks(codes[:take], max(take, 1))
+            partial += c.sum(axis=0)
+            in_partial += take
+            pos = take
+            if in_partial == block_trials:
+                blocks.append(partial.copy())
+                partial[:] = 0
+                in_partial = 0
+        rest = codes[pos:]
+        if rest.size:
+            c, _ = count_blocks(rest, block_trials)
+            full = rest.size // block_trials
+            if full:
+                blocks.extend(c[:full])
+            if rest.size % block_trials:
+                partial += c[-1]
+                in_partial = rest.size % block_trials
+        trials += codes.size
+        if on_chunk is not None:
+            on_chunk(chunk)
+        if progress is not None:
+            progress(min(total_bytes, _bytes_done(log, trials, total_bytes)), total_bytes)
+    if in_partial:
+        blocks.append(partial.copy())
+    block_counts = np.array(blocks, dtype=np.int64).reshape(-1, 2, 2, 2, 2, 2)
+    if not log.has_test_flag:
+        block_counts = np.stack([np.zeros_like(block_counts[:, 0]), block_counts.sum(axis=1)], axis=1)
+    counts = block_counts.sum(axis=0) if block_counts.size else np.zeros((2,) * 5, dtype=np.int64)
+    return LogSummary(
+        trials=trials,
+        counts=counts,
+        block_trials=block_trials,
+        block_counts=block_counts,
+        has_test_flag=log.has_test_flag,
+        sha256=hasher.hexdigest() if hasher is not None else None,
+        size_bytes=total_bytes,
+        files=tuple(log.file_infos),
+    )
+
+
+def _bytes_done(log: TrialLog, trials: int, total_bytes: int) -> int:
+    # Progress in trials scaled to bytes (exact for binary logs, an estimate for text).
+    done_files = sum(fi.size_bytes for fi in log.file_infos)
+    return max(done_files, min(total_bytes, trials))
+
+
+def read_trials(source, format: str | None = None) -> TrialArrays:
+    """Read a whole log into memory (for small logs and tests)."""
+    log = open_log(source, format=format)
+    parts = [c.codes for c in log.iter_chunks()]
+    codes = np.concatenate(parts) if parts else np.zeros(0, np.uint8)
+    return TrialArrays.from_codes(codes, log.has_test_flag)
+
+
+# --------------------------------------------------------------------------------------------
+# Writing and converting
+# --------------------------------------------------------------------------------------------
+
+
+def _as_code_chunks(trials) -> tuple[bool, Iterator[np.ndarray]]:
+    """(has_test_flag, iterator of code arrays) from TrialArrays, LogChunks or an iterable of them."""
+    if isinstance(trials, (TrialArrays, LogChunk)):
+        trials = [trials]
+    it = iter(trials)
+    try:
+        first = next(it)
+    except StopIteration:
+        raise ParameterError("no trials to write") from None
+
+    def codes_of(item) -> np.ndarray:
+        return item.codes if isinstance(item, LogChunk) else item.codes()
+
+    flag = first.has_test_flag
+
+    def gen():
+        yield codes_of(first)
+        for item in it:
+            if item.has_test_flag != flag:
+                raise ParameterError("chunks disagree on whether a t column is present")
+            yield codes_of(item)
+
+    return flag, gen()
+
+
+_DIGITS = np.array([48, 49], dtype=np.uint8)
+
+
+def _csv_bytes(codes: np.ndarray, has_t: bool) -> bytes:
+    ncol = 5 if has_t else 4
+    rows = np.empty((codes.size, 2 * ncol), dtype=np.uint8)
+    shifts = (3, 2, 1, 0, 4)[:ncol]
+    for j, s in enumerate(shifts):
+        rows[:, 2 * j] = _DIGITS[(codes >> s) & 1]
+        rows[:, 2 * j + 1] = 44
+    rows[:, -1] = 10
+    return rows.tobytes()
+
+
+def write_log(path, trials, format: str | None = None, *, compress_level: int = 6) -> int:
+    """Write trials to ``path`` atomically; return the number of trials written.
+
+    ``trials`` is a :class:`TrialArrays`, a :class:`LogChunk`, or an iterable of either (for
+    streaming large logs with bounded memory; npz needs everything in memory). The format is
+    taken from ``format`` or the extension (.csv, .csv.gz, .btl, .npz).
+    """
+    fmt = format_from_name(path, format)
+    has_t, chunks = _as_code_chunks(trials)
+    path = Path(path)
+    if fmt == "binary":
+        with BinaryLogWriter(path, has_test_flag=has_t) as w:
+            for codes in chunks:
+                w.append(codes)
+            return w.count
+    if fmt == "npz":
+        codes = np.concatenate(list(chunks))
+        arr = TrialArrays.from_codes(codes, has_t)
+        cols = {k: getattr(arr, k) for k in ("x", "y", "a", "b")}
+        if has_t:
+            cols["t"] = arr.t
+        with atomic_writer(path, "wb") as fh:
+            np.savez_compressed(fh, **cols)
+        return codes.size
+    header = b"x,y,a,b,t\n" if has_t else b"x,y,a,b\n"
+    n = 0
+    gz = str(path).lower().endswith(".gz") or (format or "").lower() == "csv.gz"
+    with atomic_writer(path, "wb") as raw:
+        out = gzip.GzipFile(fileobj=raw, mode="wb", compresslevel=compress_level, mtime=0) if gz else raw
+        out.write(header)
+        for codes in chunks:
+            out.write(_csv_bytes(codes, has_t))
+            n += codes.size
+        if gz:
+            out.close()
+    return n
+
+
+def convert_log(source, dest, *, format: str | None = None, in_format: str | None = None,
+                chunk_trials: int = DEFAULT_CHUNK_TRIALS,
+                progress: Callable[[int, int], object] | None = None) -> int:
+    """Convert a log between formats, streaming; return the number of trials."""
+    log = open_log(source, format=in_format)
+    total = sum(f.stat().st_size for f in log.files)
+    done = [0]
+
+    def chunks():
+        for ch in log.iter_chunks(chunk_trials):
+            done[0] += ch.codes.size
+            if progress is not None:
+                progress(min(done[0], total), total)
+            yield ch
+
+    return write_log(dest, chunks(), format=format)
+
+
+__all__ = [
+    "BINARY_MAGIC",
+    "BinaryLogWriter",
+    "FileInfo",
+    "LogChunk",
+    "LogSummary",
+    "TrialArrays",
+    "TrialLog",
+    "convert_log",
+    "detect_format",
+    "open_log",
+    "read_trials",
+    "resolve_sources",
+    "summarize_log",
+    "write_log",
+]
