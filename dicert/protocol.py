@@ -1,0 +1,407 @@
+"""Protocol files: everything a certification fixes BEFORE any data is seen.
+
+A protocol is a TOML file (see ``protocols/README.md`` for the full reference). It names the
+Bell test, the settings distribution, which outcomes are harvested as raw randomness, the
+finite-size analysis method with its pre-declared acceptance threshold and error parameters,
+and the extractor with its output-length rule. The SHA-256 of the file's bytes goes into every
+audit record, so a certificate can be tied to the exact rules it was computed under.
+
+Layout (all tables required unless marked optional)::
+
+    format = "dicert-protocol/1"      # optional; the only version so far
+    name = "chsh-uniform"
+    description = "..."               # optional, free text
+
+    [bell]
+    kind = "chsh"                     # or "coefficients" (+ coefficients = [16 numbers])
+
+    [settings]
+    gamma = 1.0                       # test-round probability; 1 = every round a test round
+    generation = [0, 0]               # settings (x, y) of generation rounds
+
+    [harvest]
+    parties = "AB"                    # "A" or "AB"
+    rounds = "all"                    # "all" or "generation"
+
+    [analysis]
+    method = "martingale"             # "martingale" | "eat" | "pef"
+    ...                               # method keys, validated by dicert.finite
+
+    [extractor]
+    kind = "toeplitz"
+    eps_ext = 1e-8
+    output_rule = "lhl-conservative"
+
+Errors are :class:`~dicert.errors.ProtocolError` with one line naming the file and the key.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import math
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from dicert.errors import ProtocolError
+
+PROTOCOL_FORMAT = "dicert-protocol/1"
+
+BELL_KINDS = ("chsh", "coefficients")
+PARTIES = ("A", "AB")
+ROUNDS = ("all", "generation")
+METHODS = ("martingale", "eat", "pef")
+EXTRACTOR_KINDS = ("toeplitz",)
+OUTPUT_RULES = ("lhl-conservative",)
+
+_TOP_KEYS = ("format", "name", "description", "bell", "settings", "harvest", "analysis", "extractor")
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class BellTest:
+    """The Bell functional tested.
+
+    ``coefficients`` (only for kind "coefficients") are 16 numbers c[x][y][a][b] over
+    p(ab|xy), flattened in the order x, y, a, b (index 8x + 4y + 2a + b).
+    """
+
+    kind: str
+    coefficients: tuple[float, ...] | None = None
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class Harvest:
+    """Which outcomes become raw randomness: parties "A" or "AB"; rounds "all" or "generation"."""
+
+    parties: str
+    rounds: str
+
+    @property
+    def bits_per_trial(self) -> int:
+        return len(self.parties)
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class ExtractorSpec:
+    """Extractor family, its error ``eps_ext`` and the output-length rule."""
+
+    kind: str
+    eps_ext: float
+    output_rule: str
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class Protocol:
+    """A validated protocol file. ``sha256`` is over the file's bytes; ``text`` is its content."""
+
+    name: str
+    path: str
+    sha256: str
+    text: str
+    bell: BellTest
+    design: Any  # dicert.estimate.SettingsDesign
+    harvest: Harvest
+    method: str
+    analysis: Any  # MartingaleParams | EatParams | PefParams
+    extractor: ExtractorSpec
+    description: str = ""
+
+    @property
+    def gamma(self) -> float:
+        return float(self.design.gamma)
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+class _Ctx:
+    """Builds error messages naming the source and the key."""
+
+    def __init__(self, source: str) -> None:
+        self.source = source
+
+    def fail(self, key: str, problem: str) -> ProtocolError:
+        return ProtocolError(f"{self.source}: key '{key}': {problem}")
+
+    def table(self, d: Mapping[str, Any], key: str) -> Mapping[str, Any]:
+        if key not in d:
+            raise self.fail(key, f"missing table [{key}]")
+        val = d[key]
+        if not isinstance(val, Mapping):
+            raise self.fail(key, f"expected a table [{key}], got {_kind(val)}")
+        return val
+
+    def choice(self, d: Mapping[str, Any], table: str, key: str, options: tuple[str, ...],
+               default: str | None = None) -> str:
+        full = f"{table}.{key}"
+        if key not in d:
+            if default is not None:
+                return default
+            raise self.fail(full, f"missing; expected one of {', '.join(repr(o) for o in options)}")
+        val = d[key]
+        if not isinstance(val, str) or val not in options:
+            raise self.fail(full, f"got {val!r}; expected one of {', '.join(repr(o) for o in options)}")
+        return val
+
+    def number(self, d: Mapping[str, Any], table: str, key: str, *, lo: float, hi: float,
+               lo_open: bool = False, hi_open: bool = False, default: float | None = None) -> float:
+        full = f"{table}.{key}"
+        if key not in d:
+            if default is not None:
+                return default
+            raise self.fail(full, "missing; expected a number")
+        val = d[key]
+        if isinstance(val, bool) or not isinstance(val, (int, float)) or not math.isfinite(val):
+            raise self.fail(full, f"expected a finite number, got {val!r}")
+        val = float(val)
+        ok_lo = val > lo if lo_open else val >= lo
+        ok_hi = val < hi if hi_open else val <= hi
+        if not (ok_lo and ok_hi):
+            lb = "(" if lo_open else "["
+            rb = ")" if hi_open else "]"
+            raise self.fail(full, f"{val!r} is outside {lb}{lo:g}, {hi:g}{rb}")
+        return val
+
+    def no_extra(self, d: Mapping[str, Any], table: str | None, allowed: tuple[str, ...]) -> None:
+        for k in d:
+            if k not in allowed:
+                full = k if table is None else f"{table}.{k}"
+                raise self.fail(full, f"unknown key; allowed here: {', '.join(allowed)}")
+
+
+def _kind(val: Any) -> str:
+    return type(val).__name__
+
+
+# --------------------------------------------------------------------------- parsing
+
+
+def _parse_bell(ctx: _Ctx, d: Mapping[str, Any]) -> BellTest:
+    t = ctx.table(d, "bell")
+    ctx.no_extra(t, "bell", ("kind", "coefficients"))
+    kind = ctx.choice(t, "bell", "kind", BELL_KINDS)
+    if kind == "chsh":
+        if "coefficients" in t:
+            raise ctx.fail("bell.coefficients", "only allowed with kind = \"coefficients\"")
+        return BellTest(kind="chsh", coefficients=None)
+    coeffs = t.get("coefficients")
+    if not isinstance(coeffs, list) or len(coeffs) != 16:
+        raise ctx.fail("bell.coefficients", "expected a list of 16 numbers c[x][y][a][b] "
+                       "(index 8x + 4y + 2a + b)")
+    out = []
+    for i, c in enumerate(coeffs):
+        if isinstance(c, bool) or not isinstance(c, (int, float)) or not math.isfinite(c):
+            raise ctx.fail(f"bell.coefficients[{i}]", f"expected a finite number, got {c!r}")
+        out.append(float(c))
+    return BellTest(kind="coefficients", coefficients=tuple(out))
+
+
+def _parse_settings(ctx: _Ctx, d: Mapping[str, Any]):
+    t = ctx.table(d, "settings")
+    ctx.no_extra(t, "settings", ("gamma", "generation"))
+    gamma = ctx.number(t, "settings", "gamma", lo=0.0, hi=1.0, lo_open=True)
+    gen = t.get("generation", [0, 0])
+    if (not isinstance(gen, list) or len(gen) != 2
+            or any(isinstance(g, bool) or g not in (0, 1) for g in gen)):
+        raise ctx.fail("settings.generation", f"expected [x, y] with x, y in {{0, 1}}, got {gen!r}")
+    from dicert.estimate import SettingsDesign
+
+    try:
+        return SettingsDesign(gamma=gamma, generation=(int(gen[0]), int(gen[1])))
+    except (ValueError, TypeError) as exc:  # their own validation, reported at our key
+        raise ctx.fail("settings", " ".join(str(exc).split())) from None
+
+
+def _parse_harvest(ctx: _Ctx, d: Mapping[str, Any]) -> Harvest:
+    t = ctx.table(d, "harvest")
+    ctx.no_extra(t, "harvest", ("parties", "rounds"))
+    return Harvest(parties=ctx.choice(t, "harvest", "parties", PARTIES),
+                   rounds=ctx.choice(t, "harvest", "rounds", ROUNDS))
+
+
+def _parse_extractor(ctx: _Ctx, d: Mapping[str, Any]) -> ExtractorSpec:
+    t = ctx.table(d, "extractor")
+    ctx.no_extra(t, "extractor", ("kind", "eps_ext", "output_rule"))
+    return ExtractorSpec(
+        kind=ctx.choice(t, "extractor", "kind", EXTRACTOR_KINDS),
+        eps_ext=ctx.number(t, "extractor", "eps_ext", lo=0.0, hi=1.0, lo_open=True, hi_open=True),
+        output_rule=ctx.choice(t, "extractor", "output_rule", OUTPUT_RULES,
+                               default="lhl-conservative"),
+    )
+
+
+def _params_class(method: str):
+    if method == "martingale":
+        from dicert.finite.params import MartingaleParams
+
+        return MartingaleParams
+    if method == "eat":
+        from dicert.finite.params import EatParams
+
+        return EatParams
+    from dicert.finite.pef import PefParams
+
+    return PefParams
+
+
+def _parse_analysis(ctx: _Ctx, d: Mapping[str, Any]) -> tuple[str, Any]:
+    t = ctx.table(d, "analysis")
+    method = ctx.choice(t, "analysis", "method", METHODS)
+    rest = {k: v for k, v in t.items() if k != "method"}
+    try:
+        cls = _params_class(method)
+    except ImportError:
+        raise ctx.fail("analysis.method",
+                       f"method {method!r} is not available in this installation") from None
+    # The finite-size engineers' parsers name the key; we prefix the file and table.
+    try:
+        params = cls.from_mapping(rest, f"{ctx.source}: [analysis]")
+    except ProtocolError:
+        raise
+    except (ValueError, TypeError, KeyError) as exc:
+        raise ctx.fail("analysis", " ".join(str(exc).split())) from None
+    return method, params
+
+
+def _cross_checks(ctx: _Ctx, *, bell: BellTest, design: Any, harvest: Harvest, method: str,
+                  params: Any) -> None:
+    gamma = float(design.gamma)
+    if harvest.rounds == "generation" and gamma >= 1.0:
+        raise ctx.fail("harvest.rounds", "\"generation\" needs settings.gamma < 1 "
+                       "(with gamma = 1 every round is a test round)")
+    if method in ("martingale", "eat") and bell.kind != "chsh":
+        raise ctx.fail("bell.kind", f"method {method!r} supports only kind = \"chsh\"")
+    if method == "eat":
+        # The entropy accumulation bound is on the register (A_i, B_i) of every round
+        # (methods note "entropy-accumulation", raw output A^n B^n).
+        if harvest.parties != "AB":
+            raise ctx.fail("harvest.parties", "method \"eat\" bounds the pair of outcomes; "
+                           "use parties = \"AB\"")
+        if harvest.rounds != "all":
+            raise ctx.fail("harvest.rounds", "method \"eat\" bounds the outcomes of every "
+                           "round; use rounds = \"all\"")
+    if method == "martingale":
+        single = getattr(params, "single_round", None)
+        if single == "npa-AB" and harvest.parties != "AB":
+            raise ctx.fail("harvest.parties", "single_round = \"npa-AB\" bounds the pair of "
+                           "outcomes; use parties = \"AB\"")
+    # Parameters that also carry gamma must agree with [settings].
+    p_gamma = getattr(params, "gamma", None)
+    if p_gamma is not None and not math.isclose(float(p_gamma), gamma, rel_tol=0, abs_tol=1e-15):
+        raise ctx.fail("analysis.gamma", f"{p_gamma!r} disagrees with settings.gamma = {gamma!r}")
+
+
+def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: str | None = None,
+                       sha256: str | None = None, path: str | None = None) -> Protocol:
+    """Validate a protocol given as a mapping (the parsed TOML).
+
+    Parameters
+    ----------
+    d : mapping
+        The protocol tables, as :func:`tomllib.loads` returns them.
+    source : str
+        Name used in error messages (a file name, or ``"<dict>"``).
+    text, sha256, path : optional
+        The file content, its digest and path, when loading from a file. For a plain
+        mapping, ``text`` defaults to a canonical JSON rendering and ``sha256`` to its digest.
+
+    Raises
+    ------
+    ProtocolError
+        One line naming ``source`` and the offending key.
+    """
+    ctx = _Ctx(source)
+    if not isinstance(d, Mapping):
+        raise ProtocolError(f"{source}: expected a table of protocol keys, got {_kind(d)}")
+    ctx.no_extra(d, None, _TOP_KEYS)
+    fmt = d.get("format", PROTOCOL_FORMAT)
+    if fmt != PROTOCOL_FORMAT:
+        raise ctx.fail("format", f"got {fmt!r}; this version reads {PROTOCOL_FORMAT!r}")
+    name = d.get("name")
+    if not isinstance(name, str) or not name.strip():
+        raise ctx.fail("name", "missing or empty; expected a short name string")
+    desc = d.get("description", "")
+    if not isinstance(desc, str):
+        raise ctx.fail("description", "expected a string")
+    bell = _parse_bell(ctx, d)
+    design = _parse_settings(ctx, d)
+    harvest = _parse_harvest(ctx, d)
+    method, params = _parse_analysis(ctx, d)
+    extractor = _parse_extractor(ctx, d)
+    _cross_checks(ctx, bell=bell, design=design, harvest=harvest, method=method, params=params)
+    if text is None:
+        import json
+
+        text = json.dumps(_plain(d), sort_keys=True, separators=(",", ":"))
+    if sha256 is None:
+        sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
+    return Protocol(name=name.strip(), path=path or source, sha256=sha256, text=text, bell=bell,
+                    design=design, harvest=harvest, method=method, analysis=params,
+                    extractor=extractor, description=desc)
+
+
+def _plain(obj: Any) -> Any:
+    if isinstance(obj, Mapping):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if hasattr(obj, "isoformat"):
+        return obj.isoformat()
+    return obj
+
+
+def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | None = None) -> Protocol:
+    """Parse and validate protocol file bytes (UTF-8 TOML); ``sha256`` is over ``data``."""
+    import tomllib
+
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ProtocolError(f"{source}: not UTF-8 text (byte offset {exc.start})") from None
+    try:
+        d = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProtocolError(f"{source}: invalid TOML: {' '.join(str(exc).split())}") from None
+    return protocol_from_dict(d, source, text=text, sha256=hashlib.sha256(data).hexdigest(),
+                              path=path or source)
+
+
+def load_protocol(path: str | os.PathLike[str]) -> Protocol:
+    """Read and validate a protocol file.
+
+    Raises
+    ------
+    ProtocolError
+        If the file is missing, not TOML, or any key is missing or invalid; the message
+        names the file and the key.
+    """
+    p = Path(path)
+    try:
+        data = p.read_bytes()
+    except FileNotFoundError:
+        raise ProtocolError(f"{p}: protocol file not found") from None
+    except IsADirectoryError:
+        raise ProtocolError(f"{p}: is a directory, expected a protocol file (.toml)") from None
+    except OSError as exc:
+        raise ProtocolError(f"{p}: cannot read protocol file ({exc.strerror})") from None
+    return protocol_from_bytes(data, str(p), path=str(p))
+
+
+def shipped_protocol_path(name: str) -> Path:
+    """Path of a protocol shipped inside the package data (``dicert/data/demo``)."""
+    return Path(__file__).parent / "data" / "demo" / f"{name}.toml"
+
+
+__all__ = [
+    "PROTOCOL_FORMAT",
+    "BellTest",
+    "ExtractorSpec",
+    "Harvest",
+    "Protocol",
+    "load_protocol",
+    "protocol_from_bytes",
+    "protocol_from_dict",
+    "shipped_protocol_path",
+]
