@@ -106,6 +106,7 @@ class ChshEstimate:
     eps: float
     gamma: float
     p_value_local: float
+    log10_p_value_local: float
     p_value_method: str = "binomial bound on CHSH-game wins (Gill 2003)"
     bound_method: str = "martingale estimator, Azuma-Hoeffding, width 8/gamma"
 
@@ -162,13 +163,28 @@ def martingale_chsh(counts: np.ndarray, design: SettingsDesign) -> float:
     return signed / (design.gamma / 4.0) / n
 
 
-def binomial_p_value(wins: int, n_test: int, p_local: float = 0.75) -> float:
-    """P[Binomial(n_test, p_local) >= wins]; 1.0 when there are no test rounds."""
+def binomial_log10_p_value(wins: int, n_test: int, p_local: float = 0.75) -> float:
+    """log10 P[Binomial(n_test, p_local) >= wins] (0 when there are no test rounds).
+
+    Given in log form because strong violations give p-values far below the smallest double.
+    """
     from scipy.stats import binom
 
-    if n_test == 0:
-        return 1.0
-    return float(min(1.0, binom.sf(wins - 1, n_test, p_local)))
+    if n_test == 0 or wins <= 0:
+        return 0.0
+    lp = float(binom.logsf(wins - 1, n_test, p_local))
+    if not math.isfinite(lp):
+        # Below double range: use the Chernoff-Hoeffding bound exp(-n KL(k/n || p)), an upper
+        # bound on the tail, so the reported p-value stays conservative.
+        q = wins / n_test
+        kl = q * math.log(q / p_local) + ((1 - q) * math.log((1 - q) / (1 - p_local)) if q < 1 else 0.0)
+        lp = -n_test * kl
+    return float(min(0.0, lp / math.log(10.0)))
+
+
+def binomial_p_value(wins: int, n_test: int, p_local: float = 0.75) -> float:
+    """P[Binomial(n_test, p_local) >= wins]; 1.0 when there are no test rounds."""
+    return 10.0 ** binomial_log10_p_value(wins, n_test, p_local)
 
 
 def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps: float = 1e-6) -> ChshEstimate:
@@ -225,7 +241,8 @@ def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps:
         margin=margin,
         eps=eps,
         gamma=design.gamma,
-        p_value_local=binomial_p_value(wins, n_test),
+        p_value_local=10.0 ** (lp := binomial_log10_p_value(wins, n_test)),
+        log10_p_value_local=lp,
     )
 
 
@@ -298,6 +315,7 @@ __all__ = [
     "ChshEstimate",
     "SettingsDesign",
     "azuma_margin",
+    "binomial_log10_p_value",
     "binomial_p_value",
     "block_estimates",
     "clopper_pearson",
