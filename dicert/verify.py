@@ -1,0 +1,416 @@
+"""Independent re-checking of audit records, and of beacon chains.
+
+:func:`verify` checks, in order:
+
+1. the record's format, digest and Ed25519 signature (:func:`dicert.audit.record.check_record`);
+   with ``public_key`` the signature must come from that key, without it the record's own
+   embedded key is used and the report says that the signer was not authenticated;
+2. internal consistency: the protocol content matches its SHA-256 and re-validates; the counts
+   table is well formed and sums to the trial count; every derived number (estimate, finite-size
+   bound, accept/abort, eps terms, output length, seed bits used, raw-bit count) is recomputed
+   from the recorded counts and protocol and compared;
+3. with ``log``: the log is read again and its digest, size, counts and harvested raw bits are
+   compared; with ``seed``: its digest, and (with the log too) the extraction is re-run and the
+   output digest compared; with ``bits``: the bits file's length and digest are compared.
+
+The first disagreement raises :class:`~dicert.errors.VerificationError` naming the field
+(dotted path into the record, e.g. ``entropy.finite_size.min_entropy_bits``). A failure can
+therefore never be ignored by forgetting to look at a return value.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import math
+import os
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from dicert import __version__
+from dicert.errors import DicertError, VerificationError
+
+#: Record members outside the body (added by sealing).
+_SEAL_KEYS = ("record_sha256", "signature")
+_REL_TOL = 1e-9
+_ABS_TOL = 1e-15
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class VerifyReport:
+    """What :func:`verify` established (it raises instead of reporting a failure).
+
+    ``scope`` is "full" (log, seed and bits all re-checked), "partial" (some of them) or
+    "record-only" (signature and internal consistency only; said plainly in ``message``).
+    """
+
+    record_file: str
+    record_sha256: str
+    status: str
+    output_bits: int
+    signature: str
+    key_fingerprint: str | None
+    scope: str
+    checked: tuple[str, ...]
+    not_checked: tuple[str, ...]
+    notes: tuple[str, ...]
+    message: str
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class _ExtractionStandIn:
+    seed_bits_used: int
+    output_sha256: str | None
+    method: str | None
+
+
+# --------------------------------------------------------------------------- comparison
+
+
+def _first_difference(expected: Any, actual: Any, path: str) -> tuple[str, str] | None:
+    """(field, description) of the first place where two JSON values differ."""
+    if isinstance(expected, Mapping):
+        if not isinstance(actual, Mapping):
+            return path, "expected an object"
+        for k in expected:
+            sub = f"{path}.{k}" if path else str(k)
+            if k not in actual:
+                return sub, "missing from the record"
+            d = _first_difference(expected[k], actual[k], sub)
+            if d is not None:
+                return d
+        for k in actual:
+            if k not in expected:
+                sub = f"{path}.{k}" if path else str(k)
+                return sub, "unexpected member in the record"
+        return None
+    if isinstance(expected, list):
+        if not isinstance(actual, list) or len(actual) != len(expected):
+            return path, "list differs in length or type"
+        for i, (e, a) in enumerate(zip(expected, actual)):
+            d = _first_difference(e, a, f"{path}[{i}]")
+            if d is not None:
+                return d
+        return None
+    if isinstance(expected, bool) or isinstance(actual, bool):
+        if type(expected) is not type(actual) or expected != actual:
+            return path, f"recorded {actual!r}, recomputed {expected!r}"
+        return None
+    if isinstance(expected, (int, float)) and isinstance(actual, (int, float)):
+        if isinstance(expected, int) and isinstance(actual, int):
+            ok = expected == actual
+        else:
+            ok = math.isclose(float(expected), float(actual), rel_tol=_REL_TOL, abs_tol=_ABS_TOL)
+        return None if ok else (path, f"recorded {actual!r}, recomputed {expected!r}")
+    if expected != actual:
+        return path, f"recorded {_short(actual)}, recomputed {_short(expected)}"
+    return None
+
+
+def _short(v: Any) -> str:
+    r = repr(v)
+    return r if len(r) <= 80 else r[:77] + "..."
+
+
+def _require(cond: bool, field: str, message: str) -> None:
+    if not cond:
+        raise VerificationError(message, field)
+
+
+def _compare(expected: Mapping[str, Any], actual: Mapping[str, Any]) -> None:
+    d = _first_difference(expected, actual, "")
+    if d is not None:
+        field, what = d
+        raise VerificationError(f"does not match the recomputation ({what})", field)
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _body_of(record: Mapping[str, Any]) -> dict:
+    return {k: v for k, v in record.items() if k not in _SEAL_KEYS}
+
+
+def _get(d: Mapping[str, Any], dotted: str) -> Any:
+    cur: Any = d
+    for part in dotted.split("."):
+        if not isinstance(cur, Mapping) or part not in cur:
+            raise VerificationError("missing from the record", dotted)
+        cur = cur[part]
+    return cur
+
+
+def _recorded_counts(body: Mapping[str, Any]) -> np.ndarray:
+    values = _get(body, "counts.values")
+    try:
+        arr = np.array(values, dtype=object)
+        ok = arr.shape == (2, 2, 2, 2, 2) and all(
+            isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in arr.ravel())
+    except (ValueError, TypeError):
+        ok = False
+    _require(ok, "counts.values", "expected a 2x2x2x2x2 table of non-negative integers")
+    return np.array(values, dtype=np.int64)
+
+
+def _protocol_of(body: Mapping[str, Any]):
+    from dicert.errors import ProtocolError
+    from dicert.protocol import protocol_from_bytes
+
+    content = _get(body, "protocol.content")
+    _require(isinstance(content, str), "protocol.content", "expected the protocol file text")
+    data = content.encode("utf-8")
+    _require(hashlib.sha256(data).hexdigest() == _get(body, "protocol.sha256"), "protocol.sha256",
+             "is not the SHA-256 of protocol.content")
+    try:
+        return protocol_from_bytes(data, "protocol.content")
+    except ProtocolError as exc:
+        raise VerificationError(f"the recorded protocol does not validate: {exc}",
+                                "protocol.content") from None
+
+
+def _load_public_key(public_key: Any) -> Any:
+    if public_key is None or not isinstance(public_key, (str, os.PathLike)):
+        return public_key
+    from dicert.audit.signing import load_public_key
+
+    return load_public_key(public_key)
+
+
+def check_signature(record: Mapping[str, Any], public_key: Any = None) -> tuple[str, str | None]:
+    """Check format, digest and signature; returns (description, key fingerprint)."""
+    from dicert.audit.record import check_record
+
+    key = _load_public_key(public_key)
+    check_record(record, key)
+    sig = record.get("signature")
+    if not sig:
+        return "none (the record is unsigned; only its digest was checked)", None
+    fp = sig.get("key_fingerprint") if isinstance(sig, Mapping) else None
+    if key is not None:
+        return f"valid, made by the given public key (fingerprint {fp})", fp
+    return (f"valid for the key embedded in the record (fingerprint {fp}); pass --pubkey to "
+            "check that it is the operator's key"), fp
+
+
+def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
+                  seed_bytes: int, output_sha256: str | None) -> dict:
+    """Recompute a record body from a protocol, a log scan and seed/output digests."""
+    from dicert.certify import analyse_counts, build_body
+    from dicert.extract import seed_bits_required
+
+    analysis = analyse_counts(scan.counts, protocol, scan.raw_bits)
+    extraction = None
+    if analysis.status == "certified":
+        extraction = _ExtractionStandIn(
+            seed_bits_used=int(seed_bits_required(scan.raw_bits, analysis.output_bits)),
+            output_sha256=output_sha256,
+            method=body.get("extractor", {}).get("method") if isinstance(
+                body.get("extractor"), Mapping) else None,
+        )
+    chain_info = None
+    if body.get("pulse_index") is not None or body.get("previous_record_sha256") is not None:
+        chain_info = (body.get("pulse_index"), body.get("previous_record_sha256"))
+    exp = build_body(protocol=protocol, scan=scan, analysis=analysis, seed_sha256=seed_sha256,
+                     seed_bytes=seed_bytes, extraction=extraction, chain_info=chain_info,
+                     volatile=body.get("volatile"))
+    # A record written by another version is compared on its numbers, not its version string.
+    exp["tool"] = body.get("tool", exp["tool"])
+    return exp
+
+
+def _scan_from_record(body: Mapping[str, Any], protocol: Any):
+    from dicert.certify import LogScan, expected_raw_bits
+
+    counts = _recorded_counts(body)
+    trials = _get(body, "log.trials")
+    _require(isinstance(trials, int) and trials == int(counts.sum()), "log.trials",
+             f"recorded {trials!r} but the counts table sums to {int(counts.sum())}")
+    has_t = _get(body, "log.has_test_flag")
+    if not has_t:
+        _require(int(counts[0].sum()) == 0, "counts.values",
+                 "a log without a t column must have every trial under t = 1")
+    raw_bits = expected_raw_bits(counts, protocol.harvest.parties, protocol.harvest.rounds)
+    files = _get(body, "log.files")
+    return LogScan(counts=counts, trials=trials, sha256=_get(body, "log.sha256"),
+                   size_bytes=_get(body, "log.size_bytes"),
+                   files=tuple(files) if isinstance(files, list) else files,
+                   has_test_flag=has_t, raw_bits=raw_bits,
+                   raw_sha256=_get(body, "harvest.raw_sha256"))
+
+
+# --------------------------------------------------------------------------- recipe
+
+
+def verify(record_path: str | os.PathLike[str], *, log: Any = None,
+           seed: bytes | str | os.PathLike[str] | None = None,
+           bits: str | os.PathLike[str] | None = None, public_key: Any = None) -> VerifyReport:
+    """Re-check an audit record; with the log and seed, re-derive every number.
+
+    Parameters
+    ----------
+    record_path : path
+        The record (JSON) written by :func:`dicert.certify.certify`.
+    log : path, directory or glob, optional
+        The trial log the record claims; read again and compared.
+    seed : bytes or path, optional
+        The extractor seed; its digest is compared, and with ``log`` the extraction re-run.
+    bits : path, optional
+        The output bits file; its length and digest are compared.
+    public_key : key object or path, optional
+        The operator's Ed25519 public key; without it the record's embedded key is used.
+
+    Returns
+    -------
+    VerifyReport
+
+    Raises
+    ------
+    VerificationError
+        Naming the first field that disagrees.
+    """
+    from dicert.audit.record import read_record, record_digest
+
+    path = Path(record_path)
+    record = read_record(path)
+    if not isinstance(record, Mapping):
+        raise VerificationError("expected a JSON object", "record")
+    signature, fp = check_signature(record, public_key)
+    body = _body_of(record)
+    checked = ["format", "record digest", "signature" if fp else "digest (unsigned record)"]
+    notes: list[str] = []
+    if body.get("tool", {}).get("version") != __version__:
+        notes.append(f"record written by dicert {body.get('tool', {}).get('version')}, "
+                     f"re-checked with {__version__}")
+
+    protocol = _protocol_of(body)
+    _require(body.get("protocol", {}).get("name") == protocol.name, "protocol.name",
+             "does not match the name in protocol.content")
+    rec_scan = _scan_from_record(body, protocol)
+    seed_sha = _get(body, "extractor.seed_sha256")
+    seed_bytes_n = _get(body, "extractor.seed_bytes")
+    output_sha = _get(body, "extractor.output_sha256")
+    status = _get(body, "status")
+    _require(status in ("certified", "aborted"), "status", f"unknown status {status!r}")
+    exp = expected_body(body, protocol, rec_scan, seed_sha256=seed_sha, seed_bytes=seed_bytes_n,
+                        output_sha256=output_sha)
+    _compare(exp, body)
+    used = _get(body, "extractor.seed_bits_used")
+    _require(isinstance(seed_bytes_n, int) and seed_bytes_n * 8 >= used, "extractor.seed_bytes",
+             f"{seed_bytes_n!r} bytes cannot supply {used} seed bits")
+    if status == "certified":
+        _require(isinstance(output_sha, str) and len(output_sha) == 64, "extractor.output_sha256",
+                 "a certified record must carry the output digest")
+    checked.append("internal consistency (protocol digest, counts, estimate, finite-size "
+                   "bound, acceptance, eps terms, output length, seed bits)")
+    output_bits = int(_get(body, "extractor.output_bits"))
+    not_checked: list[str] = []
+
+    seed_data = None
+    if seed is not None:
+        from dicert.certify import read_seed
+
+        seed_data, _label = read_seed(seed)
+        _require(hashlib.sha256(seed_data).hexdigest() == seed_sha, "extractor.seed_sha256",
+                 "the given seed is not the one recorded")
+        _require(len(seed_data) == seed_bytes_n, "extractor.seed_bytes",
+                 f"the given seed has {len(seed_data)} bytes")
+        checked.append("seed digest")
+    else:
+        not_checked.append("seed")
+
+    recomputed_output: bytes | None = None
+    if log is not None:
+        from dicert.certify import scan_log
+
+        scan, sink = scan_log(log, protocol.harvest.parties, protocol.harvest.rounds,
+                              spill_dir=path.parent)
+        try:
+            exp = expected_body(body, protocol, scan, seed_sha256=seed_sha,
+                                seed_bytes=seed_bytes_n, output_sha256=output_sha)
+            # The log may have been moved or renamed; its bytes are what is certified.
+            exp["log"]["files"] = body["log"]["files"] if len(body["log"]["files"]) == len(
+                exp["log"]["files"]) else exp["log"]["files"]
+            _compare(exp, body)
+            checked.append("log digest, size, trial count, counts and harvested raw bits")
+            if seed_data is not None and status == "certified":
+                from dicert.extract import extract_toeplitz
+
+                res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits)
+                _require(res.output_sha256 == output_sha, "extractor.output_sha256",
+                         "re-running the extractor on the log and seed gives other bits")
+                recomputed_output = bytes(res.output)
+                checked.append("extraction re-run from log and seed")
+        finally:
+            sink.discard()
+    else:
+        not_checked.append("log")
+
+    if bits is not None:
+        bpath = Path(bits)
+        try:
+            data = bpath.read_bytes()
+        except FileNotFoundError:
+            raise VerificationError(f"{bpath}: no such file", "bits") from None
+        if status != "certified":
+            _require(len(data) == 0, "bits", "the record is an abort but the bits file is not empty")
+        else:
+            _require(len(data) == (output_bits + 7) // 8, "bits",
+                     f"{bpath}: {len(data)} bytes, the record claims {output_bits} bits "
+                     f"({(output_bits + 7) // 8} bytes)")
+            _require(hashlib.sha256(data).hexdigest() == output_sha, "bits",
+                     f"{bpath}: SHA-256 does not match extractor.output_sha256")
+            if recomputed_output is not None:
+                _require(data == recomputed_output, "bits", "differs from the recomputed output")
+        checked.append("bits file length and digest")
+    elif status == "certified":
+        not_checked.append("bits")
+
+    if not not_checked:
+        scope = "full"
+    elif "log" in not_checked and "seed" in not_checked:
+        scope = "record-only"
+    else:
+        scope = "partial"
+    if scope == "record-only":
+        message = ("Only the signature and the internal consistency of the record were "
+                   "checked; pass --log and --seed (and --bits) to re-derive the bits.")
+    elif scope == "partial":
+        message = f"Checked what was given; not checked: {', '.join(not_checked)}."
+    else:
+        message = "Every number was re-derived from the log and the seed, and the bits match."
+    return VerifyReport(record_file=str(path), record_sha256=record_digest(record),
+                        status=status, output_bits=output_bits, signature=signature,
+                        key_fingerprint=fp, scope=scope, checked=tuple(checked),
+                        not_checked=tuple(not_checked), notes=tuple(notes), message=message)
+
+
+def verify_chain(chain_dir: str | os.PathLike[str], *, public_key: Any = None,
+                 strict: bool = False, records: bool = True) -> Any:
+    """Check a beacon chain (signatures, links, gaps, order, forks, seed reuse).
+
+    Delegates to :func:`dicert.audit.chain.verify_chain`; with ``records`` every pulse's
+    record is also re-checked for internal consistency (as :func:`verify` without inputs).
+    Returns the chain report; raises VerificationError on the first problem.
+    """
+    from dicert.audit.chain import verify_chain as _verify_chain
+
+    key = _load_public_key(public_key)
+    try:
+        report = _verify_chain(chain_dir, public_key=key, strict=strict)
+    except TypeError:  # an implementation without the strict switch
+        report = _verify_chain(chain_dir, public_key=key)
+    if records:
+        for p in sorted(Path(chain_dir).glob("*.json")):
+            try:
+                verify(p, public_key=key)
+            except VerificationError as exc:
+                raise VerificationError(f"{p.name}: {exc}", exc.field) from None
+            except DicertError:
+                raise
+    return report
+
+
+__all__ = ["VerifyReport", "check_signature", "expected_body", "verify", "verify_chain"]
