@@ -111,3 +111,31 @@ def test_keypair_repr_hides_keys():
     pair = signing.generate_keypair()
     assert "private_key" not in repr(pair)
     assert len(pair.fingerprint) == 64
+
+
+def test_cli_keygen(tmp_path):
+    import json
+
+    from typer.testing import CliRunner
+
+    from dicert.cli.app import app
+
+    runner = CliRunner()
+    out = tmp_path / "op.key"
+    res = runner.invoke(app, ["keygen", "--out", str(out), "--json"])
+    assert res.exit_code == 0, res.output
+    info = json.loads(res.stdout)
+    assert set(info) == {"private_key_file", "public_key_file", "fingerprint"}
+    assert info["fingerprint"] == signing.fingerprint(signing.load_public_key(out.with_name("op.key.pub")))
+    assert stat.S_IMODE(out.stat().st_mode) == 0o600
+    # Refuses to overwrite: one line on stderr, exit code 2, files untouched.
+    before = out.read_bytes()
+    res = runner.invoke(app, ["keygen", "--out", str(out)])
+    assert res.exit_code == 2
+    assert "refusing to overwrite" in res.stderr and "Traceback" not in res.output
+    assert len(res.stderr.strip().splitlines()) == 1
+    assert out.read_bytes() == before
+    res = runner.invoke(app, ["keygen", "--out", str(out), "--force", "--json"])
+    assert res.exit_code == 0 and out.read_bytes() != before
+    res = runner.invoke(app, ["keygen", "--out", str(tmp_path / "h.key")])
+    assert res.exit_code == 0 and "fingerprint" in res.stdout
