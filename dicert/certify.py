@@ -706,17 +706,10 @@ def _chain_position(chain_dir: Path | None) -> tuple[int, str | None] | None:
         return None
     if chain_dir.exists() and not chain_dir.is_dir():
         raise ParameterError(f"{chain_dir}: --chain must be a directory")
-    from dicert.audit.chain import chain_head
+    from dicert.audit.chain import next_link
 
-    head = chain_head(chain_dir) if chain_dir.is_dir() else None
-    if head is None:
-        return (_FIRST_PULSE, None)
-    index, digest = head
-    return (int(index) + 1, digest)
-
-
-#: Pulse index of the first record of a chain.
-_FIRST_PULSE = 1
+    link = next_link(chain_dir)
+    return (int(link["pulse_index"]), link["previous_record_sha256"])
 
 
 def iter_record_items(record: Mapping[str, Any], prefix: str = "") -> Iterator[tuple[str, Any]]:

@@ -1,0 +1,236 @@
+"""``dicert demo``: the whole job on an INVENTED scenario, end to end, in seconds.
+
+The scenario (``dicert/data/demo/scenario.toml``) is made up: a fictional campus beacon fed by
+two detector stations. The demo simulates its pulses, certifies each one into a signed,
+hash-chained audit record, verifies everything from the raw inputs, and then tampers with a
+log, a record and a bits file to show that verification fails. It writes only inside ``--out``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import shutil
+from pathlib import Path
+from typing import Annotated, Any, Optional
+
+import typer
+
+from dicert.cli._common import CAUTION, JsonFlag, emit_json, handle_errors, kv_table, stdout_console
+
+DEFAULT_OUT = "dicert-demo"
+
+
+def register(app: typer.Typer) -> None:
+    app.command("demo")(demo_cmd)
+
+
+def _data_dir() -> Path:
+    return Path(__file__).resolve().parents[1] / "data" / "demo"
+
+
+def load_scenario(path: Path | None = None) -> dict:
+    """The invented demo scenario (TOML)."""
+    import tomllib
+
+    from dicert.errors import ParameterError
+
+    p = path or (_data_dir() / "scenario.toml")
+    try:
+        return tomllib.loads(p.read_text(encoding="utf-8"))
+    except (OSError, tomllib.TOMLDecodeError) as exc:
+        raise ParameterError(f"{p}: cannot read the demo scenario ({exc})") from None
+
+
+def _fresh_out(out: Path | None) -> Path:
+    from dicert.errors import ParameterError
+
+    if out is not None:
+        if out.exists() and (not out.is_dir() or any(out.iterdir())):
+            raise ParameterError(f"{out}: --out must be a new or empty directory")
+        out.mkdir(parents=True, exist_ok=True)
+        return out
+    base = Path.cwd() / DEFAULT_OUT
+    cand, i = base, 1
+    while cand.exists() and (not cand.is_dir() or any(cand.iterdir())):
+        i += 1
+        cand = Path(f"{base}-{i}")
+    cand.mkdir(parents=True, exist_ok=True)
+    return cand
+
+
+def _simulate(n: int, model: str, visibility: float, rng: Any):
+    from dicert.simulate import device_model, simulate_trials
+
+    if model == "classical":
+        return simulate_trials(n, device_model("classical"), rng=rng)
+    return simulate_trials(n, device_model("quantum", visibility=visibility), rng=rng)
+
+
+def _demo_seed(rng_seed: int, pulse: int, nbytes: int) -> bytes:
+    """Demo-only extractor seed: reproducible, NOT secret. Real beacons use a true random source."""
+    import numpy as np
+
+    g = np.random.Generator(np.random.PCG64(np.random.SeedSequence([rng_seed, 7, pulse])))
+    return g.bytes(nbytes)
+
+
+def _flip_byte(src: Path, dst: Path, offset_from_end: int = 1) -> int:
+    data = bytearray(src.read_bytes())
+    pos = len(data) - offset_from_end
+    data[pos] ^= 0x01
+    dst.write_bytes(bytes(data))
+    return pos
+
+
+def run_demo(out: Path | None = None, *, scenario: dict | None = None,
+             say=lambda msg: None) -> dict:
+    """Run the invented scenario; returns a JSON-able summary. Raises if a check misbehaves."""
+    import numpy as np
+
+    from dicert.audit.signing import write_keypair
+    from dicert.certify import certify
+    from dicert.errors import DicertError, VerificationError
+    from dicert.logs import write_log
+    from dicert.protocol import load_protocol, shipped_protocol_path
+    from dicert.verify import verify, verify_chain
+
+    sc = scenario if scenario is not None else load_scenario()
+    out = _fresh_out(out)
+    protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
+    rng_seed = int(sc["rng_seed"])
+    say(f"[invented scenario] {sc['title']}")
+    say(f"writing into {out}")
+
+    keys = write_keypair(out / "operator-key.pem")
+    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint[:16]}...)")
+    chain = out / "chain"
+    pulses = []
+    for i, p in enumerate(sc["pulse"], start=1):
+        pdir = out / f"pulse-{i}"
+        pdir.mkdir()
+        rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([rng_seed, i])))
+        trials = _simulate(int(p["trials"]), p["model"], float(p.get("visibility", 1.0)), rng)
+        log_path = pdir / "trials.btl"
+        write_log(log_path, trials)
+        seed_path = pdir / "seed.bin"
+        seed_path.write_bytes(_demo_seed(rng_seed, i, (4 * int(p["trials"])) // 8 + 8))
+        res = certify(log_path, protocol, seed_path, pdir / "certified", key=keys.private_key_file,
+                      chain=chain)
+        say(f"{p['label']}: {res.status.upper()}, {res.output_bits} bits "
+            f"(min-entropy {res.min_entropy_bits:.1f} bits, error {res.error:.3g})")
+        rep = verify(res.record_file, log=log_path, seed=seed_path, bits=res.bits_file,
+                     public_key=keys.public_key_file)
+        say(f"  verified from the raw inputs ({rep.scope})")
+        pulses.append({
+            "pulse": i, "label": p["label"], "model": p["model"], "trials": res.trials,
+            "status": res.status, "output_bits": res.output_bits,
+            "min_entropy_bits": res.min_entropy_bits, "error": res.error,
+            "chsh": res.record["estimate"].get("chsh"),
+            "log_file": str(log_path), "seed_file": str(seed_path),
+            "bits_file": str(res.bits_file) if res.bits_file else None,
+            "record_file": str(res.record_file), "record_sha256": res.record_sha256,
+            "verified": rep.scope,
+        })
+    chain_report = verify_chain(chain, public_key=keys.public_key_file)
+    say(f"chain of {len(pulses)} pulses verified: {chain}")
+
+    # Tampering: each must make verification fail.
+    first = pulses[0]
+    tdir = out / "tampered"
+    tdir.mkdir()
+    checks = []
+
+    def expect_failure(what: str, fn) -> None:
+        try:
+            fn()
+        except VerificationError as exc:
+            checks.append({"tampered": what, "verification": "failed as expected",
+                           "field": exc.field, "message": " ".join(str(exc).split())})
+            say(f"tampered {what}: verification FAILED as expected ({exc.field})")
+            return
+        except DicertError as exc:
+            checks.append({"tampered": what, "verification": "failed as expected",
+                           "field": None, "message": " ".join(str(exc).split())})
+            say(f"tampered {what}: verification FAILED as expected")
+            return
+        raise VerificationError(f"tampering with {what} was NOT detected", "demo")
+
+    bad_log = tdir / "trials.btl"
+    pos = _flip_byte(Path(first["log_file"]), bad_log, offset_from_end=1000)
+    expect_failure(f"log (one bit of byte {pos})", lambda: verify(
+        first["record_file"], log=bad_log, seed=first["seed_file"], bits=first["bits_file"],
+        public_key=keys.public_key_file))
+    bad_seed = tdir / "seed.bin"
+    _flip_byte(Path(first["seed_file"]), bad_seed, offset_from_end=len(
+        Path(first["seed_file"]).read_bytes()))
+    expect_failure("seed (first byte)", lambda: verify(
+        first["record_file"], log=first["log_file"], seed=bad_seed, public_key=keys.public_key_file))
+    bad_bits = tdir / "random.bits"
+    _flip_byte(Path(first["bits_file"]), bad_bits)
+    expect_failure("bits (last byte)", lambda: verify(
+        first["record_file"], bits=bad_bits, public_key=keys.public_key_file))
+    bad_rec = tdir / "record.json"
+    text = Path(first["record_file"]).read_text(encoding="utf-8")
+    old = f'"output_bits":{first["output_bits"]}'
+    bad_rec.write_text(text.replace(old, f'"output_bits":{first["output_bits"] + 1000}', 1),
+                       encoding="utf-8")
+    expect_failure("record (claims 1000 more output bits)", lambda: verify(
+        bad_rec, public_key=keys.public_key_file))
+    bad_chain = tdir / "chain"
+    shutil.copytree(chain, bad_chain)
+    victims = sorted(bad_chain.glob("*.json"))
+    if len(victims) >= 2:
+        victims[1].unlink()
+        expect_failure("chain (a pulse removed)", lambda: verify_chain(
+            bad_chain, public_key=keys.public_key_file))
+
+    from dicert.cli._common import to_jsonable
+
+    return {
+        "scenario": sc["title"],
+        "invented": True,
+        "out_dir": str(out),
+        "protocol": {"name": protocol.name, "sha256": protocol.sha256},
+        "public_key_file": keys.public_key_file,
+        "key_fingerprint": keys.fingerprint,
+        "pulses": pulses,
+        "chain": {"dir": str(chain), "report": to_jsonable(chain_report)},
+        "tamper_checks": checks,
+        "ok": True,
+        "caution": CAUTION,
+        "demo_note": ("invented scenario with simulated data; demo seeds are reproducible and "
+                      "NOT secret; real use needs a true random seed and real devices"),
+    }
+
+
+@handle_errors
+def demo_cmd(
+    out: Annotated[Optional[Path], typer.Option("--out", help=f"New or empty output directory (default: ./{DEFAULT_OUT}, or ./{DEFAULT_OUT}-N if taken).")] = None,
+    as_json: JsonFlag = False,
+) -> None:
+    """Run an INVENTED beacon scenario end to end: simulate -> certify -> verify -> tamper
+    (verification must fail). Writes only inside --out."""
+    if as_json:
+        summary = run_demo(out)
+        emit_json(summary)
+        return
+    console = stdout_console()
+    summary = run_demo(out, say=lambda m: console.print(m, highlight=False, markup=False))
+    rows = []
+    for p in summary["pulses"]:
+        rows.append((f"pulse {p['pulse']} ({p['model']})",
+                     f"{p['status']}: {p['output_bits']} bits, CHSH {p['chsh']:.4f}"))
+    for c in summary["tamper_checks"]:
+        rows.append((f"tampered {c['tampered'].split(' ')[0]}", f"detected ({c['field'] or 'error'})"))
+    rows.append(("outputs", summary["out_dir"]))
+    console.print(kv_table(f"dicert demo: {summary['scenario']}", rows))
+    first = summary["pulses"][0]
+    console.print("Re-check a pulse yourself:\n"
+                  f"  dicert verify {first['record_file']} --log {first['log_file']} "
+                  f"--seed {first['seed_file']} --bits {first['bits_file']} "
+                  f"--pubkey {summary['public_key_file']}", highlight=False, soft_wrap=True)
+    console.print(f"INVENTED scenario, simulated data. CAUTION: {CAUTION}", style="dim")
+
+
+def _sha256(path: Path) -> str:  # pragma: no cover - small helper kept for scripts
+    return hashlib.sha256(path.read_bytes()).hexdigest()
