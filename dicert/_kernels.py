@@ -5,10 +5,10 @@ codes per block of trials and report the bitwise OR of all codes so that the cal
 reserved bits without a second pass.
 
 ``np.bincount`` on bytes manages only about 50 M trials/s on a small machine (it widens every
-byte to a 64-bit index first), so the fast path is a small numba kernel: several interleaved
-histograms per thread (to break the store-to-load dependency on repeated codes) and blocks
-counted in parallel. When numba is not importable the numpy path is used; it gives identical
-counts, only slower.
+byte to a 64-bit index first), so the fast path is a small C extension (``dicert/_ccount.c``):
+four interleaved histograms (to break the store-to-load dependency on repeated codes), the GIL
+released so that hashing runs in parallel. When the extension is not built the numpy path is
+used; it gives identical counts, only slower (tests compare the two).
 """
 
 from __future__ import annotations
@@ -39,51 +39,14 @@ def count_blocks_numpy(codes: np.ndarray, block_len: int) -> tuple[np.ndarray, i
 
 
 @functools.cache
-def _numba_kernel():
-    if os.environ.get("DICERT_NO_NUMBA"):
+def _c_kernel():
+    if os.environ.get("DICERT_PURE_PYTHON"):
         return None
     try:
-        import numba
-    except Exception:  # pragma: no cover - numba missing on exotic platforms
+        from dicert import _ccount
+    except ImportError:  # pragma: no cover - extension not built on this install
         return None
-
-    @numba.njit(parallel=True, nogil=True, cache=True, boundscheck=False)
-    def count_blocks(codes, block_len):  # pragma: no cover - compiled
-        n = codes.size
-        nblocks = max(1, (n + block_len - 1) // block_len)
-        out = np.zeros((nblocks, 32), dtype=np.int64)
-        ors = np.zeros(nblocks, dtype=np.uint8)
-        for k in numba.prange(nblocks):
-            lo = k * block_len
-            hi = min(n, lo + block_len)
-            h = np.zeros((4, 256), dtype=np.int64)
-            acc = np.uint8(0)
-            i = lo
-            while i + 4 <= hi:
-                c0 = codes[i]
-                c1 = codes[i + 1]
-                c2 = codes[i + 2]
-                c3 = codes[i + 3]
-                h[0, c0] += 1
-                h[1, c1] += 1
-                h[2, c2] += 1
-                h[3, c3] += 1
-                acc |= c0 | c1 | c2 | c3
-                i += 4
-            while i < hi:
-                c0 = codes[i]
-                h[0, c0] += 1
-                acc |= c0
-                i += 1
-            for c in range(256):
-                out[k, c & 31] += h[0, c] + h[1, c] + h[2, c] + h[3, c]
-            ors[k] = acc
-        total_or = np.uint8(0)
-        for k in range(nblocks):
-            total_or |= ors[k]
-        return out, total_or
-
-    return count_blocks
+    return _ccount.count_blocks
 
 
 def count_blocks(codes: np.ndarray, block_len: int) -> tuple[np.ndarray, int]:
@@ -91,13 +54,15 @@ def count_blocks(codes: np.ndarray, block_len: int) -> tuple[np.ndarray, int]:
     if block_len <= 0:
         raise ValueError("block_len must be positive")
     codes = np.ascontiguousarray(codes, dtype=np.uint8)
-    kernel = _numba_kernel()
+    kernel = _c_kernel()
     if kernel is None or codes.size == 0:
         return count_blocks_numpy(codes, block_len)
-    out, or_all = kernel(codes, np.int64(block_len))
+    nblocks = max(1, -(-codes.size // block_len))
+    out = np.zeros((nblocks, NCODES), dtype=np.int64)
+    or_all = kernel(codes, block_len, out)
     return out, int(or_all)
 
 
 def kernel_name() -> str:
     """Which counting kernel is in use (for benchmark reports)."""
-    return "numba" if _numba_kernel() is not None else "numpy-bincount"
+    return "C" if _c_kernel() is not None else "numpy-bincount"

@@ -283,3 +283,14 @@ def test_writer_is_atomic_on_failure(tmp_path, rng):
             write_log(p, chunks())
         assert not p.exists()
         assert list(tmp_path.iterdir()) == []
+
+
+def test_compiled_kernel_is_in_use():
+    """The package builds its C counting kernel; a silent fallback would cost 10x in speed."""
+    import os
+
+    from dicert._kernels import kernel_name
+
+    if os.environ.get("DICERT_PURE_PYTHON"):
+        pytest.skip("pure-Python mode requested")
+    assert kernel_name() == "C"
