@@ -1,0 +1,454 @@
+"""Probability estimation factors: models, construction, validity, scoring, parameters, planning.
+
+Sources of the check values:
+- [MN] methods note "probability-estimation.md", section 4 "Computed" values: regression values
+  computed from the formulas in the methods note (the note's own numerical computation).
+- [KZB] E. Knill, Y. Zhang, P. Bierhorst, Phys. Rev. Research 2, 033465 (2020): the PEF
+  inequality and the success rule (definitions, as summarised in the methods note section 1-2).
+- [vDGG] W. van Dam, R. D. Gill, P. D. Grunwald, IEEE Trans. Inf. Theory 51, 2812 (2005):
+  statistical strength of CHSH 0.0462738469 bits (from memory).
+- [PR94] S. Popescu, D. Rohrlich, Found. Phys. 24, 379 (1994): PR box reaches CHSH = 4.
+- [C80] B. S. Cirel'son, Lett. Math. Phys. 4, 93 (1980): Tsirelson bound 2 sqrt 2.
+- Reference libraries: scipy.optimize.linprog (HiGHS), scipy.spatial.ConvexHull (Qhull).
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings as hsettings, strategies as st
+
+from dicert.errors import ParameterError, ProtocolError
+from dicert.finite import pef as P
+
+SQRT2 = math.sqrt(2.0)
+
+# Photonic Eberhard-type model of the methods note section 4, rho(c|z) with rows c, columns z.
+PHOTONIC_TABLE = np.array([
+    [.8859631, .7646459, .7646459, .5773941],
+    [.0287661, .1500833, .0234703, .2107221],
+    [.0287661, .0234703, .1500833, .2107221],
+    [.0565046, .0618005, .0618005, .0011617],
+]).T
+
+
+@pytest.fixture(scope="module")
+def photonic():
+    # The 7-digit table signals at the 1e-7 level; fit it into NS (methods note section 3).
+    return P.fit_box(PHOTONIC_TABLE / PHOTONIC_TABLE.sum(axis=1, keepdims=True) * 1e9)
+
+
+def chsh_value(box):
+    corr = np.array([1.0, -1.0, -1.0, 1.0])
+    e = box @ corr
+    return e[0] + e[1] + e[2] - e[3]
+
+
+def is_no_signalling(box, tol=1e-12):
+    b = box.reshape(2, 2, 2, 2)  # x, y, a, b
+    alice = b.sum(axis=3)  # x, y, a
+    bob = b.sum(axis=2)  # x, y, b
+    return (np.allclose(alice[:, 0], alice[:, 1], atol=tol)
+            and np.allclose(bob[0], bob[1], atol=tol)
+            and np.allclose(box.sum(axis=1), 1.0, atol=tol) and np.all(box >= 0))
+
+
+def rows_float64(pef):
+    a = P.pef_rows(pef.model, pef.settings, pef.beta)
+    vals = a @ pef.factors.ravel()
+    vals_fsum = [math.fsum(row * pef.factors.ravel()) for row in a]
+    return vals, np.array(vals_fsum)
+
+
+# --------------------------------------------------------------------------- models
+
+def test_ns_vertices_are_the_24_textbook_boxes():
+    verts = P.box_model("ns").vertices
+    assert verts.shape == (24, 4, 4)
+    assert all(is_no_signalling(v) for v in verts)
+    chsh = np.array([chsh_value(v) for v in verts])
+    # Local deterministic boxes obey |CHSH| <= 2 with 8 of the 16 reaching +2 (common practice);
+    # the PR box (al,be,ga) = (0,0,0) reaches CHSH = 4 [PR94].
+    assert np.all(np.abs(chsh[:16]) <= 2 + 1e-12)
+    assert np.sum(np.isclose(chsh[:16], 2.0)) == 8
+    assert math.isclose(chsh[16], 4.0)
+    assert len({v.tobytes() for v in verts}) == 24
+
+
+def test_tsirelson_polytope_has_80_vertices_with_the_note_entries():
+    bm = P.box_model("tsirelson")
+    assert bm.n_vertices == 80
+    vals = set(np.round(bm.vertices.ravel(), 12))
+    # [MN]: truncated PR boxes have entries 0, (sqrt2-1)/2, 2-sqrt2, (3-sqrt2)/2 (plus LD's 1).
+    expected = {0.0, round((SQRT2 - 1) / 2, 12), round(2 - SQRT2, 12), round((3 - SQRT2) / 2, 12),
+                1.0}
+    assert vals == expected
+    n_ld = sum(1 for v in bm.vertices if set(v.ravel()) <= {0.0, 1.0})
+    assert n_ld == 16  # [MN]: the 16 LD boxes plus 64 truncated PR boxes
+    for v in bm.vertices:
+        assert is_no_signalling(v)
+        assert all(w.ravel() @ v.ravel() <= 2 * SQRT2 + 1e-12  # [C80]
+                   for w in P.chsh_functionals())
+
+
+def test_tsirelson_polytope_vertex_list_is_complete():
+    """conv(vertices) contains the polytope: every facet of the hull (scipy.spatial.ConvexHull)
+    is implied by the polytope's inequalities (checked by maximising over it with
+    scipy.optimize.linprog)."""
+    from scipy.optimize import linprog
+    from scipy.spatial import ConvexHull
+
+    m, c0 = P._box_affine()
+    verts = P.box_model("tsirelson").vertices.reshape(80, 16)
+    theta = np.linalg.lstsq(m, (verts - c0).T, rcond=None)[0].T  # 80 x 8 coordinates
+    assert np.allclose(theta @ m.T + c0, verts, atol=1e-12)
+    hull = ConvexHull(theta)
+    a_ub = [-m]
+    b_ub = [c0]
+    for w in P.chsh_functionals().reshape(8, 16):
+        a_ub.append((w @ m)[None, :])
+        b_ub.append([2 * SQRT2 - w @ c0])
+    a_ub, b_ub = np.vstack(a_ub), np.concatenate(b_ub)
+    for eq in np.unique(np.round(hull.equations, 9), axis=0):
+        normal, offset = eq[:-1], eq[-1]  # hull: normal . x + offset <= 0
+        res = linprog(-normal, A_ub=a_ub, b_ub=b_ub, bounds=(None, None), method="highs")
+        assert res.status == 0
+        assert -res.fun + offset <= 1e-7
+
+
+# --------------------------------------------------------------------------- rates
+
+@pytest.mark.parametrize("beta,rate", [
+    (0.1, 0.341247), (0.05, 0.381052), (0.02, 0.401624), (0.01, 0.408023), (0.005, 0.411143),
+])
+def test_tsirelson_box_rates(beta, rate):
+    # [MN] computed r(beta) for the Tsirelson box, uniform settings, NS model.
+    pef = P.build_pef(P.tsirelson_box(), P.uniform_settings(), beta)
+    assert pef.rate == pytest.approx(rate, rel=1e-4)
+
+
+def test_tsirelson_box_asymptotic_rate_and_strength():
+    rho = P.tsirelson_box()
+    # h_inf = sqrt2 - 1 [MN]; equals (CHSH - 2)/2 for isotropic boxes [MN, derived].
+    assert P.asymptotic_rate(rho) == pytest.approx(SQRT2 - 1, abs=1e-9)
+    # D_LR = 0.0462738 bits: [MN] computed, and [vDGG] 0.0462738469 (from memory).
+    d = P.statistical_strength(rho)
+    assert d == pytest.approx(0.0462738469, abs=2e-8)
+    # g(beta) saturates at D_LR for beta in {1, 0.5, 0.2} [MN]; and never exceeds it (fact (d)).
+    for beta in (1.0, 0.5, 0.2):
+        g = P.build_pef(rho, beta=beta).expected_log2
+        assert g == pytest.approx(0.0462738, abs=2e-7)
+        assert g <= d + 1e-12
+    # r(0.001) = 0.413603 < h_inf [MN].
+    r = P.build_pef(rho, beta=0.001).rate
+    assert r == pytest.approx(0.413603, rel=1e-4) and r <= SQRT2 - 1
+
+
+def test_tsirelson_box_optimal_factor_values():
+    # [MN]: at beta = 0.01, F ~ 1.006955 on CHSH wins and ~ 0.979134 otherwise (tol ~1e-5).
+    f = P.build_pef(P.tsirelson_box(), beta=0.01).factors
+    for x, y, a, b in itertools.product((0, 1), repeat=4):
+        want = 1.006955 if (a ^ b) == (x * y) else 0.979134
+        assert f[2 * x + y, 2 * a + b] == pytest.approx(want, abs=2e-5)
+
+
+@pytest.mark.parametrize("v,h_inf,d_lr,r01", [
+    (0.75, 0.060660, 8.9714e-04, 0.050733),
+    (0.80, 0.131371, 4.2809e-03, 0.122191),
+    (0.90, 0.272792, 1.9184e-02, 0.265107),
+])
+def test_isotropic_boxes(v, h_inf, d_lr, r01):
+    rho = P.isotropic_box(v)
+    assert P.asymptotic_rate(rho) == pytest.approx(h_inf, abs=2e-6)  # [MN]
+    assert P.asymptotic_rate(rho) == pytest.approx((2 * SQRT2 * v - 2) / 2, abs=1e-9)  # [MN, D]
+    assert P.statistical_strength(rho) == pytest.approx(d_lr, rel=2e-4)  # [MN]
+    assert P.build_pef(rho, beta=0.01).rate == pytest.approx(r01, rel=1e-4)  # [MN]
+
+
+@pytest.mark.parametrize("beta,rate", [
+    (0.1, 0.002753), (0.02, 0.011783), (0.01, 0.014335), (0.005, 0.015580), (0.001, 0.016561),
+])
+def test_photonic_model_rates(photonic, beta, rate):
+    # [MN] photonic Eberhard-type model (r = 2.918, efficiency 0.76), NS model, uniform settings.
+    assert P.build_pef(photonic, beta=beta).rate == pytest.approx(rate, rel=2e-4)
+
+
+def test_photonic_model_h_inf_and_strength(photonic):
+    assert P.asymptotic_rate(photonic) == pytest.approx(0.016805, abs=2e-6)  # [MN]
+    assert P.statistical_strength(photonic) == pytest.approx(2.7528e-4, rel=2e-4)  # [MN]
+    # Tsirelson polytope column of the [MN] table: 0.0365 (photonic), 0.900 (Tsirelson box),
+    # 0.1318 (isotropic v = 0.75).
+    assert P.asymptotic_rate(photonic, model="tsirelson") == pytest.approx(0.0365, abs=6e-5)
+    assert P.asymptotic_rate(P.tsirelson_box(), model="tsirelson") == pytest.approx(0.900, abs=6e-4)
+    assert P.asymptotic_rate(P.isotropic_box(0.75), model="tsirelson") == pytest.approx(
+        0.1318, abs=6e-5)
+
+
+def test_tsirelson_model_gives_more_than_ns():
+    rho = P.tsirelson_box()
+    ns = P.build_pef(rho, beta=0.01)
+    ts = P.build_pef(rho, beta=0.01, model="tsirelson")
+    assert ts.rate > ns.rate  # more randomness with the quantum assumption [MN table, BZ20]
+    assert ts.rate <= 0.9002  # never above its h_inf
+
+
+def test_spot_checking_rates():
+    # [MN] spot-checking q = 0.1, z0 = 00, Tsirelson box: D_LR = 0.005744, r(0.01) = 0.3549.
+    s = P.spot_settings(0.1, (0, 0))
+    rho = P.tsirelson_box()
+    assert P.statistical_strength(rho, s) == pytest.approx(0.005744, rel=2e-4)
+    assert P.build_pef(rho, s, 0.01).rate == pytest.approx(0.3549, abs=1e-4)
+    assert P.build_pef(rho, s, 0.001).rate == pytest.approx(0.4090, abs=1e-4)
+    assert P.asymptotic_rate(rho, s) == pytest.approx(SQRT2 - 1, abs=1e-9)  # [MN]
+
+
+# --------------------------------------------------------------------------- validity
+
+def _random_ns_box(draw_weights):
+    verts = P.box_model("ns").vertices
+    w = np.asarray(draw_weights, dtype=float)
+    w = w / w.sum()
+    return np.tensordot(w, verts, axes=1)
+
+
+@hsettings(max_examples=25, deadline=None)
+@given(weights=st.lists(st.floats(0.01, 1.0), min_size=24, max_size=24),
+       beta=st.sampled_from([1.0, 0.3, 0.05, 0.01, 1e-3, 1e-4]),
+       model=st.sampled_from(["ns", "tsirelson"]),
+       kind=st.sampled_from(["uniform", "product", "spot", "bias"]),
+       lam=st.sampled_from([0.0, 1e-3]))
+def test_every_produced_pef_satisfies_every_vertex_row(weights, beta, model, kind, lam):
+    """[KZB] PEF inequality at every (settings vertex, box vertex) pair, evaluated in float64
+    (numpy and math.fsum) on the returned factors."""
+    rho = _random_ns_box(weights)
+    s = {"uniform": P.uniform_settings(),
+         "product": P.product_settings(0.3, 0.6),
+         "spot": P.spot_settings(0.05, (1, 0)),
+         "bias": P.spot_settings(0.2, (0, 1), bias_x=0.05, bias_y=0.02)}[kind]
+    pef = P.build_pef(rho, s, beta, model=model, lam=lam)
+    vals, vals_fsum = rows_float64(pef)
+    assert np.all(vals <= 1.0) and np.all(vals_fsum <= 1.0)
+    assert pef.max_row_value <= 1.0 - P.ROW_CHECK_SLACK
+    assert np.all(pef.factors >= 0)
+    if lam > 0:
+        assert np.all(pef.factors >= lam * 0.999)
+
+
+def test_bias_bounded_settings_cover_every_distribution_in_the_box():
+    """A PEF for |P(x=0)-1/2| <= 0.1, |P(y=0)-1/2| <= 0.05 satisfies the rows for settings drawn
+    anywhere inside the box (multilinearity, methods note section 1)."""
+    s = P.product_settings(0.5, 0.5, bias_x=0.1, bias_y=0.05)
+    assert s.vertices.shape == (4, 4)
+    pef = P.build_pef(P.isotropic_box(0.9), s, 0.05)
+    rng = np.random.default_rng(7)
+    verts = P.box_model("ns").vertices ** 1.05
+    for _ in range(200):
+        inner = P.product_settings(0.5 + rng.uniform(-0.1, 0.1), 0.5 + rng.uniform(-0.05, 0.05))
+        rows = (inner.nominal[None, :, None] * verts).reshape(24, 16) @ pef.factors.ravel()
+        assert np.all(rows <= 1.0)
+    # The nominal-only PEF is NOT valid for the biased corners (so the bound matters).
+    naive = P.build_pef(P.isotropic_box(0.9), P.uniform_settings(), 0.05)
+    corner = P.product_settings(0.6, 0.55)
+    rows = (corner.nominal[None, :, None] * verts).reshape(24, 16) @ naive.factors.ravel()
+    assert rows.max() > 1.0
+
+
+def test_make_valid_repairs_infeasible_candidates():
+    s = P.uniform_settings()
+    bad = np.full((4, 4), 3.0)
+    pef = P.make_valid(bad, 0.05, "ns", s)
+    assert np.all(rows_float64(pef)[0] <= 1.0)
+    with pytest.raises(ParameterError):
+        P.validate_pef(bad, 0.05, "ns", s)
+    assert P.validate_pef(np.ones((4, 4)), 0.05, "ns", s) <= 1.0  # F = 1 is a PEF (fact (a))
+
+
+# --------------------------------------------------------------------------- scoring
+
+def _sample(box, n, rng, settings=None, t=1):
+    s = P.uniform_settings() if settings is None else settings
+    z = rng.choice(4, size=n, p=s.nominal)
+    cdf = np.cumsum(box, axis=1)[z]
+    c = np.minimum((rng.random(n)[:, None] > cdf).sum(axis=1), 3)
+    return ((t << 4) | (4 * z + c)).astype(np.uint8)
+
+
+def _params(**kw):
+    base = dict(beta=0.14, eps_pe=2.0 ** -64, sigma_target_bits=512, n_max=10 ** 7,
+                calibration="isotropic", calibration_chsh=2.8, lam=1e-3)
+    base.update(kw)
+    return P.PefParams(**base)
+
+
+def test_first_crossing_matches_per_trial_oracle():
+    rng = np.random.default_rng(11)
+    codes = _sample(P.tsirelson_box(), 20000, rng)
+    params = _params()
+    acc = P.PefAccumulator(params)
+    assert acc.update(codes)
+    # Oracle: naive per-trial loop with math.fsum of the factors' log2 (style guide).
+    lf = np.log2(acc.pef.factors.ravel())
+    run = 0.0
+    first = None
+    terms = []
+    for i, c in enumerate(codes):
+        terms.append(lf[c & 15])
+        if i % 50 == 0 or i > 3000:
+            run = math.fsum(terms)
+            if run >= params.threshold_log2 + 1e-9:
+                first = i
+                break
+    assert acc.success_index == first
+    res = acc.result()
+    assert res.accepted and res.method == "pef" and res.side_information == "classical"
+    assert res.details["success_trial_index"] == first
+    assert res.details["harvest_bits"] == 2 * (first + 1)
+    assert res.min_entropy_bits == 511.0
+    assert res.total_error(1e-10) == pytest.approx(2.0 ** -64 + 1e-10)  # eps_PE + eps_ext [MN]
+    # The methods note's planning value: ~3.2e3 trials for 512 bits at 2^-64 [MN].
+    assert 2000 < first < 5000
+
+
+@pytest.mark.parametrize("chunk", [1, 7, 1000, 1 << 20])
+def test_chunking_and_numpy_fallback_give_the_same_index(chunk, monkeypatch):
+    rng = np.random.default_rng(5)
+    codes = _sample(P.isotropic_box(0.95), 8000, rng)
+    ref = P.PefAccumulator(_params(calibration_chsh=2.6))
+    ref.update(codes)
+    acc = P.PefAccumulator(_params(calibration_chsh=2.6))
+    if chunk == 7:
+        acc._kernel = None  # numpy reference path
+    for i in range(0, codes.size, chunk):
+        if acc.update(codes[i:i + chunk]):
+            break
+    assert acc.success_index == ref.success_index is not None
+    assert acc.log2_t() == ref.log2_t()
+
+
+def test_counts_variant_and_abort_paths():
+    rng = np.random.default_rng(3)
+    codes = _sample(P.tsirelson_box(), 3000, rng)
+    counts = np.bincount(codes, minlength=32)
+    params = _params(n_max=3000)
+    res = P.certify_pef_counts(counts, params)
+    acc = P.PefAccumulator(params)
+    acc.update(codes)
+    assert res.details["log2_t"] == pytest.approx(acc.log2_t()[0], abs=1e-9)
+    # n_max reached without success: aborted with 0 bits.
+    small = _params(n_max=500)
+    res = P.certify_pef(codes, small)
+    assert not res.accepted and res.min_entropy_bits == 0.0
+    assert res.details["analysis_trials"] == 500
+    # A generation-round trial (t = 0) under uniform settings is outside the model: factor 0.
+    bad = codes.copy()
+    bad[10] = 0x00
+    acc = P.PefAccumulator(_params())
+    acc.update(bad)
+    assert acc.dead and not acc.succeeded and acc.done
+    with pytest.raises(ProtocolError):
+        P.certify_pef_counts(counts, _params(calibration="prefix", calibration_chsh=None,
+                                             calibration_trials=100))
+
+
+def test_prefix_calibration_does_not_score_calibration_trials():
+    rng = np.random.default_rng(9)
+    codes = _sample(P.tsirelson_box(), 12000, rng)
+    params = _params(calibration="prefix", calibration_chsh=None, calibration_trials=5000)
+    acc = P.PefAccumulator(params)
+    acc.update(codes)
+    assert acc.calibration_trials == 5000
+    assert acc.succeeded and acc.success_index >= 5000
+    res = acc.result()
+    assert res.details["harvest_first_trial"] == 5000
+    assert acc.analysis_trials == acc.success_index - 5000 + 1
+    # The PEF came from the prefix only: identical to one built from those trials' counts.
+    box = P.fit_box(P.counts_by_setting(np.bincount(codes[:5000], minlength=32)))
+    ref = P.build_pef(box, P.uniform_settings(), 0.14, lam=1e-3)
+    assert np.allclose(acc.pef.factors, ref.factors, rtol=1e-9)
+
+
+def test_spot_checking_log_with_test_flags():
+    s = P.spot_settings(0.2, (0, 1))
+    rng = np.random.default_rng(2)
+    n = 4000
+    t = (rng.random(n) < 0.2).astype(np.uint8)
+    z = np.where(t == 1, rng.integers(0, 4, n), 1)
+    box = P.tsirelson_box()
+    cdf = np.cumsum(box, axis=1)[z]
+    c = np.minimum((rng.random(n)[:, None] > cdf).sum(axis=1), 3)
+    codes = ((t << 4) | (4 * z + c)).astype(np.uint8)
+
+    class Design:
+        gamma = 0.2
+        generation = (0, 1)
+
+    acc = P.PefAccumulator(_params(beta=0.05, sigma_target_bits=64, eps_pe=1e-6), Design())
+    acc.update(codes)
+    assert not acc.dead
+    assert acc.pef.settings.kind == "spot-checking"
+    # A t = 0 trial with non-generation settings is outside the model.
+    bad = codes.copy()
+    bad[0] = (0 << 4) | (4 * 3)
+    acc = P.PefAccumulator(_params(beta=0.05), Design())
+    acc.update(bad)
+    assert acc.dead
+
+
+# --------------------------------------------------------------------------- parameters
+
+def test_params_from_mapping_names_the_key():
+    good = {"beta": 0.02, "eps_pe": 1e-9, "sigma_target_bits": 512, "n_max": 10 ** 8,
+            "calibration": "prefix", "calibration_trials": 10 ** 6}
+    p = P.PefParams.from_mapping(good, "x.toml: [analysis]")
+    assert p.model == "ns" and p.lam == 1e-3
+    cases = [
+        ({"beta": 0}, "beta"), ({"beta": "a"}, "beta"), ({"eps_pe": 1.0}, "eps_pe"),
+        ({"n_max": 1.5}, "n_max"), ({"model": "quantum"}, "model"), ({"lam": 1}, "lam"),
+        ({"bogus": 1}, "bogus"), ({"calibration_trials": 0}, "calibration_trials"),
+        ({"calibration": "isotropic", "calibration_trials": 0}, "calibration_chsh"),
+        ({"bias_x": 0.6}, "bias_x"), ({"p_x0": 0.9, "bias_x": 0.2}, "bias_x"),
+    ]
+    for change, key in cases:
+        d = {**good, **change}
+        with pytest.raises(ProtocolError) as info:
+            P.PefParams.from_mapping(d, "x.toml: [analysis]")
+        msg = str(info.value)
+        assert "x.toml" in msg and f"'{key}'" in msg and "\n" not in msg
+    tab = P.PefParams.from_mapping({**good, "calibration": "table", "calibration_trials": 0,
+                                    "calibration_table": P.tsirelson_box().ravel().tolist()})
+    assert np.allclose(tab.anticipated_box(), P.tsirelson_box())
+    assert tab.threshold_log2 == pytest.approx(0.02 * 512 + math.log2(1e9))
+
+
+# --------------------------------------------------------------------------- planning
+
+def test_plan_tsirelson_box_512_bits():
+    # [MN]: 512 bits at eps_PE = 2^-64: expected n ~ 3.2e3 at beta ~ 0.14; latency floor
+    # 64 / D_LR = 1383 trials.
+    plan = P.plan_pef(P.tsirelson_box(), target_bits=512, eps_pe=2.0 ** -64)
+    assert plan.expected_trials == pytest.approx(3.2e3, rel=0.05)
+    assert 0.1 < plan.beta < 0.2
+    assert plan.latency_floor_trials == pytest.approx(1383, abs=1)
+    assert plan.trials_for_completeness > plan.expected_trials
+
+
+def test_plan_photonic_512_bits(photonic):
+    # [MN]: beta* ~ 0.023; E[log2 F] = 2.53e-4, sd 0.0200; expected n = 3.0e5; n(99%) = 4.2e5.
+    at = P.plan_pef(photonic, target_bits=512, eps_pe=2.0 ** -64, betas=[0.023])
+    assert at.expected_log2_factor == pytest.approx(2.53e-4, rel=0.03)
+    assert at.sd_log2_factor == pytest.approx(0.0200, rel=0.03)
+    assert at.expected_trials == pytest.approx(3.0e5, rel=0.04)
+    assert at.trials_for_completeness == pytest.approx(4.2e5, rel=0.04)
+    # Normal-approximation round trip (scipy.stats.norm): P(success) at that n is 0.99.
+    thr = 0.023 * 512 + 64
+    assert P.completeness_probability(at.trials_for_completeness, at.expected_log2_factor,
+                                      at.sd_log2_factor, thr) == pytest.approx(0.99, abs=1e-9)
+    # The grid search lands on the flat optimum near there (expected n within 5% of 3.0e5).
+    plan = P.plan_pef(photonic, target_bits=512, eps_pe=2.0 ** -64)
+    assert 0.015 < plan.beta < 0.035
+    assert plan.expected_trials == pytest.approx(3.0e5, rel=0.05)
+    assert plan.expected_trials <= at.expected_trials
+    assert plan.latency_floor_trials == pytest.approx(64 / 2.7528e-4, rel=1e-3)
