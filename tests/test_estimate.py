@@ -18,6 +18,7 @@ from dicert.errors import ParameterError
 from dicert.estimate import (
     SettingsDesign,
     azuma_margin,
+    binomial_log10_p_value,
     binomial_p_value,
     block_estimates,
     clopper_pearson,
@@ -90,6 +91,19 @@ def test_p_value_matches_scipy_binomial_tail():
     assert (n, nt, w) == (400, 400, 400)
     est = estimate_chsh(c)
     assert est.log10_p_value_local == pytest.approx(400 * math.log10(0.75), rel=1e-9)
+
+
+@pytest.mark.parametrize("k,n", [(790, 1000), (751, 1000), (700, 1000), (10, 10), (1, 10),
+                                 (7600, 10_000), (8500, 10_000), (75_010_000, 100_000_000)])
+def test_log_p_value_matches_scipy(k, n):
+    # Reference library: scipy.stats.binom.logsf (our own tail sum keeps inspect free of scipy).
+    ref = stats.binom.logsf(k - 1, n, 0.75) / math.log(10)
+    assert binomial_log10_p_value(k, n) == pytest.approx(ref, rel=1e-6, abs=1e-10)
+
+
+def test_log_p_value_beyond_double_range():
+    # 1e6 wins in 1e6 rounds: exactly 1e6 * log10(0.75) (closed form, common practice).
+    assert binomial_log10_p_value(10**6, 10**6) == pytest.approx(10**6 * math.log10(0.75), rel=1e-9)
 
 
 def test_clopper_pearson_against_scipy_binomtest():
