@@ -1,0 +1,264 @@
+"""End-to-end certification: numbers against published formulas, harvest order against a naive
+oracle, aborts, determinism, seed length, atomicity, chains."""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from dicert.certify import (
+    BITS_NAME,
+    EXIT_ABORTED,
+    RECORD_NAME,
+    certify,
+    harvest_bits,
+)
+from dicert.errors import LogFormatError, SeedError
+from dicert.logs import TrialArrays, read_trials, write_log
+from dicert.protocol import protocol_from_dict
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _proto(**analysis):
+    d = tomllib.loads((ROOT / "protocols" / "chsh-uniform.toml").read_text())
+    d["analysis"].update(analysis)
+    return protocol_from_dict(d, "test-uniform")
+
+
+def _sim(n: int, model: str = "quantum", visibility: float = 1.0, seed: int = 1,
+         gamma: float = 1.0) -> TrialArrays:
+    from dicert.simulate import device_model, simulate_trials
+
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
+    src = device_model(model) if model != "quantum" else device_model("quantum", visibility=visibility)
+    return simulate_trials(n, src, gamma=gamma, rng=rng)
+
+
+@pytest.fixture(scope="module")
+def small_run(tmp_path_factory):
+    d = tmp_path_factory.mktemp("run")
+    log = d / "log.btl"
+    write_log(log, _sim(20_000, seed=11))
+    seed = d / "seed.bin"
+    seed.write_bytes(np.random.default_rng(5).bytes(20_000))
+    return d, log, seed
+
+
+def _f(s: float) -> float:
+    # Pironio et al., Nature 464, 1021 (2010), eq. (3): f(S) = 1 - log2(1 + sqrt(2 - S^2/4)).
+    return 1.0 - math.log2(1.0 + math.sqrt(2.0 - s * s / 4.0))
+
+
+def test_certified_numbers_follow_the_published_formulas(small_run, tmp_path):
+    d, log, seed = small_run
+    proto = _proto()
+    res = certify(log, proto, seed, tmp_path / "out")
+    assert res.status == "certified" and res.exit_code == 0
+    n = 20_000
+    eps_est = proto.analysis.eps_est
+    # Azuma-Hoeffding margin with estimator width 8/gamma (methods README; Azuma 1967).
+    mu = 8.0 * math.sqrt(math.log(1.0 / eps_est) / (2.0 * n))
+    k = n * _f(proto.analysis.chsh_threshold - mu)
+    assert res.min_entropy_bits == pytest.approx(k, rel=1e-12)
+    # Conservative leftover-hash sizing m = floor(k - 2 log2(1/eps_ext)) (Impagliazzo, Levin,
+    # Luby 1989; methods note B3).
+    m = math.floor(k - 2.0 * math.log2(1.0 / proto.extractor.eps_ext))
+    assert res.output_bits == m
+    # Soundness error eps_est + eps_ext ("P(accept) x distance" form, methods note A3/B3).
+    assert res.error == pytest.approx(eps_est + proto.extractor.eps_ext, rel=1e-12)
+    data = res.bits_file.read_bytes()
+    assert len(data) == (m + 7) // 8
+    rec = res.record
+    assert rec["extractor"]["output_sha256"] == hashlib.sha256(data).hexdigest()
+    # Toeplitz seed length n + m - 1 (Mansour, Nisan, Tiwari 1990; methods note B1).
+    assert rec["extractor"]["seed_bits_used"] == 2 * n + m - 1
+    assert rec["log"]["sha256"] == hashlib.sha256(log.read_bytes()).hexdigest()
+    assert rec["log"]["trials"] == n and int(np.sum(rec["counts"]["values"])) == n
+    for key in ("assumptions", "caution", "references", "volatile", "protocol", "eps"):
+        assert rec[key]
+    assert rec["protocol"]["content"] == proto.text
+    assert rec["entropy"]["finite_size"]["side_information"] == "classical"
+    assert any("communication" in a for a in rec["assumptions"])
+    assert set(rec["volatile"]) == {"timestamps", "timings_s"}
+
+
+def test_output_equals_naive_toeplitz_product_of_naively_harvested_bits(tmp_path):
+    # Naive oracle: per-trial loop for the harvest, dense GF(2) product with the matrix built by
+    # scipy.linalg.toeplitz in the convention T[i][j] = s[i - j + n - 1] (methods note B1).
+    from scipy.linalg import toeplitz
+
+    log = tmp_path / "log.csv"
+    write_log(log, _sim(2_000, seed=3))
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(np.random.default_rng(9).bytes(1_000))
+    res = certify(log, _proto(), seed, tmp_path / "out")
+    assert res.status == "certified"
+    tr = read_trials(log)
+    raw = []
+    for i in range(len(tr)):
+        raw += [int(tr.a[i]), int(tr.b[i])]
+    n, m = len(raw), res.output_bits
+    assert res.record["harvest"]["raw_sha256"] == hashlib.sha256(
+        np.packbits(np.array(raw, dtype=np.uint8)).tobytes()).hexdigest()
+    s = np.unpackbits(np.frombuffer(seed.read_bytes(), dtype=np.uint8))[: n + m - 1].astype(np.int64)
+    t = toeplitz(s[n - 1: n - 1 + m], s[n - 1::-1][:n])
+    z = (t @ np.array(raw, dtype=np.int64)) % 2
+    assert res.bits_file.read_bytes() == np.packbits(z.astype(np.uint8)).tobytes()
+
+
+def test_harvest_order_and_generation_rounds():
+    # Codes (t<<4)|(x<<3)|(y<<2)|(a<<1)|b (project data model); naive per-trial expectation.
+    codes = np.array([0b10010, 0b00001, 0b11111, 0b00011, 0b00000], dtype=np.uint8)
+    assert harvest_bits(codes, "AB", "all", True).tolist() == [1, 0, 0, 1, 1, 1, 1, 1, 0, 0]
+    assert harvest_bits(codes, "A", "all", True).tolist() == [1, 0, 1, 1, 0]
+    assert harvest_bits(codes, "AB", "generation", True).tolist() == [0, 1, 1, 1, 0, 0]
+
+
+def test_classical_devices_abort_with_a_record(tmp_path):
+    log = tmp_path / "classical.btl"
+    write_log(log, _sim(20_000, model="classical", seed=4))
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(b"\x00" * 16)  # an abort never reads the seed beyond its digest
+    out = tmp_path / "out"
+    res = certify(log, _proto(), seed, out)
+    assert res.status == "aborted" and res.output_bits == 0
+    assert res.exit_code == EXIT_ABORTED == 3
+    assert res.bits_file is None and not (out / BITS_NAME).exists()
+    assert (out / RECORD_NAME).exists()
+    rec = res.record
+    assert rec["status"] == "aborted" and rec["extractor"]["output_bits"] == 0
+    # The best classical strategy wins the CHSH game with probability 3/4, S = 2 (Clauser,
+    # Horne, Shimony, Holt 1969), far below the threshold.
+    assert rec["estimate"]["chsh"] == pytest.approx(2.0, abs=0.1)
+    assert "threshold" in rec["abort_reason"]
+
+
+def test_two_runs_identical_except_volatile(small_run, tmp_path):
+    from dicert.audit.record import stable_view
+
+    d, log, seed = small_run
+    clocks = iter(["2001-01-01T00:00:00Z", "2001-01-01T00:00:01Z",
+                   "2030-05-05T12:00:00Z", "2030-05-05T12:00:09Z"])
+    r1 = certify(log, _proto(), seed, tmp_path / "a", clock=lambda: next(clocks))
+    r2 = certify(log, _proto(), seed, tmp_path / "b", clock=lambda: next(clocks))
+    assert r1.bits_file.read_bytes() == r2.bits_file.read_bytes()
+    assert stable_view(r1.record) == stable_view(r2.record)
+    assert r1.record["volatile"]["timestamps"]["started"] == "2001-01-01T00:00:00Z"
+    assert r2.record["volatile"]["timestamps"]["finished"] == "2030-05-05T12:00:09Z"
+    assert r1.record_sha256 != r2.record_sha256  # the timestamps are sealed too
+
+
+def test_seed_too_short_says_how_many_bytes(small_run, tmp_path):
+    d, log, _ = small_run
+    short = tmp_path / "short.bin"
+    short.write_bytes(b"\x01" * 100)
+    out = tmp_path / "out"
+    with pytest.raises(SeedError) as info:
+        certify(log, _proto(), short, out)
+    msg = str(info.value)
+    assert "bytes needed" in msg and "100 bytes given" in msg
+    need = int(msg.split(" bytes needed")[0].rsplit(" ", 1)[-1])
+    # n + m - 1 seed bits (methods note B1), rounded up to bytes.
+    assert need == (40_000 + _expected_m() - 1 + 7) // 8
+    assert not out.exists() or not any(out.iterdir())
+
+
+def _expected_m() -> int:
+    n = 20_000
+    mu = 8.0 * math.sqrt(math.log(1e6) / (2.0 * n))
+    return math.floor(n * _f(2.6 - mu) - 2.0 * math.log2(1e8))
+
+
+@pytest.mark.parametrize("stage", ["extract", "record"])
+def test_nothing_half_written_when_a_late_stage_fails(small_run, tmp_path, monkeypatch, stage):
+    import dicert.audit.record as record_mod
+    import dicert.extract as extract_mod
+
+    d, log, seed = small_run
+
+    def boom(*a, **k):
+        raise RuntimeError("injected failure")
+
+    if stage == "extract":
+        monkeypatch.setattr(extract_mod, "extract_toeplitz", boom)
+    else:
+        monkeypatch.setattr(record_mod, "record_bytes", boom)
+    out = tmp_path / "out"
+    with pytest.raises(RuntimeError, match="injected"):
+        certify(log, _proto(), seed, out)
+    assert not out.exists() or list(out.iterdir()) == []
+
+
+def test_spilled_raw_bits_give_the_same_result(small_run, tmp_path, monkeypatch):
+    import dicert.certify as certify_mod
+
+    d, log, seed = small_run
+    r1 = certify(log, _proto(), seed, tmp_path / "mem")
+    monkeypatch.setattr(certify_mod, "_SPILL_BYTES", 100)
+    r2 = certify(log, _proto(), seed, tmp_path / "spill")
+    assert r1.bits_file.read_bytes() == r2.bits_file.read_bytes()
+    assert r1.record["harvest"] == r2.record["harvest"]
+    # The spill file is removed: only the two outputs remain.
+    assert sorted(p.name for p in (tmp_path / "spill").iterdir()) == sorted([BITS_NAME, RECORD_NAME])
+
+
+def test_chain_links_pulses(small_run, tmp_path):
+    from dicert.audit.chain import verify_chain
+    from dicert.audit.record import record_digest
+
+    d, log, seed = small_run
+    chain = tmp_path / "chain"
+    r1 = certify(log, _proto(), seed, tmp_path / "p1", chain=chain)
+    r2 = certify(log, _proto(), seed, tmp_path / "p2", chain=chain)
+    assert r1.record["pulse_index"] == 1 and r1.record["previous_record_sha256"] is None
+    assert r2.record["pulse_index"] == 2
+    assert r2.record["previous_record_sha256"] == record_digest(r1.record)
+    rep = verify_chain(chain)
+    assert rep.pulses == 2
+    # The same seed in two pulses is flagged (extractor seeds must not be reused across pulses).
+    assert any(f.kind == "seed-reuse" for f in rep.findings)
+
+
+def test_uniform_protocol_rejects_generation_rounds(tmp_path):
+    log = tmp_path / "spot.btl"
+    write_log(log, _sim(5_000, gamma=0.5, seed=2))
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(b"\x00" * 8)
+    with pytest.raises(LogFormatError, match="generation rounds"):
+        certify(log, _proto(), seed, tmp_path / "out")
+
+
+def test_spotcheck_protocol_needs_a_test_column(tmp_path):
+    from dicert.protocol import load_protocol
+
+    log = tmp_path / "uniform.btl"
+    write_log(log, _sim(1_000, seed=2))
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(b"\x00" * 8)
+    with pytest.raises(LogFormatError, match="no t column"):
+        certify(log, load_protocol(ROOT / "protocols" / "chsh-spotcheck.toml"), seed,
+                tmp_path / "out")
+    assert not (tmp_path / "out").exists()
+
+
+def test_signed_record(small_run, tmp_path):
+    from dicert.audit.record import check_record
+    from dicert.audit.signing import write_keypair
+
+    d, log, seed = small_run
+    keys = write_keypair(tmp_path / "k.pem")
+    res = certify(log, _proto(), seed, tmp_path / "out", key=keys.private_key_file)
+    chk = check_record(res.record, _pub(keys.public_key_file))
+    assert chk.signed and chk.signer_trusted
+
+
+def _pub(path):
+    from dicert.audit.signing import load_public_key
+
+    return load_public_key(path)
