@@ -353,13 +353,28 @@ def _plain(obj: Any) -> Any:
 
 
 def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | None = None) -> Protocol:
-    """Parse and validate protocol file bytes (UTF-8 TOML); ``sha256`` is over ``data``."""
+    """Parse and validate protocol file bytes; ``sha256`` is over ``data``.
+
+    The bytes are UTF-8 TOML, or (for protocols built in code by :func:`protocol_from_dict`)
+    a JSON object of the same tables.
+    """
     import tomllib
 
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ProtocolError(f"{source}: not UTF-8 text (byte offset {exc.start})") from None
+    if text.lstrip().startswith("{"):
+        # Protocols built in code (protocol_from_dict) are recorded as canonical JSON of the
+        # same tables; read that form back too.
+        import json
+
+        try:
+            d = json.loads(text)
+        except json.JSONDecodeError as exc:
+            raise ProtocolError(f"{source}: invalid JSON protocol: {exc}") from None
+        return protocol_from_dict(d, source, text=text, sha256=hashlib.sha256(data).hexdigest(),
+                                  path=path or source)
     try:
         d = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

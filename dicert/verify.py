@@ -325,8 +325,19 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     if log is not None:
         from dicert.certify import scan_log
 
-        scan, sink = scan_log(log, protocol.harvest.parties, protocol.harvest.rounds,
-                              spill_dir=path.parent)
+        import tempfile
+
+        from dicert.errors import LogFormatError
+        from dicert.logs import resolve_sources
+
+        resolve_sources(log)  # a missing log is bad input (exit 2), not a mismatch
+        try:
+            scan, sink = scan_log(log, protocol.harvest.parties, protocol.harvest.rounds,
+                                  spill_dir=Path(tempfile.gettempdir()))
+        except LogFormatError as exc:
+            # A log that no longer reads is not the log that was certified.
+            raise VerificationError(f"the given log does not read as a trial log ({exc})",
+                                    "log.sha256") from None
         try:
             exp = expected_body(body, protocol, scan, seed_sha256=seed_sha,
                                 seed_bytes=seed_bytes_n, output_sha256=output_sha)

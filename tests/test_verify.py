@@ -1,0 +1,229 @@
+"""Verification: a genuine record passes; tampering with any byte of the log, seed, bits or
+record fails with the first disagreeing field named."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from dicert.certify import certify
+from dicert.errors import VerificationError
+from dicert.logs import write_log
+from dicert.protocol import protocol_from_dict
+from dicert.verify import verify, verify_chain
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _proto():
+    d = tomllib.loads((ROOT / "protocols" / "chsh-uniform.toml").read_text())
+    return protocol_from_dict(d, "test-uniform")
+
+
+def _sim(n: int, seed: int, model: str = "quantum"):
+    from dicert.simulate import device_model, simulate_trials
+
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
+    return simulate_trials(n, device_model(model) if model != "quantum"
+                           else device_model("quantum", visibility=1.0), rng=rng)
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    from dicert.audit.signing import write_keypair
+
+    d = tmp_path_factory.mktemp("verify")
+    log = d / "log.btl"
+    write_log(log, _sim(4_000, seed=21))
+    seed = d / "seed.bin"
+    seed.write_bytes(np.random.default_rng(8).bytes(1_200))
+    keys = write_keypair(d / "key.pem")
+    res = certify(log, _proto(), seed, d / "out", key=keys.private_key_file)
+    assert res.status == "certified" and res.output_bits > 0
+    return {"dir": d, "log": log, "seed": seed, "bits": res.bits_file, "record": res.record_file,
+            "pub": keys.public_key_file, "res": res}
+
+
+def _flip(src: Path, dst: Path, pos: int) -> Path:
+    data = bytearray(src.read_bytes())
+    data[pos] ^= 0x01
+    dst.write_bytes(bytes(data))
+    return dst
+
+
+def _positions(size: int, count: int = 12) -> list[int]:
+    return sorted({0, 1, size // 2, size - 1, *np.linspace(0, size - 1, count).astype(int).tolist()})
+
+
+def test_genuine_record_verifies_fully(run):
+    rep = verify(run["record"], log=run["log"], seed=run["seed"], bits=run["bits"],
+                 public_key=run["pub"])
+    assert rep.scope == "full" and rep.not_checked == ()
+    assert rep.output_bits == run["res"].output_bits
+    assert "given public key" in rep.signature
+
+
+def test_without_inputs_says_only_signature_and_consistency(run):
+    rep = verify(run["record"])
+    assert rep.scope == "record-only"
+    assert "Only the signature and the internal consistency" in rep.message
+    assert set(rep.not_checked) == {"log", "seed", "bits"}
+
+
+def test_tampered_log_fails_at_every_position(run, tmp_path):
+    size = run["log"].stat().st_size
+    for pos in _positions(size):
+        bad = _flip(run["log"], tmp_path / "bad.btl", pos)
+        with pytest.raises(VerificationError) as info:
+            verify(run["record"], log=bad, seed=run["seed"], public_key=run["pub"])
+        assert info.value.field == "log.sha256", pos
+
+
+def test_tampered_seed_fails_at_every_position(run, tmp_path):
+    size = run["seed"].stat().st_size
+    for pos in _positions(size):
+        bad = _flip(run["seed"], tmp_path / "bad.bin", pos)
+        with pytest.raises(VerificationError) as info:
+            verify(run["record"], seed=bad)
+        assert info.value.field == "extractor.seed_sha256"
+
+
+def test_tampered_bits_fail_at_every_byte(run, tmp_path):
+    data = run["bits"].read_bytes()
+    for pos in range(len(data)):
+        bad = _flip(run["bits"], tmp_path / "bad.bits", pos)
+        with pytest.raises(VerificationError) as info:
+            verify(run["record"], bits=bad)
+        assert info.value.field == "bits"
+    (tmp_path / "short.bits").write_bytes(data[:-1])
+    with pytest.raises(VerificationError, match="bytes"):
+        verify(run["record"], bits=tmp_path / "short.bits")
+
+
+def test_tampered_record_fails_at_every_byte(run, tmp_path):
+    # Every byte of the file: the canonical file form (RFC 8785) plus the SHA-256 digest and
+    # Ed25519 signature (RFC 8032) leave no byte whose change goes unnoticed.
+    from dicert.audit.record import check_record, read_record
+
+    data = run["record"].read_bytes()
+    bad = tmp_path / "bad.json"
+    step = max(1, len(data) // 500)  # about 500 positions spread over the whole file
+    for pos in range(0, len(data), step):
+        buf = bytearray(data)
+        buf[pos] ^= 0x01
+        bad.write_bytes(bytes(buf))
+        with pytest.raises(Exception) as info:  # noqa: PT011 -- the type is checked below
+            check_record(read_record(bad))
+        assert isinstance(info.value, (VerificationError,)), (pos, info.value)
+    # and through verify() itself at a few positions
+    for pos in _positions(len(data)):
+        _flip(run["record"], bad, pos)
+        with pytest.raises(VerificationError):
+            verify(bad)
+
+
+def _reseal(record_path: Path, edit, key=None) -> dict:
+    from dicert.audit.record import read_record, seal_record
+
+    rec = read_record(record_path)
+    body = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
+    edit(body)
+    return seal_record(body, key)
+
+
+@pytest.mark.parametrize(
+    ("edit", "field"),
+    [
+        (lambda b: b["extractor"].__setitem__("output_bits", b["extractor"]["output_bits"] + 1),
+         "extractor.output_bits"),
+        (lambda b: b["entropy"]["finite_size"].__setitem__("min_entropy_bits", 1e9),
+         "entropy.finite_size.min_entropy_bits"),
+        (lambda b: b["eps"].__setitem__("total", 1e-30), "eps.total"),
+        (lambda b: b["counts"]["values"][1][0][0][0].__setitem__(0, 10**6), "log.trials"),
+        (lambda b: b["protocol"].__setitem__("content", b["protocol"]["content"] + "# x\n"),
+         "protocol.sha256"),
+        (lambda b: b.__setitem__("status", "certified") or b["extractor"].__setitem__(
+            "seed_bits_used", 10**9), "extractor.seed_bits_used"),
+    ],
+)
+def test_resealed_forgeries_fail_internal_consistency(run, tmp_path, edit, field):
+    # A forger without the key can re-seal an unsigned record; the recomputation still catches
+    # every derived number.
+    from dicert.audit.record import write_record
+
+    forged = _reseal(run["record"], edit)
+    path = write_record(tmp_path / "forged.json", forged)
+    with pytest.raises(VerificationError) as info:
+        verify(path)
+    assert info.value.field == field
+    with pytest.raises(VerificationError):  # and the operator's key is not on it
+        verify(path, public_key=run["pub"])
+
+
+def test_other_key_is_rejected(run, tmp_path):
+    from dicert.audit.record import write_record
+    from dicert.audit.signing import generate_keypair
+
+    other = generate_keypair()
+    forged = _reseal(run["record"], lambda b: None, other.private_key)
+    path = write_record(tmp_path / "other.json", forged)
+    verify(path)  # self-consistent under its embedded key ...
+    with pytest.raises(VerificationError) as info:  # ... but not the operator's
+        verify(path, public_key=run["pub"])
+    assert info.value.field.startswith("signature")
+
+
+def test_renamed_log_still_verifies(run, tmp_path):
+    moved = tmp_path / "renamed.btl"
+    moved.write_bytes(run["log"].read_bytes())
+    verify(run["record"], log=moved, seed=run["seed"], bits=run["bits"])
+
+
+def test_aborted_record_verifies_and_bits_not_required(tmp_path):
+    log = tmp_path / "c.btl"
+    write_log(log, _sim(4_000, seed=5, model="classical"))
+    seed = tmp_path / "s.bin"
+    seed.write_bytes(b"\x07" * 32)
+    res = certify(log, _proto(), seed, tmp_path / "out")
+    assert res.status == "aborted"
+    rep = verify(res.record_file, log=log, seed=seed)
+    assert rep.scope == "full" and rep.status == "aborted"
+    # The abort cannot be turned into a certificate by editing the status.
+    forged = _reseal(res.record_file, lambda b: b.__setitem__("status", "certified"))
+    from dicert.audit.record import write_record
+
+    with pytest.raises(VerificationError) as info:
+        verify(write_record(tmp_path / "f.json", forged))
+    assert info.value.field in ("status", "entropy.finite_size.accepted", "abort_reason")
+
+
+def test_chain_verification(run, tmp_path):
+    chain = tmp_path / "chain"
+    for i in range(3):
+        seed = tmp_path / f"seed{i}.bin"
+        seed.write_bytes(np.random.default_rng(100 + i).bytes(1_200))
+        certify(run["log"], _proto(), seed, tmp_path / f"p{i}", chain=chain)
+    rep = verify_chain(chain)
+    assert rep.pulses == 3 and rep.ok
+    # Remove the middle pulse: the gap is reported.
+    (chain / "pulse-000002.json").unlink()
+    with pytest.raises(VerificationError):
+        verify_chain(chain)
+
+
+def test_record_file_is_rfc8785_canonical(run):
+    # The file form is the RFC 8785 canonical serialisation plus one LF, checked with the
+    # independent reference library `rfc8785` (general-purpose implementation of the standard).
+    import rfc8785
+
+    data = run["record"].read_bytes()
+    assert data == rfc8785.dumps(json.loads(data)) + b"\n"
+    rec = json.loads(data)
+    body = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
+    # record_sha256 = SHA-256 (FIPS 180-4) of the canonical body.
+    assert rec["record_sha256"] == hashlib.sha256(rfc8785.dumps(body)).hexdigest()
