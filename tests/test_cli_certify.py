@@ -1,0 +1,152 @@
+"""CLI contract of `dicert certify`, `dicert verify` and `dicert demo` (exit codes, JSON keys,
+one-line errors)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from dicert.cli.app import app
+from dicert.logs import write_log
+
+ROOT = Path(__file__).resolve().parents[1]
+UNIFORM = str(ROOT / "protocols" / "chsh-uniform.toml")
+
+
+def _runner() -> CliRunner:
+    try:
+        return CliRunner(mix_stderr=False)
+    except TypeError:  # newer click keeps stderr apart already
+        return CliRunner()
+
+
+def _sim(n: int, seed: int, model: str = "quantum"):
+    from dicert.simulate import device_model, simulate_trials
+
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
+    return simulate_trials(n, device_model(model) if model != "quantum"
+                           else device_model("quantum", visibility=1.0), rng=rng)
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("cli")
+    write_log(d / "q.btl", _sim(4_000, seed=31))
+    write_log(d / "c.csv", _sim(4_000, seed=32, model="classical"))
+    (d / "seed.bin").write_bytes(np.random.default_rng(3).bytes(1_500))
+    return d
+
+
+def test_certify_json_and_exit_0(files, tmp_path):
+    r = _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--seed",
+                               str(files / "seed.bin"), "--out", str(tmp_path / "o"), "--json"])
+    assert r.exit_code == 0, r.output
+    d = json.loads(r.stdout)
+    for key in ("status", "output_bits", "bits_file", "record_file", "min_entropy_bits", "error"):
+        assert key in d
+    assert d["status"] == "certified" and d["output_bits"] > 0
+    assert Path(d["bits_file"]).stat().st_size == (d["output_bits"] + 7) // 8
+    r2 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(files / "q.btl"),
+                                "--seed", str(files / "seed.bin"), "--bits", d["bits_file"],
+                                "--json"])
+    assert r2.exit_code == 0, r2.output
+    v = json.loads(r2.stdout)
+    assert v["verified"] is True and v["scope"] == "full"
+
+
+def test_abort_exit_3_with_record(files, tmp_path):
+    r = _runner().invoke(app, ["certify", str(files / "c.csv"), "--protocol", UNIFORM, "--seed",
+                               str(files / "seed.bin"), "--out", str(tmp_path / "o"), "--json"])
+    assert r.exit_code == 3, r.output
+    d = json.loads(r.stdout)
+    assert d["status"] == "aborted" and d["output_bits"] == 0 and d["bits_file"] is None
+    assert Path(d["record_file"]).exists()
+
+
+def test_bad_protocol_one_line_exit_2(files, tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text(Path(UNIFORM).read_text().replace("eps_ext = 1e-8", "eps_ext = 2"))
+    r = _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", str(bad), "--seed",
+                               str(files / "seed.bin"), "--out", str(tmp_path / "o")])
+    assert r.exit_code == 2
+    err = r.stderr.strip()
+    assert len(err.splitlines()) == 1 and "'extractor.eps_ext'" in err and str(bad) in err
+    assert "Traceback" not in r.output
+    assert not (tmp_path / "o").exists()
+
+
+def test_short_seed_exit_2_names_bytes(files, tmp_path):
+    short = tmp_path / "short.bin"
+    short.write_bytes(b"\x00" * 10)
+    r = _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--seed",
+                               str(short), "--out", str(tmp_path / "o")])
+    assert r.exit_code == 2
+    assert "bytes needed" in r.stderr and len(r.stderr.strip().splitlines()) == 1
+
+
+def test_missing_log_exit_2(files, tmp_path):
+    r = _runner().invoke(app, ["certify", str(tmp_path / "nope.btl"), "--protocol", UNIFORM,
+                               "--seed", str(files / "seed.bin"), "--out", str(tmp_path / "o")])
+    assert r.exit_code == 2 and "nope.btl" in r.stderr
+
+
+def test_verify_tampered_exit_1_names_field(files, tmp_path):
+    out = tmp_path / "o"
+    r = _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--seed",
+                               str(files / "seed.bin"), "--out", str(out)])
+    assert r.exit_code == 0
+    bits = out / "random.bits"
+    data = bytearray(bits.read_bytes())
+    data[0] ^= 0x80
+    bits.write_bytes(bytes(data))
+    r = _runner().invoke(app, ["verify", str(out / "record.json"), "--bits", str(bits)])
+    assert r.exit_code == 1
+    assert r.stderr.strip().startswith("dicert: error: bits:")
+    r = _runner().invoke(app, ["verify", str(out / "record.json"), "--bits", str(bits), "--json"])
+    assert r.exit_code == 1 and json.loads(r.stdout)["field"] == "bits"
+
+
+def test_verify_record_only_says_so(files, tmp_path):
+    out = tmp_path / "o"
+    _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--seed",
+                           str(files / "seed.bin"), "--out", str(out)])
+    r = _runner().invoke(app, ["verify", str(out / "record.json")])
+    assert r.exit_code == 0
+    assert "Only the signature and the internal consistency" in r.stdout
+
+
+def test_verify_argument_errors(tmp_path):
+    r = _runner().invoke(app, ["verify"])
+    assert r.exit_code == 2
+    r = _runner().invoke(app, ["verify", "--chain", str(tmp_path), "--log", "x"])
+    assert r.exit_code == 2
+
+
+def test_certify_help_carries_assumptions_and_caution():
+    r = _runner().invoke(app, ["certify", "--help"], terminal_width=200)
+    assert r.exit_code == 0
+    text = " ".join(r.stdout.split())
+    for phrase in ("no communication between the stations", "independent of the devices",
+                   "trusted classical processing", "side-information model",
+                   "accredited review", "3 aborted"):
+        assert phrase in text
+
+
+def test_demo_end_to_end(tmp_path):
+    r = _runner().invoke(app, ["demo", "--out", str(tmp_path / "demo"), "--json"])
+    assert r.exit_code == 0, r.output
+    d = json.loads(r.stdout)
+    assert d["ok"] and d["invented"]
+    statuses = [p["status"] for p in d["pulses"]]
+    assert statuses[:2] == ["certified", "certified"] and statuses[2] == "aborted"
+    assert len(d["tamper_checks"]) >= 4
+    assert all(c["verification"] == "failed as expected" for c in d["tamper_checks"])
+    # Everything written stays inside --out.
+    for p in d["pulses"]:
+        assert Path(p["record_file"]).resolve().is_relative_to((tmp_path / "demo").resolve())
+    r2 = _runner().invoke(app, ["demo", "--out", str(tmp_path / "demo")])
+    assert r2.exit_code == 2  # refuses a non-empty directory
