@@ -6,7 +6,7 @@ The package is organised by pipeline stage:
 -> ``entropy`` (single-round bounds) -> ``finite`` (finite-size certification)
 -> ``extract`` (Toeplitz hashing) -> ``audit`` (signed, hash-chained records).
 
-Importing the package is cheap: heavy libraries (scipy, cvxpy, numba, matplotlib,
+Importing the package is cheap: heavy libraries (scipy, cvxpy, matplotlib,
 cryptography) are imported inside the functions that need them.
 """
 

@@ -61,7 +61,7 @@ def run(quick: bool = False) -> list[BenchResult]:
         py = sys.executable
         base_cmd = [py, "-c", f"import numpy as np; np.fromfile({str(binp)!r}, dtype=np.uint8).max()"]
         insp_cmd = [py, "-m", "dicert.cli.app", "inspect", str(binp), "--json"]
-        peak_rss_mb_of(insp_cmd)  # warm caches (page cache, numba cache)
+        peak_rss_mb_of(insp_cmd)  # warm the page cache
         t_base = min(peak_rss_mb_of(base_cmd)[0] for _ in range(2))
         runs = [peak_rss_mb_of(insp_cmd) for _ in range(2)]
         t_insp = min(r[0] for r in runs)
