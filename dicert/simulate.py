@@ -997,6 +997,15 @@ def parse_trial_count(text: str) -> int:
     return value
 
 
+def parse_setting_pair(text: str, name: str = "settings") -> tuple[int, int]:
+    """Parse a settings pair such as ``0,1`` (or ``01``) into (x, y)."""
+    s = str(text).strip().replace(" ", "")
+    parts = s.split(",") if "," in s else list(s)
+    if len(parts) != 2 or any(p not in ("0", "1") for p in parts):
+        raise ParameterError(f"{name} must be two bits x,y such as 0,0 or 1,0; got {text!r}")
+    return int(parts[0]), int(parts[1])
+
+
 def box_table(box: Any) -> Mapping[str, list[float]]:
     """rho(c|z) as a dict column z='xy' -> [p(c=00), p(01), p(10), p(11)] (for reports)."""
     p = np.asarray(box, dtype=np.float64)
@@ -1024,6 +1033,7 @@ __all__ = [
     "make_rng",
     "optimal_classical_strategies",
     "optimal_photonic_setup",
+    "parse_setting_pair",
     "parse_trial_count",
     "settings_distribution",
     "signalling_gap",
