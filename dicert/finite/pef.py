@@ -918,41 +918,30 @@ class PefParams:
                 for f in dataclasses.fields(self)}
 
 
-@functools.cache
-def _scan_kernel():
-    if os.environ.get("DICERT_NO_NUMBA"):
-        return None
-    try:
-        import numba
-    except Exception:  # pragma: no cover
-        return None
-
-    @numba.njit(nogil=True, cache=True, boundscheck=False)
-    def scan(codes, table, s0, trigger, counts):  # pragma: no cover - compiled
-        # Counts every code and keeps an approximate running sum; returns the first index
-        # where that sum reaches ``trigger`` (the caller confirms it exactly), else -1.
-        s = s0
-        for i in range(codes.size):
-            c = codes[i]
-            counts[c] += 1
-            s += table[c]
-            if s >= trigger:
-                return i
-        return -1
-
-    return scan
+#: Sub-block length of the scoring pass: counts per sub-block locate the threshold crossing;
+#: only sub-blocks that could contain it are scanned trial by trial.
+SUB_BLOCK = 4096
 
 
-def _scan_numpy(codes, table, s0, trigger, counts):
-    """Reference implementation of the scan kernel (per-trial cumulative sum)."""
-    if codes.size == 0:
+def _scan_exact(codes: np.ndarray, table: np.ndarray, base_counts: np.ndarray,
+                threshold: float) -> int:
+    """First index i with log2 T (base_counts + codes[:i+1]) >= threshold + allowance, else -1.
+
+    Candidates come from a float64 running sum with a rounding band; each is confirmed from
+    the exact counts (math.fsum), so the answer does not depend on summation order.
+    """
+    s0, _ = _score(base_counts, table)
+    if s0 == -math.inf:
         return -1
     with np.errstate(invalid="ignore"):
         run = s0 + np.cumsum(table[codes])
-    hit = np.flatnonzero(run >= trigger)
-    stop = codes.size if hit.size == 0 else int(hit[0]) + 1
-    counts += np.bincount(codes[:stop], minlength=256).astype(np.int64)
-    return -1 if hit.size == 0 else int(hit[0])
+    band = _band(s0, codes.size, table)
+    for i in np.flatnonzero(run >= threshold - band):
+        cnt = base_counts + np.bincount(codes[: i + 1], minlength=256)
+        s, allowance = _score(cnt, table)
+        if s - allowance >= threshold:
+            return int(i)
+    return -1
 
 
 class PefAccumulator:
@@ -988,7 +977,6 @@ class PefAccumulator:
         self.success_index: int | None = None
         self.calibration_box: np.ndarray | None = None
         self.pef: Pef | None = None
-        self._kernel = _scan_kernel()
         if pef is not None:
             if abs(pef.beta - params.beta) > 0.0:
                 raise ParameterError(f"PEF power {pef.beta} differs from params.beta "
@@ -1053,7 +1041,8 @@ class PefAccumulator:
                 if self._cal_needed == 0:
                     self._calibrate()
                 continue
-            take = min(c.size - pos, self.params.n_max - self.analysis_trials)
+            # Slices of at most 2^20 trials: early stopping wastes at most one slice of counting.
+            take = min(c.size - pos, self.params.n_max - self.analysis_trials, 1 << 20)
             self._analyse(c[pos:pos + take])
             pos += take
         return self.succeeded
@@ -1067,28 +1056,50 @@ class PefAccumulator:
                              model=self.params.model, lam=self.params.lam)
 
     def _analyse(self, block: np.ndarray) -> None:
+        from dicert._kernels import count_blocks
+
         table = self.pef.log2_table
-        start_trials = self.trials_seen
-        pos = 0
-        while pos < block.size:
-            s0, allowance = _score(self._counts, table)
-            rest = block[pos:]
-            band = _band(s0, rest.size, table)
-            trigger = self.threshold + allowance - band
-            if self._kernel is not None:
-                hit = self._kernel(rest, table, s0, trigger, self._counts)
-            else:
-                hit = _scan_numpy(rest, table, s0, trigger, self._counts)
-            if hit < 0:
-                self.trials_seen += rest.size
+        cnt, or_all = count_blocks(block, SUB_BLOCK)
+        if or_all > 31:
+            bad = int(np.flatnonzero(block > 31)[0])
+            raise ParameterError(f"trial {self.trials_seen + bad}: code {int(block[bad])} is "
+                                 "not a trial code (above 31)")
+        t32 = table[:32]
+        finite = np.isfinite(t32)
+        tf = np.where(finite, t32, 0.0)
+        forbidden = cnt[:, ~finite].sum(axis=1) > 0
+        score = cnt @ tf
+        gain = cnt @ np.maximum(tf, 0.0)  # bounds the rise of log2 T inside a sub-block
+        s0, allowance = _score(self._counts, table)
+        if s0 == -math.inf:
+            starts = np.full(cnt.shape[0], -np.inf)
+        else:
+            starts = s0 + np.concatenate([[0.0], np.cumsum(score)[:-1]])
+        band = _band(s0 if math.isfinite(s0) else 0.0, block.size, table)
+        thr = self.threshold
+        cand = (starts + gain >= thr - band) | forbidden
+        # Everything before the first candidate sub-block is counted in one go.
+        idx = np.flatnonzero(cand)
+        done_sub = 0
+        for k in idx:
+            k = int(k)
+            self._counts[:32] += cnt[done_sub:k].sum(axis=0)
+            lo, hi = k * SUB_BLOCK, min(block.size, (k + 1) * SUB_BLOCK)
+            sub = block[lo:hi]
+            hit = _scan_exact(sub, table, self._counts, thr)
+            if hit >= 0:
+                self._counts += np.bincount(sub[: hit + 1], minlength=256)
+                self.success_index = self.trials_seen + lo + hit
+                self.trials_seen += lo + hit + 1
                 return
-            # Candidate: counts now include trials up to ``hit``; confirm exactly.
-            s, allowance = _score(self._counts, table)
-            pos += hit + 1
-            self.trials_seen = start_trials + pos
-            if s - allowance >= self.threshold:
-                self.success_index = self.trials_seen - 1
+            self._counts[:32] += cnt[k]
+            done_sub = k + 1
+            if forbidden[k]:
+                # log2 T is now -inf for good: the run can no longer succeed.
+                self.trials_seen += hi
                 return
+        self._counts[:32] += cnt[done_sub:].sum(axis=0)
+        self.trials_seen += block.size
 
     # ------------------------------------------------------------------ result
     def result(self, *, complete: bool = True):
