@@ -263,3 +263,23 @@ def test_game_counts():
     c[1, 1, 1, 0, 0] = 2  # a loss
     c[1, 0, 1, 1, 1] = 4  # win
     assert game_counts(c) == (9, 9, 7)
+
+
+def test_npa_pair_bound_route():
+    # The pair of outcomes carries more min-entropy than one party: at the Tsirelson bound the
+    # self-tested singlet gives H_min(AB|X=0,Y=0) = -log2((2 + sqrt2)/8) = 1.228447 bits
+    # (Pironio et al. 2010, Fig. 1 / methods note A2, exact) against 1 bit for one party.
+    from dicert.finite.martingale import per_round_min_entropy
+
+    top, _ = per_round_min_entropy(2 * math.sqrt(2), "npa-AB")
+    assert top <= -math.log2((2 + math.sqrt(2)) / 8) + 1e-9  # a lower bound, never above
+    assert top >= 1.2  # and close to it (certified table, NPA level 1+AB)
+    for s in (2.2, 2.5, 2.7):
+        assert per_round_min_entropy(s, "npa-AB")[0] >= per_round_min_entropy(s)[0]
+    c = counts_from_probs(singlet_behaviour(0.97), 250_000)
+    pa = MartingaleParams(chsh_threshold=2.6, eps_est=1e-6)
+    pn = MartingaleParams(chsh_threshold=2.6, eps_est=1e-6, single_round="npa-AB")
+    ra, rn = certify_martingale(c, pa), certify_martingale(c, pn)
+    assert rn.accepted and rn.min_entropy_bits > ra.min_entropy_bits > 0
+    with pytest.raises(ParameterError, match="npa-AB"):
+        certify_martingale(c, pn, harvest=Harvest(parties="A", rounds="all"))

@@ -27,9 +27,10 @@ Proof sketch.
 1. Per-round guessing bound. For each lambda and history, the round-i box is quantum with
    CHSH value S_i, and max_a P(a | x, past, lambda) <= 2^-f(S_i) for EITHER input x
    (Pironio et al. 2010, eq. (3) and SI; the single-party bound does not depend on x by the
-   symmetry of CHSH). Since P(ab|xy) <= P(a|x) it bounds the pair too. With the "npa-AB"
-   bound, a dual certificate gives an affine bound P_guess(ab|xy) <= c0 + c1 S valid for
-   every quantum box; by the relabelling symmetry of CHSH it holds for every input pair.
+   symmetry of CHSH). Since P(ab|xy) <= P(a|x) it bounds the pair too. The "npa-AB" bound
+   (dual-certified NPA level 1+AB bound on the pair at inputs (0, 0), convex and
+   non-decreasing in S) holds for every input pair by the relabelling symmetry of CHSH
+   (relabelling inputs and outputs maps any input pair to (0, 0) and keeps S).
 2. Product. For a fixed candidate string r (and fixed settings s, lambda),
    P(R = r | s, lambda) = prod_i P(r_i | s, r_<i, lambda) <= prod_i 2^-f(S_i), each S_i evaluated
    on the history r_<i. Outcomes not harvested (Bob's in "A" mode) are summed out last to
@@ -162,30 +163,13 @@ def azuma_chsh_margin(n: int, gamma: float, eps: float) -> float:
     return (8.0 / gamma) * math.sqrt(math.log(1.0 / eps) / (2.0 * n))
 
 
-def _npa_affine_guess(chsh: float) -> tuple[float, float, dict]:
-    """Dual-certified affine bound p_guess(AB) <= c0 + c1 * S, valid for every quantum box.
-
-    Imported lazily from the entropy stage; raises ParameterError if not available.
-    """
-    try:
-        from dicert.entropy import npa  # type: ignore[attr-defined]
-    except ImportError:
-        raise ParameterError("single_round = 'npa-AB' needs the NPA bound of dicert.entropy.npa, "
-                             "which is not available in this installation") from None
-    fn = getattr(npa, "pair_guessing_certificate", None)
-    if fn is None:
-        raise ParameterError("single_round = 'npa-AB': dicert.entropy.npa does not provide "
-                             "pair_guessing_certificate(chsh) -> (c0, c1, info)")
-    c0, c1, info = fn(chsh)
-    return float(c0), float(c1), dict(info or {})
-
-
 def per_round_min_entropy(chsh: float, single_round: str = "analytic-A") -> tuple[float, dict]:
     """Per-round bound f(S) in bits used by the martingale method, and provenance details.
 
     "analytic-A": f(S) = 1 - log2(1 + sqrt(2 - S^2/4)) (Pironio et al. 2010, eq. (3)).
-    "npa-AB": -log2(min(1, c0 + c1 S)) from a dual-certified affine guessing bound; the
-    affine form makes log(min(1, .)) concave in S, which is all Jensen's step needs.
+    "npa-AB": the entropy stage's certified lower bound on H_min(AB|E) per round
+    (:func:`dicert.entropy.pair_min_entropy_bound`, NPA level 1+AB with dual certificates),
+    convex and non-decreasing in S as Jensen's step needs.
     """
     s = float(chsh)
     if single_round == "analytic-A":
@@ -193,15 +177,15 @@ def per_round_min_entropy(chsh: float, single_round: str = "analytic-A") -> tupl
     if single_round == "npa-AB":
         if s <= 2.0:
             return 0.0, {"single_round": "npa-AB"}
-        s = min(s, TSIRELSON)
-        c0, c1, info = _npa_affine_guess(s)
-        if c1 > 0:
-            raise ParameterError("NPA certificate has a positive slope; cannot apply it "
-                                 "at a lower bound on S")
-        p = min(1.0, c0 + c1 * s)
-        if p <= 0:
-            raise ParameterError("NPA certificate gives a non-positive guessing probability")
-        return max(0.0, -math.log2(p)), {"single_round": "npa-AB", "c0": c0, "c1": c1, **info}
+        try:
+            from dicert.entropy import pair_min_entropy_bound
+        except ImportError:  # pragma: no cover - shipped with the package
+            raise ParameterError("single_round = 'npa-AB' needs the NPA bound of "
+                                 "dicert.entropy, which is not available") from None
+        f = float(pair_min_entropy_bound(min(s, TSIRELSON)))
+        if not (math.isfinite(f) and f >= 0.0):
+            raise ParameterError(f"NPA pair bound returned {f!r} at S = {s:g}")
+        return f, {"single_round": "npa-AB", "npa_level": "1+AB"}
     raise ParameterError(f"unknown single_round bound {single_round!r}")
 
 
