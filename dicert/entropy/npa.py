@@ -414,19 +414,30 @@ def _round_up(q: Fraction) -> float:
 
 
 def _exactly_positive_definite(rows: list[list[Fraction]]) -> bool:
-    """True iff the symmetric rational matrix is positive definite (exact Gaussian elimination)."""
-    a = [r[:] for r in rows]
-    n = len(a)
+    """True iff the symmetric rational matrix is positive definite, decided exactly.
+
+    Scales to integers and runs fraction-free (Bareiss) elimination: after step k the pivot
+    is the (k+1)-th leading principal minor, and a symmetric matrix is positive definite iff
+    all of them are positive (Sylvester's criterion).
+    """
+    n = len(rows)
+    den = 1
+    for r in rows:
+        for v in r:
+            den = math.lcm(den, v.denominator)
+    m = [[v.numerator * (den // v.denominator) for v in r] for r in rows]
+    prev = 1
     for k in range(n):
-        piv = a[k][k]
+        piv = m[k][k]
         if piv <= 0:
             return False
+        mk = m[k]
         for i in range(k + 1, n):
-            f = a[i][k] / piv
-            if f:
-                ri, rk = a[i], a[k]
-                for j in range(k + 1, n):
-                    ri[j] -= f * rk[j]
+            mi = m[i]
+            f = mi[k]
+            for j in range(k + 1, n):
+                mi[j] = (mi[j] * piv - f * mk[j]) // prev
+        prev = piv
     return True
 
 
@@ -448,6 +459,64 @@ def _certify_psd(z: np.ndarray) -> tuple[list[list[Fraction]], float]:
     raise SolverError("could not repair the dual matrix to an exactly PSD certificate", "psd-repair")
 
 
+def _signature(level: str, objectives: list[dict], constraints: list[_Constraint]) -> tuple:
+    objs = tuple(tuple(sorted(o.items())) for o in objectives)
+    cons = tuple(
+        (tuple(sorted(c.form.items())), c.lo is not None, c.hi is not None) for c in constraints
+    )
+    return (level, objs, cons)
+
+
+@functools.lru_cache(maxsize=32)
+def _dual_problem(signature: tuple):
+    """Build (once per problem shape) the parametrised dual SDP; right-hand sides are parameters.
+
+    Caching the compiled problem matters for curves and tables: cvxpy's compilation costs more
+    than the interior-point solve of these small SDPs.
+    """
+    import cvxpy as cp
+    import scipy.sparse as sp
+
+    level, objs, cons_sig = signature
+    struct = moment_structure(level)
+    d, nm, ne = struct.size, struct.n_moments, len(objs)
+    idx = struct.index
+    adj = sp.csr_matrix(struct.adjoint_map())
+
+    def vec(items) -> np.ndarray:
+        v = np.zeros(nm)
+        for w, c in items:
+            v[idx[w]] += float(c)
+        return v
+
+    a_lo = np.array([vec(f) for f, lo, _ in cons_sig if lo]).reshape(-1, nm)
+    a_hi = np.array([vec(f) for f, _, hi in cons_sig if hi]).reshape(-1, nm)
+    n_lo, n_hi = a_lo.shape[0], a_hi.shape[0]
+    lam0 = cp.Variable()
+    nu_lo = cp.Variable(n_lo, nonneg=True) if n_lo else None
+    nu_hi = cp.Variable(n_hi, nonneg=True) if n_hi else None
+    p_lo = cp.Parameter(n_lo) if n_lo else None
+    p_hi = cp.Parameter(n_hi) if n_hi else None
+    zs = [cp.Variable((d, d), symmetric=True) for _ in range(ne)]
+    e0 = np.zeros(nm)
+    e0[0] = 1.0
+    cons = []
+    for e in range(ne):
+        r = vec(objs[e]) - lam0 * e0 + adj @ cp.vec(zs[e], order="C")
+        if nu_lo is not None:
+            r = r + a_lo.T @ nu_lo
+        if nu_hi is not None:
+            r = r - a_hi.T @ nu_hi
+        cons += [r == 0, zs[e] >> 0]
+    obj = lam0
+    if nu_lo is not None:
+        obj = obj - p_lo @ nu_lo
+    if nu_hi is not None:
+        obj = obj + p_hi @ nu_hi
+    prob = cp.Problem(cp.Minimize(obj), cons)
+    return prob, zs, nu_lo, nu_hi, p_lo, p_hi
+
+
 def _solve_dual(
     struct: MomentStructure,
     objectives: list[dict],
@@ -456,42 +525,14 @@ def _solve_dual(
 ):
     """Solve the dual SDP; return (Z list, nu_lo, nu_hi, value, status) in floats."""
     import cvxpy as cp
-    import scipy.sparse as sp
 
-    d, nm, ne = struct.size, struct.n_moments, len(objectives)
-    idx = struct.index
-    adj = sp.csr_matrix(struct.adjoint_map())
-
-    def vec(form: dict) -> np.ndarray:
-        v = np.zeros(nm)
-        for w, c in form.items():
-            v[idx[w]] += float(c)
-        return v
-
-    cons_lo = [c for c in constraints if c.lo is not None]
-    cons_hi = [c for c in constraints if c.hi is not None]
-    a_lo = np.array([vec(c.form) for c in cons_lo]).reshape(len(cons_lo), nm)
-    a_hi = np.array([vec(c.form) for c in cons_hi]).reshape(len(cons_hi), nm)
-    lam0 = cp.Variable()
-    nu_lo = cp.Variable(len(cons_lo), nonneg=True) if cons_lo else None
-    nu_hi = cp.Variable(len(cons_hi), nonneg=True) if cons_hi else None
-    zs = [cp.Variable((d, d), symmetric=True) for _ in range(ne)]
-    e0 = np.zeros(nm)
-    e0[0] = 1.0
-    cons = []
-    for e in range(ne):
-        r = vec(objectives[e]) - lam0 * e0 + adj @ cp.vec(zs[e], order="C")
-        if nu_lo is not None:
-            r = r + a_lo.T @ nu_lo
-        if nu_hi is not None:
-            r = r - a_hi.T @ nu_hi
-        cons += [r == 0, zs[e] >> 0]
-    obj = lam0
-    if nu_lo is not None:
-        obj = obj - np.array([c.lo for c in cons_lo]) @ nu_lo
-    if nu_hi is not None:
-        obj = obj + np.array([c.hi for c in cons_hi]) @ nu_hi
-    prob = cp.Problem(cp.Minimize(obj), cons)
+    prob, zs, nu_lo, nu_hi, p_lo, p_hi = _dual_problem(
+        _signature(struct.level, objectives, constraints)
+    )
+    if p_lo is not None:
+        p_lo.value = np.array([c.lo for c in constraints if c.lo is not None], dtype=float)
+    if p_hi is not None:
+        p_hi.value = np.array([c.hi for c in constraints if c.hi is not None], dtype=float)
     if solver == "CLARABEL":
         opts = dict(tol_gap_abs=1e-10, tol_gap_rel=1e-10, tol_feas=1e-10, max_iter=400)
     elif solver == "SCS":
@@ -502,11 +543,12 @@ def _solve_dual(
         with warnings.catch_warnings():
             # "solution may be inaccurate": irrelevant, the certificate is checked exactly
             warnings.simplefilter("ignore")
-            prob.solve(solver=solver, **opts)
+            # no warm start: results must not depend on earlier calls (determinism)
+            prob.solve(solver=solver, warm_start=False, **opts)
     except (cp.error.SolverError, ValueError, ArithmeticError) as exc:
         return None, None, None, math.nan, f"solver-error: {exc}"
     status = str(prob.status)
-    if zs[0].value is None:
+    if zs[0].value is None or prob.value is None:
         return None, None, None, math.nan, status
     return (
         [np.array(z.value, dtype=float) for z in zs],
