@@ -361,3 +361,18 @@ def test_recipe_general_bell_functional():
     # Clauser & Horne 1974): the certified one-party bound matches f(S) (Pironio 2010).
     b = bound_entropy(bell=(npa.ch_eberhard_coefficients(), (2.6 - 2) / 4), parties="A")
     assert an.min_entropy_single(2.6) - 1e-5 <= b.h_min_bits <= an.min_entropy_single(2.6)
+
+
+def test_correlator_tolerance_only_loosens():
+    # Relaxing constraints can only raise the maximum (feasible set grows; basic optimisation
+    # fact, Boyd & Vandenberghe 2004, sec. 4.1): certified entropy with tolerance <= without,
+    # and the full-statistics bound beats the CHSH-only one-party bound f(S) (Nieto-Silleras,
+    # Pironio, Silman 2014).
+    v = 0.95 / SQRT2
+    corr = npa.Correlators(alice=(0.0, 0.0), bob=(0.0, 0.0), joint=((v, v), (v, -v)))
+    h0 = bound_entropy(correlators=corr, parties="A").h_min_bits
+    h1 = bound_entropy(correlators=corr, parties="A", tolerance=0.01).h_min_bits
+    assert h1 <= h0 + 1e-9
+    assert h0 >= an.min_entropy_single(corr.chsh) - 1e-6
+    with pytest.raises(ParameterError):
+        bound_entropy(correlators=corr, tolerance=-0.1)

@@ -274,7 +274,9 @@ def _bound_min(*, chsh, chsh_input, parties, level, correlators, bell, inputs, t
     constraint = (
         "CHSH >= the given value" if chsh is not None
         else "Bell functional >= the given value" if bell is not None
-        else f"full correlators equal to the observed values (tolerance {tolerance})"
+        else f"full correlators equal to the observed values (tolerance {tolerance}); these "
+        "are point estimates: no finite-statistics margin is applied here (the finite-size "
+        "stage does that)"
     )
     return _make(
         "min", parties, h,

@@ -720,7 +720,10 @@ def _box_constraints(
             v = float(v)
             if not (math.isfinite(v) and -1.0 <= v <= 1.0):
                 raise ParameterError(f"correlators: {name} must lie in [-1, 1], got {v!r}")
-            cons.append(_Constraint({w: Fraction(1)}, v - tolerance, v + tolerance, name))
+            lo, hi = v - tolerance, v + tolerance
+            if tolerance > 0.0:  # widen by one ulp so float rounding never narrows the interval
+                lo, hi = math.nextafter(lo, -math.inf), math.nextafter(hi, math.inf)
+            cons.append(_Constraint({w: Fraction(1)}, lo, hi, name))
     return cons
 
 
