@@ -454,3 +454,94 @@ def test_plan_photonic_512_bits(photonic):
     assert plan.expected_trials == pytest.approx(3.0e5, rel=0.05)
     assert plan.expected_trials <= at.expected_trials
     assert plan.latency_floor_trials == pytest.approx(64 / 2.7528e-4, rel=1e-3)
+
+
+# --------------------------------------------------------------------------- integration
+
+def test_shipped_photonic_protocol_loads_with_the_shared_loader():
+    from dicert.protocol import load_protocol, protocol_from_dict
+
+    from pathlib import Path
+
+    proto = load_protocol(Path(__file__).resolve().parents[1] / "protocols" / "ch-photonic.toml")
+    assert proto.method == "pef"
+    assert isinstance(proto.analysis, P.PefParams)
+    assert proto.harvest.parties == "AB" and proto.harvest.rounds == "all"
+    d = {"name": "x", "bell": {"kind": "chsh"}, "settings": {"gamma": 1.0},
+         "harvest": {"parties": "AB", "rounds": "all"},
+         "analysis": {"method": "pef", "beta": 0.02, "eps_pe": 1e-9, "sigma_target_bits": 64,
+                      "n_max": 1000, "calibration_trials": 10, "lam": 2.0},
+         "extractor": {"kind": "toeplitz", "eps_ext": 1e-9}}
+    with pytest.raises(ProtocolError, match="'lam'"):
+        protocol_from_dict(d, "p.toml")
+
+
+def test_simulator_photonic_box_matches_the_note(photonic):
+    simulate = pytest.importorskip("dicert.simulate")
+    box = np.asarray(simulate.box_photonic(None)).reshape(4, 4)
+    assert np.abs(box - photonic).max() < 1e-6  # [MN] table, 7 digits
+    assert P.build_pef(box, beta=0.01).rate == pytest.approx(0.014335, rel=2e-4)  # [MN]
+
+
+def test_photonic_run_with_prefix_calibration_succeeds():
+    """Invented photonic run (methods note model): the prefix fixes the PEF, a modest target is
+    reached, and the success index agrees with a per-trial oracle over the analysis trials."""
+    rng = np.random.default_rng(12)
+    box = P.fit_box(PHOTONIC_TABLE / PHOTONIC_TABLE.sum(axis=1, keepdims=True) * 1e9)
+    n = 400_000
+    codes = _sample(box, n, rng)
+    params = P.PefParams(beta=0.03, eps_pe=1e-3, sigma_target_bits=32, n_max=n,
+                         calibration="prefix", calibration_trials=100_000, lam=1e-3)
+    res = P.certify_pef(codes, params)
+    assert res.accepted, res.details["outcome"]
+    k = res.details["success_trial_index"]
+    lf = np.log2(np.asarray(res.details["pef"]["factors"]).ravel())
+    run = np.cumsum(lf[codes[100_000:] & 15])
+    oracle = 100_000 + int(np.argmax(run >= params.threshold_log2 + 1e-9))
+    assert k == oracle
+
+
+def test_follow_log_yields_appended_trials_and_stops_at_the_trailer(tmp_path):
+    import hashlib
+
+    from dicert.logs import BinaryLogWriter
+
+    rng = np.random.default_rng(4)
+    parts = [rng.integers(0, 32, m, dtype=np.uint8) for m in (0, 5, 1000, 3, 70000)]
+    path = tmp_path / "grow.btl"
+    w = BinaryLogWriter(path, has_test_flag=True, streamed=True)
+    feed = iter(parts)
+
+    def fake_sleep(_s):  # each poll lets the "experiment" append the next piece
+        nxt = next(feed, None)
+        if nxt is None:
+            if not w._fh.closed:
+                w.close()
+        else:
+            w.append(nxt)
+
+    h = hashlib.sha256()
+    got = list(P.follow_log(path, 0.0, chunk_trials=4096, hasher=h, sleep=fake_sleep))
+    assert np.array_equal(np.concatenate(got), np.concatenate(parts))
+    assert h.hexdigest() == hashlib.sha256(path.read_bytes()).hexdigest()
+    # A growing log that stops growing: idle timeout ends the generator without error.
+    path2 = tmp_path / "stalled.btl"
+    w2 = BinaryLogWriter(path2, has_test_flag=False, streamed=True)
+    w2.append(np.arange(16, dtype=np.uint8))
+    ticks = iter(range(100))
+    got = list(P.follow_log(path2, 0.0, idle_timeout_s=3, sleep=lambda s: None,
+                            clock=lambda: next(ticks)))
+    assert np.array_equal(np.concatenate(got), np.arange(16))
+    w2.close()
+    # An invalid byte is reported with its offset.
+    bad = tmp_path / "bad.btl"
+    w3 = BinaryLogWriter(bad, has_test_flag=False, streamed=True)
+    w3.append(np.arange(10, dtype=np.uint8))
+    w3.close()
+    data = bytearray(bad.read_bytes())
+    data[24 + 3] = 0x30
+    bad.write_bytes(bytes(data))
+    from dicert.errors import LogFormatError
+
+    with pytest.raises(LogFormatError, match="byte offset 27"):
+        list(P.follow_log(bad, 0.0, idle_timeout_s=0, sleep=lambda s: None))

@@ -1234,6 +1234,108 @@ def certify_pef_counts(counts: Any, params: PefParams, design: Any = None, *,
     return res
 
 
+# =========================================================================== following a log
+
+
+def follow_log(path: Any, poll_s: float = 0.5, *, idle_timeout_s: float | None = None,
+               chunk_trials: int = 1 << 20, hasher: Any = None,
+               sleep: Any = time.sleep, clock: Any = time.monotonic) -> Iterator[np.ndarray]:
+    """Yield the complete trials of a growing binary log (``.btl``) as they are appended.
+
+    Reads the header once, then polls every ``poll_s`` seconds for new bytes. Stops at the
+    trailer of a streamed log (checking its count), at the header's count of a complete log,
+    or after ``idle_timeout_s`` seconds without growth (None: wait for ever). Each yielded array
+    holds uint8 trial codes; invalid bytes raise :class:`~dicert.errors.LogFormatError` naming
+    the byte offset. ``hasher`` (e.g. ``hashlib.sha256()``) is updated with every byte consumed,
+    header and trailer included, so the digest equals the file's once the trailer is read.
+
+    Use with :class:`PefAccumulator`::
+
+        for codes in follow_log(path, 1.0):
+            if acc.update(codes) or acc.done:
+                break
+    """
+    from pathlib import Path
+
+    from dicert.errors import LogFormatError
+    from dicert.logs import (BINARY_HEADER, BINARY_HEADER_SIZE, BINARY_MAGIC, BINARY_VERSION,
+                             COUNT_STREAMED, FLAG_HAS_T, TRAILER, TRAILER_MARK)
+
+    path = Path(path)
+    last_growth = clock()
+    with open(path, "rb") as fh:
+        head = b""
+        while len(head) < BINARY_HEADER_SIZE:
+            more = fh.read(BINARY_HEADER_SIZE - len(head))
+            if more:
+                head += more
+                last_growth = clock()
+                continue
+            if idle_timeout_s is not None and clock() - last_growth > idle_timeout_s:
+                raise LogFormatError(path, f"byte offset {len(head)}",
+                                     "truncated header (24 bytes expected)")
+            sleep(poll_s)
+        magic, version, flags, reserved, count = BINARY_HEADER.unpack(head)
+        if magic != BINARY_MAGIC:
+            raise LogFormatError(path, "byte offset 0", "wrong magic bytes: not a dicert binary "
+                                 "trial log (follow mode needs the binary format)")
+        if version != BINARY_VERSION:
+            raise LogFormatError(path, "byte offset 8", f"unsupported format version {version}")
+        if flags & ~FLAG_HAS_T or any(reserved):
+            raise LogFormatError(path, "byte offset 9", "reserved header bits or bytes set")
+        if hasher is not None:
+            hasher.update(head)
+        mask = 0x1F if flags & FLAG_HAS_T else 0x0F
+        streamed = count == COUNT_STREAMED
+        seen = 0
+        offset = BINARY_HEADER_SIZE
+        while True:
+            want = chunk_trials if streamed else min(chunk_trials, count - seen)
+            if not streamed and want == 0:
+                return
+            data = fh.read(want)
+            if not data:
+                if idle_timeout_s is not None and clock() - last_growth > idle_timeout_s:
+                    return
+                sleep(poll_s)
+                continue
+            last_growth = clock()
+            codes = np.frombuffer(data, dtype=np.uint8)
+            bad = np.flatnonzero(codes & ~np.uint8(mask))
+            end = codes.size
+            trailer = None
+            if bad.size:
+                k = int(bad[0])
+                if not (streamed and codes[k] == TRAILER_MARK):
+                    raise LogFormatError(path, f"byte offset {offset + k}",
+                                         f"invalid trial byte 0x{int(codes[k]):02x}")
+                end = k
+                trailer = data[k:]
+            if end:
+                if hasher is not None:
+                    hasher.update(data[:end])
+                seen += end
+                offset += end
+                yield codes[:end].copy()
+            if trailer is not None:
+                while len(trailer) < TRAILER.size:
+                    more = fh.read(TRAILER.size - len(trailer))
+                    if more:
+                        trailer += more
+                        continue
+                    if idle_timeout_s is not None and clock() - last_growth > idle_timeout_s:
+                        raise LogFormatError(path, f"byte offset {offset}", "truncated trailer")
+                    sleep(poll_s)
+                _, n_trailer = TRAILER.unpack(trailer[:TRAILER.size])
+                if n_trailer != seen or len(trailer) > TRAILER.size or fh.read(1):
+                    raise LogFormatError(path, f"byte offset {offset}",
+                                         f"trailer says {n_trailer} trials but the file holds "
+                                         f"{seen}, or bytes follow the trailer")
+                if hasher is not None:
+                    hasher.update(trailer)
+                return
+
+
 # =========================================================================== planning
 
 
@@ -1334,7 +1436,7 @@ __all__ = [
     "CALIBRATIONS", "MODELS", "BoxModel", "Pef", "PefAccumulator", "PefParams", "PefPlan",
     "SettingsModel", "asymptotic_rate", "box_from_chsh", "box_model", "build_pef",
     "certify_pef", "certify_pef_counts", "chsh_functionals", "completeness_probability",
-    "counts_by_setting", "fit_box", "isotropic_box", "local_deterministic_boxes", "make_valid",
+    "counts_by_setting", "fit_box", "follow_log", "isotropic_box", "local_deterministic_boxes", "make_valid",
     "optimal_factors", "pef_rows", "plan_pef", "pr_boxes", "product_settings",
     "settings_from_design", "spot_settings", "statistical_strength", "trials_for_probability",
     "tsirelson_box", "uniform_settings", "validate_pef",
