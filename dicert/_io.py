@@ -25,6 +25,7 @@ def atomic_writer(path: str | os.PathLike[str], mode: str = "wb") -> Iterator[IO
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
     try:
+        os.fchmod(fd, 0o666 & ~_umask())  # mkstemp creates 0600; outputs follow the umask
         with os.fdopen(fd, mode) as fh:
             yield fh
             fh.flush()
@@ -34,6 +35,12 @@ def atomic_writer(path: str | os.PathLike[str], mode: str = "wb") -> Iterator[IO
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
