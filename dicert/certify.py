@@ -103,6 +103,7 @@ class LogScan:
     has_test_flag: bool
     raw_bits: int
     raw_sha256: str
+    finite: Any = None  # FiniteSizeResult of a streaming method (pef), else None
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -247,20 +248,50 @@ def expected_raw_bits(counts: np.ndarray, parties: str, rounds: str) -> int:
 
 
 def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = None,
-             progress: Progress | None = None) -> tuple[LogScan, _BitSink]:
+             progress: Progress | None = None, protocol: Any = None) -> tuple[LogScan, _BitSink]:
     """Read a log once: counts, log digest, and the harvested raw bits.
 
     One streaming pass of :func:`dicert.logs.summarize_log` counts the trials and hashes the
     log's bytes; its per-chunk callback harvests the raw bits in the same pass. Returns the
     scan summary and the bit sink holding the packed raw bits (the caller must ``discard()``
     it).
+
+    With a ``protocol`` whose method is "pef", the same pass feeds the streaming PEF
+    accumulator (:class:`dicert.finite.pef.PefAccumulator`) and harvests only the analysed
+    trials, from the first trial after the calibration prefix up to and including the trial at
+    which the target is reached; later trials are still hashed and counted (the record's log
+    digest covers the whole log) but neither analysed nor harvested.
     """
     from dicert.logs import summarize_log
 
     sink = _BitSink(spill_dir)
+    acc = None
+    first = 0
+    if protocol is not None and protocol.method == "pef":
+        from dicert.finite.pef import PefAccumulator
+
+        acc = PefAccumulator(protocol.analysis, protocol.design)
+        params = protocol.analysis
+        first = params.calibration_trials if params.calibration == "prefix" else 0
 
     def on_chunk(chunk: Any) -> None:
-        sink.add(harvest_bits(chunk.codes, parties, rounds, bool(chunk.has_test_flag)))
+        if acc is None:
+            sink.add(harvest_bits(chunk.codes, parties, rounds, bool(chunk.has_test_flag)))
+            return
+        if acc.done:
+            return
+        codes = chunk.codes
+        if not chunk.has_test_flag:
+            # Logs without a t column carry t = 0 in the code, but every trial is a test
+            # round (project data model); the accumulator reads t from the code.
+            codes = codes | np.uint8(0x10)
+        acc.update(codes)
+        start = int(chunk.start)
+        end = acc.trials_seen  # trials consumed so far (the success trial included)
+        lo, hi = max(first - start, 0), min(end - start, len(chunk.codes))
+        if hi > lo:
+            sink.add(harvest_bits(chunk.codes[lo:hi], parties, rounds,
+                                  bool(chunk.has_test_flag)))
 
     def on_progress(done: int, total: int) -> None:
         if progress is not None:
@@ -277,17 +308,20 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
                    sha256=str(summary.sha256), size_bytes=int(summary.size_bytes),
                    files=tuple(Path(f.path).name for f in summary.files),
                    has_test_flag=bool(summary.has_test_flag), raw_bits=sink.bits,
-                   raw_sha256=raw_sha)
+                   raw_sha256=raw_sha, finite=acc.result() if acc is not None else None)
     return scan, sink
 
 
 # --------------------------------------------------------------------------- analysis
 
 
-def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int) -> Analysis:
+def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
+                   finite: Any = None) -> Analysis:
     """Estimate, finite-size bound, accept/abort and output length from the counts alone.
 
     Deterministic in its inputs, so :func:`dicert.verify.verify` re-derives it from a record.
+    ``finite`` supplies the result of a streaming method (pef), which depends on the trial
+    order and not only on the counts.
     """
     from dicert.estimate import estimate_chsh
     from dicert.extract import lhl_output_length, seed_bits_required
@@ -295,7 +329,8 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int) -> Analysis
     counts = np.asarray(counts, dtype=np.int64)
     eps_est = _estimate_eps(protocol)
     estimate = estimate_chsh(counts, design=protocol.design, eps=eps_est)
-    finite = _certify_counts(counts, protocol)
+    if finite is None:
+        finite = _certify_counts(counts, protocol)
     eps_ext = protocol.extractor.eps_ext
     k = float(finite.min_entropy_bits) if finite.accepted else 0.0
     if not math.isfinite(k) or k < 0:
@@ -387,6 +422,17 @@ def _single_round(estimate: Any) -> dict:
     return out
 
 
+def _split_timing(details: Any) -> tuple[Any, float | None]:
+    """Move the PEF solver's wall-clock time out of the details (it belongs in ``volatile``)."""
+    if not isinstance(details, dict):
+        return details, None
+    pef = details.get("pef")
+    if isinstance(pef, dict) and isinstance(pef.get("solver"), dict) and "seconds" in pef["solver"]:
+        solver = {k: v for k, v in pef["solver"].items() if k != "seconds"}
+        return {**details, "pef": {**pef, "solver": solver}}, pef["solver"]["seconds"]
+    return details, None
+
+
 def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256: str,
                seed_bytes: int, extraction: Any | None, chain_info: tuple[int, str | None] | None,
                volatile: dict) -> dict:
@@ -394,6 +440,10 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
     from dicert.audit.record import RECORD_FORMAT
 
     fin = analysis.finite
+    details, solver_seconds = _split_timing(plain(fin.details))
+    if solver_seconds is not None and isinstance(volatile, dict):
+        volatile = {**volatile, "timings_s": {**volatile.get("timings_s", {}),
+                                              "pef_solver": solver_seconds}}
     eps = {str(k): float(v) for k, v in dict(fin.eps).items()}
     eps["eps_ext"] = float(protocol.extractor.eps_ext)
     eps_block = {
@@ -455,7 +505,12 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
                 "side_information": side,
                 "accepted": bool(fin.accepted),
                 "min_entropy_bits": float(fin.min_entropy_bits),
-                "details": plain(fin.details),
+                "smoothing_eps": float(fin.smoothing_eps),
+                "entropy_error": float(fin.entropy_error),
+                "eps": {str(k): float(v) for k, v in dict(fin.eps).items()},
+                "assumptions": [str(a) for a in fin.assumptions],
+                "references": [str(r) for r in fin.references],
+                "details": details,
             },
         },
         "harvest": {
@@ -603,7 +658,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     t1 = time.perf_counter()
     spill = out if out.is_dir() else out.parent
     scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds, spill_dir=spill,
-                          progress=progress)
+                          progress=progress, protocol=proto)
     timings["scan"] = time.perf_counter() - t1
     tmp_files: list[Path] = []
     try:
@@ -613,7 +668,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             raise LogFormatError(log, "", f"the protocol declares every round a test round "
                                  f"(settings.gamma = 1) but the log marks {generation_rounds} "
                                  f"trials as generation rounds (t = 0)")
-        analysis = analyse_counts(scan.counts, proto, scan.raw_bits)
+        analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite)
         timings["analysis"] = time.perf_counter() - t2
 
         extraction = None

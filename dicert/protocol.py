@@ -282,6 +282,14 @@ def _cross_checks(ctx: _Ctx, *, bell: BellTest, design: Any, harvest: Harvest, m
         if harvest.rounds != "all":
             raise ctx.fail("harvest.rounds", "method \"eat\" bounds the outcomes of every "
                            "round; use rounds = \"all\"")
+    if method == "pef":
+        # The probability estimate bounds the pair (A_i, B_i) of every analysed trial.
+        if harvest.parties != "AB":
+            raise ctx.fail("harvest.parties", "method \"pef\" bounds the pair of outcomes; "
+                           "use parties = \"AB\"")
+        if harvest.rounds != "all":
+            raise ctx.fail("harvest.rounds", "method \"pef\" harvests every analysed trial; "
+                           "use rounds = \"all\"")
     if method == "martingale":
         single = getattr(params, "single_round", None)
         if single == "npa-AB" and harvest.parties != "AB":

@@ -201,7 +201,7 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     from dicert.certify import analyse_counts, build_body
     from dicert.extract import seed_bits_required
 
-    analysis = analyse_counts(scan.counts, protocol, scan.raw_bits)
+    analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite)
     extraction = None
     if analysis.status == "certified":
         extraction = _ExtractionStandIn(
@@ -216,8 +216,10 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     exp = build_body(protocol=protocol, scan=scan, analysis=analysis, seed_sha256=seed_sha256,
                      seed_bytes=seed_bytes, extraction=extraction, chain_info=chain_info,
                      volatile=body.get("volatile"))
-    # A record written by another version is compared on its numbers, not its version string.
+    # A record written by another version is compared on its numbers, not its version string;
+    # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])
+    exp["volatile"] = body.get("volatile")
     return exp
 
 
@@ -232,13 +234,41 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
     if not has_t:
         _require(int(counts[0].sum()) == 0, "counts.values",
                  "a log without a t column must have every trial under t = 1")
-    raw_bits = expected_raw_bits(counts, protocol.harvest.parties, protocol.harvest.rounds)
+    finite = None
+    if protocol.method == "pef":
+        # The PEF result depends on the trial order (calibration prefix, stopping trial), not
+        # on the counts alone: without the log it is taken from the record and only the
+        # numbers derived from it are recomputed.
+        finite = _finite_from_record(body)
+        raw_bits = _get(body, "harvest.raw_bits")
+        if finite.accepted:
+            want = finite.details.get("harvest_bits") if isinstance(finite.details, Mapping) else None
+            _require(raw_bits == want, "harvest.raw_bits",
+                     f"recorded {raw_bits!r}, the analysed trials give {want!r}")
+    else:
+        raw_bits = expected_raw_bits(counts, protocol.harvest.parties, protocol.harvest.rounds)
     files = _get(body, "log.files")
     return LogScan(counts=counts, trials=trials, sha256=_get(body, "log.sha256"),
                    size_bytes=_get(body, "log.size_bytes"),
                    files=tuple(files) if isinstance(files, list) else files,
                    has_test_flag=has_t, raw_bits=raw_bits,
-                   raw_sha256=_get(body, "harvest.raw_sha256"))
+                   raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite)
+
+
+def _finite_from_record(body: Mapping[str, Any]):
+    from dicert.finite.result import FiniteSizeResult
+
+    fs = _get(body, "entropy.finite_size")
+    try:
+        return FiniteSizeResult(
+            method=fs["method"], side_information=fs["side_information"],
+            accepted=fs["accepted"], min_entropy_bits=fs["min_entropy_bits"],
+            eps=dict(fs["eps"]), smoothing_eps=fs["smoothing_eps"],
+            entropy_error=fs["entropy_error"], assumptions=tuple(fs["assumptions"]),
+            references=tuple(fs["references"]), details=fs["details"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise VerificationError(f"not a valid finite-size result ({exc})",
+                                "entropy.finite_size") from None
 
 
 # --------------------------------------------------------------------------- recipe
@@ -305,6 +335,9 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                  "a certified record must carry the output digest")
     checked.append("internal consistency (protocol digest, counts, estimate, finite-size "
                    "bound, acceptance, eps terms, output length, seed bits)")
+    if protocol.method == "pef" and log is None:
+        notes.append("method pef: the probability-estimation result depends on the trial order "
+                     "and is re-derived only with --log")
     output_bits = int(_get(body, "extractor.output_bits"))
     not_checked: list[str] = []
 
@@ -333,7 +366,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         resolve_sources(log)  # a missing log is bad input (exit 2), not a mismatch
         try:
             scan, sink = scan_log(log, protocol.harvest.parties, protocol.harvest.rounds,
-                                  spill_dir=Path(tempfile.gettempdir()))
+                                  spill_dir=Path(tempfile.gettempdir()), protocol=protocol)
         except LogFormatError as exc:
             # A log that no longer reads is not the log that was certified.
             raise VerificationError(f"the given log does not read as a trial log ({exc})",

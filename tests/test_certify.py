@@ -262,3 +262,80 @@ def _pub(path):
     from dicert.audit.signing import load_public_key
 
     return load_public_key(path)
+
+
+@pytest.fixture(scope="module")
+def spot_logs(tmp_path_factory):
+    d = tmp_path_factory.mktemp("spot")
+    from dicert.simulate import device_model, simulate_to_file
+
+    simulate_to_file(d / "q.btl", 1_000_000, device_model("quantum", visibility=0.97),
+                     gamma=0.05, rng_seed=41)
+    simulate_to_file(d / "c.btl", 1_000_000, device_model("classical"), gamma=0.05, rng_seed=42)
+    (d / "seed.bin").write_bytes(np.random.default_rng(6).bytes(300_000))
+    return d
+
+
+def test_spotcheck_protocol_certifies_honest_devices(spot_logs, tmp_path):
+    from dicert.finite import certify_eat
+    from dicert.protocol import load_protocol
+
+    proto = load_protocol(ROOT / "protocols" / "chsh-spotcheck.toml")
+    res = certify(spot_logs / "q.btl", proto, spot_logs / "seed.bin", tmp_path / "out")
+    assert res.status == "certified" and res.output_bits > 0
+    rec = res.record
+    assert rec["entropy"]["finite_size"]["side_information"] == "quantum"
+    # The record carries exactly what the finite-size engine gives for the recorded counts.
+    direct = certify_eat(np.array(rec["counts"]["values"]), proto.analysis, proto.design,
+                         harvest=proto.harvest)
+    assert res.min_entropy_bits == pytest.approx(direct.min_entropy_bits, rel=1e-12)
+    # Raw output A^n B^n of every round (entropy-accumulation methods note, section 1).
+    assert res.raw_bits == 2 * 1_000_000
+    # Error budget eps_EA + 2 eps_s + eps_ext (methods note, section 5; TSSR 2011 for 2 eps_s).
+    a = proto.analysis
+    assert res.error == pytest.approx(a.eps_ea + 2 * a.eps_s + proto.extractor.eps_ext, rel=1e-12)
+
+
+def test_spotcheck_protocol_aborts_classical_devices(spot_logs, tmp_path):
+    from dicert.protocol import load_protocol
+
+    proto = load_protocol(ROOT / "protocols" / "chsh-spotcheck.toml")
+    res = certify(spot_logs / "c.btl", proto, spot_logs / "seed.bin", tmp_path / "out")
+    assert res.status == "aborted" and res.output_bits == 0 and res.exit_code == 3
+
+
+def _pef_protocol():
+    d = tomllib.loads((ROOT / "protocols" / "ch-photonic.toml").read_text())
+    d["analysis"].update(calibration_trials=200_000, sigma_target_bits=128, n_max=2_000_000)
+    d["extractor"]["eps_ext"] = 1e-6
+    return protocol_from_dict(d, "pef-test")
+
+
+@pytest.mark.skipif(not (ROOT / "protocols" / "ch-photonic.toml").exists(),
+                    reason="PEF protocol not present")
+def test_pef_streaming_harvests_analysed_trials_up_to_success(tmp_path):
+    from dicert.simulate import device_model, simulate_to_file
+    from dicert.verify import verify
+
+    log = tmp_path / "ph.btl"
+    simulate_to_file(log, 800_000, device_model("photonic"), rng_seed=5)
+    seed = tmp_path / "s.bin"
+    seed.write_bytes(np.random.default_rng(1).bytes(200_000))
+    proto = _pef_protocol()
+    res = certify(log, proto, seed, tmp_path / "out")
+    assert res.status == "certified", res.abort_reason
+    det = res.record["entropy"]["finite_size"]["details"]
+    first, last = det["harvest_first_trial"], det["success_trial_index"]
+    assert first == 200_000 and last is not None and last < 800_000
+    # Raw bits = (a, b) of the analysed trials first..last, in order (naive slice of the log).
+    tr = read_trials(log)
+    raw = np.empty(2 * (last - first + 1), dtype=np.uint8)
+    raw[0::2], raw[1::2] = tr.a[first:last + 1], tr.b[first:last + 1]
+    assert res.record["harvest"]["raw_sha256"] == hashlib.sha256(np.packbits(raw).tobytes()).hexdigest()
+    # Extractor min-entropy sigma_target - 1 (the PEF module's documented rule).
+    assert res.min_entropy_bits == pytest.approx(128 - 1)
+    assert res.record["log"]["trials"] == 800_000  # the whole log is hashed and counted
+    assert "pef_solver" in res.record["volatile"]["timings_s"]
+    rep = verify(res.record_file, log=log, seed=seed, bits=res.bits_file)
+    assert rep.scope == "full"
+    assert any("trial order" in n for n in verify(res.record_file).notes)
