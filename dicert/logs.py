@@ -321,7 +321,7 @@ class TrialLog:
     def _peek_test_flag(path: Path, fmt: str) -> bool:
         if fmt == "binary":
             with _open_checked(path) as fh:
-                return bool(_read_binary_header(fh, path)[0] & FLAG_HAS_T)
+                return bool(read_binary_header(fh, path)[0] & FLAG_HAS_T)
         if fmt == "npz":
             try:
                 with zipfile.ZipFile(path) as zf:
@@ -403,7 +403,12 @@ def _open_checked(path: Path):
 # --------------------------------------------------------------------------------------------
 
 
-def _read_binary_header(fh, path) -> tuple[int, int, bytes]:
+def read_binary_header(fh, path) -> tuple[int, int, bytes]:
+    """Read and validate the 24-byte header of a binary trial log from ``fh``.
+
+    Returns ``(flags, count, header_bytes)``; ``count`` is :data:`COUNT_STREAMED` for a
+    streamed file. Raises :class:`LogFormatError` naming ``path`` and the byte offset.
+    """
     head = fh.read(BINARY_HEADER_SIZE)
     if len(head) < 8 or head[:8] != BINARY_MAGIC:
         raise LogFormatError(path, "byte offset 0", "wrong magic bytes: not a dicert binary trial log")
@@ -424,7 +429,7 @@ def _read_binary_header(fh, path) -> tuple[int, int, bytes]:
 def _iter_binary(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
     size = path.stat().st_size
     with _open_checked(path) as fh:
-        flags, count, head = _read_binary_header(fh, path)
+        flags, count, head = read_binary_header(fh, path)
         hasher.update(head)
         body = size - BINARY_HEADER_SIZE
         if count == COUNT_STREAMED:
@@ -1013,6 +1018,7 @@ __all__ = [
     "convert_log",
     "detect_format",
     "open_log",
+    "read_binary_header",
     "read_trials",
     "resolve_sources",
     "summarize_log",
