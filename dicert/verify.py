@@ -451,7 +451,10 @@ def verify_chain(chain_dir: str | os.PathLike[str], *, public_key: Any = None,
             try:
                 verify(p, public_key=key)
             except VerificationError as exc:
-                raise VerificationError(f"{p.name}: {exc}", exc.field) from None
+                text = str(exc)
+                if exc.field and text.startswith(f"{exc.field}: "):
+                    text = text[len(exc.field) + 2:]
+                raise VerificationError(text, f"{p.name}:{exc.field}") from None
             except DicertError:
                 raise
     return report

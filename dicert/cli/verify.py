@@ -101,9 +101,20 @@ def _chain(chain, pubkey, as_json: bool) -> None:
         emit_json({"verified": True, "chain": str(chain), "report": data})
         return
     rows = [("result", "CHAIN VERIFIED"), ("chain", str(chain))]
+    findings = []
     if isinstance(data, dict):
-        for k, v in data.items():
-            if isinstance(v, (list, tuple)) and len(v) > 6:
-                v = f"{len(v)} items"
-            rows.append((str(k), v if isinstance(v, (int, float, str)) else str(v)))
-    stdout_console().print(kv_table("dicert verify --chain", rows))
+        findings = data.get("findings") or []
+        for k in ("pulses", "first_index", "last_index", "head_sha256", "signed_pulses",
+                  "signer_trusted"):
+            if k in data:
+                rows.append((k.replace("_", " "), str(data[k])))
+        for fp in data.get("key_fingerprints") or []:
+            rows.append(("signing key", str(fp)))
+    for f in findings:
+        rows.append((f"{f.get('severity', '')}: {f.get('kind', '')}",
+                     f"{f.get('file') or ''} {f.get('message', '')}".strip()))
+    console = stdout_console()
+    console.print(kv_table("dicert verify --chain", rows))
+    if not (isinstance(data, dict) and data.get("signer_trusted")):
+        console.print("Signatures were checked against the keys embedded in the records; pass "
+                      "--pubkey to check that they are the operator's.")
