@@ -49,16 +49,30 @@ def best_time(fn: Callable[[], object], repeat: int = 3) -> float:
 
 
 def peak_rss_mb_of(cmd: list[str]) -> tuple[float, float]:
-    """Run ``cmd`` in a child process; return (wall seconds, its peak resident memory in MB)."""
+    """Run a Python command in a child process; return (wall seconds, its peak memory in MB).
+
+    ``cmd`` is ``[python, "-m", module, *args]`` or ``[python, "-c", code, *args]``; the child
+    reports the high-water mark of its own address space (VmHWM), which ``ru_maxrss`` does not
+    give reliably for children of a large parent.
+    """
     import os
     import subprocess
+    import tempfile
 
-    t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - t0
-    code = os.waitstatus_to_exitcode(status)
-    if code != 0:
-        err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
-        raise RuntimeError(f"benchmark command failed ({code}): {' '.join(cmd)}\n{err}")
-    return wall, usage.ru_maxrss / 1024.0
+    if len(cmd) < 3 or cmd[1] not in ("-m", "-c"):
+        raise ValueError("peak_rss_mb_of needs [python, '-m' | '-c', target, ...]")
+    fd, out = tempfile.mkstemp(prefix="dicert-peak-")
+    os.close(fd)
+    try:
+        wrapped = [cmd[0], "-m", "dicert.benchmarks._peak", out, *cmd[1:]]
+        t0 = time.perf_counter()
+        proc = subprocess.run(wrapped, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        wall = time.perf_counter() - t0
+        if proc.returncode != 0:
+            err = proc.stderr.decode(errors="replace")
+            raise RuntimeError(f"benchmark command failed ({proc.returncode}): {' '.join(cmd)}\n{err}")
+        with open(out) as fh:
+            kb = int(fh.read().strip() or 0)
+    finally:
+        os.unlink(out)
+    return wall, kb / 1024.0

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
@@ -41,18 +40,18 @@ def run(quick: bool = False) -> list[BenchResult]:
         binp = tmp / "bench.btl"
         _write_binary(binp, n, rng)
         codes = np.fromfile(binp, dtype=np.uint8, offset=24)
-        count_blocks(codes[:1000], 100)  # compile outside the timing
+        count_blocks(codes[:1000], 100)  # warm-up
         t_kernel = best_time(lambda: count_blocks(codes, 1 << 20))
         t_np = best_time(lambda: np.fromfile(binp, dtype=np.uint8).max())
         out.append(BenchResult(suite=SUITE, name=f"counting kernel ({kernel_name()})", value=n / t_kernel / 1e6,
                                unit="M trials/s", target=500.0))
         out.append(BenchResult(suite=SUITE, name="baseline: one numpy pass (fromfile + max)",
                                value=n / t_np / 1e6, unit="M trials/s"))
-        del codes
+        codes = None  # free before the whole-process runs
         t_inproc = best_time(lambda: estimate_chsh(summarize_log(binp, digest=False).counts))
         out.append(BenchResult(suite=SUITE, name="in-process summarize+estimate / numpy pass",
-                               value=t_inproc / t_np, unit="x", target=3.0, higher_is_better=False,
-                               note=f"{t_inproc:.3f} s vs {t_np:.3f} s"))
+                               value=t_inproc / t_np, unit="x", higher_is_better=False,
+                               note=f"{t_inproc:.3f} s vs {t_np:.3f} s (informational; the target is whole-process)"))
         t_dig = best_time(lambda: summarize_log(binp, digest=True), repeat=2)
         out.append(BenchResult(suite=SUITE, name="in-process summarize with SHA-256 / numpy pass",
                                value=t_dig / t_np, unit="x", higher_is_better=False,
@@ -85,6 +84,4 @@ def run(quick: bool = False) -> list[BenchResult]:
         t_csv = best_time(lambda: summarize_log(csvp, digest=False), repeat=2)
         out.append(BenchResult(suite=SUITE, name="CSV reading (x,y,a,b,t)", value=n_csv / t_csv / 1e6,
                                unit="M trials/s", target=10.0))
-        t0 = time.perf_counter()
-        del t0
     return out
