@@ -703,6 +703,11 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         # Commit point: rename into place (bits first, record last).
         if extraction is not None:
             os.replace(tmp_files[0], bits_path)
+        else:
+            # A bits file left by an earlier run in this directory must not be mistaken for
+            # the output of this (aborted) one.
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(bits_path)
         os.replace(tmp_files[-1], record_path)
         tmp_files = []
         chain_file = None

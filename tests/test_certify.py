@@ -139,6 +139,16 @@ def test_classical_devices_abort_with_a_record(tmp_path):
     assert "threshold" in rec["abort_reason"]
 
 
+def test_abort_removes_a_stale_bits_file(small_run, tmp_path):
+    d, log, seed = small_run
+    out = tmp_path / "out"
+    assert certify(log, _proto(), seed, out).status == "certified"
+    classical = tmp_path / "c.btl"
+    write_log(classical, _sim(5_000, model="classical", seed=8))
+    res = certify(classical, _proto(), seed, out)
+    assert res.status == "aborted" and not (out / BITS_NAME).exists()
+
+
 def test_two_runs_identical_except_volatile(small_run, tmp_path):
     from dicert.audit.record import stable_view
 
