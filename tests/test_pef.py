@@ -373,7 +373,7 @@ def test_prefix_calibration_does_not_score_calibration_trials():
 
 
 def test_spot_checking_log_with_test_flags():
-    s = P.spot_settings(0.2, (0, 1))
+    P.spot_settings(0.2, (0, 1))  # the settings model must build for this design
     rng = np.random.default_rng(2)
     n = 4000
     t = (rng.random(n) < 0.2).astype(np.uint8)

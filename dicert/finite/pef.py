@@ -51,7 +51,6 @@ import dataclasses
 import functools
 import itertools
 import math
-import os
 import time
 import warnings
 from collections.abc import Iterable, Iterator, Mapping
@@ -878,7 +877,7 @@ class PefParams:
                                                  "number of calibration trials")
         else:
             if d.get("calibration_trials"):
-                raise fail("calibration_trials", f"only used with calibration = \"prefix\"")
+                raise fail("calibration_trials", "only used with calibration = \"prefix\"")
         if cal == "isotropic":
             vals["calibration_chsh"] = num("calibration_chsh", 2.0, 2.0 * SQRT2, hi_open=False)
         elif "calibration_chsh" in d and d["calibration_chsh"] is not None:
