@@ -61,15 +61,15 @@ _SPILL_BYTES = 64 << 20
 _CHUNK_TRIALS = 1 << 22
 
 ASSUMPTIONS = (
-    "No communication between the two stations during a trial (locality / no signalling "
-    "between the measurement devices within each round).",
-    "Measurement settings are chosen independently of the devices and of any adversary, "
-    "with the distribution declared in the protocol.",
-    "The classical processing (logging, this software, the machine running it) is trusted "
-    "and the log faithfully records the settings and outcomes of every trial in order.",
+    ("No communication between the two stations during a trial (locality / no signalling "
+    "between the measurement devices within each round)."),
+    ("Measurement settings are chosen independently of the devices and of any adversary, "
+    "with the distribution declared in the protocol."),
+    ("The classical processing (logging, this software, the machine running it) is trusted "
+    "and the log faithfully records the settings and outcomes of every trial in order."),
     "The extractor seed is uniformly random and independent of the devices and the raw bits.",
-    "The acceptance threshold and every error parameter were fixed in the protocol before "
-    "the data were taken.",
+    ("The acceptance threshold and every error parameter were fixed in the protocol before "
+    "the data were taken."),
 )
 
 CAUTION = (
@@ -358,7 +358,7 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
 
 def _certify_counts(counts: np.ndarray, protocol: Any) -> Any:
     """The finite-size method of the protocol (dicert.finite's dispatcher)."""
-    import dicert.finite as finite
+    from dicert import finite
 
     try:
         return finite.certify_counts(counts, protocol)
@@ -539,12 +539,12 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
 
 
 def _now(clock: Clock | None) -> str:
-    t = clock() if clock is not None else _dt.datetime.now(_dt.timezone.utc)
+    t = clock() if clock is not None else _dt.datetime.now(_dt.UTC)
     if isinstance(t, str):
         return t
     if t.tzinfo is None:
-        t = t.replace(tzinfo=_dt.timezone.utc)
-    return t.astimezone(_dt.timezone.utc).isoformat().replace("+00:00", "Z")
+        t = t.replace(tzinfo=_dt.UTC)
+    return t.astimezone(_dt.UTC).isoformat().replace("+00:00", "Z")
 
 
 def read_seed(seed: bytes | str | os.PathLike[str]) -> tuple[bytes, str]:

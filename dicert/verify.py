@@ -356,10 +356,9 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
 
     recomputed_output: bytes | None = None
     if log is not None:
-        from dicert.certify import scan_log
-
         import tempfile
 
+        from dicert.certify import scan_log
         from dicert.errors import LogFormatError
         from dicert.logs import resolve_sources
 

@@ -56,7 +56,7 @@ def _f(s: float) -> float:
 
 
 def test_certified_numbers_follow_the_published_formulas(small_run, tmp_path):
-    d, log, seed = small_run
+    _d, log, seed = small_run
     proto = _proto()
     res = certify(log, proto, seed, tmp_path / "out")
     assert res.status == "certified" and res.exit_code == 0
@@ -140,7 +140,7 @@ def test_classical_devices_abort_with_a_record(tmp_path):
 
 
 def test_abort_removes_a_stale_bits_file(small_run, tmp_path):
-    d, log, seed = small_run
+    _d, log, seed = small_run
     out = tmp_path / "out"
     assert certify(log, _proto(), seed, out).status == "certified"
     classical = tmp_path / "c.btl"
@@ -152,7 +152,7 @@ def test_abort_removes_a_stale_bits_file(small_run, tmp_path):
 def test_two_runs_identical_except_volatile(small_run, tmp_path):
     from dicert.audit.record import stable_view
 
-    d, log, seed = small_run
+    _d, log, seed = small_run
     clocks = iter(["2001-01-01T00:00:00Z", "2001-01-01T00:00:01Z",
                    "2030-05-05T12:00:00Z", "2030-05-05T12:00:09Z"])
     r1 = certify(log, _proto(), seed, tmp_path / "a", clock=lambda: next(clocks))
@@ -165,7 +165,7 @@ def test_two_runs_identical_except_volatile(small_run, tmp_path):
 
 
 def test_seed_too_short_says_how_many_bytes(small_run, tmp_path):
-    d, log, _ = small_run
+    _d, log, _ = small_run
     short = tmp_path / "short.bin"
     short.write_bytes(b"\x01" * 100)
     out = tmp_path / "out"
@@ -190,7 +190,7 @@ def test_nothing_half_written_when_a_late_stage_fails(small_run, tmp_path, monke
     import dicert.audit.record as record_mod
     import dicert.extract as extract_mod
 
-    d, log, seed = small_run
+    _d, log, seed = small_run
 
     def boom(*a, **k):
         raise RuntimeError("injected failure")
@@ -208,7 +208,7 @@ def test_nothing_half_written_when_a_late_stage_fails(small_run, tmp_path, monke
 def test_spilled_raw_bits_give_the_same_result(small_run, tmp_path, monkeypatch):
     import dicert.certify as certify_mod
 
-    d, log, seed = small_run
+    _d, log, seed = small_run
     r1 = certify(log, _proto(), seed, tmp_path / "mem")
     monkeypatch.setattr(certify_mod, "_SPILL_BYTES", 100)
     r2 = certify(log, _proto(), seed, tmp_path / "spill")
@@ -222,7 +222,7 @@ def test_chain_links_pulses(small_run, tmp_path):
     from dicert.audit.chain import verify_chain
     from dicert.audit.record import record_digest
 
-    d, log, seed = small_run
+    _d, log, seed = small_run
     chain = tmp_path / "chain"
     r1 = certify(log, _proto(), seed, tmp_path / "p1", chain=chain)
     r2 = certify(log, _proto(), seed, tmp_path / "p2", chain=chain)
@@ -261,7 +261,7 @@ def test_signed_record(small_run, tmp_path):
     from dicert.audit.record import check_record
     from dicert.audit.signing import write_keypair
 
-    d, log, seed = small_run
+    _d, log, seed = small_run
     keys = write_keypair(tmp_path / "k.pem")
     res = certify(log, _proto(), seed, tmp_path / "out", key=keys.private_key_file)
     chk = check_record(res.record, _pub(keys.public_key_file))

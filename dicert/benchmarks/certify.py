@@ -41,8 +41,8 @@ def run(quick: bool = False) -> list[BenchResult]:
         tmp = Path(tmp)
         log, seed = _make_inputs(tmp, n)
         proto = shipped_protocol_path("chsh-uniform")
-        base_cmd = [py, "-c", "import hashlib,sys; h=hashlib.sha256(); f=open(sys.argv[1],'rb')\n"
-                    "while b:=f.read(1<<22): h.update(b)", str(log)]
+        base_cmd = [py, "-c", ("import hashlib,sys; h=hashlib.sha256(); f=open(sys.argv[1],'rb')\n"
+                    "while b:=f.read(1<<22): h.update(b)"), str(log)]
         insp_cmd = [py, "-m", "dicert.cli.app", "inspect", str(log), "--json"]
 
         def cert_cmd(i: int) -> list[str]:

@@ -3,11 +3,19 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
-from dicert.cli._common import CAUTION, JsonFlag, emit_json, handle_errors, kv_table, progress_bar, stdout_console
+from dicert.cli._common import (
+    CAUTION,
+    JsonFlag,
+    emit_json,
+    handle_errors,
+    kv_table,
+    progress_bar,
+    stdout_console,
+)
 
 HELP = (
     "Certify the randomness of a trial log under a protocol fixed in advance, extract it with "
@@ -36,8 +44,8 @@ def certify_cmd(
     protocol: Annotated[Path, typer.Option("--protocol", help="Protocol file (TOML), fixed before the run.")],
     seed: Annotated[Path, typer.Option("--seed", help="Extractor seed file (uniformly random raw bytes; n + m - 1 bits are used).")],
     out: Annotated[Path, typer.Option("--out", help="Output directory for random.bits and record.json.")],
-    key: Annotated[Optional[Path], typer.Option("--key", help="Ed25519 private key (from `dicert keygen`) that signs the record.")] = None,
-    chain: Annotated[Optional[Path], typer.Option("--chain", help="Beacon chain directory: link the record to the previous pulse and append it.")] = None,
+    key: Annotated[Path | None, typer.Option("--key", help="Ed25519 private key (from `dicert keygen`) that signs the record.")] = None,
+    chain: Annotated[Path | None, typer.Option("--chain", help="Beacon chain directory: link the record to the previous pulse and append it.")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.certify import certify

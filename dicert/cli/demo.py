@@ -11,11 +11,18 @@ from __future__ import annotations
 import hashlib
 import shutil
 from pathlib import Path
-from typing import Annotated, Any, Optional
+from typing import Annotated, Any
 
 import typer
 
-from dicert.cli._common import CAUTION, JsonFlag, emit_json, handle_errors, kv_table, stdout_console
+from dicert.cli._common import (
+    CAUTION,
+    JsonFlag,
+    emit_json,
+    handle_errors,
+    kv_table,
+    stdout_console,
+)
 
 DEFAULT_OUT = "dicert-demo"
 
@@ -205,7 +212,7 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
 
 @handle_errors
 def demo_cmd(
-    out: Annotated[Optional[Path], typer.Option("--out", help=f"New or empty output directory (default: ./{DEFAULT_OUT}, or ./{DEFAULT_OUT}-N if taken).")] = None,
+    out: Annotated[Path | None, typer.Option("--out", help=f"New or empty output directory (default: ./{DEFAULT_OUT}, or ./{DEFAULT_OUT}-N if taken).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Run an INVENTED beacon scenario end to end: simulate -> certify -> verify -> tamper

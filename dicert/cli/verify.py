@@ -3,11 +3,17 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
-from dicert.cli._common import JsonFlag, emit_json, handle_errors, kv_table, stdout_console
+from dicert.cli._common import (
+    JsonFlag,
+    emit_json,
+    handle_errors,
+    kv_table,
+    stdout_console,
+)
 
 HELP = (
     "Re-check an audit record: signature and internal consistency (every derived number is "
@@ -28,12 +34,12 @@ def register(app: typer.Typer) -> None:
 
 @handle_errors
 def verify_cmd(
-    record: Annotated[Optional[Path], typer.Argument(help="Audit record (record.json) to check.")] = None,
-    log: Annotated[Optional[str], typer.Option("--log", help="The trial log the record certifies (file, directory or glob).")] = None,
-    seed: Annotated[Optional[Path], typer.Option("--seed", help="The extractor seed file.")] = None,
-    bits: Annotated[Optional[Path], typer.Option("--bits", help="The output bits file.")] = None,
-    pubkey: Annotated[Optional[Path], typer.Option("--pubkey", help="The operator's Ed25519 public key (KEYFILE.pub).")] = None,
-    chain: Annotated[Optional[Path], typer.Option("--chain", help="Check every record of this beacon chain directory.")] = None,
+    record: Annotated[Path | None, typer.Argument(help="Audit record (record.json) to check.")] = None,
+    log: Annotated[str | None, typer.Option("--log", help="The trial log the record certifies (file, directory or glob).")] = None,
+    seed: Annotated[Path | None, typer.Option("--seed", help="The extractor seed file.")] = None,
+    bits: Annotated[Path | None, typer.Option("--bits", help="The output bits file.")] = None,
+    pubkey: Annotated[Path | None, typer.Option("--pubkey", help="The operator's Ed25519 public key (KEYFILE.pub).")] = None,
+    chain: Annotated[Path | None, typer.Option("--chain", help="Check every record of this beacon chain directory.")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.errors import ParameterError, VerificationError
