@@ -204,7 +204,7 @@ def runs_test(bits: Any) -> TestResult:
     pi = int(np.count_nonzero(e)) / n
     tau = 2.0 / math.sqrt(n)
     v = 1 + int(np.count_nonzero(e[1:] != e[:-1]))
-    if abs(pi - 0.5) >= tau:
+    if abs(pi - 0.5) >= tau or pi in (0.0, 1.0):  # (pi in {0, 1} only matters for n < 17)
         return _result("runs", "SP 800-22 2.3", float(v), 0.0, n >= 100,
                        {"n": n, "pi": pi, "V": v},
                        "frequency prerequisite failed (|pi - 1/2| >= 2/sqrt(n)): P = 0")

@@ -146,6 +146,19 @@ def test_monobit_p_value_matches_normal_tail(rng):
     assert r.p_value == pytest.approx(2 * scipy.stats.norm.sf(r.statistic), rel=1e-10)
 
 
+@pytest.mark.parametrize(
+    ("test", "n"),
+    [(frequency_test, 1000), (lambda e: block_frequency_test(e, 128), 12800), (runs_test, 1000),
+     (longest_run_test, 1024), (longest_run_test, 6400)],
+)
+def test_p_values_are_uniform_under_fair_bits(test, n):
+    # Under the null hypothesis the P-values are uniform on [0, 1] (SP 800-22 rev. 1a section
+    # 4.2.2); Kolmogorov-Smirnov test with scipy.stats.kstest at level 1e-3.
+    rng = np.random.default_rng(99)
+    ps = [test(rng.integers(0, 2, n, dtype=np.uint8)).p_value for _ in range(300)]
+    assert scipy.stats.kstest(ps, "uniform").pvalue > 1e-3
+
+
 def test_report_on_good_and_bad_bits(rng):
     good = rng.integers(0, 256, 1 << 13, dtype=np.uint8).tobytes()  # 65536 bits
     rep = run_health_checks(good)
@@ -165,6 +178,9 @@ def test_report_on_good_and_bad_bits(rng):
     assert stuck.mcv_per_bit.min_entropy_per_sample == 0.0
     runs = {t.section: t for t in stuck.tests}["SP 800-22 2.3"]
     assert runs.p_value == 0.0 and "prerequisite" in runs.note
+
+    tiny = runs_test(np.ones(10, dtype=np.uint8))  # n < 17: 2/sqrt(n) > 1/2, all ones
+    assert tiny.p_value == 0.0
 
     alternating = run_health_checks(b"\x55" * 4096)  # balanced but far too many runs
     res = {t.section: t for t in alternating.tests}
