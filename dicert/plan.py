@@ -20,7 +20,35 @@ Conventions
   when every round is a test round with uniform settings. The strong extractor's seed is
   returned, so it is not counted. Net = m - seed.
 - Abort probability of honest i.i.d. devices: exact binomial tail for entropy accumulation
-  (scipy.stats.binom); an optimised Chernoff upper bound for the martingale estimator.
+  (scipy.stats.binom); an optimised Chernoff upper bound for the martingale estimator and for
+  probability estimation.
+
+Probability estimation factors (PEFs, method "pef", classical side information)
+--------------------------------------------------------------------------------
+- Device quality: with --chsh / --win-probability / --visibility, the isotropic box (the
+  Tsirelson box mixed with white noise) of that CHSH value; otherwise, for a PEF protocol, the
+  anticipated box it declares (calibration "isotropic" or "table"), else the photonic
+  Eberhard-type model of :func:`dicert.simulate.device_model` ("photonic": r = 2.918,
+  detector efficiency 0.76, outcome 1 = click). ``PlanResult.device`` says which.
+- A PEF run stops at the first trial where log2 T >= beta sigma_target + log2(1/eps_pe); the
+  output on success is floor(k - 2 log2(1/eps_ext)) with k = sigma_target - 1. ``trials`` is
+  the cap on analysis trials (the protocol's n_max by default). The trials consumed are the
+  calibration prefix plus min(expected stopping trial, cap), with the expected stopping trial
+  (beta sigma_target + log2(1/eps_pe)) / E[log2 F] (Wald's identity, up to the overshoot of the
+  last factor); seed and ``rate_per_trial`` are per trial consumed.
+- The protocol's own PEF row ("declared") uses its beta and target; ``pef.beta_chosen`` is the
+  beta minimising the expected trials for that target (:func:`dicert.finite.pef.plan_pef`), with
+  its expected trials and the trials for 99% completeness (normal approximation, methods note
+  section 2). For CHSH protocols a PEF row is added with DERIVED parameters: model "ns", the
+  protocol's settings distribution, and the largest target whose honest abort probability
+  within ``trials`` is at most eps_comp (Chernoff bound), beta chosen for it on a log grid.
+  The plotted curve, the smallest numbers of trials and the best gamma of every PEF row use
+  that derived target.
+- The anticipated box fixes the PEF here; a "prefix" protocol fits it from its calibration
+  trials instead, which can only cost rate.
+- A local box (no PEF has positive expected log2 F) certifies nothing: by the PEF inequality at
+  the local vertices T is a test supermartingale, so such devices succeed with probability at
+  most 2^-(beta sigma_target) eps_pe, which is a soundness failure and not an output.
 
 References
 ----------
@@ -29,11 +57,17 @@ References
 .. [2] T. S. Han, M. Hoshi, "Interval algorithm for random number generation", IEEE Trans.
    Inf. Theory 43, 599 (1997).
 .. [3] H. Chernoff, Ann. Math. Stat. 23, 493 (1952).
+.. [4] E. Knill, Y. Zhang, P. Bierhorst, "Generation of quantum randomness by probability
+   estimation with classical side information", Phys. Rev. Research 2, 033465 (2020).
+.. [5] Y. Zhang, E. Knill, P. Bierhorst, "Certifying quantum randomness by probability
+   estimation", Phys. Rev. A 98, 040304(R) (2018).
+.. [6] A. Wald, "On cumulative sums of random variables", Ann. Math. Stat. 15, 283 (1944).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import types
 from typing import Any
@@ -48,11 +82,100 @@ DEFAULT_TRIALS = 10**7
 DEFAULT_EPS_COMP = 1e-6
 N_SWEEP = (1e3, 1e14)
 GAMMA_SWEEP = (1e-4, 1.0)
+#: PEF powers on which the derived target (largest target reachable at a given number of trials)
+#: is optimised; any beta gives a valid PEF, so a coarse grid only costs a little output.
+PEF_BETAS = tuple(float(b) for b in np.logspace(-4.0, 0.0, 9))
+#: Chernoff parameters theta (per bit of log2 T) over which tail bounds are optimised; any
+#: theta > 0 gives a valid bound, the grid step (6%) only costs tightness.
+PEF_THETAS = np.logspace(-8.0, 5.0, 521)
+#: Success probability for ``trials_for_completeness`` (normal approximation).
+PEF_COMPLETENESS = 0.99
+#: Number of gamma values swept for a PEF row (each needs its own PEFs).
+PEF_GAMMA_POINTS = 7
+#: Weight of the trivial PEF in derived PEF rows (as the protocol default).
+PEF_DERIVED_LAM = 1e-3
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class PefPlanDetails:
+    """PEF specifics of a plan row. Trial numbers count analysis trials unless named otherwise.
+
+    Attributes
+    ----------
+    model : str
+        Box model, "ns" (no-signalling) or "tsirelson" (adds: the devices are quantum).
+    settings : str
+        Settings distribution ("uniform", "product", "spot-checking").
+    target_bits : float
+        sigma_target: min-entropy certified on success (declared, or derived for ``trials``).
+    target_source : str
+        "declared" (the protocol's) or "derived" (largest target with honest abort <= eps_comp).
+    eps_pe, lam : float
+        Error of the probability estimate; weight of the trivial PEF mixed in.
+    beta : float
+        The power this row's numbers use (the protocol's, or the derived one).
+    expected_log2_factor, sd_log2_factor : float
+        Mean and standard deviation of log2 F per trial for the honest devices (bits).
+    rate_bits_per_trial : float
+        Log-prob rate E[log2 F]/beta (bits of min-entropy per analysis trial).
+    threshold_log2 : float
+        Success threshold beta sigma_target + log2(1/eps_pe) on log2 T.
+    expected_trials : float
+        Expected analysis trials to success at ``beta`` (inf if E[log2 F] <= 0).
+    trials_for_completeness : float
+        Analysis trials for success probability ``completeness`` at ``beta`` (normal approx.).
+    beta_chosen : float
+        The beta minimising the expected trials for ``target_bits`` (grid search).
+    expected_trials_at_beta_chosen, trials_for_completeness_at_beta_chosen : float
+        The same two numbers at ``beta_chosen``.
+    latency_floor_trials : float
+        log2(1/eps_pe) / D_LR: no PEF certifies anything before this many trials.
+    statistical_strength_bits : float
+        D_LR, the statistical strength of the devices' nonlocality (bits per trial).
+    asymptotic_rate_bits : float
+        h_inf, the limit of the log-prob rate as beta -> 0 (bits per trial).
+    calibration_trials : int
+        Trials of a calibration prefix (consumed, not analysed, not harvested).
+    trials_cap : int
+        Cap on analysis trials (the plan's ``trials``).
+    trials_consumed : float
+        Calibration prefix + min(expected_trials, trials_cap).
+    anticipated_box : tuple
+        rho[z][c] = rho(ab|xy) with z = 2x + y, c = 2a + b, the box planned for.
+    """
+
+    model: str
+    settings: str
+    target_bits: float
+    target_source: str
+    eps_pe: float
+    lam: float
+    beta: float
+    expected_log2_factor: float
+    sd_log2_factor: float
+    rate_bits_per_trial: float
+    threshold_log2: float
+    expected_trials: float
+    trials_for_completeness: float
+    completeness: float
+    beta_chosen: float
+    expected_trials_at_beta_chosen: float
+    trials_for_completeness_at_beta_chosen: float
+    latency_floor_trials: float
+    statistical_strength_bits: float
+    asymptotic_rate_bits: float
+    calibration_trials: int
+    trials_cap: int
+    trials_consumed: float
+    anticipated_box: tuple[tuple[float, ...], ...]
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class PlanMethod:
-    """One method's plan at the given number of trials and gamma."""
+    """One method's plan at the given number of trials and gamma.
+
+    ``pef`` carries the PEF specifics for method "pef" rows (None for the others).
+    """
 
     name: str
     side_information: str
@@ -71,6 +194,7 @@ class PlanMethod:
     best_gamma_net_bits: float | None
     curve_trials: tuple[float, ...]
     curve_certified_bits: tuple[float, ...]
+    pef: PefPlanDetails | None = None
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -81,6 +205,7 @@ class PlanResult:
     trials: int
     trials_source: str
     gamma: float
+    device: str
     win_probability: float
     chsh: float
     eps_ext: float
@@ -239,10 +364,230 @@ def _min_trials(model: _MethodModel, gamma: float, key: str) -> int | None:
             hi = mid
         else:
             lo = mid
-    return int(math.ceil(math.exp(hi)))
+    return math.ceil(math.exp(hi))
 
 
-def _models(protocol: Any, win: float, eps_comp: float) -> list[_MethodModel]:
+# --------------------------------------------------------------------------- PEF
+
+
+def _log_mgf(lv: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """ln E[exp(-theta L)] on PEF_THETAS for L = lv (bits) with probabilities p (sum 1)."""
+    if not np.all(np.isfinite(lv)):
+        return np.full(PEF_THETAS.shape, np.inf)  # a factor 0 can occur: no tail bound
+    a = -PEF_THETAS[:, None] * lv[None, :]
+    out = np.empty(PEF_THETAS.shape)
+    # log1p/expm1 keep the small-theta values accurate (they are divided by theta later).
+    small = np.max(np.abs(a), axis=1) <= 0.5
+    out[small] = np.log1p(np.expm1(a[small]) @ p)
+    if not small.all():
+        from scipy.special import logsumexp
+
+        out[~small] = logsumexp(a[~small] + np.log(p)[None, :], axis=1)
+    return out
+
+
+def chernoff_reachable_threshold(n: float, log_mgf: np.ndarray, eps: float) -> float:
+    """Largest t with the Chernoff bound on P(sum of n i.i.d. log2 F < t) at most ``eps``.
+
+    P(S_n <= t) <= exp(theta t + n ln E[e^(-theta L)]) for every theta > 0 (Chernoff 1952), so
+    t = max_theta (ln eps - n ln E[e^(-theta L)]) / theta; ``log_mgf`` is that log moment
+    generating function on :data:`PEF_THETAS`.
+    """
+    with np.errstate(invalid="ignore", over="ignore"):
+        vals = (math.log(eps) - n * log_mgf) / PEF_THETAS
+    vals = vals[np.isfinite(vals)]
+    return float(np.max(vals)) if vals.size else -math.inf
+
+
+def chernoff_shortfall_bound(n: float, threshold: float, log_mgf: np.ndarray) -> float:
+    """Chernoff upper bound on P(sum of n i.i.d. log2 F < threshold) (honest abort)."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        vals = PEF_THETAS * threshold + n * log_mgf
+    vals = vals[np.isfinite(vals)]
+    if not vals.size:
+        return 1.0
+    return float(min(1.0, math.exp(min(0.0, float(np.min(vals))))))
+
+
+def _settings(spot: tuple) -> Any:
+    from dicert.finite.pef import spot_settings
+
+    q, gen, px, py, bx, by = spot
+    return spot_settings(q, gen, p_x0=px, p_y0=py, bias_x=bx, bias_y=by)
+
+
+@functools.lru_cache(maxsize=1024)
+def _pef_stats(rho_t: tuple, spot: tuple, beta: float, model: str,
+               lam: float) -> tuple[float, float, np.ndarray]:
+    """(E[log2 F], sd[log2 F], log MGF of -log2 F) of the validated PEF at the anticipated box."""
+    from dicert.finite.pef import build_pef
+
+    rho = np.array(rho_t).reshape(4, 4)
+    settings = _settings(spot)
+    pef = build_pef(rho, settings, beta, model=model, lam=lam)
+    joint = (settings.nominal[:, None] * rho).ravel()
+    mask = joint > 0
+    with np.errstate(divide="ignore"):
+        lv = np.log2(pef.factors.ravel()[mask])
+    p = joint[mask] / joint[mask].sum()
+    lmgf = _log_mgf(lv, p)
+    lmgf.setflags(write=False)
+    return float(pef.expected_log2), float(pef.sd_log2), lmgf
+
+
+@functools.lru_cache(maxsize=64)
+def _plan_pef_cached(rho_t: tuple, spot: tuple, target: float, eps_pe: float, model: str,
+                     lam: float) -> Any:
+    from dicert.finite.pef import plan_pef
+
+    return plan_pef(np.array(rho_t).reshape(4, 4), _settings(spot), target, eps_pe,
+                    model=model, lam=lam, completeness=PEF_COMPLETENESS)
+
+
+class _PefModel:
+    """Probability estimation at (n, gamma) for an anticipated box.
+
+    ``evaluate`` uses the derived target (largest target reachable within n analysis trials with
+    honest abort <= eps_comp, beta optimised on :data:`PEF_BETAS`); ``row`` gives the plan row,
+    with the declared beta and target when the protocol is a PEF protocol.
+    """
+
+    abort_kind = "Chernoff upper bound"
+    side = "classical"
+
+    def __init__(self, box: np.ndarray, eps_ext: float, eps_comp: float, *,
+                 declared: Any = None, eps_pe: float = 1e-8,
+                 generation: tuple[int, int] = (0, 0)) -> None:
+        self.box = np.asarray(box, dtype=float).reshape(4, 4)
+        self.rho_t = tuple(float(v) for v in self.box.ravel())
+        self.eps_ext, self.eps_comp = eps_ext, eps_comp
+        self.declared = declared
+        self.generation = (int(generation[0]), int(generation[1]))
+        if declared is not None:
+            self.model, self.lam, self.eps_pe = declared.model, declared.lam, declared.eps_pe
+            self.bias = (declared.p_x0, declared.p_y0, declared.bias_x, declared.bias_y)
+            self.calib = (declared.calibration_trials if declared.calibration == "prefix"
+                          else 0)
+            self.thresholds = "declared"
+        else:
+            self.model, self.lam, self.eps_pe = "ns", PEF_DERIVED_LAM, eps_pe
+            self.bias = (0.5, 0.5, 0.0, 0.0)
+            self.calib = 0
+            self.thresholds = "derived"
+        self.name = f"pef-{self.model}"
+        self.log2_inv_eps = math.log2(1.0 / self.eps_pe)
+
+    def _spot(self, gamma: float) -> tuple:
+        return (float(gamma), self.generation, *self.bias)
+
+    def _stats(self, gamma: float, beta: float):
+        return _pef_stats(self.rho_t, self._spot(gamma), float(beta), self.model, self.lam)
+
+    def is_local(self, gamma: float) -> bool:
+        """True when no PEF on the grid has positive expected log2 F (a local box)."""
+        return all(self._stats(gamma, b)[0] <= 0.0 for b in PEF_BETAS)
+
+    def derived_target(self, n: float, gamma: float) -> tuple[float, float]:
+        """(sigma, beta): the largest target reachable within n trials at abort <= eps_comp."""
+        best = (-math.inf, PEF_BETAS[0])
+        for b in PEF_BETAS:
+            mu, _, lmgf = self._stats(gamma, b)
+            if not mu > 0:
+                continue
+            thr = chernoff_reachable_threshold(n, lmgf, self.eps_comp)
+            sigma = (thr - self.log2_inv_eps) / b
+            if sigma > best[0]:
+                best = (sigma, b)
+        return best
+
+    def _consumed(self, n: float, expected: float) -> float:
+        return self.calib + min(expected, n)
+
+    def _outcome(self, n: float, gamma: float, sigma: float, beta: float) -> tuple[_Eval, float]:
+        mu, _, lmgf = self._stats(gamma, beta)
+        k = max(0.0, sigma - 1.0)  # extractor min-entropy sigma_target - 1 (methods note 2(ii))
+        m = _output_bits(k, self.eps_ext) if k > 0 else 0
+        thr = beta * sigma + self.log2_inv_eps
+        expected = thr / mu if mu > 0 else math.inf
+        if m <= 0:
+            seed = seed_bits_consumed(self._consumed(n, math.inf), gamma)
+            return _Eval(k, 0, seed, -seed, 1.0, {}), expected
+        seed = seed_bits_consumed(self._consumed(n, expected), gamma)
+        abort = chernoff_shortfall_bound(n, thr, lmgf)
+        return _Eval(k, m, seed, m - seed, abort, {}), expected
+
+    def evaluate(self, n: float, gamma: float) -> _Eval:
+        n = float(max(1, round(n)))
+        sigma, beta = self.derived_target(n, gamma)
+        if not sigma > 1.0:
+            seed = seed_bits_consumed(self._consumed(n, math.inf), gamma)
+            return _Eval(0.0, 0, seed, -seed, 1.0, {})
+        return self._outcome(n, gamma, sigma, beta)[0]
+
+    def row(self, n: int, gamma: float) -> tuple[_Eval, PefPlanDetails, float]:
+        """(evaluation, PEF details, trials consumed) for the plan's own row."""
+        from dicert.finite.pef import trials_for_probability
+
+        local = self.is_local(gamma)
+        if self.declared is not None:
+            sigma, beta = float(self.declared.sigma_target_bits), float(self.declared.beta)
+            target_source = "declared"
+        else:
+            sigma, beta = self.derived_target(float(n), gamma)
+            sigma = max(0.0, sigma) if math.isfinite(sigma) else 0.0
+            target_source = "derived"
+        mu, sd, _ = self._stats(gamma, beta)
+        if local or sigma <= 1.0:
+            seed = seed_bits_consumed(self._consumed(n, math.inf), gamma)
+            ev = _Eval(0.0, 0, seed, -seed, 1.0, {})
+            expected = ((beta * sigma + self.log2_inv_eps) / mu if mu > 0 and not local
+                        else math.inf)
+        else:
+            ev, expected = self._outcome(n, gamma, sigma, beta)
+        thr = beta * sigma + self.log2_inv_eps
+        plan = _plan_pef_cached(self.rho_t, self._spot(gamma), float(max(sigma, 0.0)),
+                                self.eps_pe, self.model, self.lam)
+        consumed = self._consumed(n, expected)
+        details = PefPlanDetails(
+            model=self.model, settings=_settings(self._spot(gamma)).kind, target_bits=sigma,
+            target_source=target_source, eps_pe=self.eps_pe, lam=self.lam, beta=beta,
+            expected_log2_factor=mu, sd_log2_factor=sd,
+            rate_bits_per_trial=mu / beta, threshold_log2=thr, expected_trials=expected,
+            trials_for_completeness=(math.inf if local else
+                                     trials_for_probability(mu, sd, thr, PEF_COMPLETENESS)),
+            completeness=PEF_COMPLETENESS, beta_chosen=math.nan if local else plan.beta,
+            expected_trials_at_beta_chosen=math.inf if local else plan.expected_trials,
+            trials_for_completeness_at_beta_chosen=(math.inf if local
+                                                    else plan.trials_for_completeness),
+            latency_floor_trials=math.inf if local else plan.latency_floor_trials,
+            statistical_strength_bits=plan.statistical_strength_bits,
+            asymptotic_rate_bits=plan.asymptotic_rate_bits, calibration_trials=self.calib,
+            trials_cap=int(n), trials_consumed=consumed,
+            anticipated_box=tuple(tuple(float(v) for v in r) for r in self.box))
+        params = {"model": self.model, "beta": beta, "sigma_target_bits": sigma,
+                  "eps_pe": self.eps_pe, "lam": self.lam,
+                  "calibration": (self.declared.calibration if self.declared is not None
+                                  else "anticipated box (fixed in advance)")}
+        ev = dataclasses.replace(ev, params=params)
+        return ev, details, consumed
+
+
+def _pef_default_box(analysis: Any) -> tuple[np.ndarray, str]:
+    """The box a PEF protocol is planned for when no device quality is given."""
+    box = analysis.anticipated_box()
+    if box is not None:
+        return box, f"the protocol's anticipated box (calibration \"{analysis.calibration}\")"
+    from dicert.simulate import device_model
+
+    dm = device_model("photonic")
+    p = dm.parameters
+    desc = (f"photonic model of dicert.simulate (r = {p['r']:g}, detector efficiency "
+            f"{p['efficiency']:g}, outcome 1 = click, one pair per trial)")
+    return np.asarray(dm.box, dtype=float).reshape(4, 4), desc
+
+
+def _models(protocol: Any, win: float, eps_comp: float,
+            box: np.ndarray) -> list[_MethodModel | _PefModel]:
     method = getattr(protocol, "method", None)
     analysis = getattr(protocol, "analysis", None)
     eps_ext = float(protocol.extractor.eps_ext)
@@ -258,7 +603,7 @@ def _models(protocol: Any, win: float, eps_comp: float) -> list[_MethodModel]:
         err = float(getattr(analysis, "eps_pe", None) or getattr(analysis, "eps_PE", None)
                     or 1e-8)
         eps_s = eps_ea = err
-    models: list[_MethodModel] = []
+    models: list[_MethodModel | _PefModel] = []
     if method == "martingale" and isinstance(analysis, MartingaleParams):
         models.append(_MethodModel("martingale-azuma", "classical", "declared", win, eps_ext,
                                    eps_comp, mart=analysis, harvest=harvest))
@@ -284,6 +629,15 @@ def _models(protocol: Any, win: float, eps_comp: float) -> list[_MethodModel]:
                       eps_s=eps_s, eps_ea=eps_ea)
         models.append(_MethodModel(p.method_name, "quantum", "derived", win, eps_ext,
                                    eps_comp, eat=p))
+    design = getattr(protocol, "design", None)
+    generation = tuple(getattr(design, "generation", (0, 0)))
+    if method == "pef":
+        models.append(_PefModel(box, eps_ext, eps_comp, declared=analysis,
+                                generation=generation))
+    else:
+        # Derived PEF row: classical side information, no-signalling model, the protocol's
+        # settings distribution, the declared method's error as eps_pe.
+        models.append(_PefModel(box, eps_ext, eps_comp, eps_pe=err, generation=generation))
     return models
 
 
@@ -298,13 +652,17 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         ``harvest``, ``extractor`` (``eps_ext``)
         The protocol to plan for.
     chsh, win_probability, visibility : float, optional
-        At most one: the honest devices' quality (default: the protocol's expectation).
+        At most one: the honest devices' quality, i.e. the isotropic box of that CHSH value
+        (default: the protocol's expectation; for a PEF protocol its anticipated box, else the
+        photonic model of :func:`dicert.simulate.device_model`).
     trials : int, optional
-        Number of trials (default: the protocol's ``rounds``, else 1e7).
+        Number of trials (default: the protocol's ``rounds``, for a PEF protocol its
+        ``n_max``, else 1e7). For PEF rows, the cap on analysis trials.
     gamma : float, optional
         Test-round probability (default: the protocol's).
     n_points, gamma_points : int
-        Sizes of the trial-number sweep (plotted curve) and of the gamma sweep.
+        Sizes of the trial-number sweep (plotted curve) and of the gamma sweep (at most
+        :data:`PEF_GAMMA_POINTS` for PEF rows, which need new PEFs per gamma).
 
     Returns
     -------
@@ -312,34 +670,54 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
 
     References
     ----------
-    Brown, Ragy & Colbeck (2020); Han & Hoshi (1997); Chernoff (1952). See the module docstring.
+    Brown, Ragy & Colbeck (2020); Han & Hoshi (1997); Chernoff (1952); Knill, Zhang & Bierhorst
+    (2020); Zhang, Knill & Bierhorst (2018). See the module docstring.
     """
+    from dicert.finite.pef import box_from_chsh
+
     analysis = getattr(protocol, "analysis", None)
+    is_pef = getattr(protocol, "method", None) == "pef"
     default_win = None
     if isinstance(analysis, EatParams):
         default_win = analysis.expected_win_probability
     elif isinstance(analysis, MartingaleParams) and analysis.expected_chsh is not None:
         default_win = 0.5 + analysis.expected_chsh / 8.0
-    win = honest_quality(chsh=chsh, win_probability=win_probability, visibility=visibility,
-                         default_win=default_win)
+    if is_pef and chsh is None and win_probability is None and visibility is None:
+        box, device = _pef_default_box(analysis)
+        # CHSH-game win probability with uniform settings: sum_z (1/4) P(a xor b = xy | z).
+        # Clamped to the quantum maximum (float rounding, or a super-quantum declared box).
+        win = min(W_QUANTUM, float(sum(0.25 * box[z, c] for z in range(4) for c in range(4)
+                                       if ((c >> 1) ^ (c & 1)) == ((z >> 1) & (z & 1)))))
+    else:
+        win = honest_quality(chsh=chsh, win_probability=win_probability,
+                             visibility=visibility, default_win=default_win)
+        box = box_from_chsh(8.0 * win - 4.0)
+        device = (f"isotropic box (Tsirelson box mixed with white noise), CHSH "
+                  f"{8.0 * win - 4.0:.6g}")
     design = getattr(protocol, "design", None)
     g = float(gamma if gamma is not None else getattr(design, "gamma", 1.0))
     if not (math.isfinite(g) and 0.0 < g <= 1.0):
         raise ParameterError(f"--gamma must lie in (0, 1], got {gamma!r}")
     source = "given"
     if trials is None:
-        declared = getattr(analysis, "rounds", None)
+        declared = getattr(analysis, "n_max" if is_pef else "rounds", None)
         trials, source = (declared, "protocol") if declared else (DEFAULT_TRIALS, "default")
     if isinstance(trials, bool) or int(trials) != trials or trials < 1:
         raise ParameterError(f"--trials must be a positive integer, got {trials!r}")
     n = int(trials)
     eps_comp = float(getattr(analysis, "eps_comp", None) or DEFAULT_EPS_COMP)
-    models = _models(protocol, win, eps_comp)
-    gammas = np.geomspace(*GAMMA_SWEEP, gamma_points)
+    models = _models(protocol, win, eps_comp, box)
     ns = np.geomspace(*N_SWEEP, n_points)
     out = []
     for mdl in models:
-        ev = mdl.evaluate(n, g)
+        details = None
+        consumed = float(n)
+        if isinstance(mdl, _PefModel):
+            ev, details, consumed = mdl.row(n, g)
+            gammas = np.geomspace(*GAMMA_SWEEP, min(gamma_points, PEF_GAMMA_POINTS))
+        else:
+            ev = mdl.evaluate(n, g)
+            gammas = np.geomspace(*GAMMA_SWEEP, gamma_points)
         curve = tuple(float(mdl.evaluate(x, g).m) for x in ns)
         nets = [mdl.evaluate(n, float(gg)).net for gg in gammas]
         j = int(np.argmax(nets))
@@ -347,24 +725,30 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         out.append(PlanMethod(
             name=mdl.name, side_information=mdl.side, thresholds=mdl.thresholds,
             parameters=ev.params, min_entropy_bits=ev.k, certified_bits=ev.m,
-            rate_per_trial=ev.m / n, seed_bits=ev.seed, net_bits=ev.net,
-            abort_probability=ev.abort, abort_probability_kind=mdl.abort_kind,
+            rate_per_trial=ev.m / consumed if consumed > 0 else 0.0, seed_bits=ev.seed,
+            net_bits=ev.net, abort_probability=ev.abort, abort_probability_kind=mdl.abort_kind,
             min_trials_positive=_min_trials(mdl, g, "m"),
             min_trials_net_positive=_min_trials(mdl, g, "net"),
             best_gamma=best_g, best_gamma_net_bits=float(nets[j]) if best_g else None,
-            curve_trials=tuple(float(x) for x in ns), curve_certified_bits=curve))
+            curve_trials=tuple(float(x) for x in ns), curve_certified_bits=curve,
+            pef=details))
     notes = (
-        "certified_bits is the extractable output on acceptance, "
-        "floor(k - 2 log2(1/eps_ext)); multiply by 1 - abort_probability for the mean",
-        "seed_bits: n (h2(gamma) + 2 gamma) for spot-checking, 2n for uniform settings; the "
-        "extractor seed is returned and not counted",
-        "'derived' methods use thresholds set for this device quality and eps_comp "
-        f"= {eps_comp:g}; 'declared' ones use the protocol's",
+        ("certified_bits is the extractable output on acceptance, "
+         "floor(k - 2 log2(1/eps_ext)); multiply by 1 - abort_probability for the mean"),
+        ("seed_bits: n (h2(gamma) + 2 gamma) for spot-checking, 2n for uniform settings; the "
+         "extractor seed is returned and not counted"),
+        ("'derived' methods use thresholds set for this device quality and eps_comp "
+         f"= {eps_comp:g}; 'declared' ones use the protocol's"),
         "best_gamma maximises net_bits over a log grid of gamma in [1e-4, 1] at the given trials",
+        f"device: {device}",
+        ("pef rows (classical side information): trials is the cap on analysis trials; the "
+         "run stops at the target, so seed and output per trial count the calibration prefix "
+         "plus the expected stopping trial; curves, smallest n and best gamma use the largest "
+         "target reachable with honest abort <= eps_comp"),
     )
     return PlanResult(
         protocol=str(getattr(protocol, "name", "<protocol>")), trials=n, trials_source=source,
-        gamma=g, win_probability=win, chsh=8.0 * win - 4.0,
+        gamma=g, device=device, win_probability=win, chsh=8.0 * win - 4.0,
         eps_ext=float(protocol.extractor.eps_ext), eps_comp=eps_comp, methods=tuple(out),
         min_trials_positive={m.name: m.min_trials_positive for m in out},
         min_trials_net_positive={m.name: m.min_trials_net_positive for m in out},
@@ -387,9 +771,19 @@ def plot_plan(result: PlanResult, path: Any) -> None:
         xs = np.asarray(m.curve_trials)
         ys = np.asarray(m.curve_certified_bits, dtype=float)
         ok = ys > 0
+        if m.pef is not None:
+            label = f"{m.name} ({m.side_information}, best target per n)"
+        else:
+            label = f"{m.name} ({m.side_information}, {m.thresholds})"
         if ok.any():
-            ax.loglog(xs[ok], ys[ok], marker="o", ms=3,
-                      label=f"{m.name} ({m.side_information}, {m.thresholds})")
+            (line,) = ax.loglog(xs[ok], ys[ok], marker="o", ms=3, label=label)
+            color = line.get_color()
+        else:
+            color = None
+        d = m.pef
+        if d is not None and m.certified_bits > 0 and math.isfinite(d.expected_trials):
+            ax.loglog([d.expected_trials], [m.certified_bits], marker="*", ms=11, ls="none",
+                      color=color, label=f"{m.name}: {d.target_source} target, expected trials")
     ax.axvline(result.trials, color="grey", ls=":", lw=1, label=f"n = {result.trials:.3g}")
     ax.set_xlabel("number of trials n")
     ax.set_ylabel("certified output bits on acceptance")
@@ -406,8 +800,11 @@ def plot_plan(result: PlanResult, path: Any) -> None:
 
 
 __all__ = [
+    "PefPlanDetails",
     "PlanMethod",
     "PlanResult",
+    "chernoff_reachable_threshold",
+    "chernoff_shortfall_bound",
     "honest_quality",
     "martingale_abort_bound",
     "plan",

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import math
 import types
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -12,9 +13,18 @@ from typer.testing import CliRunner
 
 from dicert.cli.app import app
 from dicert.errors import ParameterError
+from dicert.estimate import SettingsDesign
 from dicert.finite import EatParams, MartingaleParams
 from dicert.finite.eat import chernoff_tolerance, optimise_df, optimise_dfr
-from dicert.plan import honest_quality, martingale_abort_bound, plan, seed_bits_consumed
+from dicert.finite.pef import PefParams
+from dicert.plan import (
+    chernoff_reachable_threshold,
+    chernoff_shortfall_bound,
+    honest_quality,
+    martingale_abort_bound,
+    plan,
+    seed_bits_consumed,
+)
 from dicert.protocol import load_protocol, shipped_protocol_path
 
 NS = types.SimpleNamespace
@@ -94,7 +104,7 @@ def test_min_trials_net_positive_regression():
 def test_plan_eat_protocol_entries():
     res = plan(_eat_protocol(), trials=10**8, n_points=6, gamma_points=6)
     names = [m.name for m in res.methods]
-    assert names == ["martingale-azuma", "eat-df-conservative", "eat-dfr"]
+    assert names == ["martingale-azuma", "eat-df-conservative", "eat-dfr", "pef-ns"]
     df = res.methods[1]
     assert df.thresholds == "declared" and df.side_information == "quantum"
     # Consistent arithmetic: output = floor(k - 2 log2(1/eps_ext)) (leftover hash lemma,
@@ -174,3 +184,170 @@ def test_params_objects_accepted_directly():
                extractor=NS(eps_ext=1e-8))
     res = plan(proto, chsh=2.7, trials=10**6, n_points=4, gamma_points=4)
     assert res.methods[0].certified_bits > 0
+
+
+# ----------------------------------------------------------------- probability estimation (PEF)
+
+PHOTONIC_PROTOCOL = Path(__file__).resolve().parents[1] / "protocols" / "ch-photonic.toml"
+
+
+def _pef_protocol(**cal):
+    """A PEF protocol for the methods note's 512-bit plans (sigma 512 bits, eps_PE = 2^-64)."""
+    analysis = PefParams(beta=0.1, eps_pe=2.0 ** -64, sigma_target_bits=512, n_max=10**6,
+                         lam=0.0, **cal)
+    return NS(name="pef-512", method="pef", analysis=analysis, design=SettingsDesign(),
+              harvest=NS(parties="AB", rounds="all"), extractor=NS(eps_ext=1e-8))
+
+
+def _pef_row(result):
+    rows = [m for m in result.methods if m.pef is not None]
+    assert len(rows) == 1
+    return rows[0]
+
+
+@pytest.fixture(scope="module")
+def tsirelson_plan():
+    proto = _pef_protocol(calibration="isotropic", calibration_chsh=2 * math.sqrt(2))
+    return plan(proto, n_points=6, gamma_points=2)
+
+
+@pytest.fixture(scope="module")
+def photonic_plan():
+    return plan(_pef_protocol(calibration="prefix", calibration_trials=1000), n_points=6,
+                gamma_points=2)
+
+
+def test_pef_plan_tsirelson_box_512_bits(tsirelson_plan):
+    # Regression values computed from the formulas in the methods note (probability-estimation,
+    # section 4, [N]): 512 bits at eps_PE = 2^-64 need n ~ 3.2e3 at beta ~ 0.14; latency floor
+    # 64 / D_LR = 1383 trials with D_LR = 0.0462738 (van Dam, Gill & Grunwald, IEEE TIT 51,
+    # 2812 (2005), from memory); h_inf = sqrt2 - 1 (section 3, [D]).
+    res = tsirelson_plan
+    assert "anticipated box" in res.device
+    assert res.chsh == pytest.approx(2 * math.sqrt(2), abs=1e-9)
+    row = _pef_row(res)
+    d = row.pef
+    assert row.name == "pef-ns" and row.thresholds == "declared"
+    assert row.side_information == "classical"
+    assert d.model == "ns" and d.target_bits == 512 and d.target_source == "declared"
+    assert 0.10 < d.beta_chosen < 0.18
+    assert d.expected_trials_at_beta_chosen == pytest.approx(3.2e3, rel=0.05)
+    assert d.latency_floor_trials == pytest.approx(1383, abs=2)
+    assert d.asymptotic_rate_bits == pytest.approx(math.sqrt(2) - 1, abs=1e-6)
+    # Declared beta = 0.1: r(0.1) = 0.341247 bits/trial (note section 4, [N]); the expected
+    # trials are the threshold over E[log2 F] (note section 3), and the planner's beta needs
+    # at most as many.
+    assert d.rate_bits_per_trial == pytest.approx(0.341247, rel=1e-4)
+    assert d.expected_trials == pytest.approx((0.1 * 512 + 64) / d.expected_log2_factor)
+    assert d.expected_trials_at_beta_chosen <= d.expected_trials
+    assert d.latency_floor_trials < d.expected_trials < d.trials_for_completeness
+    # Output on success: floor(k - 2 log2(1/eps_ext)) with k = sigma_target - 1 (leftover hash
+    # lemma, Tomamichel et al., IEEE TIT 57, 5524 (2011); the -1 from note section 2 (ii)).
+    assert row.certified_bits == math.floor(511 - 2 * math.log2(1e8))
+    assert row.seed_bits == pytest.approx(2 * d.expected_trials)  # uniform settings, 2 bits/trial
+    assert row.net_bits == pytest.approx(row.certified_bits - row.seed_bits)
+    assert row.abort_probability < 1e-6  # cap 1e6 trials is ~300x the expected 3.4e3
+
+
+def test_pef_plan_photonic_model_512_bits(photonic_plan):
+    # Regression values computed from the formulas in the methods note (section 4, [N]),
+    # photonic Eberhard-type model, 512 bits at eps_PE = 2^-64: expected n = 3.0e5, n for 99%
+    # completeness (normal approximation) = 4.2e5, beta* ~ 0.023 (flat optimum).
+    res = photonic_plan
+    assert res.device.startswith("photonic model")
+    assert res.chsh == pytest.approx(2.0336, abs=1e-4)  # note: CHSH 2.0336
+    d = _pef_row(res).pef
+    assert 0.015 < d.beta_chosen < 0.035
+    assert d.expected_trials_at_beta_chosen == pytest.approx(3.0e5, rel=0.05)
+    assert d.trials_for_completeness_at_beta_chosen == pytest.approx(4.2e5, rel=0.05)
+    assert d.statistical_strength_bits == pytest.approx(2.7528e-4, rel=1e-3)  # D_LR, [N]
+    assert d.calibration_trials == 1000
+    # Honest abort within the cap 1e6: normal approximation gives ~1e-9; the Chernoff bound
+    # (an upper bound) must lie above it and below one.
+    from scipy.stats import norm
+
+    normal = norm.sf((1e6 * d.expected_log2_factor - d.threshold_log2)
+                     / (d.sd_log2_factor * math.sqrt(1e6)))
+    assert normal < _pef_row(res).abort_probability < 1e-2
+
+
+def test_chernoff_bounds_dominate_exact_binomial_tail():
+    # Chernoff (Ann. Math. Stat. 23, 493 (1952)): an upper bound on the lower tail of a sum of
+    # i.i.d. variables. Two-valued log2 F: S_n = n l0 + K (l1 - l0), K ~ Binomial(n, p), exact
+    # tail from scipy.stats.binom (reference library).
+    from scipy.stats import binom
+
+    from dicert.plan import _log_mgf
+
+    l0, l1, p, n = -0.05, 0.04, 0.6, 4000
+    lmgf = _log_mgf(np.array([l0, l1]), np.array([1 - p, p]))
+    for thr in (10.0, 20.0, 35.0):
+        k_max = math.ceil((thr - n * l0) / (l1 - l0)) - 1  # S_n < thr  <=>  K <= k_max
+        exact = binom.cdf(k_max, n, p)
+        bound = chernoff_shortfall_bound(n, thr, lmgf)
+        assert exact <= bound <= 1.0
+        assert bound < 20 * exact + 1e-300  # and not vacuous
+    # The reachable threshold is the inverse: its bound is eps (to the theta-grid resolution).
+    t = chernoff_reachable_threshold(n, lmgf, 1e-6)
+    assert chernoff_shortfall_bound(n, t, lmgf) <= 1e-6 * (1 + 1e-9)
+    assert chernoff_shortfall_bound(n, t + 1.0, lmgf) > 1e-6
+    assert binom.cdf(math.ceil((t - n * l0) / (l1 - l0)) - 1, n, p) <= 1e-6
+
+
+def test_pef_classical_device_certifies_nothing():
+    # S = 2 is the local bound (Clauser, Horne, Shimony & Holt, PRL 23, 880 (1969)); the
+    # isotropic box at S = 2 is local, and for local boxes every PEF has E[F] <= 1 (methods note
+    # section 1, fact (d); Knill, Zhang & Bierhorst 2020), so no target is ever expected.
+    res = plan(load_protocol(PHOTONIC_PROTOCOL), chsh=2.0, n_points=5, gamma_points=2)
+    row = _pef_row(res)
+    assert row.certified_bits == 0 and row.net_bits < 0 and row.rate_per_trial == 0
+    assert row.abort_probability == 1.0
+    assert row.min_trials_positive is None and row.best_gamma is None
+    assert max(row.curve_certified_bits) == 0
+    assert row.pef.expected_trials == math.inf and row.pef.latency_floor_trials == math.inf
+    assert row.pef.expected_log2_factor <= 0
+
+
+def test_pef_derived_row_for_chsh_protocols():
+    # A CHSH protocol gets a derived PEF row (classical side information, NS model) whose
+    # target is reachable with honest abort <= eps_comp; its output per trial stays below
+    # h_inf = (S - 2)/2 for isotropic boxes (methods note section 3, [D]: r(beta) <= h_inf).
+    res = plan(load_protocol(shipped_protocol_path("chsh-uniform")), trials=10**6, n_points=5,
+               gamma_points=2)
+    assert [m.name for m in res.methods][-1] == "pef-ns"
+    row = _pef_row(res)
+    d = row.pef
+    assert row.thresholds == "derived" and d.target_source == "derived"
+    assert d.model == "ns" and d.eps_pe == 1e-6  # the protocol's eps_est
+    assert 0 < row.abort_probability <= res.eps_comp * (1 + 1e-9)
+    assert 0 < row.certified_bits < d.target_bits < 1e6 * (2.74 - 2) / 2
+    assert d.expected_trials < 1e6 <= d.trials_cap
+
+
+def test_cli_photonic_protocol_json_and_table(tmp_path):
+    png = tmp_path / "photonic.png"
+    r = runner.invoke(app, ["plan", "--protocol", str(PHOTONIC_PROTOCOL), "--json",
+                            "--plot", str(png)])
+    assert r.exit_code == 0, r.output
+    doc = json.loads(r.stdout)
+    assert doc["trials"] == 100_000_000 and doc["trials_source"] == "protocol"  # n_max
+    assert doc["device"].startswith("photonic model")
+    for m in doc["methods"]:
+        for key in ("name", "side_information", "certified_bits", "rate_per_trial",
+                    "seed_bits", "net_bits", "abort_probability", "pef"):
+            assert key in m
+    pef = [m for m in doc["methods"] if m["name"] == "pef-ns"]
+    assert len(pef) == 1 and pef[0]["thresholds"] == "declared"
+    d = pef[0]["pef"]
+    for key in ("beta", "beta_chosen", "model", "target_bits", "expected_trials",
+                "trials_for_completeness", "latency_floor_trials", "calibration_trials"):
+        assert key in d
+    assert d["target_bits"] == 1024 and d["beta"] == 0.024 and d["model"] == "ns"
+    # Consistent with the shipped file's comment (~2.5e5 analysis trials on average, 3.6e5 for
+    # 99% success): regression values computed from the formulas in the methods note.
+    assert d["expected_trials"] == pytest.approx(2.5e5, rel=0.05)
+    assert d["trials_for_completeness"] == pytest.approx(3.6e5, rel=0.05)
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
+    r = runner.invoke(app, ["plan", "--protocol", str(PHOTONIC_PROTOCOL), "--trials", "1e6"])
+    assert r.exit_code == 0, r.output
+    assert "pef-ns" in r.stdout and "beta used" in r.stdout and "photonic model" in r.stdout
