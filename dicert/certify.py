@@ -5,7 +5,9 @@ This is the one-call recipe the ``dicert certify`` command uses. It
 1. validates the protocol (:mod:`dicert.protocol`) and reads the seed;
 2. reads the log ONCE, streaming: per chunk it adds the trial counts and harvests the raw
    outcome bits (see *Raw-bit order and packing*), spilling them to a temporary file in the
-   output directory;
+   output directory. With method "pef" on a single binary log, reading stops at the trial
+   where the outcome is decided and the record covers exactly the bytes read (see
+   *Log scope*); ``follow`` waits for a growing log;
 3. estimates the CHSH value (:func:`dicert.estimate.estimate_chsh`, informational) and runs the
    protocol's finite-size method on the counts (:func:`dicert.finite.certify_counts`), which
    decides accepted/aborted against the PRE-DECLARED threshold and bounds the min-entropy;
@@ -25,6 +27,23 @@ are ``a`` (parties "A") or ``a`` then ``b`` (parties "AB"). The bit string is pa
 big-endian, 8 bits per byte (``numpy.packbits``, first bit = most significant bit of byte 0),
 the last byte zero-padded. ``raw_bits`` counts the bits without padding; ``raw_sha256`` is the
 SHA-256 of the packed bytes. The extractor reads the same packing.
+
+Log scope
+---------
+The record's ``log`` section says which bytes it certifies. ``scope = "whole"``: every byte
+of every file (``sha256`` over the concatenated files, ``size_bytes`` = ``bytes_read`` = their
+total size). ``scope = "prefix"`` (method "pef", single binary log only): the first
+``bytes_read`` bytes of the file, i.e. the 24-byte header and trials ``0 .. trials_read - 1``;
+``sha256`` and ``counts`` cover exactly those bytes. A prefix arises when the outcome was
+decided at trial ``stop_trial_index = trials_read - 1`` (``stopped_early``, ``ended_by =
+"decision"``: the success trial, the last of n_max analysis trials, or the end of the feeding
+trial outside the settings model) or when ``--follow`` timed out waiting
+(``ended_by = "idle-timeout"``, an abort). Bytes after the prefix, if any, were not read and
+are not certified; :func:`dicert.verify.verify` hashes only the prefix. Text, npz and
+multi-file logs are always read to the end (``scope = "whole"``, ``stopped_early = false``
+even when the PEF run was decided earlier; the success trial is in the finite-size details).
+Every reader stops at the same trial however the bytes arrive (a trial outside the settings
+model stops the run at that very trial).
 
 Exit codes of the CLI: 0 certified, 3 aborted, 2 bad input, 1 verification failure.
 """
@@ -104,6 +123,13 @@ class LogScan:
     raw_bits: int
     raw_sha256: str
     finite: Any = None  # FiniteSizeResult of a streaming method (pef), else None
+    scope: str = "whole"  # "whole": every byte of the log; "prefix": header + trials_read
+    bytes_read: int | None = None  # bytes covered by sha256 (= size_bytes)
+    trials_read: int | None = None
+    stopped_early: bool = False  # reading stopped because the outcome was decided
+    stop_trial_index: int | None = None  # last trial read when stopped_early
+    ended_by: str = "end-of-log"  # "end-of-log" | "decision" | "idle-timeout"
+    follow: dict | None = None  # FollowSpec.to_dict() of a --follow run
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -140,6 +166,11 @@ class CertifyResult:
     abort_reason: str | None
     record_sha256: str
     record: dict
+    log_scope: str = "whole"
+    stopped_early: bool = False
+    stop_trial_index: int | None = None
+    success_trial_index: int | None = None
+    ended_by: str = "end-of-log"
 
     @property
     def certified(self) -> bool:
@@ -247,51 +278,364 @@ def expected_raw_bits(counts: np.ndarray, parties: str, rounds: str) -> int:
     return n * len(parties)
 
 
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class FollowSpec:
+    """How ``certify --follow`` waits for a growing binary log.
+
+    ``poll_s`` is the pause between looks for new bytes; after ``idle_timeout_s`` seconds
+    without growth (None: wait until the trailer, the target or n_max) the run ends with what
+    was read.
+    """
+
+    poll_s: float = 0.5
+    idle_timeout_s: float | None = 300.0
+
+    def __post_init__(self) -> None:
+        if not (isinstance(self.poll_s, (int, float)) and math.isfinite(self.poll_s)
+                and self.poll_s > 0):
+            raise ParameterError(f"--poll: expected a positive number of seconds, got "
+                                 f"{self.poll_s!r}")
+        t = self.idle_timeout_s
+        if t is not None and not (isinstance(t, (int, float)) and math.isfinite(t) and t > 0):
+            raise ParameterError(f"--idle-timeout: expected a positive number of seconds, got "
+                                 f"{t!r}")
+
+    def to_dict(self) -> dict:
+        return {"poll_s": float(self.poll_s),
+                "idle_timeout_s": None if self.idle_timeout_s is None
+                else float(self.idle_timeout_s)}
+
+
+class _PefFeed:
+    """Feeds a :class:`~dicert.finite.pef.PefAccumulator` as trials arrive, and records what
+    it consumed: counts, harvested bits and (optionally) a digest of exactly those trial bytes.
+
+    The accumulator's success trial and its n_max stop do not depend on how the trials are
+    split into pieces, but the point at which it notices a trial outside the settings model
+    (factor 0) is the end of an internal sub-block. So an analysed piece is always cut right
+    after the first such trial: the run then stops at that very trial, whatever the reader
+    (certify, certify --follow, verify) and however the bytes arrived. Calibration trials are
+    fed separately from analysis trials for the same reason.
+    """
+
+    def __init__(self, protocol: Any, sink: _BitSink, *, has_test_flag: bool,
+                 hasher: Any = None, log_path: Any = None, offset0: int = 0) -> None:
+        from dicert.finite.pef import PefAccumulator
+
+        self.acc = PefAccumulator(protocol.analysis, protocol.design)
+        params = protocol.analysis
+        self.first = params.calibration_trials if params.calibration == "prefix" else 0
+        self.parties = protocol.harvest.parties
+        self.rounds = protocol.harvest.rounds
+        self.has_t = has_test_flag
+        self.mask = 0x1F if has_test_flag else 0x0F
+        self.sink = sink
+        self.hasher = hasher
+        self.log_path = log_path
+        self.offset0 = offset0  # byte offset of trial 0 in the file (for error messages)
+        self.counts = np.zeros(32, dtype=np.int64)
+        self.fed = 0  # trials consumed by the accumulator (index of the next trial)
+
+    @property
+    def done(self) -> bool:
+        return self.acc.done
+
+    def push(self, codes: np.ndarray) -> None:
+        """Consume trial codes (in log order) until the outcome is decided."""
+        codes = np.asarray(codes, dtype=np.uint8)
+        bad_at = -1
+        if codes.size and int(codes.max()) > self.mask:
+            bad_at = int(np.flatnonzero(codes & np.uint8(~self.mask & 0xFF))[0])
+        good = codes if bad_at < 0 else codes[:bad_at]
+        # Logs without a t column carry t = 0 in the code, but every trial is a test round
+        # (project data model); the accumulator reads t from the code.
+        acc_codes = good if self.has_t else good | np.uint8(0x10)
+        pos = 0
+        while pos < good.size and not self.done:
+            if self.acc.pef is None:  # calibration prefix still being read
+                take = min(self.first - self.fed, good.size - pos)
+            else:
+                rest = acc_codes[pos:]
+                zero = np.flatnonzero(~np.isfinite(self.acc.pef.log2_table[rest]))
+                take = int(zero[0]) + 1 if zero.size else rest.size
+            self._feed(good[pos:pos + take], acc_codes[pos:pos + take])
+            pos += take
+        if bad_at >= 0 and not self.done:
+            i = self.fed
+            what = ("test-round bit set but the header declares no t column"
+                    if codes[bad_at] & 0xE0 == 0 else "reserved bits set")
+            raise LogFormatError(self.log_path, f"byte offset {self.offset0 + i}",
+                                 f"{what} (byte 0x{int(codes[bad_at]):02x}, trial {i})")
+
+    def _feed(self, piece: np.ndarray, acc_piece: np.ndarray) -> None:
+        start = self.fed
+        self.acc.update(acc_piece)
+        used = self.acc.trials_seen - start  # the whole piece unless a stop inside it
+        self.fed = start + used
+        self.counts += np.bincount(acc_piece[:used], minlength=32)
+        if self.hasher is not None:
+            self.hasher.update(piece[:used].tobytes())
+        lo = max(self.first - start, 0)
+        if used > lo:
+            self.sink.add(harvest_bits(piece[lo:used], self.parties, self.rounds, self.has_t))
+
+
+class _HeaderTap:
+    """Hasher stand-in for :func:`dicert.finite.pef.follow_log`: keeps the header bytes and
+    the trailer, counts the bytes consumed (follow_log feeds the header first, then trial
+    bytes, then the 9-byte trailer, in separate calls)."""
+
+    def __init__(self) -> None:
+        self.header: bytes | None = None
+        self.last = b""
+        self.total = 0
+
+    def update(self, data: bytes) -> None:
+        data = bytes(data)
+        if self.header is None:
+            self.header = data
+        self.last = data
+        self.total += len(data)
+
+
+def _single_binary(log: Any) -> Path | None:
+    """The file of a log that is one binary trial-log file, else None."""
+    from dicert.logs import detect_format, resolve_sources
+
+    try:
+        files = resolve_sources(log)
+    except DicertError:
+        return None
+    if len(files) != 1:
+        return None
+    try:
+        return files[0] if detect_format(files[0]) == "binary" else None
+    except DicertError:
+        return None
+
+
+def _check_design_flag(protocol: Any, has_t: bool, path: Any) -> None:
+    if protocol.design.gamma < 1.0 and not has_t:
+        raise LogFormatError(path, "", "the protocol uses spot-checking (settings.gamma < 1) "
+                             "but the log has no t column marking test rounds")
+
+
+def _open_log_file(path: Path):
+    try:
+        return open(path, "rb")
+    except OSError as exc:
+        raise LogFormatError(path, "", f"cannot open ({exc.strerror})") from None
+
+
+def _scan_binary_pef(path: Path, protocol: Any, sink: _BitSink, *,
+                     follow: FollowSpec | None = None, prefix_trials: int | None = None,
+                     progress: Progress | None = None) -> LogScan:
+    """One pass over a single binary log for method "pef", stopping at the decision.
+
+    Read mode (``follow`` None) reads the bytes present; follow mode waits for more
+    (:func:`dicert.finite.pef.follow_log`). ``prefix_trials`` (verify) reads at most that many
+    trials and never complains about what follows them.
+    """
+    from dicert.logs import (
+        BINARY_HEADER_SIZE,
+        COUNT_STREAMED,
+        FLAG_HAS_T,
+        TRAILER,
+        TRAILER_MARK,
+        read_binary_header,
+    )
+
+    hasher = hashlib.sha256()
+    feed: _PefFeed | None = None
+    header = b""
+    complete = False  # the whole file, trailer included, was read
+    end = "end-of-log"
+    size_now = 0
+
+    def start(head: bytes) -> _PefFeed:
+        flags = head[9]
+        _check_design_flag(protocol, bool(flags & FLAG_HAS_T), path)
+        hasher.update(head)
+        return _PefFeed(protocol, sink, has_test_flag=bool(flags & FLAG_HAS_T), hasher=hasher,
+                        log_path=path, offset0=BINARY_HEADER_SIZE)
+
+    if follow is not None:
+        from dicert.finite.pef import follow_log
+
+        tap = _HeaderTap()
+        gen = follow_log(path, follow.poll_s, idle_timeout_s=follow.idle_timeout_s,
+                         hasher=tap)
+        try:
+            for codes in gen:
+                if feed is None:
+                    header = tap.header or b""
+                    feed = start(header)
+                feed.push(codes)
+                if progress is not None:
+                    progress("follow", feed.fed, None)
+                if feed.done:
+                    break
+        finally:
+            gen.close()
+        if feed is None:  # nothing but a header arrived
+            header = tap.header or b""
+            feed = start(header)
+        count = int.from_bytes(header[16:24], "little")
+        n_seen = tap.total - BINARY_HEADER_SIZE
+        if feed.done:
+            end = "decision"
+        elif count == COUNT_STREAMED and n_seen - feed.fed == TRAILER.size \
+                and tap.last[:1] == bytes([TRAILER_MARK]):
+            hasher.update(tap.last)
+            complete = True
+        elif count != COUNT_STREAMED and feed.fed == count:
+            complete = True
+        else:
+            end = "idle-timeout"
+        size_now = path.stat().st_size
+        if complete and count != COUNT_STREAMED and size_now != BINARY_HEADER_SIZE + count:
+            raise LogFormatError(path, f"byte offset {BINARY_HEADER_SIZE + count}",
+                                 f"{size_now - BINARY_HEADER_SIZE - count} unexpected bytes "
+                                 "after the last trial")
+    else:
+        with _open_log_file(path) as fh:
+            size_now = os.fstat(fh.fileno()).st_size
+            _flags, count, header = read_binary_header(fh, path)
+            feed = start(header)
+            body = size_now - BINARY_HEADER_SIZE
+            trailer = b""
+            if prefix_trials is not None:
+                n_avail = min(body, prefix_trials)
+            elif count != COUNT_STREAMED:
+                if body < count:
+                    raise LogFormatError(path, f"byte offset {size_now}", f"truncated: header "
+                                         f"promises {count} trials, file holds {max(body, 0)}")
+                if body > count:
+                    raise LogFormatError(path, f"byte offset {BINARY_HEADER_SIZE + count}",
+                                         f"{body - count} unexpected bytes after the last trial")
+                n_avail = count
+            else:
+                n_avail = body
+                if body >= TRAILER.size:
+                    fh.seek(size_now - TRAILER.size)
+                    tail = fh.read(TRAILER.size)
+                    if tail[0] == TRAILER_MARK:
+                        _, n_tr = TRAILER.unpack(tail)
+                        if n_tr != body - TRAILER.size:
+                            raise LogFormatError(path, f"byte offset {size_now - TRAILER.size}",
+                                                 f"trailer says {n_tr} trials but the file "
+                                                 f"holds {body - TRAILER.size}")
+                        n_avail, trailer = n_tr, tail
+                fh.seek(BINARY_HEADER_SIZE)
+            done_trials = 0
+            while done_trials < n_avail and not feed.done:
+                want = min(1 << 20, n_avail - done_trials)  # early stop wastes <= 1 MiB of reading
+                data = fh.read(want)
+                if not data:
+                    break
+                feed.push(np.frombuffer(data, dtype=np.uint8))
+                done_trials += len(data)
+                if progress is not None:
+                    progress("scan", BINARY_HEADER_SIZE + done_trials, size_now)
+            if feed.done:
+                end = "decision"
+            elif prefix_trials is not None:
+                end = "limit"
+            elif count == COUNT_STREAMED and not trailer:
+                raise LogFormatError(path, f"byte offset {size_now}", "truncated: a streamed "
+                                     "log must end with its trailer (the log is still being "
+                                     "written? use --follow)")
+            else:
+                hasher.update(trailer)
+                complete = True
+    bytes_read = BINARY_HEADER_SIZE + feed.fed + (TRAILER.size if complete and count ==
+                                                   COUNT_STREAMED else 0)
+    stopped = end == "decision"
+    return LogScan(
+        counts=feed.counts.reshape(2, 2, 2, 2, 2).copy(), trials=feed.fed,
+        sha256=hasher.hexdigest(), size_bytes=bytes_read, files=(path.name,),
+        has_test_flag=feed.has_t, raw_bits=sink.bits, raw_sha256="",
+        finite=feed.acc.result(complete=complete),
+        scope="whole" if complete else "prefix", bytes_read=bytes_read, trials_read=feed.fed,
+        stopped_early=stopped, stop_trial_index=feed.fed - 1 if stopped else None,
+        ended_by=end, follow=follow.to_dict() if follow is not None else None)
+
+
 def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = None,
-             progress: Progress | None = None, protocol: Any = None) -> tuple[LogScan, _BitSink]:
+             progress: Progress | None = None, protocol: Any = None,
+             follow: FollowSpec | None = None,
+             prefix_trials: int | None = None) -> tuple[LogScan, _BitSink]:
     """Read a log once: counts, log digest, and the harvested raw bits.
 
-    One streaming pass of :func:`dicert.logs.summarize_log` counts the trials and hashes the
-    log's bytes; its per-chunk callback harvests the raw bits in the same pass. Returns the
-    scan summary and the bit sink holding the packed raw bits (the caller must ``discard()``
-    it).
+    Returns the scan summary and the bit sink holding the packed raw bits (the caller must
+    ``discard()`` it).
 
-    With a ``protocol`` whose method is "pef", the same pass feeds the streaming PEF
-    accumulator (:class:`dicert.finite.pef.PefAccumulator`) and harvests only the analysed
-    trials, from the first trial after the calibration prefix up to and including the trial at
-    which the target is reached; later trials are still hashed and counted (the record's log
-    digest covers the whole log) but neither analysed nor harvested.
+    Methods other than "pef", and "pef" on a text, npz or multi-file log: one streaming pass of
+    :func:`dicert.logs.summarize_log` counts the trials and hashes every byte of the log
+    (``scope`` "whole"); its per-chunk callback harvests the raw bits in the same pass.
+
+    Method "pef" on a single binary log: the pass feeds the streaming PEF accumulator
+    (:class:`dicert.finite.pef.PefAccumulator`) and STOPS READING as soon as the outcome is
+    decided (target reached, n_max analysis trials, or a trial outside the settings model).
+    The scan then covers the prefix header + trials 0..stop (``scope`` "prefix"; digest,
+    counts and sizes of exactly those bytes). Only the analysed trials are harvested, from the
+    first trial after the calibration prefix up to the stopping trial. A run that is not
+    decided reads the whole file (``scope`` "whole"); a streamed file still lacking its
+    trailer is then "truncated" unless ``follow`` is given.
+
+    ``follow`` (single binary log, method "pef" only) waits for a growing log; the pass also
+    ends at the trailer, at the header's count, or after the idle timeout (``ended_by``
+    "idle-timeout", ``scope`` "prefix"). ``prefix_trials`` (used by verify) reads at most that
+    many trials and ignores whatever follows them.
     """
+    pef = protocol is not None and protocol.method == "pef"
+    binary = _single_binary(log) if pef else None
+    if follow is not None:
+        from dicert.logs import resolve_sources
+
+        if not pef:
+            raise ParameterError("--follow needs a protocol with method \"pef\" (probability "
+                                 "estimation stops at a trial; other methods need the whole log)")
+        files = resolve_sources(log)
+        if len(files) != 1 or binary is None:
+            raise ParameterError(f"{log}: --follow needs a single binary (.btl) log file, "
+                                 "the format acquisition code appends to")
+    if binary is not None or prefix_trials is not None:
+        if binary is None:
+            raise ParameterError(f"{log}: a prefix-scoped record needs the single binary "
+                                 "(.btl) log file it was read from")
+        sink = _BitSink(spill_dir)
+        try:
+            scan = _scan_binary_pef(binary, protocol, sink, follow=follow,
+                                    prefix_trials=prefix_trials, progress=progress)
+            raw_sha = sink.finish()
+        except BaseException:
+            sink.discard()
+            raise
+        return dataclasses.replace(scan, raw_bits=sink.bits, raw_sha256=raw_sha), sink
+    return _scan_whole(log, parties, rounds, spill_dir=spill_dir, progress=progress,
+                       protocol=protocol)
+
+
+def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
+                progress: Progress | None, protocol: Any) -> tuple[LogScan, _BitSink]:
     from dicert.logs import summarize_log
 
     sink = _BitSink(spill_dir)
-    acc = None
-    first = 0
-    if protocol is not None and protocol.method == "pef":
-        from dicert.finite.pef import PefAccumulator
-
-        acc = PefAccumulator(protocol.analysis, protocol.design)
-        params = protocol.analysis
-        first = params.calibration_trials if params.calibration == "prefix" else 0
+    feed: _PefFeed | None = None
+    pef = protocol is not None and protocol.method == "pef"
 
     def on_chunk(chunk: Any) -> None:
-        if acc is None:
+        nonlocal feed
+        if not pef:
             sink.add(harvest_bits(chunk.codes, parties, rounds, bool(chunk.has_test_flag)))
             return
-        if acc.done:
-            return
-        codes = chunk.codes
-        if not chunk.has_test_flag:
-            # Logs without a t column carry t = 0 in the code, but every trial is a test
-            # round (project data model); the accumulator reads t from the code.
-            codes = codes | np.uint8(0x10)
-        acc.update(codes)
-        start = int(chunk.start)
-        end = acc.trials_seen  # trials consumed so far (the success trial included)
-        lo, hi = max(first - start, 0), min(end - start, len(chunk.codes))
-        if hi > lo:
-            sink.add(harvest_bits(chunk.codes[lo:hi], parties, rounds,
-                                  bool(chunk.has_test_flag)))
+        if feed is None:
+            feed = _PefFeed(protocol, sink, has_test_flag=bool(chunk.has_test_flag),
+                            log_path=log)
+        # Text logs were validated by the reader; later trials are still hashed and counted
+        # by summarize_log (the digest covers the whole log) but not analysed or harvested.
+        feed.push(chunk.codes)
 
     def on_progress(done: int, total: int) -> None:
         if progress is not None:
@@ -300,6 +644,11 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
     try:
         summary = summarize_log(log, digest=True, chunk_trials=_CHUNK_TRIALS, on_chunk=on_chunk,
                                 progress=on_progress if progress is not None else None)
+        finite = None
+        if pef:
+            if feed is None:  # pragma: no cover - readers reject logs without trials
+                raise LogFormatError(log, "", "contains no trials")
+            finite = feed.acc.result()
         raw_sha = sink.finish()
     except BaseException:
         sink.discard()
@@ -308,20 +657,32 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
                    sha256=str(summary.sha256), size_bytes=int(summary.size_bytes),
                    files=tuple(Path(f.path).name for f in summary.files),
                    has_test_flag=bool(summary.has_test_flag), raw_bits=sink.bits,
-                   raw_sha256=raw_sha, finite=acc.result() if acc is not None else None)
+                   raw_sha256=raw_sha, finite=finite, scope="whole",
+                   bytes_read=int(summary.size_bytes), trials_read=int(summary.trials))
     return scan, sink
 
 
 # --------------------------------------------------------------------------- analysis
 
 
+def log_end_note(scan: LogScan) -> str | None:
+    """Why reading stopped, when that is part of an abort reason (idle timeout), else None."""
+    if scan.ended_by != "idle-timeout":
+        return None
+    t = (scan.follow or {}).get("idle_timeout_s")
+    wait = f"{float(t):g} s" if isinstance(t, (int, float)) else "the idle timeout"
+    return (f"no new trials for {wait} while following the log (idle timeout); the record "
+            f"covers the {scan.trials} trials read")
+
+
 def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
-                   finite: Any = None) -> Analysis:
+                   finite: Any = None, log_end: str | None = None) -> Analysis:
     """Estimate, finite-size bound, accept/abort and output length from the counts alone.
 
     Deterministic in its inputs, so :func:`dicert.verify.verify` re-derives it from a record.
     ``finite`` supplies the result of a streaming method (pef), which depends on the trial
-    order and not only on the counts.
+    order and not only on the counts. ``log_end`` (see :func:`log_end_note`) is appended to the
+    abort reason.
     """
     from dicert.estimate import estimate_chsh
     from dicert.extract import lhl_output_length, seed_bits_required
@@ -340,7 +701,8 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
     m = max(0, min(m, raw_bits))
     if not finite.accepted:
         status, reason = "aborted", "the acceptance test of the protocol failed"
-        why = (finite.details or {}).get("abort_reason") if isinstance(finite.details, Mapping) else None
+        det = finite.details if isinstance(finite.details, Mapping) else {}
+        why = det.get("abort_reason") or det.get("outcome")
         if why:
             reason = f"{reason}: {why}"
     elif m <= 0:
@@ -349,6 +711,8 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
                   f"at eps_ext = {eps_ext:g}")
     else:
         status, reason = "certified", None
+    if reason is not None and log_end:
+        reason = f"{reason} ({log_end})"
     need = int(seed_bits_required(raw_bits, m)) if m > 0 else 0
     return Analysis(estimate=estimate, finite=finite, status=status, abort_reason=reason,
                     min_entropy_bits=k, output_bits=m if status == "certified" else 0,
@@ -492,6 +856,15 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
             "trials": int(scan.trials),
             "files": list(scan.files),
             "has_test_flag": bool(scan.has_test_flag),
+            "scope": scan.scope,
+            "bytes_read": int(scan.bytes_read if scan.bytes_read is not None
+                              else scan.size_bytes),
+            "trials_read": int(scan.trials_read if scan.trials_read is not None
+                               else scan.trials),
+            "stopped_early": bool(scan.stopped_early),
+            "stop_trial_index": scan.stop_trial_index,
+            "ended_by": scan.ended_by,
+            "follow": scan.follow,
         },
         "counts": {
             "layout": "counts[t][x][y][a][b]; logs without a t column count every trial as t = 1",
@@ -590,7 +963,8 @@ def _load(protocol: Any):
 def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,
-            progress: Progress | None = None) -> CertifyResult:
+            progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
+            idle_timeout_s: float | None = 300.0) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -613,6 +987,13 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         section depends on it.
     progress : callable(stage, done, total), optional
         Called while the log is read.
+    follow : bool
+        Method "pef" with a single binary log only: follow a growing log
+        (:func:`dicert.finite.pef.follow_log`) until the target is reached, n_max, the log's
+        trailer, or ``idle_timeout_s`` seconds without new trials (then the run aborts with
+        what was read; a record is still written).
+    poll_s, idle_timeout_s : float
+        Follow mode: pause between looks for new bytes, and the idle timeout (None: none).
 
     Returns
     -------
@@ -625,6 +1006,12 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
 
     Notes
     -----
+    Early stopping (method "pef", single binary log): reading stops at the trial where the
+    outcome is decided, and the record's ``log`` section covers exactly the bytes read
+    (``scope`` "prefix", ``bytes_read``, ``trials_read``, ``stopped_early``,
+    ``stop_trial_index``); see :func:`scan_log`. Stopping at a data-dependent time is sound
+    for PEFs (Knill, Zhang & Bierhorst 2020; methods note section 2).
+
     Soundness: with the protocol's method the record's ``eps.total`` bounds
     P(accept) x (trace distance of the output, together with seed, settings and the
     adversary's side information of the method's model, from uniform). Assumptions are
@@ -652,23 +1039,28 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
 
     from dicert.logs import open_log
 
-    if proto.design.gamma < 1.0 and not open_log(log).has_test_flag:
-        raise LogFormatError(log, "", "the protocol uses spot-checking (settings.gamma < 1) "
-                             "but the log has no t column marking test rounds")
+    spec = FollowSpec(poll_s=poll_s, idle_timeout_s=idle_timeout_s) if follow else None
+    if spec is None and not (proto.method == "pef" and _single_binary(log) is not None):
+        # (the binary PEF reader checks this from the header it reads)
+        _check_design_flag(proto, open_log(log).has_test_flag, log)
     t1 = time.perf_counter()
     spill = out if out.is_dir() else out.parent
     scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds, spill_dir=spill,
-                          progress=progress, protocol=proto)
+                          progress=progress, protocol=proto, follow=spec)
     timings["scan"] = time.perf_counter() - t1
     tmp_files: list[Path] = []
     try:
         t2 = time.perf_counter()
+        if scan.trials == 0:
+            raise LogFormatError(log, "", "no trial arrived before the idle timeout; nothing "
+                                 "to certify")
         generation_rounds = int(scan.counts[0].sum())
         if proto.design.gamma >= 1.0 and generation_rounds:
             raise LogFormatError(log, "", f"the protocol declares every round a test round "
                                  f"(settings.gamma = 1) but the log marks {generation_rounds} "
                                  f"trials as generation rounds (t = 0)")
-        analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite)
+        analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
+                                  log_end=log_end_note(scan))
         timings["analysis"] = time.perf_counter() - t2
 
         extraction = None
@@ -734,7 +1126,16 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         chain_file=chain_file, min_entropy_bits=analysis.min_entropy_bits,
         error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
         abort_reason=analysis.abort_reason, record_sha256=record_digest(record), record=record,
+        log_scope=scan.scope, stopped_early=scan.stopped_early,
+        stop_trial_index=scan.stop_trial_index,
+        success_trial_index=_success_index(analysis.finite), ended_by=scan.ended_by,
     )
+
+
+def _success_index(finite: Any) -> int | None:
+    det = getattr(finite, "details", None)
+    v = det.get("success_trial_index") if isinstance(det, Mapping) else None
+    return int(v) if isinstance(v, int) else None
 
 
 def _write_temp(directory: Path, name: str, data: bytes) -> Path:
@@ -791,6 +1192,7 @@ __all__ = [
     "RECORD_NAME",
     "Analysis",
     "CertifyResult",
+    "FollowSpec",
     "LogScan",
     "analyse_counts",
     "build_body",
@@ -798,6 +1200,7 @@ __all__ = [
     "check_seed_length",
     "expected_raw_bits",
     "harvest_bits",
+    "log_end_note",
     "read_seed",
     "scan_log",
 ]

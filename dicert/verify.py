@@ -198,10 +198,11 @@ def check_signature(record: Mapping[str, Any], public_key: Any = None) -> tuple[
 def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.certify import analyse_counts, build_body
+    from dicert.certify import analyse_counts, build_body, log_end_note
     from dicert.extract import seed_bits_required
 
-    analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite)
+    analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite,
+                              log_end=log_end_note(scan))
     extraction = None
     if analysis.status == "certified":
         extraction = _ExtractionStandIn(
@@ -220,7 +221,52 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])
     exp["volatile"] = body.get("volatile")
+    log_rec = body.get("log")
+    if isinstance(log_rec, Mapping) and "scope" not in log_rec and isinstance(exp.get("log"), dict):
+        # A record from before log scopes: it always covered the whole log.
+        for k in _SCOPE_KEYS:
+            exp["log"].pop(k, None)
     return exp
+
+
+#: Members of the record's ``log`` section that describe what part of the log was read.
+_SCOPE_KEYS = ("scope", "bytes_read", "trials_read", "stopped_early", "stop_trial_index",
+               "ended_by", "follow")
+_ENDINGS = ("end-of-log", "decision", "idle-timeout")
+
+
+def _scope_of(body: Mapping[str, Any], trials: int, size_bytes: Any) -> dict:
+    """The log-scope members of a record, checked for consistency (legacy records: whole)."""
+    log = _get(body, "log")
+    if "scope" not in log:
+        return {"scope": "whole", "bytes_read": size_bytes, "trials_read": trials}
+    vals = {k: _get(body, f"log.{k}") for k in _SCOPE_KEYS}
+    scope, ended = vals["scope"], vals["ended_by"]
+    _require(scope in ("whole", "prefix"), "log.scope", f"unknown scope {scope!r}")
+    _require(ended in _ENDINGS, "log.ended_by", f"unknown value {ended!r}")
+    _require(vals["trials_read"] == trials, "log.trials_read",
+             f"recorded {vals['trials_read']!r}, log.trials is {trials!r}")
+    _require(vals["bytes_read"] == size_bytes, "log.bytes_read",
+             f"recorded {vals['bytes_read']!r}, log.size_bytes is {size_bytes!r}")
+    _require(isinstance(vals["stopped_early"], bool)
+             and vals["stopped_early"] == (ended == "decision"), "log.stopped_early",
+             "must be true exactly when log.ended_by is \"decision\"")
+    want_stop = trials - 1 if vals["stopped_early"] else None
+    _require(vals["stop_trial_index"] == want_stop, "log.stop_trial_index",
+             f"recorded {vals['stop_trial_index']!r}, expected {want_stop!r}")
+    if scope == "whole":
+        _require(ended == "end-of-log", "log.ended_by", "a whole-log record must end at the "
+                 "end of the log")
+    else:
+        _require(ended != "end-of-log", "log.ended_by", "a prefix record ends at a decision "
+                 "or an idle timeout")
+    fol = vals["follow"]
+    _require(fol is None or (isinstance(fol, Mapping) and set(fol) == {"poll_s",
+                                                                      "idle_timeout_s"}),
+             "log.follow", "expected null or {poll_s, idle_timeout_s}")
+    _require(ended != "idle-timeout" or fol is not None, "log.ended_by",
+             "an idle timeout needs follow mode")
+    return vals
 
 
 def _scan_from_record(body: Mapping[str, Any], protocol: Any):
@@ -248,11 +294,16 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
     else:
         raw_bits = expected_raw_bits(counts, protocol.harvest.parties, protocol.harvest.rounds)
     files = _get(body, "log.files")
+    size_bytes = _get(body, "log.size_bytes")
+    scope = _scope_of(body, trials, size_bytes)
+    if scope["scope"] == "prefix":
+        _require(protocol.method == "pef", "log.scope",
+                 "only method pef stops reading a log early")
     return LogScan(counts=counts, trials=trials, sha256=_get(body, "log.sha256"),
-                   size_bytes=_get(body, "log.size_bytes"),
+                   size_bytes=size_bytes,
                    files=tuple(files) if isinstance(files, list) else files,
                    has_test_flag=has_t, raw_bits=raw_bits,
-                   raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite)
+                   raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite, **scope)
 
 
 def _finite_from_record(body: Mapping[str, Any]):
@@ -358,18 +409,36 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     if log is not None:
         import tempfile
 
-        from dicert.certify import scan_log
+        from dicert.certify import _scan_whole, _single_binary, scan_log
         from dicert.errors import LogFormatError
         from dicert.logs import resolve_sources
 
         resolve_sources(log)  # a missing log is bad input (exit 2), not a mismatch
+        parties, rounds = protocol.harvest.parties, protocol.harvest.rounds
+        spill = Path(tempfile.gettempdir())
         try:
-            scan, sink = scan_log(log, protocol.harvest.parties, protocol.harvest.rounds,
-                                  spill_dir=Path(tempfile.gettempdir()), protocol=protocol)
+            if rec_scan.scope == "prefix":
+                # Only the recorded prefix is read: the file may have grown since, or still
+                # lack its trailer; nothing after the prefix is looked at.
+                _require(_single_binary(log) is not None, "log.scope",
+                         "a prefix record needs the single binary (.btl) log file it covers")
+                scan, sink = scan_log(log, parties, rounds, spill_dir=spill,
+                                      protocol=protocol, prefix_trials=rec_scan.trials_read)
+            elif "scope" not in body["log"]:
+                scan, sink = _scan_whole(log, parties, rounds, spill_dir=spill, progress=None,
+                                         protocol=protocol)
+            else:
+                scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol)
         except LogFormatError as exc:
             # A log that no longer reads is not the log that was certified.
             raise VerificationError(f"the given log does not read as a trial log ({exc})",
                                     "log.sha256") from None
+        # Follow-mode settings are facts of the run, not of the log; an idle timeout is
+        # confirmed by re-reading exactly the recorded trials without reaching a decision.
+        ended = scan.ended_by
+        if ended == "limit" and rec_scan.ended_by == "idle-timeout":
+            ended = "idle-timeout"
+        scan = dataclasses.replace(scan, follow=rec_scan.follow, ended_by=ended)
         try:
             exp = expected_body(body, protocol, scan, seed_sha256=seed_sha,
                                 seed_bytes=seed_bytes_n, output_sha256=output_sha)

@@ -344,8 +344,125 @@ def test_pef_streaming_harvests_analysed_trials_up_to_success(tmp_path):
     assert res.record["harvest"]["raw_sha256"] == hashlib.sha256(np.packbits(raw).tobytes()).hexdigest()
     # Extractor min-entropy sigma_target - 1 (the PEF module's documented rule).
     assert res.min_entropy_bits == pytest.approx(128 - 1)
-    assert res.record["log"]["trials"] == 800_000  # the whole log is hashed and counted
+    # Reading stopped at the success trial: the record covers header + trials 0..last only.
+    lg = res.record["log"]
+    assert lg["scope"] == "prefix" and lg["stopped_early"] is True
+    assert lg["stop_trial_index"] == last and lg["trials"] == lg["trials_read"] == last + 1
+    assert lg["bytes_read"] == 24 + last + 1 < log.stat().st_size
+    assert lg["sha256"] == hashlib.sha256(log.read_bytes()[:24 + last + 1]).hexdigest()
     assert "pef_solver" in res.record["volatile"]["timings_s"]
     rep = verify(res.record_file, log=log, seed=seed, bits=res.bits_file)
     assert rep.scope == "full"
     assert any("trial order" in n for n in verify(res.record_file).notes)
+
+
+# --------------------------------------------------------------------------- early stopping
+
+
+def _fast_pef_protocol(**analysis):
+    """ch-photonic.toml with a fixed (isotropic) calibration and a small target: decided within
+    about a thousand trials of the simulated Tsirelson box."""
+    d = tomllib.loads((ROOT / "protocols" / "ch-photonic.toml").read_text())
+    a = d["analysis"]
+    del a["calibration_trials"]
+    a.update(calibration="isotropic", calibration_chsh=2.7, beta=0.1, sigma_target_bits=64,
+             eps_pe=1e-6, n_max=1_000_000)
+    a.update(analysis)
+    d["extractor"]["eps_ext"] = 1e-6
+    return protocol_from_dict(d, "pef-fast")
+
+
+def _oracle_success_index(codes: np.ndarray, factors, threshold: float, first: int = 0) -> int:
+    """Naive per-trial oracle: the first trial k >= first at which
+    sum_{first <= i <= k} log2 F(c_i, z_i), summed with math.fsum, reaches the threshold
+    beta * sigma_target + log2(1/eps_PE) (Knill, Zhang & Bierhorst, PRR 2, 033465 (2020);
+    methods note probability-estimation.md section 2). -1 if never."""
+    terms: list[float] = []
+    for k in range(first, codes.size):
+        c = int(codes[k])
+        terms.append(math.log2(factors[(c >> 2) & 3][c & 3]))  # F[z][c], z = 2x+y, c = 2a+b
+        if math.fsum(terms) >= threshold:
+            return k
+    return -1
+
+
+@pytest.fixture(scope="module")
+def fast_pef_log(tmp_path_factory):
+    from dicert.simulate import device_model, simulate_trials
+
+    d = tmp_path_factory.mktemp("pefstop")
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(3)))
+    tr = simulate_trials(60_000, device_model("quantum", visibility=1.0), gamma=1.0, rng=rng)
+    log = d / "run.btl"
+    write_log(log, tr)
+    seed = d / "seed.bin"
+    seed.write_bytes(np.random.default_rng(2).bytes(4_000))
+    return log, seed, tr.codes()
+
+
+def test_pef_early_stop_reads_a_prefix_and_reports_the_oracle_index(fast_pef_log, tmp_path):
+    log, seed, codes = fast_pef_log
+    # A byte that no reader accepts, far after the decision: the file reads as invalid as a
+    # whole, so certifying it shows that reading stopped before it.
+    data = bytearray(log.read_bytes())
+    data[24 + 50_000] = 0x40
+    bad_tail = tmp_path / "tail.btl"
+    bad_tail.write_bytes(bytes(data))
+    proto = _fast_pef_protocol()
+    res = certify(bad_tail, proto, seed, tmp_path / "out")
+    assert res.status == "certified", res.abort_reason
+    det = res.record["entropy"]["finite_size"]["details"]
+    p = proto.analysis
+    thr = p.beta * p.sigma_target_bits + math.log2(1.0 / p.eps_pe)
+    factors = det["pef"]["factors"]
+    k = _oracle_success_index(codes, factors, thr)
+    # No near-tie (the engine rounds log2 F down by 2 ulps and subtracts a rounding allowance).
+    assert k == _oracle_success_index(codes, factors, thr + 1e-9) and k >= 0
+    assert res.success_trial_index == res.stop_trial_index == det["success_trial_index"] == k
+    lg = res.record["log"]
+    assert (lg["scope"], lg["stopped_early"], lg["ended_by"]) == ("prefix", True, "decision")
+    assert lg["trials_read"] == lg["trials"] == k + 1
+    assert lg["bytes_read"] == lg["size_bytes"] == 24 + k + 1 < bad_tail.stat().st_size
+    # The digest covers exactly the header and trials 0..k; counts are of those trials only.
+    assert lg["sha256"] == hashlib.sha256(bytes(data[:24 + k + 1])).hexdigest()
+    assert int(np.sum(res.record["counts"]["values"])) == k + 1
+    # The whole file does not read (the invalid byte is reported with its offset).
+    with pytest.raises(LogFormatError, match=f"byte offset {24 + 50_000}"):
+        read_trials(bad_tail)
+
+
+def test_pef_stops_at_the_first_trial_outside_the_settings_model(tmp_path):
+    """With spot-checking and generation settings (0, 0), a generation trial with other
+    settings has factor 0: the run can never succeed and stops exactly at that trial, however
+    the bytes are split (PEF condition: F = 0 outside the model, methods note section 1)."""
+    from dicert.certify import _BitSink, _PefFeed
+    from dicert.simulate import device_model, simulate_trials
+
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(9)))
+    tr = simulate_trials(6_000, device_model("quantum", visibility=1.0), gamma=0.5, rng=rng)
+    codes = tr.codes().copy()
+    gen = np.flatnonzero((codes & 0x10) == 0)
+    k = int(gen[gen > 300][0])
+    codes[k] = (codes[k] & 0x13) | 0x0C  # generation round with settings (1, 1)
+    # Knill-Zhang-Bierhorst settings model: spot-checking with gamma, as in the protocol.
+    d = tomllib.loads((ROOT / "protocols" / "ch-photonic.toml").read_text())
+    a = d["analysis"]
+    del a["calibration_trials"]
+    a.update(calibration="isotropic", calibration_chsh=2.7, beta=0.1, sigma_target_bits=4096,
+             eps_pe=1e-6, n_max=1_000_000)
+    d["settings"]["gamma"] = 0.5
+    d["extractor"]["eps_ext"] = 1e-6
+    proto = protocol_from_dict(d, "pef-spot")
+    fed = set()
+    for split in (1, 97, 4096, 6_000):
+        feed = _PefFeed(proto, _BitSink(None), has_test_flag=True)
+        for i in range(0, codes.size, split):
+            feed.push(codes[i:i + split])
+        assert feed.done and not feed.acc.succeeded
+        fed.add(feed.fed)
+    assert fed == {k + 1}
+    log = tmp_path / "dead.btl"
+    write_log(log, TrialArrays.from_codes(codes, True))
+    res = certify(log, proto, np.random.default_rng(0).bytes(64), tmp_path / "out")
+    assert res.status == "aborted" and "outside the settings model" in res.abort_reason
+    assert res.stop_trial_index == k and res.record["log"]["bytes_read"] == 24 + k + 1

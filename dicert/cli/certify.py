@@ -24,6 +24,13 @@ HELP = (
     "The log is read once (streaming). Raw bits are the outcomes of the harvested trials in "
     "log order (a, or a then b), packed big-endian. An abort (the acceptance test failed, or "
     "too little entropy) is a normal outcome: 0 bits, the record is still written.\n\n"
+    "Method pef on a single binary (.btl) log: reading stops at the trial where the outcome is "
+    "decided (target reached, n_max, or a trial outside the settings model); the record then "
+    "covers exactly the bytes read (log.scope = prefix) and the stopping trial is reported. "
+    "With --follow the command waits for a growing binary log (written with a streamed "
+    "writer) until the target is reached, n_max, the log's trailer arrives (then it decides "
+    "with what there is), or no new trial arrives for --idle-timeout seconds (then it aborts "
+    "and still writes a record).\n\n"
     "Exit codes: 0 certified; 3 aborted (record written); 2 bad input (nothing written); "
     "1 verification failure.\n\n"
     "Assumptions stated in every record: no communication between the stations during a "
@@ -46,17 +53,31 @@ def certify_cmd(
     out: Annotated[Path, typer.Option("--out", help="Output directory for random.bits and record.json.")],
     key: Annotated[Path | None, typer.Option("--key", help="Ed25519 private key (from `dicert keygen`) that signs the record.")] = None,
     chain: Annotated[Path | None, typer.Option("--chain", help="Beacon chain directory: link the record to the previous pulse and append it.")] = None,
+    follow: Annotated[bool, typer.Option("--follow", help="Method pef, binary log: follow a growing log until the outcome is decided, its trailer arrives, or the idle timeout.")] = False,
+    poll: Annotated[float | None, typer.Option("--poll", metavar="SECONDS", help="With --follow: pause between looks for new trials [default: 0.5].")] = None,
+    idle_timeout: Annotated[float | None, typer.Option("--idle-timeout", metavar="SECONDS", help="With --follow: abort after this long without new trials; 0 waits for ever [default: 300].")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.certify import certify
+    from dicert.errors import ParameterError
 
+    if not follow and (poll is not None or idle_timeout is not None):
+        raise ParameterError("--poll and --idle-timeout apply only with --follow")
+    if idle_timeout is not None and idle_timeout < 0:
+        raise ParameterError(f"--idle-timeout: expected seconds >= 0, got {idle_timeout:g}")
+    extra = {}
+    if follow:
+        extra = {"follow": True, "poll_s": 0.5 if poll is None else poll,
+                 "idle_timeout_s": 300.0 if idle_timeout is None else (idle_timeout or None)}
     with progress_bar() as bar:
-        task = bar.add_task("reading log", total=None)
+        task = bar.add_task("following log" if follow else "reading log", total=None)
         result = certify(
             log, protocol, seed, out, key=key, chain=chain,
             progress=lambda stage, done, total: bar.update(task, completed=done, total=total),
+            **extra,
         )
     rec = result.record
+    lg = rec["log"]
     if as_json:
         emit_json({
             "status": result.status,
@@ -68,6 +89,12 @@ def certify_cmd(
             "min_entropy_bits": result.min_entropy_bits,
             "error": result.error,
             "trials": result.trials,
+            "log_scope": lg.get("scope"),
+            "bytes_read": lg.get("bytes_read"),
+            "stopped_early": result.stopped_early,
+            "stop_trial_index": result.stop_trial_index,
+            "success_trial_index": result.success_trial_index,
+            "ended_by": result.ended_by,
             "raw_bits": result.raw_bits,
             "method": rec["entropy"]["finite_size"]["method"],
             "side_information": rec["entropy"]["finite_size"]["side_information"],
@@ -80,6 +107,7 @@ def certify_cmd(
         rows = [
             ("status", result.status.upper()),
             ("trials", result.trials),
+            ("log read", _read_text(lg)),
             ("CHSH estimate", rec["estimate"].get("chsh")),
             ("method", f"{fin['method']} ({fin['side_information']} side information)"),
             ("certified min-entropy (bits)", result.min_entropy_bits),
@@ -91,6 +119,8 @@ def certify_cmd(
             ("record SHA-256", result.record_sha256),
             ("signed", "yes" if rec.get("signature") else "no (pass --key to sign)"),
         ]
+        if result.success_trial_index is not None:
+            rows.insert(2, ("success at trial", result.success_trial_index))
         if result.chain_file:
             rows.append(("chain pulse", str(result.chain_file)))
         if result.abort_reason:
@@ -100,3 +130,14 @@ def certify_cmd(
         console.print(f"CAUTION: {CAUTION}", style="dim")
     if result.exit_code:
         raise typer.Exit(code=result.exit_code)
+
+
+def _read_text(lg: dict) -> str:
+    """One line on how much of the log the record covers."""
+    n, b = lg.get("trials_read"), lg.get("bytes_read")
+    if lg.get("scope") != "prefix":
+        return f"whole log ({b} bytes)"
+    if lg.get("stopped_early"):
+        return (f"prefix: {n} trials, {b} bytes (stopped early at trial "
+                f"{lg.get('stop_trial_index')}; later bytes not read)")
+    return f"prefix: {n} trials, {b} bytes ({lg.get('ended_by')})"
