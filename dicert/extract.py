@@ -71,12 +71,15 @@ CONVENTION = (
 )
 #: Output-length rule implemented by :func:`lhl_output_length`.
 OUTPUT_RULE = "lhl-conservative"
-#: Default largest FFT length of one tile (float64 error and memory stay small).
+#: Default largest FFT length of one tile for inputs up to 2**24 bits (float64 error and memory
+#: stay small); it doubles with the input up to MAX_FFT_LENGTH_LARGE.
 MAX_FFT_LENGTH = 1 << 22
+MAX_FFT_LENGTH_LARGE = 1 << 24
 #: Default rounding guard: any value further than this from an integer triggers the exact path.
 ROUNDING_THRESHOLD = 0.25
-#: Default memory budget for the spectra held at once (bytes).
+#: Default memory budget for the spectra held at once: max(1 GiB, 20 bytes per input bit).
 MEMORY_BUDGET = 1 << 30
+_MEMORY_PER_INPUT_BIT = 20
 #: Tile width used by the exact integer fallback (direct convolution, O(width^2) per tile).
 _EXACT_TILE = 1 << 12
 
@@ -372,7 +375,11 @@ class _Plan:
 def _plan(n: int, m: int, block_bits: int | None, memory_budget: int) -> _Plan:
     import scipy.fft
 
+    # Larger inputs get larger tiles: the spectrum products cost ~ n m / B, the transforms
+    # ~ (n + m) log B, and memory ~ 32 m + 80 B bytes (see _run).
     cap = MAX_FFT_LENGTH
+    while cap < MAX_FFT_LENGTH_LARGE and 4 * cap < n:
+        cap *= 2
     if block_bits is not None:
         bb = _positive_int(block_bits, "block_bits")
         B, M = min(n, bb), min(m, bb)
@@ -411,7 +418,7 @@ def extract_toeplitz(
     progress: Callable[[int, int], None] | None = None,
     rounding_threshold: float = ROUNDING_THRESHOLD,
     workers: int | None = None,
-    memory_budget: int = MEMORY_BUDGET,
+    memory_budget: int | None = None,
 ) -> ExtractionResult:
     """Hash n input bits to m output bits with a seeded Toeplitz matrix over GF(2).
 
@@ -438,7 +445,8 @@ def extract_toeplitz(
     workers : int, optional
         Threads for FFTs (default: 2 if the machine has more than one core).
     memory_budget : int, optional
-        Bytes allowed for the spectra held at once; larger outputs take several passes.
+        Bytes allowed for the spectra held at once (default max(1 GiB, 20 bytes per input
+        bit)); when the output blocks do not fit, the input is read in several passes.
 
     Returns
     -------
@@ -484,7 +492,9 @@ def extract_toeplitz(
         thr = float(rounding_threshold)
         if not thr < 0.5:
             raise ParameterError(f"rounding_threshold must be < 0.5, got {thr!r}")
-        plan = _plan(n, m, block_bits, int(memory_budget))
+        budget = (max(MEMORY_BUDGET, _MEMORY_PER_INPUT_BIT * n) if memory_budget is None
+                  else int(memory_budget))
+        plan = _plan(n, m, block_bits, budget)
         if workers is None:
             workers = 2 if (os.cpu_count() or 1) > 1 else 1
         z, max_dev, fallback, tiles = _run(plan, x, s, need_bits, thr, int(workers), progress)
@@ -578,15 +588,24 @@ def _run(plan: _Plan, x: _Bits, s: _Bits, seed_len: int, thr: float, workers: in
                 xspec = specs[0]
                 cache.update(zip(missing, specs[1:], strict=True))
                 del specs
-                for o, st in zip(outs, starts, strict=True):
-                    spec = cache[st]
-                    if last_use[st] == b and starts.count(st) == 1:
-                        np.multiply(spec, xspec, out=spec)
-                        acc[o] += spec
-                    else:
-                        np.multiply(spec, xspec, out=scratch[0])
-                        acc[o] += scratch[0]
-                    done += 1
+                def mac(k: int, pairs: list[tuple[int, int]]) -> None:
+                    for o, st in pairs:
+                        spec = cache[st]
+                        if last_use[st] == b and starts.count(st) == 1:
+                            np.multiply(spec, xspec, out=spec)  # last use: overwrite in place
+                            acc[o] += spec
+                        else:
+                            np.multiply(spec, xspec, out=scratch[k])
+                            acc[o] += scratch[k]
+
+                pairs = list(zip(outs, starts, strict=True))
+                if pool is not None and len(pairs) >= 2:
+                    futs = [pool.submit(mac, k, pairs[k::2]) for k in range(2)]
+                    for f in futs:
+                        f.result()
+                else:
+                    mac(0, pairs)
+                done += len(pairs)
                 for st in set(starts):
                     if last_use[st] == b:
                         del cache[st]

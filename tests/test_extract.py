@@ -133,13 +133,14 @@ def test_blockwise_equals_single_shot_and_path_input(tmp_path, rng):
 
 def test_two_threads_equal_one_thread(rng):
     # Large enough (FFT length >= 2**16) for the two-thread path; cross-checked with tiles.
-    n, m = 80000, 30001
+    n, m = 80000, 70001
     x, s = random_case(rng, n, m)
     two = extract_toeplitz(x, s, m, workers=2)
     one = extract_toeplitz(x, s, m, workers=1)
-    tiled = extract_toeplitz(x, s, m, workers=2, block_bits=40000)
-    assert two.fft_length >= 2**16 and tiled.fft_length >= 2**16
-    assert two.output == one.output == tiled.output
+    tiled = extract_toeplitz(x, s, m, workers=2, block_bits=32768)  # 3 x 3 tiles, F = 2**16
+    tiled1 = extract_toeplitz(x, s, m, workers=1, block_bits=32768)
+    assert two.fft_length >= 2**16 and tiled.fft_length == 2**16 and tiled.blocks == 9
+    assert two.output == one.output == tiled.output == tiled1.output
 
 
 def test_exact_fallback_is_exercised_and_agrees(rng):
