@@ -389,6 +389,12 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     if protocol.method == "pef" and log is None:
         notes.append("method pef: the probability-estimation result depends on the trial order "
                      "and is re-derived only with --log")
+    if rec_scan.scope == "prefix":
+        how = (f"the outcome was decided at trial {rec_scan.stop_trial_index}"
+               if rec_scan.stopped_early else f"reading ended by {rec_scan.ended_by}")
+        notes.append(f"the record covers only the first {rec_scan.bytes_read} bytes of the log "
+                     f"(header and trials 0..{rec_scan.trials - 1}; {how}); bytes after them "
+                     "are not certified and not checked")
     output_bits = int(_get(body, "extractor.output_bits"))
     not_checked: list[str] = []
 

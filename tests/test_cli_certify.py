@@ -150,3 +150,120 @@ def test_demo_end_to_end(tmp_path):
         assert Path(p["record_file"]).resolve().is_relative_to((tmp_path / "demo").resolve())
     r2 = _runner().invoke(app, ["demo", "--out", str(tmp_path / "demo")])
     assert r2.exit_code == 2  # refuses a non-empty directory
+
+
+# --------------------------------------------------------------------------- --follow
+
+
+def _fast_pef_toml(tmp_path: Path) -> Path:
+    """ch-photonic.toml with a fixed (isotropic) calibration and a small target (decided
+    within about a thousand trials of the simulated Tsirelson box)."""
+    import re
+
+    text = (ROOT / "protocols" / "ch-photonic.toml").read_text()
+    for key, value in (("beta", "0.1"), ("eps_pe", "1e-6"), ("sigma_target_bits", "64"),
+                       ("n_max", "1_000_000"), ("eps_ext", "1e-6"),
+                       ("calibration", '"isotropic"\ncalibration_chsh = 2.7')):
+        text, n = re.subn(rf"(?m)^{key}\s*=\s*[^#\n]*", f"{key} = {value}", text)
+        assert n == 1, key
+    text = re.sub(r"(?m)^calibration_trials\s*=.*$", "", text)
+    path = tmp_path / "pef-fast.toml"
+    path.write_text(text)
+    return path
+
+
+def test_follow_stops_at_the_target_while_the_log_grows(files, tmp_path):
+    import threading
+    import time
+
+    from dicert.logs import BinaryLogWriter
+
+    proto = _fast_pef_toml(tmp_path)
+    codes = _sim(200_000, seed=3).codes()
+    log = tmp_path / "live.btl"
+    w = BinaryLogWriter(log, has_test_flag=False, streamed=True)
+    stop = threading.Event()
+
+    def acquire():  # the "experiment": 100 trials every 5 ms until told to stop
+        for i in range(0, codes.size, 100):
+            if stop.is_set():
+                return
+            w.append(codes[i:i + 100])
+            time.sleep(0.005)
+
+    th = threading.Thread(target=acquire)
+    th.start()
+    try:
+        r = _runner().invoke(app, ["certify", str(log), "--protocol", str(proto), "--seed",
+                                   str(files / "seed.bin"), "--out", str(tmp_path / "o"),
+                                   "--follow", "--poll", "0.01", "--idle-timeout", "10",
+                                   "--json"])
+        still_acquiring = th.is_alive()  # it decided while the log was still growing
+    finally:
+        stop.set()
+        th.join()
+        w.close()
+    assert r.exit_code == 0, r.output
+    assert still_acquiring
+    d = json.loads(r.stdout)
+    assert d["status"] == "certified" and d["stopped_early"] is True
+    assert d["log_scope"] == "prefix" and d["ended_by"] == "decision"
+    k = d["stop_trial_index"]
+    assert k == d["success_trial_index"] and d["trials"] == k + 1
+    assert d["bytes_read"] == 24 + k + 1 < log.stat().st_size
+    # Same stopping trial as reading the finished file without --follow (the PEF run's
+    # success trial does not depend on how the bytes arrived; methods note section 2).
+    r2 = _runner().invoke(app, ["certify", str(log), "--protocol", str(proto), "--seed",
+                                str(files / "seed.bin"), "--out", str(tmp_path / "o2"),
+                                "--json"])
+    assert r2.exit_code == 0 and json.loads(r2.stdout)["stop_trial_index"] == k
+    r3 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(log), "--seed",
+                                str(files / "seed.bin"), "--bits", d["bits_file"]])
+    assert r3.exit_code == 0, r3.output
+
+
+def test_follow_idle_timeout_and_trailer_abort_with_a_record(files, tmp_path):
+    from dicert.logs import BinaryLogWriter
+
+    proto = _fast_pef_toml(tmp_path)
+    log = tmp_path / "stalled.btl"
+    w = BinaryLogWriter(log, has_test_flag=False, streamed=True)
+    w.append(_sim(200, seed=3).codes())  # far too few trials, and then nothing more
+    args = ["certify", str(log), "--protocol", str(proto), "--seed", str(files / "seed.bin"),
+            "--follow", "--poll", "0.01", "--json"]
+    r = _runner().invoke(app, [*args, "--out", str(tmp_path / "o"), "--idle-timeout", "0.3"])
+    assert r.exit_code == 3, r.output
+    d = json.loads(r.stdout)
+    assert d["status"] == "aborted" and "idle timeout" in d["abort_reason"]
+    assert d["ended_by"] == "idle-timeout" and d["log_scope"] == "prefix" and d["trials"] == 200
+    assert Path(d["record_file"]).exists()
+    r1 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(log)])
+    assert r1.exit_code == 0, r1.output
+    # Once the trailer is written the run decides with what there is: the whole log.
+    w.close()
+    r = _runner().invoke(app, [*args, "--out", str(tmp_path / "o2"), "--idle-timeout", "5"])
+    assert r.exit_code == 3, r.output
+    d = json.loads(r.stdout)
+    assert d["ended_by"] == "end-of-log" and d["log_scope"] == "whole"
+    assert "log ended before the target was reached" in d["abort_reason"]
+
+
+def test_follow_bad_uses_exit_2_one_line(files, tmp_path):
+    proto = _fast_pef_toml(tmp_path)
+    seed = str(files / "seed.bin")
+    cases = [
+        # a method that needs the whole log
+        ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--follow"],
+        # a text log (nothing appends to it in the binary format)
+        ["certify", str(files / "c.csv"), "--protocol", str(proto), "--follow"],
+        # follow options without --follow
+        ["certify", str(files / "q.btl"), "--protocol", str(proto), "--poll", "1"],
+        ["certify", str(files / "q.btl"), "--protocol", str(proto), "--follow", "--poll", "0"],
+    ]
+    for i, argv in enumerate(cases):
+        r = _runner().invoke(app, [*argv, "--seed", seed, "--out", str(tmp_path / f"o{i}")])
+        assert r.exit_code == 2, (argv, r.output)
+        err = r.stderr.strip()
+        assert len(err.splitlines()) == 1 and err.startswith("dicert: error:"), err
+        assert "Traceback" not in r.output
+        assert not (tmp_path / f"o{i}").exists()

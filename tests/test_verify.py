@@ -226,3 +226,70 @@ def test_record_file_is_rfc8785_canonical(run):
     body = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
     # record_sha256 = SHA-256 (FIPS 180-4) of the canonical body.
     assert rec["record_sha256"] == hashlib.sha256(rfc8785.dumps(body)).hexdigest()
+
+
+# --------------------------------------------------------------------------- prefix records
+
+
+def _fast_pef_protocol():
+    """ch-photonic.toml with a fixed (isotropic) calibration and a small target (decided
+    within about a thousand trials of the simulated Tsirelson box)."""
+    d = tomllib.loads((ROOT / "protocols" / "ch-photonic.toml").read_text())
+    a = d["analysis"]
+    del a["calibration_trials"]
+    a.update(calibration="isotropic", calibration_chsh=2.7, beta=0.1, sigma_target_bits=64,
+             eps_pe=1e-6, n_max=1_000_000)
+    d["extractor"]["eps_ext"] = 1e-6
+    return protocol_from_dict(d, "pef-fast")
+
+
+def test_prefix_record_verifies_as_the_log_grows_and_catches_tampering_in_the_prefix(tmp_path):
+    from dicert.logs import BinaryLogWriter
+
+    codes = _sim(8_000, seed=3).codes()
+    log = tmp_path / "grow.btl"
+    w = BinaryLogWriter(log, has_test_flag=False, streamed=True)
+    w.append(codes[:5_000])  # still being written: no trailer yet
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(np.random.default_rng(4).bytes(4_000))
+    res = certify(log, _fast_pef_protocol(), seed, tmp_path / "out")
+    assert res.status == "certified" and res.log_scope == "prefix"
+    n_pre = res.record["log"]["bytes_read"]
+    assert n_pre < log.stat().st_size
+    rep = verify(res.record_file, log=log, seed=seed, bits=res.bits_file)
+    assert rep.scope == "full" and any(f"first {n_pre} bytes" in n for n in rep.notes)
+    # More trials and the trailer arrive afterwards: the prefix is unchanged, so it verifies.
+    w.append(codes[5_000:])
+    w.close()
+    assert verify(res.record_file, log=log, seed=seed, bits=res.bits_file).scope == "full"
+    # Any change inside the prefix (header or trials) fails; changes after it do not matter.
+    size = log.stat().st_size
+    for pos in _positions(n_pre, 8):
+        bad = _flip(log, tmp_path / "bad.btl", pos)
+        with pytest.raises(VerificationError) as info:
+            verify(res.record_file, log=bad, seed=seed)
+        assert info.value.field.startswith("log."), (pos, info.value.field)
+    for pos in (n_pre, n_pre + 1, size - 20):
+        later = _flip(log, tmp_path / "later.btl", pos)
+        verify(res.record_file, log=later, seed=seed, bits=res.bits_file)
+    # A log cut inside the prefix is not the certified one either.
+    short = tmp_path / "short.btl"
+    short.write_bytes(log.read_bytes()[: n_pre - 1])
+    with pytest.raises(VerificationError):
+        verify(res.record_file, log=short, seed=seed)
+
+
+def test_record_without_log_scope_members_still_verifies(run, tmp_path):
+    """Records written before log scopes existed covered the whole log; they stay readable
+    (house style: records carry a format version so old records remain checkable)."""
+    from dicert.audit.record import read_record, record_bytes, seal_record
+
+    rec = read_record(run["record"])
+    body = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
+    body["log"] = {k: v for k, v in body["log"].items()
+                   if k not in ("scope", "bytes_read", "trials_read", "stopped_early",
+                                "stop_trial_index", "ended_by", "follow")}
+    old = tmp_path / "old.json"
+    old.write_bytes(record_bytes(seal_record(body, None)))
+    rep = verify(old, log=run["log"], seed=run["seed"], bits=run["bits"])
+    assert rep.scope == "full"
