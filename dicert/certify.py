@@ -335,6 +335,7 @@ class _PefFeed:
         self.offset0 = offset0  # byte offset of trial 0 in the file (for error messages)
         self.counts = np.zeros(32, dtype=np.int64)
         self.fed = 0  # trials consumed by the accumulator (index of the next trial)
+        self._zero: np.ndarray | None = None
 
     @property
     def done(self) -> bool:
@@ -355,9 +356,10 @@ class _PefFeed:
             if self.acc.pef is None:  # calibration prefix still being read
                 take = min(self.first - self.fed, good.size - pos)
             else:
-                rest = acc_codes[pos:]
-                zero = np.flatnonzero(~np.isfinite(self.acc.pef.log2_table[rest]))
-                take = int(zero[0]) + 1 if zero.size else rest.size
+                if self._zero is None:
+                    self._zero = ~np.isfinite(self.acc.pef.log2_table)  # factor-0 codes
+                hit = self._zero[acc_codes[pos:]]
+                take = int(hit.argmax()) + 1 if hit.any() else hit.size
             self._feed(good[pos:pos + take], acc_codes[pos:pos + take])
             pos += take
         if bad_at >= 0 and not self.done:
