@@ -543,6 +543,9 @@ def _scan_binary_pef(path: Path, protocol: Any, sink: _BitSink, *,
                 end = "decision"
             elif prefix_trials is not None:
                 end = "limit"
+            elif done_trials < n_avail:
+                raise LogFormatError(path, f"byte offset {BINARY_HEADER_SIZE + done_trials}",
+                                     "truncated while reading (the file shrank)")
             elif count == COUNT_STREAMED and not trailer:
                 raise LogFormatError(path, f"byte offset {size_now}", "truncated: a streamed "
                                      "log must end with its trailer (the log is still being "
@@ -1055,7 +1058,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         t2 = time.perf_counter()
         if scan.trials == 0:
             raise LogFormatError(log, "", "no trial arrived before the idle timeout; nothing "
-                                 "to certify")
+                                 "to certify" if scan.follow else "contains no trials")
         generation_rounds = int(scan.counts[0].sum())
         if proto.design.gamma >= 1.0 and generation_rounds:
             raise LogFormatError(log, "", f"the protocol declares every round a test round "
