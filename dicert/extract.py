@@ -372,9 +372,22 @@ class _Plan:
     group: int  # output blocks per pass
 
 
-def _plan(n: int, m: int, block_bits: int | None, memory_budget: int) -> _Plan:
-    import scipy.fft
+def _fast_length(k: int) -> int:
+    """Smallest 5-smooth integer (2^a 3^b 5^c) >= k: an efficient real FFT length."""
+    best = 1 << max(k - 1, 0).bit_length()
+    p5 = 1
+    while p5 < best:
+        p35 = p5
+        while p35 < best:
+            # smallest power of two times p35 that is >= k
+            q = p35 << max(0, (-(-k // p35) - 1).bit_length())
+            best = min(best, q)
+            p35 *= 3
+        p5 *= 5
+    return best
 
+
+def _plan(n: int, m: int, block_bits: int | None, memory_budget: int) -> _Plan:
     # Larger inputs get larger tiles: the spectrum products cost ~ n m / B, the transforms
     # ~ (n + m) log B, and memory ~ 32 m + 80 B bytes (see _run).
     cap = MAX_FFT_LENGTH
@@ -391,7 +404,7 @@ def _plan(n: int, m: int, block_bits: int | None, memory_budget: int) -> _Plan:
         B, M = cap - m, m
     else:
         B = M = cap // 2
-    F = scipy.fft.next_fast_len(B + M - 1, real=True)
+    F = _fast_length(B + M - 1)
     nb, mo = -(-n // B), -(-m // M)
     spectrum = 16 * (F // 2 + 1)
     # Held at once: one accumulator and up to one cached seed spectrum per output block of the
@@ -533,14 +546,12 @@ def _run(plan: _Plan, x: _Bits, s: _Bits, seed_len: int, thr: float, workers: in
     """Compute all output bits; returns (bits uint8[m], max deviation, fallback blocks, tiles)."""
     from concurrent.futures import ThreadPoolExecutor
 
-    import scipy.fft
-
     F, B, M, n = plan.F, plan.B, plan.M, plan.n
     half = F // 2 + 1
     z = np.empty(plan.mo * M, dtype=np.uint8)
     # Two real work rows (F + 2 floats, so each can also serve as a complex scratch spectrum).
-    # Forward transforms use scipy.fft.rfft on an exact-length contiguous row, which allocates
-    # only its output; the inverse uses numpy's irfft with ``out=``, which allocates nothing.
+    # numpy's pocketfft with ``out=`` writes spectra and inverse transforms into buffers we
+    # hold, so nothing else of size F is allocated per transform.
     rows = [np.zeros(2 * half, dtype=np.float64) for _ in range(2)]
     scratch = [r.view(np.complex128) for r in rows]
     total = plan.nb * plan.mo
@@ -552,7 +563,9 @@ def _run(plan: _Plan, x: _Bits, s: _Bits, seed_len: int, thr: float, workers: in
 
     def transform(k: int, fill: Callable[[np.ndarray], None]) -> np.ndarray:
         fill(rows[k][:F])
-        return scipy.fft.rfft(rows[k][:F])
+        spec = np.empty(half, dtype=np.complex128)
+        np.fft.rfft(rows[k][:F], out=spec)
+        return spec
 
     def run_jobs(fills: list[Callable[[np.ndarray], None]]) -> list[np.ndarray]:
         """Forward transforms of the given row fillers, two at a time on two threads."""

@@ -314,3 +314,14 @@ def test_lhl_sizing_accounting():
     for bad in ((float("nan"), 0.1), (-1.0, 0.1), (10.0, 0.0), (10.0, 1.0)):
         with pytest.raises(ParameterError):
             lhl_output_length(*bad)
+
+
+def test_fast_length_matches_scipy():
+    # Reference library: scipy.fft.next_fast_len(k, real=True) returns the smallest 5-smooth
+    # integer >= k (SciPy docs); the extractor's own helper must agree.
+    import scipy.fft
+
+    from dicert.extract import _fast_length
+
+    for k in [*range(1, 3000), 2**22 - 1, 2**22 + 1, 3 * 2**21 + 5, 10**7 + 1]:
+        assert _fast_length(k) == scipy.fft.next_fast_len(k, real=True)
