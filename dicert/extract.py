@@ -25,14 +25,17 @@ itself a Toeplitz matrix (with a contiguous stretch of M + B - 1 seed bits), eva
 one cyclic convolution of length F >= M + B - 1 with real FFTs in float64. The spectra of the
 tiles in an output block are summed (linearity) and transformed back once; every value is
 rounded to the nearest integer and reduced mod 2. Small problems use a single tile (one
-cyclic convolution of length n + m - 1); large ones use tiles with F <= 2**23, which bounds
-memory and floating-point error and lets two tiles be transformed on two cores at once.
+cyclic convolution of length n + m - 1); large ones use square tiles with F = 2**22 (growing
+to 2**24 for inputs beyond 2**24 bits), which bounds memory and floating-point error and lets
+two transforms run on two cores at once. Input blocks are processed in order and their
+spectra discarded, so memory is about 32 m + 80 B bytes plus the packed inputs.
 
 Exactness: the convolution values are integers in [0, min(M, B)]. By the standard error
 analysis of the FFT (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed.,
 SIAM 2002, sec. 24.1) the computed cyclic convolution of 0/1 vectors of length <= F differs
 from the exact one by at most about 5 * log2(F) * eta * B**1.5 in the 2-norm, with eta a small
-multiple of the unit roundoff 1.1e-16; for B = 2**22 this is ~1e-3, far below 1/2. As a run-time
+multiple of the unit roundoff 1.1e-16; for the largest tiles used (B = 2**23, F = 2**24) this is
+~1e-3, far below 1/2. As a run-time
 guard, every output block whose values stray more than ``rounding_threshold`` (0.25) from an
 integer is recomputed with exact integer arithmetic, and ``method`` says so. Bits are never
 emitted from a block that failed the guard.
@@ -84,10 +87,10 @@ _MEMORY_PER_INPUT_BIT = 20
 _EXACT_TILE = 1 << 12
 
 _REFERENCES = (
-    "Y. Mansour, N. Nisan, P. Tiwari, STOC 1990 / Theor. Comput. Sci. 107 (1993): Toeplitz "
-    "hashing is universal_2 with n + m - 1 seed bits",
-    "M. Tomamichel, C. Schaffner, A. Smith, R. Renner, IEEE Trans. Inf. Theory 57(8), "
-    "5524-5535 (2011): leftover hashing against quantum side information",
+    ("Y. Mansour, N. Nisan, P. Tiwari, STOC 1990 / Theor. Comput. Sci. 107 (1993): Toeplitz "
+     "hashing is universal_2 with n + m - 1 seed bits"),
+    ("M. Tomamichel, C. Schaffner, A. Smith, R. Renner, IEEE Trans. Inf. Theory 57(8), "
+     "5524-5535 (2011): leftover hashing against quantum side information"),
 )
 
 
@@ -579,9 +582,41 @@ def _run(plan: _Plan, x: _Bits, s: _Bits, seed_len: int, thr: float, workers: in
                 out.extend(transform(0, f) for f in pair)
         return out
 
+    def mac(k: int, work: list[tuple[np.ndarray, np.ndarray, bool]], xspec: np.ndarray) -> None:
+        """acc += spec * xspec for each (acc, spec, spec_is_dead) on scratch row k."""
+        for acc_o, spec, dead in work:
+            if dead:  # last use of this seed spectrum: multiply in place
+                np.multiply(spec, xspec, out=spec)
+                acc_o += spec
+            else:
+                np.multiply(spec, xspec, out=scratch[k])
+                acc_o += scratch[k]
+
+    def finish(k: int, o: int, acc_o: np.ndarray) -> float:
+        """Inverse transform of output block o, rounding guard, parity; returns the deviation."""
+        vals = np.fft.irfft(acc_o, F, out=rows[k][:F])[B - 1: B - 1 + M]
+        r = np.rint(vals)
+        np.subtract(vals, r, out=vals)
+        dev = float(np.max(np.abs(vals))) if vals.size else 0.0
+        if dev <= thr:  # (a NaN fails this test too)
+            z[o * M:(o + 1) * M] = (r.astype(np.int64) & 1).astype(np.uint8)
+        return dev
+
+    def in_pairs(fn: Callable[..., Any], jobs: list[tuple[Any, ...]]) -> list[Any]:
+        """Run fn(k, *job) for each job, two at a time on two threads when a pool exists."""
+        results: list[Any] = []
+        for i in range(0, len(jobs), 2):
+            pair = jobs[i:i + 2]
+            if pool is not None and len(pair) == 2:
+                futs = [pool.submit(fn, k, *job) for k, job in enumerate(pair)]
+                results.extend(f.result() for f in futs)
+            else:
+                results.extend(fn(0, *job) for job in pair)
+        return results
+
     try:
         for g0 in range(0, plan.mo, plan.group):
-            outs = range(g0, min(g0 + plan.group, plan.mo))
+            outs = list(range(g0, min(g0 + plan.group, plan.mo)))
             acc = {o: np.zeros(half, dtype=np.complex128) for o in outs}
             # Seed spectra are keyed by the tile's seed offset; square tiles share them along
             # diagonals. ``last_use`` lets a spectrum be freed (or overwritten) after its last use.
@@ -598,57 +633,27 @@ def _run(plan: _Plan, x: _Bits, s: _Bits, seed_len: int, thr: float, workers: in
                 fills += [lambda r, st=st: s.bits_into(r, st, B + M - 1, seed_len)
                           for st in missing]
                 specs = run_jobs(fills)
-                xspec = specs[0]
                 cache.update(zip(missing, specs[1:], strict=True))
-                del specs
-                def mac(k: int, pairs: list[tuple[int, int]]) -> None:
-                    for o, st in pairs:
-                        spec = cache[st]
-                        if last_use[st] == b and starts.count(st) == 1:
-                            np.multiply(spec, xspec, out=spec)  # last use: overwrite in place
-                            acc[o] += spec
-                        else:
-                            np.multiply(spec, xspec, out=scratch[k])
-                            acc[o] += scratch[k]
-
-                pairs = list(zip(outs, starts, strict=True))
-                if pool is not None and len(pairs) >= 2:
-                    futs = [pool.submit(mac, k, pairs[k::2]) for k in range(2)]
-                    for f in futs:
-                        f.result()
-                else:
-                    mac(0, pairs)
-                done += len(pairs)
+                work = [(acc[o], cache[st], last_use[st] == b and starts.count(st) == 1)
+                        for o, st in zip(outs, starts, strict=True)]
+                ways = 2 if pool is not None else 1
+                halves = [(work[k::ways], specs[0]) for k in range(ways)]
+                in_pairs(mac, [h for h in halves if h[0]])
+                del specs, work, halves
+                done += len(starts)
                 for st in set(starts):
                     if last_use[st] == b:
                         del cache[st]
-                del xspec
                 if progress is not None:
                     progress(done, total)
-            del cache
-            def finish(k: int, o: int) -> float:
-                vals = np.fft.irfft(acc.pop(o), F, out=rows[k][:F])[B - 1: B - 1 + M]
-                r = np.rint(vals)
-                np.subtract(vals, r, out=vals)
-                dev = float(np.max(np.abs(vals))) if vals.size else 0.0
-                if dev <= thr:  # (a NaN fails this test too)
-                    z[o * M:(o + 1) * M] = (r.astype(np.int64) & 1).astype(np.uint8)
-                return dev
-
-            outs_list = list(outs)
-            for i in range(0, len(outs_list), 2):
-                pair = outs_list[i:i + 2]
-                if pool is not None and len(pair) == 2:
-                    futs = [pool.submit(finish, k, o) for k, o in enumerate(pair)]
-                    devs = [f.result() for f in futs]
-                else:
-                    devs = [finish(0, o) for o in pair]
-                for o, dev in zip(pair, devs, strict=True):
-                    max_dev = max(max_dev, dev)
-                    if not dev <= thr:
-                        # Never emit bits from a block that failed the guard: redo it exactly.
-                        fallback += 1
-                        z[o * M:(o + 1) * M] = _exact_block(plan, x, s, seed_len, o)
+            cache.clear()
+            for o, dev in zip(outs, in_pairs(finish, [(o, acc.pop(o)) for o in outs]),
+                              strict=True):
+                max_dev = max(max_dev, dev)
+                if not dev <= thr:
+                    # Never emit bits from a block that failed the guard: redo it exactly.
+                    fallback += 1
+                    z[o * M:(o + 1) * M] = _exact_block(plan, x, s, seed_len, o)
     finally:
         if pool is not None:
             pool.shutdown()

@@ -109,7 +109,7 @@ def test_health_pass_fail_and_json(tmp_path):
     r = run("health", good, "--json")
     rep = json.loads(r.stdout)
     assert rep["n_bits"] == 32768 and rep["passed"] is True
-    assert [t["section"] for t in rep["tests"]][0] == "SP 800-22 2.1"
+    assert rep["tests"][0]["section"] == "SP 800-22 2.1"
     stuck = tmp_path / "stuck.bin"
     stuck.write_bytes(b"\xff" * 512)
     r = run("health", stuck)

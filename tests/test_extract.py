@@ -215,7 +215,7 @@ def test_universality_collision_rate_spot_check():
     # Collision rate of random pairs x != x' under random seeds is 2^-m (Mansour-Nisan-Tiwari 1990;
     # Krawczyk 1994); two-sided binomial test (scipy.stats.binomtest) at level 1e-4.
     rng = np.random.default_rng(12345)
-    n, m, trials = 64, 4, 3000
+    m, trials = 4, 3000  # n = 64 input bits (8 bytes)
     coll = 0
     for _ in range(trials):
         x1, x2, s = (rng.integers(0, 256, 8, dtype=np.uint8).tobytes(),

@@ -4,11 +4,17 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
-from dicert.cli._common import JsonFlag, emit_json, handle_errors, progress_bar, stdout_console
+from dicert.cli._common import (
+    JsonFlag,
+    emit_json,
+    handle_errors,
+    progress_bar,
+    stdout_console,
+)
 
 
 def register(app: typer.Typer) -> None:
@@ -21,7 +27,7 @@ def extract_cmd(
     seed_path: Annotated[Path, typer.Option("--seed", help="Uniform seed file; its first n + m - 1 bits are used.")],
     m_bits: Annotated[int, typer.Option("--bits", help="Output length m in bits.")],
     out: Annotated[Path, typer.Option("--out", help="Output file (ceil(m/8) bytes, zero-padded), written atomically.")],
-    n_bits: Annotated[Optional[int], typer.Option("--input-bits", help="Use only the first N input bits (default: 8 x file size).")] = None,
+    n_bits: Annotated[int | None, typer.Option("--input-bits", help="Use only the first N input bits (default: 8 x file size).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Hash N raw bits to M bits with the Toeplitz matrix T[i][j] = s[i - j + N - 1] over GF(2).

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 
@@ -17,7 +17,7 @@ def register(app: typer.Typer) -> None:
 @handle_errors
 def health_cmd(
     bits_path: Annotated[Path, typer.Argument(help="Bits file, packed big-endian within bytes.")],
-    n_bits: Annotated[Optional[int], typer.Option("--input-bits", help="Test only the first N bits (e.g. the exact output length m).")] = None,
+    n_bits: Annotated[int | None, typer.Option("--input-bits", help="Test only the first N bits (e.g. the exact output length m).")] = None,
     alpha: Annotated[float, typer.Option("--alpha", help="Significance level of each test.")] = 0.01,
     as_json: JsonFlag = False,
 ) -> None:
