@@ -37,6 +37,28 @@ def atomic_writer(path: str | os.PathLike[str], mode: str = "wb") -> Iterator[IO
         raise
 
 
+def write_temp_sibling(target: str | os.PathLike[str], data: bytes, mode: int | None = None) -> Path:
+    """Write ``data`` to a new temporary file next to ``target`` (fsynced) and return its path.
+
+    For outputs that must appear together: write every temporary file first, then
+    ``os.replace`` each into place (and unlink them all if anything fails). ``mode`` defaults
+    to the umask's default for new files.
+    """
+    target = Path(target)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            os.fchmod(fh.fileno(), 0o666 & ~_umask() if mode is None else mode)
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    return Path(tmp)
+
+
 def _umask() -> int:
     mask = os.umask(0)
     os.umask(mask)

@@ -65,6 +65,7 @@ from typing import Any
 import numpy as np
 
 from dicert import __version__
+from dicert._io import write_temp_sibling
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 
 #: Exit code of ``dicert certify`` when the protocol aborts (a normal, recorded outcome).
@@ -1085,7 +1086,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         bits_path = out / BITS_NAME
         record_path = out / RECORD_NAME
         if extraction is not None:
-            tmp_files.append(_write_temp(out, BITS_NAME, extraction.output))
+            tmp_files.append(write_temp_sibling(out / BITS_NAME, extraction.output, 0o600))
         timings["write"] = time.perf_counter() - t4
         volatile = {"timestamps": {"started": started, "finished": _now(clock)},
                     "timings_s": {k: round(v, 6) for k, v in timings.items()}}
@@ -1096,7 +1097,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
 
         record = seal_record(body, signer)
         rec_bytes = record_bytes(record)
-        tmp_files.append(_write_temp(out, RECORD_NAME, rec_bytes))
+        tmp_files.append(write_temp_sibling(out / RECORD_NAME, rec_bytes))
         # Commit point: rename into place (bits first, record last).
         if extraction is not None:
             os.replace(tmp_files[0], bits_path)
@@ -1141,20 +1142,6 @@ def _success_index(finite: Any) -> int | None:
     det = getattr(finite, "details", None)
     v = det.get("success_trial_index") if isinstance(det, Mapping) else None
     return int(v) if isinstance(v, int) else None
-
-
-def _write_temp(directory: Path, name: str, data: bytes) -> Path:
-    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=directory)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
-    return Path(tmp)
 
 
 def _load_key(key: Any) -> Any:

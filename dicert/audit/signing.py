@@ -24,10 +24,10 @@ import dataclasses
 import hashlib
 import os
 import re
-import tempfile
 from pathlib import Path
 from typing import Any
 
+from dicert._io import write_temp_sibling
 from dicert.errors import ParameterError, VerificationError
 
 __all__ = [
@@ -238,21 +238,6 @@ def load_public_key(path: str | os.PathLike[str]) -> Any:
     return key
 
 
-def _write_temp(target: Path, data: bytes, mode: int) -> str:
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            os.fchmod(fh.fileno(), mode)
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
-    return tmp
-
-
 def write_keypair(
     path: str | os.PathLike[str], keypair: KeyPair | None = None, *, force: bool = False
 ) -> KeyFiles:
@@ -290,10 +275,10 @@ def write_keypair(
         serialization.Encoding.PEM, serialization.PublicFormat.SubjectPublicKeyInfo
     )
     private_path.parent.mkdir(parents=True, exist_ok=True)
-    temps: list[str] = []
+    temps: list[Path] = []
     try:
-        temps.append(_write_temp(private_path, private_pem, 0o600))
-        temps.append(_write_temp(public_path, public_pem, 0o644))
+        temps.append(write_temp_sibling(private_path, private_pem, 0o600))
+        temps.append(write_temp_sibling(public_path, public_pem, 0o644))
         os.replace(temps[0], private_path)
         os.replace(temps[1], public_path)
     finally:
