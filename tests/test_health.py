@@ -214,3 +214,11 @@ def test_inputs_and_n_bits(tmp_path):
         run_health_checks(data, alpha=0.0)
     with pytest.raises(ParameterError, match="128"):
         longest_run_test(np.ones(100, dtype=np.uint8))
+
+
+def test_agreed_interface_name_in_extract_module():
+    # The pipeline imports run_health_checks from dicert.extract (cross-helper interface).
+    from dicert import extract, health
+
+    assert extract.run_health_checks is health.run_health_checks
+    assert extract.HealthReport is health.HealthReport
