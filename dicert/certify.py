@@ -837,6 +837,7 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "output_bits": int(analysis.output_bits),
         "output_sha256": extraction.output_sha256 if extraction is not None else None,
         "method": getattr(extraction, "method", None) if extraction is not None else None,
+        "convention": _extractor_convention(),
     }
     assumptions = list(ASSUMPTIONS)
     side = str(fin.side_information)
@@ -1136,6 +1137,12 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         stop_trial_index=scan.stop_trial_index,
         success_trial_index=_success_index(analysis.finite), ended_by=scan.ended_by,
     )
+
+
+def _extractor_convention() -> str:
+    from dicert.extract import CONVENTION
+
+    return CONVENTION
 
 
 def _success_index(finite: Any) -> int | None:
