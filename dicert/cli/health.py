@@ -21,7 +21,8 @@ def health_cmd(
     alpha: Annotated[float, typer.Option("--alpha", help="Significance level of each test.")] = 0.01,
     as_json: JsonFlag = False,
 ) -> None:
-    """Run SP 800-22 rev. 1a tests 2.1-2.4 and the SP 800-90B 6.3.1 most-common-value estimate.
+    """Screen output bits with NIST SP 800-22 (revision 1a) tests 2.1-2.4 and the SP 800-90B 6.3.1
+    most-common-value estimate.
 
     Exit code 1 if an applicable test fails (ideal bits fail each test with probability
     alpha). Passing proves nothing about unpredictability.
