@@ -43,6 +43,13 @@ def handle_errors(func: F) -> F:
         except FileNotFoundError as exc:
             typer.echo(f"dicert: error: {exc.filename}: no such file", err=True)
             raise typer.Exit(code=2) from None
+        except ModuleNotFoundError as exc:
+            typer.echo(
+                f"dicert: error: the library {exc.name!r} is not installed; reinstall dicert "
+                "with its dependencies (pip install dicert)",
+                err=True,
+            )
+            raise typer.Exit(code=2) from None
 
     return wrapper  # type: ignore[return-value]
 
