@@ -59,8 +59,24 @@ def count_blocks(codes: np.ndarray, block_len: int) -> tuple[np.ndarray, int]:
         return count_blocks_numpy(codes, block_len)
     nblocks = max(1, -(-codes.size // block_len))
     out = np.zeros((nblocks, NCODES), dtype=np.int64)
-    or_all = kernel(codes, block_len, out)
-    return out, int(or_all)
+    if codes.size < _PARALLEL_MIN or nblocks < 2:
+        return out, int(kernel(codes, block_len, out))
+    # Two threads on the two halves (split at a block boundary); the kernel releases the GIL.
+    mid = (nblocks // 2) * block_len
+    pool = _pool()
+    left = pool.submit(kernel, codes[:mid], block_len, out[: nblocks // 2])
+    or_right = kernel(codes[mid:], block_len, out[nblocks // 2 :])
+    return out, int(left.result()) | int(or_right)
+
+
+_PARALLEL_MIN = 1 << 22
+
+
+@functools.cache
+def _pool():
+    from concurrent.futures import ThreadPoolExecutor
+
+    return ThreadPoolExecutor(max_workers=1, thread_name_prefix="dicert-count")
 
 
 def kernel_name() -> str:

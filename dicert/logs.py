@@ -336,23 +336,31 @@ class TrialLog:
 
     # -- streaming ----------------------------------------------------------------------------
     def iter_chunks(
-        self, chunk_trials: int = DEFAULT_CHUNK_TRIALS, *, hasher=None
+        self, chunk_trials: int = DEFAULT_CHUNK_TRIALS, *, hasher=None, hash_files: bool = True,
+        reuse_buffers: bool = False,
     ) -> Iterator[LogChunk]:
         """Yield the trials in order, ``chunk_trials`` at a time (memory stays flat).
 
         If ``hasher`` (a hashlib object) is given, every byte of every file is fed into it.
-        ``file_infos`` is filled as files are completed.
+        ``file_infos`` is filled as files are completed (with each file's SHA-256 unless
+        ``hash_files`` is false). With ``reuse_buffers`` a binary file is read into two
+        alternating buffers: each chunk's ``codes`` are then valid only until the next chunk is
+        requested (for consumers that do not keep them, such as counting).
         """
         if chunk_trials <= 0:
             raise ParameterError("chunk_trials must be positive")
         start = 0
         self.file_infos = []
         for path, fmt in zip(self.files, self.formats):
-            file_hasher = hashlib.sha256()
-            hashers = [file_hasher] + ([hasher] if hasher is not None else [])
-            reader = {"csv": _iter_csv, "binary": _iter_binary, "npz": _iter_npz}[fmt]
+            file_hasher = hashlib.sha256() if hash_files else None
+            hashers = [h for h in (file_hasher, hasher) if h is not None]
+            multi = _MultiHash(hashers)
+            if fmt == "binary":
+                chunks = _iter_binary(path, chunk_trials, multi if hashers else None, reuse_buffers)
+            else:
+                chunks = {"csv": _iter_csv, "npz": _iter_npz}[fmt](path, chunk_trials, multi)
             trials_here = 0
-            for codes in reader(path, chunk_trials, _MultiHash(hashers)):
+            for codes in chunks:
                 if codes.size == 0:
                     continue
                 yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
@@ -365,7 +373,7 @@ class TrialLog:
                     path=str(path),
                     format=fmt,
                     size_bytes=path.stat().st_size,
-                    sha256=file_hasher.hexdigest(),
+                    sha256=file_hasher.hexdigest() if file_hasher is not None else None,
                     trials=trials_here,
                 )
             )
@@ -426,11 +434,12 @@ def read_binary_header(fh, path) -> tuple[int, int, bytes]:
     return flags, count, head
 
 
-def _iter_binary(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
+def _iter_binary(path: Path, chunk_trials: int, hasher, reuse: bool = False) -> Iterator[np.ndarray]:
     size = path.stat().st_size
     with _open_checked(path) as fh:
         flags, count, head = read_binary_header(fh, path)
-        hasher.update(head)
+        if hasher is not None:
+            hasher.update(head)
         body = size - BINARY_HEADER_SIZE
         if count == COUNT_STREAMED:
             if body < TRAILER.size or _read_at(path, size - TRAILER.size, 1)[0] != TRAILER_MARK:
@@ -462,17 +471,30 @@ def _iter_binary(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
         valid_mask = 0x1F if flags & FLAG_HAS_T else 0x0F
         remaining = count
         offset = BINARY_HEADER_SIZE
-        pool = concurrent.futures.ThreadPoolExecutor(max_workers=1)
+        pool = concurrent.futures.ThreadPoolExecutor(max_workers=1) if hasher is not None else None
         pending = None
+        # With reuse, two buffers alternate (no fresh allocation, hence no page faults, per
+        # chunk). Buffer k % 2 is refilled only after the hash of chunk k - 2, which used it,
+        # has completed: that wait happens before chunk k - 1's hash is submitted below.
+        bufs = [np.empty(min(chunk_trials, remaining), np.uint8) for _ in range(2)] if reuse else None
+        k = 0
         try:
             while remaining > 0:
                 want = min(chunk_trials, remaining)
-                data = fh.read(want)
-                if len(data) < want:
-                    raise LogFormatError(path, f"byte offset {offset + len(data)}", "truncated")
+                if bufs is not None:
+                    view = memoryview(bufs[k % 2])[:want]
+                    got = fh.readinto(view)
+                    data = view[:got]
+                else:
+                    data = fh.read(want)
+                    got = len(data)
+                k += 1
+                if got < want:
+                    raise LogFormatError(path, f"byte offset {offset + got}", "truncated")
                 if pending is not None:
                     pending.result()
-                pending = pool.submit(hasher.update, data)  # hashing overlaps counting
+                if pool is not None:
+                    pending = pool.submit(hasher.update, data)  # hashing overlaps counting
                 codes = np.frombuffer(data, dtype=np.uint8)
                 _check_reserved(codes, valid_mask, path, offset)
                 yield codes
@@ -480,10 +502,11 @@ def _iter_binary(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
                 remaining -= want
             if pending is not None:
                 pending.result()
-            if tail:
+            if tail and hasher is not None:
                 hasher.update(fh.read(tail))
         finally:
-            pool.shutdown(wait=True)
+            if pool is not None:
+                pool.shutdown(wait=True)
 
 
 def _read_at(path: Path, offset: int, n: int) -> bytes:
@@ -848,7 +871,9 @@ def summarize_log(
     partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
     in_partial = 0
     trials = 0
-    for chunk in log.iter_chunks(chunk_trials, hasher=hasher):
+    # Without a consumer of the chunks the buffers can be reused (nothing keeps the codes).
+    for chunk in log.iter_chunks(chunk_trials, hasher=hasher, hash_files=digest,
+                                 reuse_buffers=on_chunk is None):
         codes = chunk.codes
         pos = 0
         if in_partial:

@@ -95,8 +95,29 @@ def stderr_console():
     return Console(stderr=True)
 
 
+class _NoProgress:
+    """Stand-in for a rich Progress when stderr is not a terminal (and rich need not load)."""
+
+    def __enter__(self) -> _NoProgress:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        return None
+
+    def add_task(self, *args: Any, **kwargs: Any) -> int:
+        return 0
+
+    def update(self, *args: Any, **kwargs: Any) -> None:
+        return None
+
+    def advance(self, *args: Any, **kwargs: Any) -> None:
+        return None
+
+
 def progress_bar(transient: bool = True):
-    """A rich progress bar on stderr (hidden when stderr is not a terminal)."""
+    """A rich progress bar on stderr; a silent stand-in when stderr is not a terminal."""
+    if not sys.stderr.isatty():
+        return _NoProgress()
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
     return Progress(
@@ -106,7 +127,6 @@ def progress_bar(transient: bool = True):
         TimeRemainingColumn(),
         console=stderr_console(),
         transient=transient,
-        disable=not sys.stderr.isatty(),
     )
 
 
