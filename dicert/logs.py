@@ -637,7 +637,7 @@ def _read_csv_header(fh, path) -> tuple[list[str], int]:
         if not text or text.startswith(b"#"):
             continue
         try:
-            names = [c.strip().lower() for c in text.decode("utf-8").split(",")]
+            names = [c.strip().lower() for c in text.decode("utf-8-sig").split(",")]
         except UnicodeDecodeError:
             raise LogFormatError(path, f"line {lineno}", "header row is not UTF-8 text") from None
         for req in ("x", "y", "a", "b"):

@@ -137,6 +137,13 @@ def test_csv_comments_blank_lines_extra_columns_crlf(tmp_path):
     assert tr.t.tolist() == [1, 0, 1]
 
 
+def test_csv_with_byte_order_mark(tmp_path):
+    # Spreadsheet exports often start with a UTF-8 byte-order mark (Unicode 15, section 23.8).
+    p = tmp_path / "bom.csv"
+    p.write_bytes(b"\xef\xbb\xbfx,y,a,b\n0,1,1,0\n")
+    assert read_trials(p).codes().tolist() == [0b0110]
+
+
 def test_binary_streamed_writer_and_trailer(tmp_path, rng):
     tr = random_trials(rng, 500)
     p = tmp_path / "live.btl"
