@@ -66,6 +66,7 @@ import numpy as np
 
 from dicert import __version__
 from dicert._io import write_temp_sibling
+from dicert._plain import plain
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 
 #: Exit code of ``dicert certify`` when the protocol aborts (a normal, recorded outcome).
@@ -747,31 +748,6 @@ def _estimate_eps(protocol: Any) -> float:
 
 
 # --------------------------------------------------------------------------- record body
-
-
-def plain(obj: Any) -> Any:
-    """Convert dataclasses, numpy values, tuples and paths into JSON values (finite floats)."""
-    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
-        return {f.name: plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
-    if isinstance(obj, Mapping):
-        return {str(k): plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [plain(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return plain(obj.tolist())
-    if isinstance(obj, np.generic):
-        return plain(obj.item())
-    if isinstance(obj, bool) or obj is None or isinstance(obj, (int, str)):
-        return obj
-    if isinstance(obj, float):
-        if math.isnan(obj):
-            return None
-        if math.isinf(obj):
-            return "inf" if obj > 0 else "-inf"
-        return obj
-    if isinstance(obj, os.PathLike):
-        return os.fspath(obj)
-    return str(obj)
 
 
 def _single_round(estimate: Any) -> dict:

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import functools
 import json
-import math
 import sys
 from collections.abc import Callable
 from typing import Annotated, Any, TypeVar
@@ -54,32 +53,16 @@ def handle_errors(func: F) -> F:
     return wrapper  # type: ignore[return-value]
 
 
-def _jsonable(obj: Any) -> Any:
-    import dataclasses
-
-    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
-        return {f.name: _jsonable(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if hasattr(obj, "tolist"):  # numpy arrays and scalars
-        return _jsonable(obj.tolist())
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None if math.isnan(obj) else ("inf" if obj > 0 else "-inf")
-    if hasattr(obj, "__fspath__"):
-        return str(obj)
-    return obj
-
-
 def to_jsonable(obj: Any) -> Any:
     """Convert dataclasses, numpy values and paths into plain JSON values."""
-    return _jsonable(obj)
+    from dicert._plain import plain
+
+    return plain(obj)
 
 
 def emit_json(obj: Any) -> None:
     """Write ``obj`` as JSON on stdout (one document, sorted keys)."""
-    sys.stdout.write(json.dumps(_jsonable(obj), indent=2, sort_keys=True) + "\n")
+    sys.stdout.write(json.dumps(to_jsonable(obj), indent=2, sort_keys=True) + "\n")
     sys.stdout.flush()
 
 

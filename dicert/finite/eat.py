@@ -241,10 +241,10 @@ def optimise_df(w_c: float, n: float, gamma: float, eps_s: float, eps_ea: float,
     var_u = u * (1.0 - gamma * u)
 
     def neg(p):
-        w, l = p
-        if not (w_lo < w < w_hi and lo_l <= l <= hi_l):
+        w, log_am1 = p  # tangent point and ln(alpha - 1)
+        if not (w_lo < w < w_hi and lo_l <= log_am1 <= hi_l):
             return 1e6
-        v = _df_rate_scalar(w, math.exp(l), w_c, n, gamma, g_eps, log_inv_ea, var_u)
+        v = _df_rate_scalar(w, math.exp(log_am1), w_c, n, gamma, g_eps, log_inv_ea, var_u)
         return -v if math.isfinite(v) else 1e6
 
     best = (float(wt[i]), float(la[j]), float(r[i, j]))
