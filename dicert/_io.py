@@ -71,6 +71,20 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
         fh.write(data)
 
 
+def read_user_file(path: str | os.PathLike[str], what: str, error: type[Exception]) -> bytes:
+    """Bytes of an input file named by the user; problems become ``error`` with one line
+    naming the file (e.g. ``read_user_file(p, "seed file", SeedError)``)."""
+    p = Path(path)
+    try:
+        return p.read_bytes()
+    except FileNotFoundError:
+        raise error(f"{p}: {what} not found") from None
+    except IsADirectoryError:
+        raise error(f"{p}: is a directory, expected a {what}") from None
+    except OSError as exc:
+        raise error(f"{p}: cannot read {what} ({exc.strerror})") from None
+
+
 def sha256_file(path: str | os.PathLike[str], chunk: int = 1 << 22) -> str:
     """Hex SHA-256 of a file's bytes, read in chunks."""
     h = hashlib.sha256()

@@ -65,7 +65,7 @@ from typing import Any
 import numpy as np
 
 from dicert import __version__
-from dicert._io import write_temp_sibling
+from dicert._io import read_user_file, write_temp_sibling
 from dicert._plain import plain
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 
@@ -908,14 +908,7 @@ def read_seed(seed: bytes | str | os.PathLike[str]) -> tuple[bytes, str]:
     if isinstance(seed, (bytes, bytearray, memoryview)):
         return bytes(seed), "seed"
     p = Path(seed)
-    try:
-        data = p.read_bytes()
-    except FileNotFoundError:
-        raise SeedError(f"{p}: seed file not found") from None
-    except IsADirectoryError:
-        raise SeedError(f"{p}: is a directory, expected a seed file of raw bytes") from None
-    except OSError as exc:
-        raise SeedError(f"{p}: cannot read seed file ({exc.strerror})") from None
+    data = read_user_file(p, "seed file (raw bytes)", SeedError)
     if not data:
         raise SeedError(f"{p}: seed file is empty")
     return data, str(p)

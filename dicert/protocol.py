@@ -400,15 +400,10 @@ def load_protocol(path: str | os.PathLike[str]) -> Protocol:
         If the file is missing, not TOML, or any key is missing or invalid; the message
         names the file and the key.
     """
+    from dicert._io import read_user_file
+
     p = Path(path)
-    try:
-        data = p.read_bytes()
-    except FileNotFoundError:
-        raise ProtocolError(f"{p}: protocol file not found") from None
-    except IsADirectoryError:
-        raise ProtocolError(f"{p}: is a directory, expected a protocol file (.toml)") from None
-    except OSError as exc:
-        raise ProtocolError(f"{p}: cannot read protocol file ({exc.strerror})") from None
+    data = read_user_file(p, "protocol file (.toml)", ProtocolError)
     return protocol_from_bytes(data, str(p), path=str(p))
 
 
