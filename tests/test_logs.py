@@ -301,3 +301,49 @@ def test_compiled_kernel_is_in_use():
     if os.environ.get("DICERT_PURE_PYTHON"):
         pytest.skip("pure-Python mode requested")
     assert kernel_name() == "C"
+
+
+@given(data=st.binary(max_size=400), ext=st.sampled_from(["csv", "btl", "npz", "csv.gz"]))
+def test_arbitrary_bytes_give_a_log_error_or_a_log(tmp_path_factory, data, ext):
+    """Fuzz: any file content either reads or raises LogFormatError (never another exception)."""
+    p = tmp_path_factory.mktemp("fz") / f"f.{ext}"
+    p.write_bytes(data)
+    try:
+        s = summarize_log(p)
+    except LogFormatError as exc:
+        assert str(p) in str(exc) and "\n" not in str(exc)
+    else:
+        assert s.trials > 0
+
+
+@given(
+    codes=st.lists(st.integers(0, 31), min_size=1, max_size=50),
+    pos=st.integers(0, 10_000),
+    byte=st.integers(0, 255),
+)
+def test_corrupted_binary_log_is_read_or_rejected(tmp_path_factory, codes, pos, byte):
+    """Fuzz: one corrupted byte in a valid binary log is either harmless or a LogFormatError."""
+    p = tmp_path_factory.mktemp("fb") / "f.btl"
+    write_log(p, TrialArrays.from_codes(np.array(codes, np.uint8), True))
+    data = bytearray(p.read_bytes())
+    data[pos % len(data)] = byte
+    p.write_bytes(bytes(data))
+    try:
+        s = summarize_log(p)
+    except LogFormatError as exc:
+        assert "byte offset" in str(exc)
+    else:
+        assert s.trials == len(codes)
+
+
+@given(text=st.text(alphabet="01,\n\r #xyabt2", max_size=200))
+def test_csv_like_text_gives_a_log_error_or_a_log(tmp_path_factory, text):
+    """Fuzz near the CSV grammar: read, or one LogFormatError naming the file."""
+    p = tmp_path_factory.mktemp("fc") / "f.csv"
+    p.write_bytes(text.encode())
+    try:
+        s = summarize_log(p)
+    except LogFormatError as exc:
+        assert str(p) in str(exc)
+    else:
+        assert s.counts.sum() == s.trials > 0
