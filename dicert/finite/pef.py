@@ -65,8 +65,19 @@ LN2 = math.log(2.0)
 
 #: Box models: no-signalling polytope, or the polytope cut from it by the Tsirelson bounds.
 MODELS = ("ns", "tsirelson")
-#: How the anticipated distribution (and hence the PEF) is fixed before the analysis trials.
-CALIBRATIONS = ("prefix", "isotropic", "table")
+#: How the anticipated distribution (and hence the PEF) is fixed before the analysis trials;
+#: "adaptive" re-fits it before every block of analysis trials from all earlier trials.
+CALIBRATIONS = ("prefix", "isotropic", "table", "adaptive")
+#: The PEF of the first block under calibration = "adaptive": the trivial PEF F = 1 (the first
+#: block only trains the next one), or one built for an anticipated isotropic box or table.
+INITIAL_RULES = ("trivial", "isotropic", "table")
+#: Default block length of calibration = "adaptive". One re-fit (maximum-likelihood box plus a
+#: validated PEF) costs ~30-100 ms while scoring runs at several hundred M trials/s, so blocks of
+#: 10^7 trials keep the amortised rate above 100 M trials/s (see dicert.benchmarks.pef).
+DEFAULT_BLOCK_TRIALS = 10_000_000
+#: Under calibration = "adaptive" the result lists every block's factor table when the run
+#: has at most this many blocks; beyond it only the tables' SHA-256 digests are listed.
+BLOCK_TABLES_LISTED_MAX = 64
 
 #: Margin by which every vertex row of a produced PEF stays below 1 (relative). The float64
 #: evaluation of a row of 16 non-negative terms is accurate to ~1e-15, and the settings
@@ -688,6 +699,19 @@ def build_pef(rho: Any, settings: SettingsModel | None = None, beta: float = 0.0
     return make_valid(raw, beta, model, settings, lam=lam, rho=rho, solver=info)
 
 
+def trivial_pef(settings: SettingsModel | None = None, beta: float = 0.01, *,
+                model: str = "ns") -> Pef:
+    """The trivial PEF F = 1 (every vertex row is at most 1, fact (b) of the methods note),
+    passed through :func:`make_valid` like any other, hence shrunk by the row margin.
+
+    Scoring a trial with it leaves log2 T unchanged (up to the ~1e-12 bit margin), so under
+    calibration = "adaptive" with initial = "trivial" the first block only trains the next.
+    """
+    settings = uniform_settings() if settings is None else settings
+    return make_valid(np.ones((4, 4)), beta, model, settings, lam=0.0,
+                      solver={"solver": "none", "status": "trivial PEF"})
+
+
 # =========================================================================== diagnostics
 
 
@@ -771,13 +795,25 @@ class PefParams:
     calibration : str
         "prefix" (the first ``calibration_trials`` trials of the log fix the PEF and are not
         analysed), "isotropic" (an anticipated isotropic box with CHSH ``calibration_chsh``),
-        or "table" (an anticipated box ``calibration_table``, 16 numbers p(ab|xy) in code order).
+        "table" (an anticipated box ``calibration_table``, 16 numbers p(ab|xy) in code order),
+        or "adaptive" (every trial is analysed; the trials are split into blocks of
+        ``block_trials`` and the PEF of block k is built from the maximum-likelihood box of
+        the trials before block k, never from block k itself; the first block uses the rule
+        ``initial``).
     calibration_trials : int
         For "prefix".
     calibration_chsh : float | None
-        For "isotropic".
+        For "isotropic", and for "adaptive" with initial = "isotropic".
     calibration_table : tuple | None
-        For "table".
+        For "table", and for "adaptive" with initial = "table".
+    block_trials : int
+        For "adaptive": trials per block (default :data:`DEFAULT_BLOCK_TRIALS`); 0 otherwise.
+    initial : str | None
+        For "adaptive": the PEF of the first block, "trivial" (F = 1: the block scores
+        nothing and only trains the next one; default), "isotropic" or "table".
+    fit_window_blocks : int
+        For "adaptive": fit block k's box to the trials of the last ``fit_window_blocks``
+        blocks before it (0, the default: all trials before block k).
     p_x0, p_y0, bias_x, bias_y : float
         Test-round settings probabilities P(x=0), P(y=0) and the bounds on their deviation
         (partly known settings); the test-round probability and generation settings come from
@@ -798,9 +834,18 @@ class PefParams:
     p_y0: float = 0.5
     bias_x: float = 0.0
     bias_y: float = 0.0
+    block_trials: int = 0
+    initial: str | None = None
+    fit_window_blocks: int = 0
 
     def __post_init__(self) -> None:
-        PefParams.from_mapping(dataclasses.asdict(self), "PefParams")
+        d = dataclasses.asdict(self)
+        for key in ADAPTIVE_KEYS:  # left at the dataclass default: use the rule's default
+            if d[key] in (None, 0):
+                del d[key]
+        checked = PefParams.from_mapping(d, "PefParams")
+        for key in ADAPTIVE_KEYS:
+            object.__setattr__(self, key, getattr(checked, key))
 
     @property
     def threshold_log2(self) -> float:
@@ -865,12 +910,32 @@ class PefParams:
             "bias_y": num("bias_y", 0.0, 0.5, lo_open=False, default=0.0),
             "calibration_chsh": None,
             "calibration_table": None,
+            "block_trials": 0,
+            "initial": None,
+            "fit_window_blocks": 0,
         }
         for key, p in (("bias_x", "p_x0"), ("bias_y", "p_y0")):
             if vals[key] >= min(vals[p], 1.0 - vals[p]):
                 raise fail(key, f"must be below min({p}, 1 - {p}) = "
                                 f"{min(vals[p], 1 - vals[p]):g}")
         cal = vals["calibration"]
+        # The rule that fixes the anticipated box of the (first) PEF.
+        anticipated = cal
+        if cal == "adaptive":
+            vals["initial"] = choice("initial", INITIAL_RULES, "trivial")
+            vals["block_trials"] = integer("block_trials", 1, DEFAULT_BLOCK_TRIALS)
+            vals["fit_window_blocks"] = integer("fit_window_blocks", 0, 0)
+            if vals["lam"] <= 0.0:
+                # lam > 0 keeps every factor of a producible trial positive in every block, so
+                # the trials with factor 0 are the same (those outside the settings model) for
+                # all blocks.
+                raise fail("lam", "calibration = \"adaptive\" needs lam > 0 (no zero factors "
+                                  "in any block's PEF)")
+            anticipated = vals["initial"]
+        else:
+            for key in ("initial", "block_trials", "fit_window_blocks"):
+                if d.get(key) not in (None, 0):
+                    raise fail(key, "only used with calibration = \"adaptive\"")
         if cal == "prefix":
             if vals["calibration_trials"] < 1:
                 raise fail("calibration_trials", "calibration = \"prefix\" needs a positive "
@@ -878,11 +943,12 @@ class PefParams:
         else:
             if d.get("calibration_trials"):
                 raise fail("calibration_trials", "only used with calibration = \"prefix\"")
-        if cal == "isotropic":
+        if anticipated == "isotropic":
             vals["calibration_chsh"] = num("calibration_chsh", 2.0, 2.0 * SQRT2, hi_open=False)
         elif "calibration_chsh" in d and d["calibration_chsh"] is not None:
-            raise fail("calibration_chsh", "only used with calibration = \"isotropic\"")
-        if cal == "table":
+            raise fail("calibration_chsh", "only used with calibration = \"isotropic\" (or "
+                                           "\"adaptive\" with initial = \"isotropic\")")
+        if anticipated == "table":
             tab = d.get("calibration_table")
             if not isinstance(tab, (list, tuple)) or len(tab) != 16:
                 raise fail("calibration_table", "expected 16 numbers p(ab|xy), index 8x+4y+2a+b")
@@ -894,7 +960,8 @@ class PefParams:
                 raise fail("calibration_table", "each group of 4 (one setting pair) must sum to 1")
             vals["calibration_table"] = tuple(float(v) for v in tab)
         elif "calibration_table" in d and d["calibration_table"] is not None:
-            raise fail("calibration_table", "only used with calibration = \"table\"")
+            raise fail("calibration_table", "only used with calibration = \"table\" (or "
+                                            "\"adaptive\" with initial = \"table\")")
         obj = object.__new__(cls)
         for k, v in vals.items():
             object.__setattr__(obj, k, v)
@@ -905,17 +972,25 @@ class PefParams:
                                     bias_y=self.bias_y)
 
     def anticipated_box(self) -> np.ndarray | None:
-        """The anticipated box for the fixed calibrations (None for "prefix")."""
-        if self.calibration == "isotropic":
+        """The anticipated box fixed in advance: for "isotropic" and "table", and for
+        "adaptive" that of its first block (None for "prefix" and initial = "trivial")."""
+        rule = self.initial if self.calibration == "adaptive" else self.calibration
+        if rule == "isotropic":
             return box_from_chsh(self.calibration_chsh)
-        if self.calibration == "table":
+        if rule == "table":
             return _as_box(np.array(self.calibration_table), "calibration_table")
         return None
 
     def to_dict(self) -> dict:
+        """The parameters as plain values; the adaptive keys only under "adaptive" (so the
+        records of the fixed calibrations keep their form)."""
+        skip = () if self.calibration == "adaptive" else ADAPTIVE_KEYS
         return {f.name: (list(v) if isinstance(v := getattr(self, f.name), tuple) else v)
-                for f in dataclasses.fields(self)}
+                for f in dataclasses.fields(self) if f.name not in skip}
 
+
+#: Keys of :class:`PefParams` used only by calibration = "adaptive".
+ADAPTIVE_KEYS = ("block_trials", "initial", "fit_window_blocks")
 
 #: Sub-block length of the scoring pass: counts per sub-block locate the threshold crossing;
 #: only sub-blocks that could contain it are scanned trial by trial.
@@ -923,13 +998,14 @@ SUB_BLOCK = 4096
 
 
 def _scan_exact(codes: np.ndarray, table: np.ndarray, base_counts: np.ndarray,
-                threshold: float) -> int:
+                threshold: float, prior: tuple[float, float] | None = None) -> int:
     """First index i with log2 T (base_counts + codes[:i+1]) >= threshold + allowance, else -1.
 
     Candidates come from a float64 running sum with a rounding band; each is confirmed from
-    the exact counts (math.fsum), so the answer does not depend on summation order.
+    the exact counts (math.fsum), so the answer does not depend on summation order. ``prior``
+    is the (score, allowance) of earlier blocks scored with other tables (see :func:`_combine`).
     """
-    s0, _ = _score(base_counts, table)
+    s0, _ = _combine(prior, base_counts, table)
     if s0 == -math.inf:
         return -1
     with np.errstate(invalid="ignore"):
@@ -937,7 +1013,7 @@ def _scan_exact(codes: np.ndarray, table: np.ndarray, base_counts: np.ndarray,
     band = _band(s0, codes.size, table)
     for i in np.flatnonzero(run >= threshold - band):
         cnt = base_counts + np.bincount(codes[: i + 1], minlength=256)
-        s, allowance = _score(cnt, table)
+        s, allowance = _combine(prior, cnt, table)
         if s - allowance >= threshold:
             return int(i)
     return -1
@@ -957,13 +1033,25 @@ class PefAccumulator:
     anticipated box and are NOT analysed; the PEF is built from them alone when the last of
     them arrives. A trial whose (t, x, y) the settings model cannot produce gets factor 0.
 
+    With calibration = "adaptive" every trial is analysed, in blocks of ``block_trials``. The
+    PEF of block 0 comes from the rule ``initial``; that of block k >= 1 is built (same beta,
+    model, lam and settings) for the maximum-likelihood box of the trials of the blocks before
+    k (all of them, or the last ``fit_window_blocks``), when the first trial of block k
+    arrives: it depends only on the past, as the probability estimate requires
+    (Knill, Zhang & Bierhorst 2020, the factor of trial i fixed before trial i). The exact
+    counts of each block are kept; log2 T is the sum over blocks of counts x that block's
+    log2 F table (math.fsum per block and over the blocks, with the rounding allowances
+    added). :attr:`pef` is the PEF of the current block. If the solver fails on a re-fit, the
+    previous block's PEF is kept (it also depends only on the past); the block records say so.
+
     Parameters
     ----------
     params : PefParams
     design : SettingsDesign or None
         Test-round probability and generation settings (None: uniform, every round a test).
     pef : Pef, optional
-        Use this PEF (it must have the power ``params.beta``) instead of building one.
+        Use this PEF (it must have the power ``params.beta``) instead of building one (under
+        calibration = "adaptive": for the first block, instead of the rule ``initial``).
     """
 
     def __init__(self, params: PefParams, design: Any = None, *, pef: Pef | None = None) -> None:
@@ -971,19 +1059,39 @@ class PefAccumulator:
         self.settings = params.settings_model(design)
         self.threshold = params.threshold_log2
         self._cal_counts = np.zeros(256, dtype=np.int64)
-        self._counts = np.zeros(256, dtype=np.int64)
+        self._counts = np.zeros(256, dtype=np.int64)  # the current block's trials
         self.trials_seen = 0
         self.success_index: int | None = None
         self.calibration_box: np.ndarray | None = None
         self.pef: Pef | None = None
+        # calibration = "adaptive": the closed blocks (exact counts, scores, records).
+        self._adaptive = params.calibration == "adaptive"
+        self._prior: tuple[float, float] | None = None
+        self._closed_trials = 0
+        self._closed_outside = 0
+        self._closed_scores: list[float] = []
+        self._closed_allowances: list[float] = []
+        self._block_counts: list[np.ndarray] = []
+        self._blocks: list[dict] = []
         if pef is not None:
             if abs(pef.beta - params.beta) > 0.0:
                 raise ParameterError(f"PEF power {pef.beta} differs from params.beta "
                                      f"{params.beta}")
             self.pef = pef
             self._cal_needed = 0
+            if self._adaptive:
+                self._start_block(pef, None, "initial: PEF given by the caller", None)
         elif params.calibration == "prefix":
             self._cal_needed = params.calibration_trials
+        elif self._adaptive:
+            self._cal_needed = 0
+            box = params.anticipated_box()
+            if box is None:
+                first = trivial_pef(self.settings, params.beta, model=params.model)
+            else:
+                first = build_pef(box, self.settings, params.beta, model=params.model,
+                                  lam=params.lam)
+            self._start_block(first, box, f"initial: {params.initial}", None)
         else:
             self._cal_needed = 0
             self.calibration_box = params.anticipated_box()
@@ -997,7 +1105,7 @@ class PefAccumulator:
 
     @property
     def analysis_trials(self) -> int:
-        return int(self._counts.sum())
+        return self._closed_trials + int(self._counts.sum())
 
     @property
     def succeeded(self) -> bool:
@@ -1006,8 +1114,8 @@ class PefAccumulator:
     @property
     def dead(self) -> bool:
         """True once a trial outside the settings model was analysed (success impossible)."""
-        return self.pef is not None and bool(np.any(self._counts[~np.isfinite(
-            self.pef.log2_table)] > 0))
+        return self._closed_outside > 0 or (self.pef is not None and bool(np.any(
+            self._counts[~np.isfinite(self.pef.log2_table)] > 0)))
 
     @property
     def done(self) -> bool:
@@ -1018,7 +1126,7 @@ class PefAccumulator:
         """(log2 T over the analysed trials, rounding allowance), from the exact counts."""
         if self.pef is None:
             return 0.0, 0.0
-        return _score(self._counts, self.pef.log2_table)
+        return _combine(self._prior, self._counts, self.pef.log2_table)
 
     # ------------------------------------------------------------------ feeding
     def update(self, codes: Any) -> bool:
@@ -1042,6 +1150,12 @@ class PefAccumulator:
                 continue
             # Slices of at most 2^20 trials: early stopping wastes at most one slice of counting.
             take = min(c.size - pos, self.params.n_max - self.analysis_trials, 1 << 20)
+            if self._adaptive:
+                in_block = int(self._counts.sum())
+                if in_block >= self.params.block_trials:
+                    self._next_block()
+                    in_block = 0
+                take = min(take, self.params.block_trials - in_block)
             self._analyse(c[pos:pos + take])
             pos += take
         return self.succeeded
@@ -1053,6 +1167,75 @@ class PefAccumulator:
         self.calibration_box = fit_box(n_zc, self.params.model)
         self.pef = build_pef(self.calibration_box, self.settings, self.params.beta,
                              model=self.params.model, lam=self.params.lam)
+
+    def _start_block(self, pef: Pef, box: np.ndarray | None, source: str,
+                     fit: tuple[int, int] | None) -> None:
+        self.pef = pef
+        self.calibration_box = box
+        self._blocks.append({"first_trial": self.trials_seen, "source": source,
+                             "fit_first_trial": None if fit is None else fit[0],
+                             "fit_trials": 0 if fit is None else fit[1], "pef": pef})
+
+    def _next_block(self) -> None:
+        """Close the current block and build the next block's PEF from earlier trials only."""
+        p = self.params
+        table = self.pef.log2_table
+        s, a = _score(self._counts, table)
+        self._blocks[-1]["score"] = s
+        self._closed_scores.append(s)
+        self._closed_allowances.append(a)
+        self._closed_outside += int(self._counts[~np.isfinite(table)].sum())
+        self._closed_trials += int(self._counts.sum())
+        self._block_counts.append(self._counts[:32].copy())
+        if all(math.isfinite(v) for v in self._closed_scores):
+            ps = math.fsum(self._closed_scores)
+            # fsum is correctly rounded: its error is below 2^-53 of the sum of magnitudes.
+            pa = (math.fsum(self._closed_allowances)
+                  + math.fsum(abs(v) for v in self._closed_scores) * 2.0 ** -52)
+            self._prior = (ps, pa)
+        else:
+            self._prior = (-math.inf, 0.0)
+        window = p.fit_window_blocks
+        used = self._block_counts[-window:] if window else self._block_counts
+        fit_counts = np.sum(used, axis=0)
+        fit = (int(self._blocks[len(self._blocks) - len(used)]["first_trial"]),
+               int(fit_counts.sum()))
+        try:
+            box = fit_box(counts_by_setting(fit_counts), p.model)
+            pef = build_pef(box, self.settings, p.beta, model=p.model, lam=p.lam)
+            source = "fit"
+        except SolverError as exc:
+            # Keeping the previous PEF is sound: it too depends only on earlier trials.
+            pef, box = self.pef, self.calibration_box
+            source = f"previous block's PEF (re-fit failed: {exc})"
+        self._counts = np.zeros(256, dtype=np.int64)
+        self._start_block(pef, box, source, fit)
+
+    def _block_records(self) -> list[dict]:
+        """Per-block audit entries (no timings, so records stay deterministic)."""
+        listed = len(self._blocks) <= BLOCK_TABLES_LISTED_MAX
+        out = []
+        for k, b in enumerate(self._blocks):
+            pef = b["pef"]
+            current = k == len(self._blocks) - 1
+            if current:
+                score = _score(self._counts, pef.log2_table)[0]
+                trials = int(self._counts.sum())
+            else:
+                score = b["score"]
+                trials = int(self._block_counts[k].sum())
+            entry = {
+                "index": k, "first_trial": b["first_trial"], "trials": trials,
+                "source": b["source"], "fit_first_trial": b["fit_first_trial"],
+                "fit_trials": b["fit_trials"], "factors_sha256": factors_digest(pef.factors),
+                "max_row_value": pef.max_row_value, "rows_checked": pef.rows_checked,
+                "solver_status": str(pef.solver.get("status")),
+                "log2_t_block": score if math.isfinite(score) else "-inf",
+            }
+            if listed:
+                entry["factors"] = [[float(v) for v in row] for row in pef.factors]
+            out.append(entry)
+        return out
 
     def _analyse(self, block: np.ndarray) -> None:
         from dicert._kernels import count_blocks
@@ -1069,7 +1252,7 @@ class PefAccumulator:
         forbidden = cnt[:, ~finite].sum(axis=1) > 0
         score = cnt @ tf
         gain = cnt @ np.maximum(tf, 0.0)  # bounds the rise of log2 T inside a sub-block
-        s0, allowance = _score(self._counts, table)
+        s0, allowance = _combine(self._prior, self._counts, table)
         if s0 == -math.inf:
             starts = np.full(cnt.shape[0], -np.inf)
         else:
@@ -1085,7 +1268,7 @@ class PefAccumulator:
             self._counts[:32] += cnt[done_sub:k].sum(axis=0)
             lo, hi = k * SUB_BLOCK, min(block.size, (k + 1) * SUB_BLOCK)
             sub = block[lo:hi]
-            hit = _scan_exact(sub, table, self._counts, thr)
+            hit = _scan_exact(sub, table, self._counts, thr, self._prior)
             if hit >= 0:
                 self._counts += np.bincount(sub[: hit + 1], minlength=256)
                 self.success_index = self.trials_seen + lo + hit
@@ -1146,13 +1329,21 @@ class PefAccumulator:
             "extractor_min_entropy_rule": "sigma_target - 1 (normalised-source extractor)",
             "certified_at_end_bits_info": h_now,
             "outcome": reason,
-            "codes_outside_model": int(self._counts[~np.isfinite(self.pef.log2_table)].sum())
-            if self.pef is not None else 0,
+            "codes_outside_model": self._closed_outside
+            + (int(self._counts[~np.isfinite(self.pef.log2_table)].sum())
+               if self.pef is not None else 0),
             "pef": None if self.pef is None else self.pef.to_dict(),
             "calibration_box": None if self.calibration_box is None
             else [[float(v) for v in row] for row in self.calibration_box],
             "log_complete": complete,
         }
+        if self._adaptive:
+            blocks = self._block_records()
+            details["blocks_total"] = len(blocks)
+            details["block_factor_tables"] = (
+                "listed" if len(blocks) <= BLOCK_TABLES_LISTED_MAX else
+                f"SHA-256 digests only (more than {BLOCK_TABLES_LISTED_MAX} blocks)")
+            details["blocks"] = blocks
         assumptions = [
             "classical side information only (no quantum memory correlated with the devices)",
             box_model(p.model).assumption,
@@ -1163,7 +1354,11 @@ class PefAccumulator:
             "and the side information",
             "no trial was dropped or post-selected; the trial definition was fixed in advance",
             "beta, eps_pe, sigma_target, n_max and the calibration rule were fixed before the "
-            "analysis trials; the PEF depends only on the calibration trials",
+            "analysis trials; the PEF depends only on the calibration trials"
+            if not self._adaptive else
+            "beta, eps_pe, sigma_target, n_max and the PEF-update rule (calibration = adaptive: "
+            "block_trials, initial, fit_window_blocks) were fixed before the analysis trials; "
+            "the PEF of each block depends only on the trials before that block",
             "soundness: P(success) x distance(output, uniform) <= eps_pe + eps_ext",
         ]
         return FiniteSizeResult(
@@ -1171,6 +1366,29 @@ class PefAccumulator:
             min_entropy_bits=max(0.0, p.sigma_target_bits - 1.0) if accepted else 0.0,
             eps={"eps_pe": p.eps_pe}, smoothing_eps=0.0, entropy_error=p.eps_pe,
             assumptions=tuple(assumptions), references=REFERENCES, details=details)
+
+
+def _combine(prior: tuple[float, float] | None, counts: np.ndarray,
+             table: np.ndarray) -> tuple[float, float]:
+    """(log2 T, allowance) of earlier blocks ``prior`` (their fsum and its allowance) plus the
+    current block's counts scored with ``table``; ``prior`` None means no earlier block."""
+    s, a = _score(counts, table)
+    if prior is None:
+        return s, a
+    ps, pa = prior
+    if s == -math.inf or ps == -math.inf:
+        return -math.inf, 0.0
+    # One more correctly rounded addition: error below 2^-53 (|ps| + |s|).
+    return math.fsum((ps, s)), pa + a + (abs(ps) + abs(s)) * 2.0 ** -52
+
+
+def factors_digest(factors: Any) -> str:
+    """SHA-256 (hex) of a PEF's factor table: the 16 float64 values F[z, c] (z = 2x + y,
+    c = 2a + b, row-major) as little-endian IEEE 754 bytes."""
+    import hashlib
+
+    f = np.ascontiguousarray(np.asarray(factors, dtype="<f8").reshape(4, 4))
+    return hashlib.sha256(f.tobytes()).hexdigest()
 
 
 def _score(counts: np.ndarray, table: np.ndarray) -> tuple[float, float]:
@@ -1215,9 +1433,9 @@ def certify_pef_counts(counts: Any, params: PefParams, design: Any = None, *,
                        pef: Pef | None = None):
     """Fixed-length variant from counts only ([t,x,y,a,b] array): success iff log2 T_n reaches
     the threshold after all n trials (a fixed stopping time; needs a fixed calibration)."""
-    if params.calibration == "prefix" and pef is None:
-        raise ProtocolError("[analysis] key 'calibration': \"prefix\" needs the trial order; "
-                            "certify from the log instead of counts")
+    if (params.calibration == "prefix" and pef is None) or params.calibration == "adaptive":
+        raise ProtocolError(f"[analysis] key 'calibration': \"{params.calibration}\" needs the "
+                            "trial order; certify from the log instead of counts")
     acc = PefAccumulator(params, design, pef=pef)
     c = np.asarray(counts, dtype=np.int64).reshape(-1)
     if c.size != 32 or np.any(c < 0):
@@ -1432,11 +1650,11 @@ def plan_pef(rho: Any, settings: SettingsModel | None = None, target_bits: float
 
 
 __all__ = [
-    "CALIBRATIONS", "MODELS", "BoxModel", "Pef", "PefAccumulator", "PefParams", "PefPlan",
+    "BLOCK_TABLES_LISTED_MAX", "CALIBRATIONS", "DEFAULT_BLOCK_TRIALS", "INITIAL_RULES", "MODELS", "BoxModel", "Pef", "PefAccumulator", "PefParams", "PefPlan",
     "SettingsModel", "asymptotic_rate", "box_from_chsh", "box_model", "build_pef",
     "certify_pef", "certify_pef_counts", "chsh_functionals", "completeness_probability",
-    "counts_by_setting", "fit_box", "follow_log", "isotropic_box", "local_deterministic_boxes", "make_valid",
+    "counts_by_setting", "factors_digest", "fit_box", "follow_log", "isotropic_box", "local_deterministic_boxes", "make_valid",
     "optimal_factors", "pef_rows", "plan_pef", "pr_boxes", "product_settings",
     "settings_from_design", "spot_settings", "statistical_strength", "trials_for_probability",
-    "tsirelson_box", "uniform_settings", "validate_pef",
+    "trivial_pef", "tsirelson_box", "uniform_settings", "validate_pef",
 ]
