@@ -545,3 +545,205 @@ def test_follow_log_yields_appended_trials_and_stops_at_the_trailer(tmp_path):
 
     with pytest.raises(LogFormatError, match="byte offset 27"):
         list(P.follow_log(bad, 0.0, idle_timeout_s=0, sleep=lambda s: None))
+
+
+# --------------------------------------------------------------------------- adaptive calibration
+# [KZB] section "Training versus analysis" of the methods note: the PEF of trial i may be
+# re-optimised from all earlier trials (it must depend only on the past), which lets the
+# analysis follow drifting conditions; the estimate then holds for the product of the per-trial
+# factors exactly as for a fixed PEF.
+
+
+def _adaptive(**kw):
+    base = dict(beta=0.05, eps_pe=1e-6, sigma_target_bits=10 ** 6, n_max=10 ** 8,
+                calibration="adaptive", lam=1e-3, block_trials=4000)
+    base.update(kw)
+    return P.PefParams(**base)
+
+
+def _block_oracle(codes, blocks, start=0):
+    """Naive log2 T after every trial: trial i scored with the factors of its block
+    (math.fsum per prefix would be quadratic; a float cumsum is enough away from ties)."""
+    lf = np.empty(codes.size)
+    for b in blocks:
+        lo, hi = b["first_trial"], b["first_trial"] + b["trials"]
+        table = np.log2(np.asarray(b["factors"]).ravel())
+        lf[lo:hi] = table[codes[lo:hi] & 15]
+    return np.cumsum(lf[start:])
+
+
+def test_adaptive_params_name_the_key():
+    good = {"beta": 0.02, "eps_pe": 1e-9, "sigma_target_bits": 512, "n_max": 10 ** 8,
+            "calibration": "adaptive"}
+    p = P.PefParams.from_mapping(good, "x.toml: [analysis]")
+    assert (p.block_trials, p.initial, p.fit_window_blocks) == (P.DEFAULT_BLOCK_TRIALS,
+                                                                "trivial", 0)
+    assert p.anticipated_box() is None and "block_trials" in p.to_dict()
+    iso = P.PefParams.from_mapping({**good, "initial": "isotropic", "calibration_chsh": 2.7,
+                                    "block_trials": 10 ** 6, "fit_window_blocks": 3})
+    assert np.allclose(iso.anticipated_box(), P.box_from_chsh(2.7))
+    # The fixed calibrations keep their parameter dictionaries (and hence their records).
+    assert "block_trials" not in _params().to_dict()
+    cases = [
+        ({"block_trials": 0}, "block_trials"), ({"block_trials": 1.5}, "block_trials"),
+        ({"initial": "prefix"}, "initial"), ({"fit_window_blocks": -1}, "fit_window_blocks"),
+        ({"lam": 0.0}, "lam"), ({"initial": "isotropic"}, "calibration_chsh"),
+        ({"calibration_chsh": 2.5}, "calibration_chsh"),
+        ({"initial": "table", "calibration_table": [0.5] * 16}, "calibration_table"),
+        ({"calibration_trials": 100}, "calibration_trials"),
+        ({"calibration": "prefix", "calibration_trials": 10, "block_trials": 10}, "block_trials"),
+        ({"calibration": "prefix", "calibration_trials": 10, "initial": "trivial"}, "initial"),
+    ]
+    for change, key in cases:
+        with pytest.raises(ProtocolError) as info:
+            P.PefParams.from_mapping({**good, **change}, "x.toml: [analysis]")
+        msg = str(info.value)
+        assert "x.toml" in msg and f"'{key}'" in msg and "\n" not in msg, (change, msg)
+    # Counts alone lose the trial order that decides the blocks.
+    with pytest.raises(ProtocolError, match="'calibration'"):
+        P.certify_pef_counts(np.ones(32, dtype=np.int64), p)
+
+
+def test_adaptive_block_pef_depends_only_on_earlier_trials():
+    """[KZB]: F_i is fixed before trial i from earlier data only. Changing the trials of block 1
+    leaves the PEFs of blocks 0 and 1 unchanged and changes block 2's; block k's PEF is the one
+    built from the maximum-likelihood box of the trials before block k; log2 T and the first
+    crossing agree with a per-trial oracle that scores each trial with its block's factors."""
+    rng = np.random.default_rng(21)
+    codes = _sample(P.isotropic_box(0.9), 3 * 4000 + 2500, rng)
+    params = _adaptive()
+    res = P.certify_pef(codes, params)
+    blocks = res.details["blocks"]
+    assert [b["first_trial"] for b in blocks] == [0, 4000, 8000, 12000]
+    assert [b["trials"] for b in blocks] == [4000, 4000, 4000, 2500]
+    assert blocks[0]["source"] == "initial: trivial" and blocks[1]["source"] == "fit"
+    assert [b["fit_trials"] for b in blocks[1:]] == [4000, 8000, 12000]
+    for k in (1, 3):
+        box = P.fit_box(P.counts_by_setting(np.bincount(codes[:4000 * k], minlength=32)))
+        ref = P.build_pef(box, P.uniform_settings(), 0.05, lam=1e-3)
+        assert blocks[k]["factors_sha256"] == P.factors_digest(ref.factors)
+    # Every block's PEF passed the validity checks (40-digit row maximum below 1).
+    assert all(b["max_row_value"] < 1.0 and b["rows_checked"] == 24 for b in blocks)
+    changed = codes.copy()
+    changed[4000:8000] = _sample(P.isotropic_box(0.6), 4000, np.random.default_rng(22))
+    blocks2 = P.certify_pef(changed, params).details["blocks"]
+    assert [b["factors_sha256"] for b in blocks2[:2]] == [b["factors_sha256"] for b in blocks[:2]]
+    assert blocks2[2]["factors_sha256"] != blocks[2]["factors_sha256"]
+    # log2 T = sum over blocks of counts x log2 F (exact counts, fsum) = the per-trial oracle.
+    run = _block_oracle(codes, blocks)
+    assert res.details["log2_t"] == pytest.approx(run[-1], abs=1e-9)
+    assert math.fsum(b["log2_t_block"] for b in blocks) == pytest.approx(run[-1], abs=1e-9)
+    # A target crossed inside block 2: the exact first crossing, whatever the chunking.
+    thr = float(run[9000]) + 1e-7
+    target = (thr - math.log2(1e6)) / 0.05
+    hit = _adaptive(sigma_target_bits=target)
+    first = int(np.argmax(run >= thr + 1e-9))
+    assert first == int(np.argmax(run >= thr - 1e-9)) and 8000 <= first < 12000
+    # Pieces: all at once; 997 at a time; single trials across the block boundary at 8000
+    # and across the crossing.
+    singles = sorted({*range(7990, 8011), *range(first - 10, first + 11)})
+    for cuts in ([codes.size], list(range(997, codes.size, 997)), singles):
+        acc = P.PefAccumulator(hit)
+        for lo, hi in zip([0, *cuts], [*cuts, codes.size]):
+            if acc.update(codes[lo:hi]) or acc.done:
+                break
+        assert acc.success_index == first
+        assert acc.result().details["harvest_first_trial"] == 0
+
+
+def test_adaptive_matches_fixed_calibration_on_stationary_data():
+    """Stationary data: with a block longer than the run, adaptive calibration IS the fixed
+    one (same PEF, same log2 T, same success trial); with a trivial first block of B trials it
+    equals a calibration prefix of B trials up to block 1 (same PEF, same success trial)."""
+    rng = np.random.default_rng(7)
+    codes = _sample(P.tsirelson_box(), 20000, rng)
+    fixed = P.certify_pef(codes, _params())
+    adap = P.certify_pef(codes, _params(calibration="adaptive", initial="isotropic",
+                                        block_trials=10 ** 9))
+    assert fixed.accepted and adap.accepted
+    for key in ("success_trial_index", "log2_t", "rounding_allowance_log2"):
+        assert adap.details[key] == fixed.details[key]
+    assert adap.details["pef"]["factors"] == fixed.details["pef"]["factors"]
+    assert adap.details["blocks_total"] == 1
+    prefix = P.certify_pef(codes, _params(calibration="prefix", calibration_chsh=None,
+                                          calibration_trials=5000))
+    trivial = P.certify_pef(codes, _params(calibration="adaptive", calibration_chsh=None,
+                                           block_trials=5000))
+    assert prefix.accepted and trivial.accepted
+    assert trivial.details["success_trial_index"] == prefix.details["success_trial_index"]
+    assert trivial.details["blocks"][1]["factors"] == prefix.details["pef"]["factors"]
+    # The trivial first block scores (almost) nothing: F = 1 shrunk by the 1e-12 row margin.
+    assert -1e-7 < trivial.details["blocks"][0]["log2_t_block"] <= 0.0
+    # ... but its trials are analysed and harvested (no calibration prefix to skip).
+    assert trivial.details["harvest_first_trial"] == 0
+    assert trivial.details["harvest_bits"] == 2 * (trivial.details["success_trial_index"] + 1)
+
+
+def _drifting_photonic_codes(n_before, n_after, seed):
+    """Invented drifting photonic run (Eberhard-type model of dicert.simulate: Eberhard,
+    PRA 47, R747 (1993)): detectors of efficiency 0.80 with the matching state and angles, then
+    the efficiency drops to 0.76 while state and angles stay."""
+    from dicert.simulate import box_photonic, optimal_photonic_setup, simulate_trials
+
+    r, ang, _ = optimal_photonic_setup(None, 0.80, 1.0)
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
+    before = simulate_trials(n_before, box_photonic(r, 0.80, ang), rng=rng).codes()
+    after = simulate_trials(n_after, box_photonic(r, 0.76, ang), rng=rng).codes()
+    return np.concatenate([before, after])
+
+
+DRIFT_ANALYSIS = dict(beta=0.03, eps_pe=1e-3, sigma_target_bits=32, n_max=10 ** 7, lam=1e-3)
+
+
+def test_adaptive_follows_a_drifting_source_faster_than_a_fixed_prefix():
+    """[KZB] (PEFs re-fitted from the past adapt to drifting conditions): the PEF fitted to the
+    first 10^5 trials (efficiency 0.80) scores the later trials (0.76) with a negative expected
+    log2 F; re-fitting every 10^5 trials from all earlier trials reaches the target, a fixed
+    PEF from the same 10^5-trial prefix does not within the run (fixed seed)."""
+    codes = _drifting_photonic_codes(100_000, 700_000, seed=2) | np.uint8(0x10)
+    fixed = P.certify_pef(codes, P.PefParams(**DRIFT_ANALYSIS, calibration="prefix",
+                                             calibration_trials=100_000))
+    adap = P.certify_pef(codes, P.PefParams(**DRIFT_ANALYSIS, calibration="adaptive",
+                                            block_trials=100_000))
+    assert adap.accepted, adap.details["outcome"]
+    assert (not fixed.accepted
+            or fixed.details["success_trial_index"] > adap.details["success_trial_index"])
+    assert not fixed.accepted and fixed.details["log2_t"] < 0.0
+    # Both used the same PEF for trials 100000..199999 (fitted to the same prefix).
+    assert adap.details["blocks"][1]["factors"] == fixed.details["pef"]["factors"]
+
+
+def test_certify_and_verify_an_adaptive_protocol_on_a_drifting_log(tmp_path):
+    """End to end: an adaptive protocol (protocol_from_dict) on a drifting photonic log is
+    certified, stops at the exact crossing of the per-block oracle, and verifies."""
+    import tomllib
+    from pathlib import Path
+
+    from dicert.certify import certify
+    from dicert.logs import TrialArrays, write_log
+    from dicert.protocol import protocol_from_dict
+    from dicert.verify import verify
+
+    root = Path(__file__).resolve().parents[1]
+    d = tomllib.loads((root / "protocols" / "ch-photonic.toml").read_text())
+    a = d["analysis"]
+    del a["calibration_trials"]
+    a.update(DRIFT_ANALYSIS, calibration="adaptive", initial="trivial", block_trials=100_000)
+    d["extractor"]["eps_ext"] = 1e-3
+    proto = protocol_from_dict(d, "pef-adaptive")
+    codes = _drifting_photonic_codes(100_000, 700_000, seed=2)
+    log = tmp_path / "drift.btl"
+    write_log(log, TrialArrays.from_codes(codes, has_test_flag=False))
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(np.random.default_rng(8).bytes(200_000))
+    res = certify(log, proto, seed, tmp_path / "out")
+    assert res.status == "certified", res.abort_reason
+    det = res.record["entropy"]["finite_size"]["details"]
+    k = det["success_trial_index"]
+    run = _block_oracle(codes, det["blocks"])
+    thr = proto.analysis.threshold_log2
+    assert k == int(np.argmax(run >= thr + 1e-9)) == int(np.argmax(run >= thr - 1e-9))
+    assert res.success_trial_index == k and det["harvest_first_trial"] == 0
+    assert det["blocks_total"] == k // 100_000 + 1 and det["block_factor_tables"] == "listed"
+    rep = verify(res.record_file, log=log, seed=seed, bits=res.bits_file)
+    assert rep.scope == "full"
