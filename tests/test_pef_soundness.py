@@ -141,3 +141,50 @@ def test_quantum_device_reaches_target_and_estimate_holds():
             fails += true_h < params.sigma_target_bits
     assert ok >= 55
     assert _tail_pvalue(fails, ok, 0.05) > 1e-4
+
+
+def test_local_devices_never_succeed_with_adaptive_calibration():
+    """calibration = "adaptive": each block's PEF is fitted to the earlier trials, so a local
+    adversary knows it before playing the block. It plays, trial by trial, a local
+    deterministic box maximising E[F] under the PEF in force (the rows make E[F] <= 1 for every
+    local box, methods note fact (d)); the product of the per-trial factors is still a test
+    supermartingale [KZB], so no run succeeds and sup log2 T >= 5 happens in at most a
+    Ville-compatible fraction [Ville]. Control: quantum (Tsirelson-box) devices succeed with
+    the same protocol, so the check can fail."""
+    beta, block, n_blocks, runs = 0.14, 2000, 4, 12
+    params = P.PefParams(beta=beta, eps_pe=2.0 ** -20, sigma_target_bits=64,
+                         n_max=block * n_blocks, calibration="adaptive", lam=1e-3,
+                         initial="isotropic", calibration_chsh=2.8, block_trials=block)
+    ld = P.local_deterministic_boxes()
+    det_c = ld.argmax(axis=2)  # (16, 4): the outcome c each local box gives for settings z
+    rng = np.random.default_rng(31)
+    sups = []
+    for _ in range(runs):
+        acc = P.PefAccumulator(params)
+        log2f = []
+        for _k in range(n_blocks):
+            for part in (1, block - 1):  # the first trial opens the block (and fixes its PEF)
+                f = acc.pef.factors
+                gain = (acc.pef.settings.nominal * f[np.arange(4), det_c]).sum(axis=1)
+                assert gain.max() <= 1.0
+                best = np.flatnonzero(gain >= gain.max() - 1e-12)
+                z = rng.integers(0, 4, part)
+                c = det_c[rng.choice(best, part), z]
+                codes = ((1 << 4) | (4 * z + c)).astype(np.uint8)
+                acc.update(codes)
+                log2f.append(np.log2(acc.pef.factors[z, c]))  # the PEF that scored them
+        res = acc.result()
+        assert not res.accepted and res.min_entropy_bits == 0.0
+        assert res.details["blocks_total"] == n_blocks
+        run = np.cumsum(np.concatenate(log2f))
+        assert res.details["log2_t"] == pytest.approx(run[-1], abs=1e-9)
+        sups.append(run.max())
+    sups = np.array(sups)
+    assert np.all(sups < params.threshold_log2)
+    assert _tail_pvalue(int(np.sum(sups >= 5)), runs, 1 / 32) > 1e-4
+    # Control: the same protocol on Tsirelson-box trials succeeds.
+    rho = P.tsirelson_box()
+    z = rng.integers(0, 4, block * n_blocks)
+    c = np.minimum((rng.random(z.size)[:, None] > np.cumsum(rho, axis=1)[z]).sum(axis=1), 3)
+    res = P.certify_pef(((1 << 4) | (4 * z + c)).astype(np.uint8), params)
+    assert res.accepted
