@@ -19,7 +19,9 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 
 from dicert.errors import ParameterError, ProtocolError
 from dicert.finite import pef as P
@@ -459,9 +461,9 @@ def test_plan_photonic_512_bits(photonic):
 # --------------------------------------------------------------------------- integration
 
 def test_shipped_photonic_protocol_loads_with_the_shared_loader():
-    from dicert.protocol import load_protocol, protocol_from_dict
-
     from pathlib import Path
+
+    from dicert.protocol import load_protocol, protocol_from_dict
 
     proto = load_protocol(Path(__file__).resolve().parents[1] / "protocols" / "ch-photonic.toml")
     assert proto.method == "pef"
@@ -555,8 +557,8 @@ def test_follow_log_yields_appended_trials_and_stops_at_the_trailer(tmp_path):
 
 
 def _adaptive(**kw):
-    base = dict(beta=0.05, eps_pe=1e-6, sigma_target_bits=10 ** 6, n_max=10 ** 8,
-                calibration="adaptive", lam=1e-3, block_trials=4000)
+    base = {"beta": 0.05, "eps_pe": 1e-6, "sigma_target_bits": 10 ** 6, "n_max": 10 ** 8,
+            "calibration": "adaptive", "lam": 1e-3, "block_trials": 4000}
     base.update(kw)
     return P.PefParams(**base)
 
@@ -692,7 +694,8 @@ def _drifting_photonic_codes(n_before, n_after, seed):
     return np.concatenate([before, after])
 
 
-DRIFT_ANALYSIS = dict(beta=0.03, eps_pe=1e-3, sigma_target_bits=32, n_max=10 ** 7, lam=1e-3)
+DRIFT_ANALYSIS = {"beta": 0.03, "eps_pe": 1e-3, "sigma_target_bits": 32, "n_max": 10 ** 7,
+                  "lam": 1e-3}
 
 
 def test_adaptive_follows_a_drifting_source_faster_than_a_fixed_prefix():

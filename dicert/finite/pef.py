@@ -544,8 +544,7 @@ def _row_max_mp(factors: np.ndarray, bm: BoxModel, settings: SettingsModel, beta
             for code in bm.codes:
                 tot = mpmath.fsum(sm[z] * f[z][c] * powv[int(code[z, c])]
                                   for z in range(4) for c in range(4) if code[z, c] != 0)
-                if tot > best:
-                    best = tot
+                best = max(best, tot)
         return best
 
 
@@ -1252,7 +1251,7 @@ class PefAccumulator:
         forbidden = cnt[:, ~finite].sum(axis=1) > 0
         score = cnt @ tf
         gain = cnt @ np.maximum(tf, 0.0)  # bounds the rise of log2 T inside a sub-block
-        s0, allowance = _combine(self._prior, self._counts, table)
+        s0, _ = _combine(self._prior, self._counts, table)
         if s0 == -math.inf:
             starts = np.full(cnt.shape[0], -np.inf)
         else:
@@ -1475,8 +1474,16 @@ def follow_log(path: Any, poll_s: float = 0.5, *, idle_timeout_s: float | None =
     from pathlib import Path
 
     from dicert.errors import LogFormatError
-    from dicert.logs import (BINARY_HEADER, BINARY_HEADER_SIZE, BINARY_MAGIC, BINARY_VERSION,
-                             COUNT_STREAMED, FLAG_HAS_T, TRAILER, TRAILER_MARK)
+    from dicert.logs import (
+        BINARY_HEADER,
+        BINARY_HEADER_SIZE,
+        BINARY_MAGIC,
+        BINARY_VERSION,
+        COUNT_STREAMED,
+        FLAG_HAS_T,
+        TRAILER,
+        TRAILER_MARK,
+    )
 
     path = Path(path)
     last_growth = clock()
