@@ -22,7 +22,9 @@ This module has four layers, from primitives to the one-call recipe:
   and finally re-checked in 40-digit arithmetic against the exact vertex entries;
 - certification: :class:`PefAccumulator` scores a stream of trial codes (one table look-up per
   trial, exact first-crossing index), :func:`certify_pef` wraps it into the shared
-  :class:`~dicert.finite.result.FiniteSizeResult`;
+  :class:`~dicert.finite.result.FiniteSizeResult`; the PEF is fixed once (calibration
+  "prefix", "isotropic", "table") or re-fitted before every block of trials from the earlier
+  trials only (calibration "adaptive", which follows drifting conditions);
 - planning: :func:`plan_pef` (beta by grid search, expected trials, completeness), plus the
   diagnostics :func:`asymptotic_rate` (h_inf) and :func:`statistical_strength` (D_LR).
 
@@ -1291,6 +1293,13 @@ class PefAccumulator:
         trial indices of the log), 2 bits per trial, with min-entropy ``min_entropy_bits`` =
         sigma_target - 1 (the -1 makes the sub-normalised success branch a normalised source
         for any extractor, methods note section 2 (ii)).
+
+        Under calibration = "adaptive" the details also hold ``blocks``: per block its
+        ``index``, ``first_trial``, ``trials``, ``source`` (how its PEF was fixed),
+        ``fit_first_trial`` and ``fit_trials`` (the earlier trials it was fitted to),
+        ``factors_sha256`` (:func:`factors_digest`), ``max_row_value``, ``rows_checked``,
+        ``solver_status``, ``log2_t_block`` (its share of log2 T) and, when the run has at most
+        :data:`BLOCK_TABLES_LISTED_MAX` blocks, ``factors``; ``pef`` is the last block's PEF.
         """
         from dicert.finite.result import FiniteSizeResult
 
