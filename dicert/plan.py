@@ -466,8 +466,7 @@ class _PefModel:
         if declared is not None:
             self.model, self.lam, self.eps_pe = declared.model, declared.lam, declared.eps_pe
             self.bias = (declared.p_x0, declared.p_y0, declared.bias_x, declared.bias_y)
-            self.calib = (declared.calibration_trials if declared.calibration == "prefix"
-                          else 0)
+            self.calib = _unscored_trials(declared)
             self.thresholds = "declared"
         else:
             self.model, self.lam, self.eps_pe = "ns", PEF_DERIVED_LAM, eps_pe
@@ -570,6 +569,16 @@ class _PefModel:
                                   else "anticipated box (fixed in advance)")}
         ev = dataclasses.replace(ev, params=params)
         return ev, details, consumed
+
+
+def _unscored_trials(analysis: Any) -> int:
+    """Trials a PEF protocol consumes before any factor can earn: a calibration prefix, or
+    the first block of an adaptive run that starts from the trivial PEF (F = 1)."""
+    if analysis.calibration == "prefix":
+        return int(analysis.calibration_trials)
+    if analysis.calibration == "adaptive" and analysis.anticipated_box() is None:
+        return int(analysis.block_trials)
+    return 0
 
 
 def _pef_default_box(analysis: Any) -> tuple[np.ndarray, str]:

@@ -351,3 +351,19 @@ def test_cli_photonic_protocol_json_and_table(tmp_path):
     r = runner.invoke(app, ["plan", "--protocol", str(PHOTONIC_PROTOCOL), "--trials", "1e6"])
     assert r.exit_code == 0, r.output
     assert "pef-ns" in r.stdout and "beta used" in r.stdout and "photonic model" in r.stdout
+
+
+def test_pef_adaptive_trivial_first_block_is_counted_as_consumed():
+    # An adaptive run that starts from the trivial PEF (F = 1) earns nothing in its first block,
+    # exactly like a calibration prefix of that length (methods note section 3, "Training
+    # versus analysis"): the planner must charge it the same trials.
+    common = dict(beta=0.1, eps_pe=2.0 ** -64, sigma_target_bits=512, n_max=10**6, lam=1e-3)
+    mk = lambda **cal: NS(name="pef", method="pef", analysis=PefParams(**common, **cal),  # noqa: E731
+                          design=SettingsDesign(), harvest=NS(parties="AB", rounds="all"),
+                          extractor=NS(eps_ext=1e-8))
+    adaptive = _pef_row(plan(mk(calibration="adaptive", block_trials=5000, initial="trivial"),
+                             chsh=2.7, n_points=4, gamma_points=2))
+    prefix = _pef_row(plan(mk(calibration="prefix", calibration_trials=5000),
+                           chsh=2.7, n_points=4, gamma_points=2))
+    assert adaptive.pef.calibration_trials == prefix.pef.calibration_trials == 5000
+    assert adaptive.pef.trials_consumed == pytest.approx(prefix.pef.trials_consumed)
