@@ -273,22 +273,16 @@ def _cross_checks(ctx: _Ctx, *, bell: BellTest, design: Any, harvest: Harvest, m
                        "(with gamma = 1 every round is a test round)")
     if method in ("martingale", "eat") and bell.kind != "chsh":
         raise ctx.fail("bell.kind", f"method {method!r} supports only kind = \"chsh\"")
-    if method == "eat":
-        # The entropy accumulation bound is on the register (A_i, B_i) of every round
-        # (methods note "entropy-accumulation", raw output A^n B^n).
+    if method in ("eat", "pef"):
+        # Entropy accumulation bounds the register (A_i, B_i) of every round (methods note
+        # "entropy-accumulation", raw output A^n B^n); the probability estimate bounds the
+        # pair (A_i, B_i) of every analysed trial.
+        which = "the outcomes of every round" if method == "eat" else "every analysed trial"
         if harvest.parties != "AB":
-            raise ctx.fail("harvest.parties", "method \"eat\" bounds the pair of outcomes; "
-                           "use parties = \"AB\"")
+            raise ctx.fail("harvest.parties", f"method \"{method}\" bounds the pair of "
+                           "outcomes; use parties = \"AB\"")
         if harvest.rounds != "all":
-            raise ctx.fail("harvest.rounds", "method \"eat\" bounds the outcomes of every "
-                           "round; use rounds = \"all\"")
-    if method == "pef":
-        # The probability estimate bounds the pair (A_i, B_i) of every analysed trial.
-        if harvest.parties != "AB":
-            raise ctx.fail("harvest.parties", "method \"pef\" bounds the pair of outcomes; "
-                           "use parties = \"AB\"")
-        if harvest.rounds != "all":
-            raise ctx.fail("harvest.rounds", "method \"pef\" harvests every analysed trial; "
+            raise ctx.fail("harvest.rounds", f"method \"{method}\" harvests {which}; "
                            "use rounds = \"all\"")
     if method == "martingale":
         single = getattr(params, "single_round", None)
