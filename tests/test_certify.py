@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import sim_trials, uniform_protocol
 
 from dicert.certify import (
     BITS_NAME,
@@ -25,26 +26,13 @@ from dicert.protocol import protocol_from_dict
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _proto(**analysis):
-    d = tomllib.loads((ROOT / "protocols" / "chsh-uniform.toml").read_text())
-    d["analysis"].update(analysis)
-    return protocol_from_dict(d, "test-uniform")
-
-
-def _sim(n: int, model: str = "quantum", visibility: float = 1.0, seed: int = 1,
-         gamma: float = 1.0) -> TrialArrays:
-    from dicert.simulate import device_model, simulate_trials
-
-    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
-    src = device_model(model) if model != "quantum" else device_model("quantum", visibility=visibility)
-    return simulate_trials(n, src, gamma=gamma, rng=rng)
 
 
 @pytest.fixture(scope="module")
 def small_run(tmp_path_factory):
     d = tmp_path_factory.mktemp("run")
     log = d / "log.btl"
-    write_log(log, _sim(20_000, seed=11))
+    write_log(log, sim_trials(20_000, seed=11))
     seed = d / "seed.bin"
     seed.write_bytes(np.random.default_rng(5).bytes(20_000))
     return d, log, seed
@@ -57,7 +45,7 @@ def _f(s: float) -> float:
 
 def test_certified_numbers_follow_the_published_formulas(small_run, tmp_path):
     _d, log, seed = small_run
-    proto = _proto()
+    proto = uniform_protocol()
     res = certify(log, proto, seed, tmp_path / "out")
     assert res.status == "certified" and res.exit_code == 0
     n = 20_000
@@ -94,10 +82,10 @@ def test_output_equals_naive_toeplitz_product_of_naively_harvested_bits(tmp_path
     from scipy.linalg import toeplitz
 
     log = tmp_path / "log.csv"
-    write_log(log, _sim(2_000, seed=3))
+    write_log(log, sim_trials(2_000, seed=3))
     seed = tmp_path / "seed.bin"
     seed.write_bytes(np.random.default_rng(9).bytes(1_000))
-    res = certify(log, _proto(), seed, tmp_path / "out")
+    res = certify(log, uniform_protocol(), seed, tmp_path / "out")
     assert res.status == "certified"
     tr = read_trials(log)
     raw = []
@@ -122,11 +110,11 @@ def test_harvest_order_and_generation_rounds():
 
 def test_classical_devices_abort_with_a_record(tmp_path):
     log = tmp_path / "classical.btl"
-    write_log(log, _sim(20_000, model="classical", seed=4))
+    write_log(log, sim_trials(20_000, model="classical", seed=4))
     seed = tmp_path / "seed.bin"
     seed.write_bytes(b"\x00" * 16)  # an abort never reads the seed beyond its digest
     out = tmp_path / "out"
-    res = certify(log, _proto(), seed, out)
+    res = certify(log, uniform_protocol(), seed, out)
     assert res.status == "aborted" and res.output_bits == 0
     assert res.exit_code == EXIT_ABORTED == 3
     assert res.bits_file is None and not (out / BITS_NAME).exists()
@@ -142,10 +130,10 @@ def test_classical_devices_abort_with_a_record(tmp_path):
 def test_abort_removes_a_stale_bits_file(small_run, tmp_path):
     _d, log, seed = small_run
     out = tmp_path / "out"
-    assert certify(log, _proto(), seed, out).status == "certified"
+    assert certify(log, uniform_protocol(), seed, out).status == "certified"
     classical = tmp_path / "c.btl"
-    write_log(classical, _sim(5_000, model="classical", seed=8))
-    res = certify(classical, _proto(), seed, out)
+    write_log(classical, sim_trials(5_000, model="classical", seed=8))
+    res = certify(classical, uniform_protocol(), seed, out)
     assert res.status == "aborted" and not (out / BITS_NAME).exists()
 
 
@@ -155,8 +143,8 @@ def test_two_runs_identical_except_volatile(small_run, tmp_path):
     _d, log, seed = small_run
     clocks = iter(["2001-01-01T00:00:00Z", "2001-01-01T00:00:01Z",
                    "2030-05-05T12:00:00Z", "2030-05-05T12:00:09Z"])
-    r1 = certify(log, _proto(), seed, tmp_path / "a", clock=lambda: next(clocks))
-    r2 = certify(log, _proto(), seed, tmp_path / "b", clock=lambda: next(clocks))
+    r1 = certify(log, uniform_protocol(), seed, tmp_path / "a", clock=lambda: next(clocks))
+    r2 = certify(log, uniform_protocol(), seed, tmp_path / "b", clock=lambda: next(clocks))
     assert r1.bits_file.read_bytes() == r2.bits_file.read_bytes()
     assert stable_view(r1.record) == stable_view(r2.record)
     assert r1.record["volatile"]["timestamps"]["started"] == "2001-01-01T00:00:00Z"
@@ -170,7 +158,7 @@ def test_seed_too_short_says_how_many_bytes(small_run, tmp_path):
     short.write_bytes(b"\x01" * 100)
     out = tmp_path / "out"
     with pytest.raises(SeedError) as info:
-        certify(log, _proto(), short, out)
+        certify(log, uniform_protocol(), short, out)
     msg = str(info.value)
     assert "bytes needed" in msg and "100 bytes given" in msg
     need = int(msg.split(" bytes needed")[0].rsplit(" ", 1)[-1])
@@ -201,7 +189,7 @@ def test_nothing_half_written_when_a_late_stage_fails(small_run, tmp_path, monke
         monkeypatch.setattr(record_mod, "record_bytes", boom)
     out = tmp_path / "out"
     with pytest.raises(RuntimeError, match="injected"):
-        certify(log, _proto(), seed, out)
+        certify(log, uniform_protocol(), seed, out)
     assert not out.exists() or list(out.iterdir()) == []
 
 
@@ -209,9 +197,9 @@ def test_spilled_raw_bits_give_the_same_result(small_run, tmp_path, monkeypatch)
     import dicert.certify as certify_mod
 
     _d, log, seed = small_run
-    r1 = certify(log, _proto(), seed, tmp_path / "mem")
+    r1 = certify(log, uniform_protocol(), seed, tmp_path / "mem")
     monkeypatch.setattr(certify_mod, "_SPILL_BYTES", 100)
-    r2 = certify(log, _proto(), seed, tmp_path / "spill")
+    r2 = certify(log, uniform_protocol(), seed, tmp_path / "spill")
     assert r1.bits_file.read_bytes() == r2.bits_file.read_bytes()
     assert r1.record["harvest"] == r2.record["harvest"]
     # The spill file is removed: only the two outputs remain.
@@ -224,8 +212,8 @@ def test_chain_links_pulses(small_run, tmp_path):
 
     _d, log, seed = small_run
     chain = tmp_path / "chain"
-    r1 = certify(log, _proto(), seed, tmp_path / "p1", chain=chain)
-    r2 = certify(log, _proto(), seed, tmp_path / "p2", chain=chain)
+    r1 = certify(log, uniform_protocol(), seed, tmp_path / "p1", chain=chain)
+    r2 = certify(log, uniform_protocol(), seed, tmp_path / "p2", chain=chain)
     assert r1.record["pulse_index"] == 1 and r1.record["previous_record_sha256"] is None
     assert r2.record["pulse_index"] == 2
     assert r2.record["previous_record_sha256"] == record_digest(r1.record)
@@ -237,18 +225,18 @@ def test_chain_links_pulses(small_run, tmp_path):
 
 def test_uniform_protocol_rejects_generation_rounds(tmp_path):
     log = tmp_path / "spot.btl"
-    write_log(log, _sim(5_000, gamma=0.5, seed=2))
+    write_log(log, sim_trials(5_000, gamma=0.5, seed=2))
     seed = tmp_path / "seed.bin"
     seed.write_bytes(b"\x00" * 8)
     with pytest.raises(LogFormatError, match="generation rounds"):
-        certify(log, _proto(), seed, tmp_path / "out")
+        certify(log, uniform_protocol(), seed, tmp_path / "out")
 
 
 def test_spotcheck_protocol_needs_a_test_column(tmp_path):
     from dicert.protocol import load_protocol
 
     log = tmp_path / "uniform.btl"
-    write_log(log, _sim(1_000, seed=2))
+    write_log(log, sim_trials(1_000, seed=2))
     seed = tmp_path / "seed.bin"
     seed.write_bytes(b"\x00" * 8)
     with pytest.raises(LogFormatError, match="no t column"):
@@ -263,7 +251,7 @@ def test_signed_record(small_run, tmp_path):
 
     _d, log, seed = small_run
     keys = write_keypair(tmp_path / "k.pem")
-    res = certify(log, _proto(), seed, tmp_path / "out", key=keys.private_key_file)
+    res = certify(log, uniform_protocol(), seed, tmp_path / "out", key=keys.private_key_file)
     chk = check_record(res.record, _pub(keys.public_key_file))
     assert chk.signed and chk.signer_trusted
 

@@ -8,6 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import sim_trials
 from typer.testing import CliRunner
 
 from dicert.cli.app import app
@@ -24,19 +25,12 @@ def _runner() -> CliRunner:
         return CliRunner()
 
 
-def _sim(n: int, seed: int, model: str = "quantum"):
-    from dicert.simulate import device_model, simulate_trials
-
-    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
-    return simulate_trials(n, device_model(model) if model != "quantum"
-                           else device_model("quantum", visibility=1.0), rng=rng)
-
 
 @pytest.fixture(scope="module")
 def files(tmp_path_factory):
     d = tmp_path_factory.mktemp("cli")
-    write_log(d / "q.btl", _sim(4_000, seed=31))
-    write_log(d / "c.csv", _sim(4_000, seed=32, model="classical"))
+    write_log(d / "q.btl", sim_trials(4_000, seed=31))
+    write_log(d / "c.csv", sim_trials(4_000, seed=32, model="classical"))
     (d / "seed.bin").write_bytes(np.random.default_rng(3).bytes(1_500))
     return d
 
@@ -179,7 +173,7 @@ def test_follow_stops_at_the_target_while_the_log_grows(files, tmp_path):
     from dicert.logs import BinaryLogWriter
 
     proto = _fast_pef_toml(tmp_path)
-    codes = _sim(200_000, seed=3).codes()
+    codes = sim_trials(200_000, seed=3).codes()
     log = tmp_path / "live.btl"
     w = BinaryLogWriter(log, has_test_flag=False, streamed=True)
     stop = threading.Event()
@@ -228,7 +222,7 @@ def test_follow_idle_timeout_and_trailer_abort_with_a_record(files, tmp_path):
     proto = _fast_pef_toml(tmp_path)
     log = tmp_path / "stalled.btl"
     w = BinaryLogWriter(log, has_test_flag=False, streamed=True)
-    w.append(_sim(200, seed=3).codes())  # far too few trials, and then nothing more
+    w.append(sim_trials(200, seed=3).codes())  # far too few trials, and then nothing more
     args = ["certify", str(log), "--protocol", str(proto), "--seed", str(files / "seed.bin"),
             "--follow", "--poll", "0.01", "--json"]
     r = _runner().invoke(app, [*args, "--out", str(tmp_path / "o"), "--idle-timeout", "0.3"])

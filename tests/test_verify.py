@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import sim_trials, uniform_protocol
 
 from dicert.certify import certify
 from dicert.errors import VerificationError
@@ -20,17 +21,6 @@ from dicert.verify import verify, verify_chain
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _proto():
-    d = tomllib.loads((ROOT / "protocols" / "chsh-uniform.toml").read_text())
-    return protocol_from_dict(d, "test-uniform")
-
-
-def _sim(n: int, seed: int, model: str = "quantum"):
-    from dicert.simulate import device_model, simulate_trials
-
-    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)))
-    return simulate_trials(n, device_model(model) if model != "quantum"
-                           else device_model("quantum", visibility=1.0), rng=rng)
 
 
 @pytest.fixture(scope="module")
@@ -39,11 +29,11 @@ def run(tmp_path_factory):
 
     d = tmp_path_factory.mktemp("verify")
     log = d / "log.btl"
-    write_log(log, _sim(4_000, seed=21))
+    write_log(log, sim_trials(4_000, seed=21))
     seed = d / "seed.bin"
     seed.write_bytes(np.random.default_rng(8).bytes(1_200))
     keys = write_keypair(d / "key.pem")
-    res = certify(log, _proto(), seed, d / "out", key=keys.private_key_file)
+    res = certify(log, uniform_protocol(), seed, d / "out", key=keys.private_key_file)
     assert res.status == "certified" and res.output_bits > 0
     return {"dir": d, "log": log, "seed": seed, "bits": res.bits_file, "record": res.record_file,
             "pub": keys.public_key_file, "res": res}
@@ -185,10 +175,10 @@ def test_renamed_log_still_verifies(run, tmp_path):
 
 def test_aborted_record_verifies_and_bits_not_required(tmp_path):
     log = tmp_path / "c.btl"
-    write_log(log, _sim(4_000, seed=5, model="classical"))
+    write_log(log, sim_trials(4_000, seed=5, model="classical"))
     seed = tmp_path / "s.bin"
     seed.write_bytes(b"\x07" * 32)
-    res = certify(log, _proto(), seed, tmp_path / "out")
+    res = certify(log, uniform_protocol(), seed, tmp_path / "out")
     assert res.status == "aborted"
     rep = verify(res.record_file, log=log, seed=seed)
     assert rep.scope == "full" and rep.status == "aborted"
@@ -206,7 +196,7 @@ def test_chain_verification(run, tmp_path):
     for i in range(3):
         seed = tmp_path / f"seed{i}.bin"
         seed.write_bytes(np.random.default_rng(100 + i).bytes(1_200))
-        certify(run["log"], _proto(), seed, tmp_path / f"p{i}", chain=chain)
+        certify(run["log"], uniform_protocol(), seed, tmp_path / f"p{i}", chain=chain)
     rep = verify_chain(chain)
     assert rep.pulses == 3 and rep.ok
     # Remove the middle pulse: the gap is reported.
@@ -246,7 +236,7 @@ def _fast_pef_protocol():
 def test_prefix_record_verifies_as_the_log_grows_and_catches_tampering_in_the_prefix(tmp_path):
     from dicert.logs import BinaryLogWriter
 
-    codes = _sim(8_000, seed=3).codes()
+    codes = sim_trials(8_000, seed=3).codes()
     log = tmp_path / "grow.btl"
     w = BinaryLogWriter(log, has_test_flag=False, streamed=True)
     w.append(codes[:5_000])  # still being written: no trailer yet
