@@ -71,6 +71,8 @@ from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 
 #: Exit code of ``dicert certify`` when the protocol aborts (a normal, recorded outcome).
 EXIT_ABORTED = 3
+#: Exit code when the output screens failed grossly: record written, bits withheld.
+EXIT_WITHHELD = 5
 #: Name of the raw-randomness output file inside ``out_dir``.
 BITS_NAME = "random.bits"
 #: Name of the audit record inside ``out_dir``.
@@ -130,8 +132,14 @@ class LogScan:
     trials_read: int | None = None
     stopped_early: bool = False  # reading stopped because the outcome was decided
     stop_trial_index: int | None = None  # last trial read when stopped_early
-    ended_by: str = "end-of-log"  # "end-of-log" | "decision" | "idle-timeout"
+    ended_by: str = "end-of-log"  # "end-of-log" | "decision" | "idle-timeout" | "declared-trials"
     follow: dict | None = None  # FollowSpec.to_dict() of a --follow run
+    # Inputs of the design-conformance stage (dicert.design) and the input identity.
+    block_settings: Any = None  # (B, 8) settings-symbol counts (4t+2x+y) per block
+    pair_counts: Any = None  # (8, 8) consecutive settings symbols
+    trials_in_log: int | None = None  # trials present (> trials when n was declared)
+    file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
+    formats: tuple = ()  # format of each file
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -146,6 +154,7 @@ class Analysis:
     output_bits: int
     seed_bits_needed: int
     total_error: float
+    design: Any = None  # dicert.design.DesignReport
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -180,7 +189,9 @@ class CertifyResult:
 
     @property
     def exit_code(self) -> int:
-        return 0 if self.certified else EXIT_ABORTED
+        if self.certified:
+            return 0
+        return EXIT_WITHHELD if self.status == "withheld" else EXIT_ABORTED
 
 
 # --------------------------------------------------------------------------- harvesting
@@ -337,6 +348,11 @@ class _PefFeed:
         self.offset0 = offset0  # byte offset of trial 0 in the file (for error messages)
         self.counts = np.zeros(32, dtype=np.int64)
         self.fed = 0  # trials consumed by the accumulator (index of the next trial)
+        from dicert.design import spec_of
+
+        self.blocks = _BlockTally(spec_of(protocol).block_trials)
+        self.pairs = np.zeros(64, dtype=np.int64)
+        self._prev = -1
         self._zero: np.ndarray | None = None
 
     @property
@@ -377,11 +393,43 @@ class _PefFeed:
         used = self.acc.trials_seen - start  # the whole piece unless a stop inside it
         self.fed = start + used
         self.counts += np.bincount(acc_piece[:used], minlength=32)
+        from dicert._kernels import count_pairs
+
+        pc, self._prev = count_pairs(piece[:used], self._prev)
+        self.pairs += pc
+        self.blocks.add(acc_piece[:used])
         if self.hasher is not None:
             self.hasher.update(piece[:used].tobytes())
         lo = max(self.first - start, 0)
         if used > lo:
             self.sink.add(harvest_bits(piece[lo:used], self.parties, self.rounds, self.has_t))
+
+
+class _BlockTally:
+    """Per-block counts of the settings symbol (code >> 2) & 7 = 4t + 2x + y."""
+
+    def __init__(self, block: int) -> None:
+        self.block = int(block)
+        self.rows: list[np.ndarray] = []
+        self.cur = np.zeros(8, dtype=np.int64)
+        self.fill = 0
+
+    def add(self, codes: np.ndarray) -> None:
+        sym = (np.asarray(codes, dtype=np.uint8) >> 2) & 7
+        pos = 0
+        while pos < sym.size:
+            take = min(self.block - self.fill, sym.size - pos)
+            self.cur += np.bincount(sym[pos:pos + take], minlength=8)
+            self.fill += take
+            pos += take
+            if self.fill == self.block:
+                self.rows.append(self.cur.copy())
+                self.cur[:] = 0
+                self.fill = 0
+
+    def result(self) -> np.ndarray:
+        rows = self.rows + ([self.cur.copy()] if self.fill else [])
+        return np.array(rows, dtype=np.int64).reshape(-1, 8)
 
 
 class _HeaderTap:
@@ -558,9 +606,14 @@ def _scan_binary_pef(path: Path, protocol: Any, sink: _BitSink, *,
     bytes_read = BINARY_HEADER_SIZE + feed.fed + (TRAILER.size if complete and count ==
                                                    COUNT_STREAMED else 0)
     stopped = end == "decision"
+    sha = hasher.hexdigest()
     return LogScan(
+        block_settings=feed.blocks.result(), pair_counts=feed.pairs.reshape(8, 8),
+        trials_in_log=feed.fed,
+        file_entries=({"name": path.name, "bytes": int(bytes_read), "sha256": sha},),
+        formats=("binary",),
         counts=feed.counts.reshape(2, 2, 2, 2, 2).copy(), trials=feed.fed,
-        sha256=hasher.hexdigest(), size_bytes=bytes_read, files=(path.name,),
+        sha256=sha, size_bytes=bytes_read, files=(path.name,),
         has_test_flag=feed.has_t, raw_bits=sink.bits, raw_sha256="",
         finite=feed.acc.result(complete=complete),
         scope="whole" if complete else "prefix", bytes_read=bytes_read, trials_read=feed.fed,
@@ -607,6 +660,12 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
         if len(files) != 1 or binary is None:
             raise ParameterError(f"{log}: --follow needs a single binary (.btl) log file, "
                                  "the format acquisition code appends to")
+    declared_limit = False
+    if binary is not None and prefix_trials is None and follow is None:
+        from dicert.design import declared_trials
+
+        prefix_trials = declared_trials(protocol)
+        declared_limit = prefix_trials is not None
     if binary is not None or prefix_trials is not None:
         if binary is None:
             raise ParameterError(f"{log}: a prefix-scoped record needs the single binary "
@@ -619,6 +678,8 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
         except BaseException:
             sink.discard()
             raise
+        if declared_limit and scan.ended_by == "limit":
+            scan = dataclasses.replace(scan, ended_by="declared-trials")
         return dataclasses.replace(scan, raw_bits=sink.bits, raw_sha256=raw_sha), sink
     return _scan_whole(log, parties, rounds, spill_dir=spill_dir, progress=progress,
                        protocol=protocol)
@@ -626,11 +687,14 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
 
 def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                 progress: Progress | None, protocol: Any) -> tuple[LogScan, _BitSink]:
+    from dicert.design import declared_trials, settings_symbol_counts, spec_of
     from dicert.logs import summarize_log
 
     sink = _BitSink(spill_dir)
     feed: _PefFeed | None = None
     pef = protocol is not None and protocol.method == "pef"
+    n_decl = declared_trials(protocol) if protocol is not None else None
+    block_trials = spec_of(protocol).block_trials
 
     def on_chunk(chunk: Any) -> None:
         nonlocal feed
@@ -650,7 +714,8 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
 
     try:
         summary = summarize_log(log, digest=True, chunk_trials=_CHUNK_TRIALS, on_chunk=on_chunk,
-                                progress=on_progress if progress is not None else None)
+                                progress=on_progress if progress is not None else None,
+                                block_trials=block_trials, max_trials=n_decl)
         finite = None
         if pef:
             if feed is None:  # pragma: no cover - readers reject logs without trials
@@ -660,12 +725,21 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
     except BaseException:
         sink.discard()
         raise
+    in_log = int(summary.trials_in_log if summary.trials_in_log is not None else summary.trials)
+    cut = n_decl is not None and in_log > n_decl
     scan = LogScan(counts=np.asarray(summary.counts, dtype=np.int64), trials=int(summary.trials),
                    sha256=str(summary.sha256), size_bytes=int(summary.size_bytes),
                    files=tuple(Path(f.path).name for f in summary.files),
                    has_test_flag=bool(summary.has_test_flag), raw_bits=sink.bits,
-                   raw_sha256=raw_sha, finite=finite, scope="whole",
-                   bytes_read=int(summary.size_bytes), trials_read=int(summary.trials))
+                   raw_sha256=raw_sha, finite=finite, scope="prefix" if cut else "whole",
+                   bytes_read=int(summary.size_bytes), trials_read=int(summary.trials),
+                   ended_by="declared-trials" if cut else "end-of-log",
+                   block_settings=settings_symbol_counts(summary.block_counts)
+                   if summary.block_counts.size else np.zeros((0, 8), dtype=np.int64),
+                   pair_counts=summary.pair_counts, trials_in_log=in_log,
+                   file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
+                                       "sha256": f.sha256} for f in summary.files),
+                   formats=tuple(f.format for f in summary.files))
     return scan, sink
 
 
@@ -682,21 +756,74 @@ def log_end_note(scan: LogScan) -> str | None:
             f"covers the {scan.trials} trials read")
 
 
+def design_report(scan: LogScan, protocol: Any) -> Any:
+    """The design-conformance report of a scan (:func:`dicert.design.check_design`)."""
+    from dicert.design import check_design
+
+    return check_design(scan.counts, protocol, block_counts=scan.block_settings,
+                        pair_counts=scan.pair_counts, trials_in_log=scan.trials_in_log,
+                        decided_early=scan.ended_by == "decision", eps=_estimate_eps(protocol))
+
+
+def withhold(analysis: Analysis, screens: Mapping[str, Any] | None) -> Analysis:
+    """The analysis with status "withheld" when the output screens failed grossly."""
+    if screens is None or screens.get("passed", True) or analysis.status != "certified":
+        return analysis
+    return dataclasses.replace(
+        analysis, status="withheld",
+        abort_reason=f"output withheld: the output screens failed grossly "
+                     f"({screens.get('failure')})")
+
+
+def _not_run(protocol: Any, reason: str) -> Any:
+    """A finite-size result standing for a method that was not run (design check failed)."""
+    from dicert.finite.result import FiniteSizeResult
+
+    name = getattr(protocol.analysis, "method_name", None) or str(protocol.method)
+    return FiniteSizeResult(method=str(name),
+                            side_information="quantum" if protocol.method == "eat"
+                            else "classical", accepted=False, min_entropy_bits=0.0, eps={},
+                            details={"not_run": reason})
+
+
 def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
-                   finite: Any = None, log_end: str | None = None) -> Analysis:
-    """Estimate, finite-size bound, accept/abort and output length from the counts alone.
+                   finite: Any = None, log_end: str | None = None,
+                   design: Any = None) -> Analysis:
+    """Design checks, estimate, finite-size bound, accept/abort and output length.
 
     Deterministic in its inputs, so :func:`dicert.verify.verify` re-derives it from a record.
     ``finite`` supplies the result of a streaming method (pef), which depends on the trial
     order and not only on the counts. ``log_end`` (see :func:`log_end_note`) is appended to the
-    abort reason.
+    abort reason. ``design`` is the :class:`dicert.design.DesignReport` of the log (default:
+    the checks the counts alone allow); when a check fails the run aborts with that reason and
+    no finite-size method is run (a streaming pef result is kept, but not used).
     """
+    from dicert.design import check_design
     from dicert.estimate import estimate_chsh
     from dicert.extract import lhl_output_length, seed_bits_required
 
     counts = np.asarray(counts, dtype=np.int64)
     eps_est = _estimate_eps(protocol)
     estimate = estimate_chsh(counts, design=protocol.design, eps=eps_est)
+    if design is None:
+        design = check_design(counts, protocol, eps=eps_est)
+    if not design.passed:
+        if finite is None:
+            finite = _not_run(protocol, "the finite-size method was not run: " +
+                              str(design.abort_reason))
+        reason = str(design.abort_reason)
+        det = finite.details if isinstance(finite.details, Mapping) else {}
+        if not finite.accepted and "not_run" not in det:
+            why = det.get("abort_reason") or det.get("outcome")
+            if why:  # a streaming method (pef) aborted too: give its reason first
+                reason = f"the acceptance test of the protocol failed: {why}; also {reason}"
+        if log_end:
+            reason = f"{reason} ({log_end})"
+        return Analysis(estimate=estimate, finite=finite, status="aborted",
+                        abort_reason=reason, min_entropy_bits=0.0, output_bits=0,
+                        seed_bits_needed=0,
+                        total_error=float(finite.total_error(protocol.extractor.eps_ext)),
+                        design=design)
     if finite is None:
         finite = _certify_counts(counts, protocol)
     eps_ext = protocol.extractor.eps_ext
@@ -724,7 +851,7 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
     return Analysis(estimate=estimate, finite=finite, status=status, abort_reason=reason,
                     min_entropy_bits=k, output_bits=m if status == "certified" else 0,
                     seed_bits_needed=need if status == "certified" else 0,
-                    total_error=total_error)
+                    total_error=total_error, design=design)
 
 
 def _certify_counts(counts: np.ndarray, protocol: Any) -> Any:
@@ -781,7 +908,7 @@ def _split_timing(details: Any) -> tuple[Any, float | None]:
 
 def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256: str,
                seed_bytes: int, extraction: Any | None, chain_info: tuple[int, str | None] | None,
-               volatile: dict) -> dict:
+               volatile: dict, inputs: dict | None = None, screens: dict | None = None) -> dict:
     """The record body (everything the audit layer then digests and signs)."""
     from dicert.audit.record import RECORD_FORMAT
 
@@ -801,6 +928,7 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
                 "<= total",
     }
     certified = analysis.status == "certified"
+    published = certified
     extractor = {
         "kind": protocol.extractor.kind,
         "output_rule": protocol.extractor.output_rule,
@@ -837,7 +965,10 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
             "sha256": scan.sha256,
             "size_bytes": int(scan.size_bytes),
             "trials": int(scan.trials),
-            "files": list(scan.files),
+            "files": ([dict(e) for e in scan.file_entries] if scan.file_entries
+                      else list(scan.files)),
+            "trials_in_log": int(scan.trials_in_log if scan.trials_in_log is not None
+                                 else scan.trials),
             "has_test_flag": bool(scan.has_test_flag),
             "scope": scan.scope,
             "bytes_read": int(scan.bytes_read if scan.bytes_read is not None
@@ -880,7 +1011,7 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "extractor": extractor,
         "status": analysis.status,
         "abort_reason": analysis.abort_reason,
-        "certified_min_entropy_bits": analysis.min_entropy_bits if certified else 0.0,
+        "certified_min_entropy_bits": analysis.min_entropy_bits if published else 0.0,
         "assumptions": assumptions,
         "caution": CAUTION,
         "references": references,
@@ -888,6 +1019,22 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "previous_record_sha256": chain_info[1] if chain_info else None,
         "volatile": volatile,
     }
+    if analysis.design is not None:
+        sec = analysis.design.to_dict()
+        sec["inputs"] = {
+            "symbol": "settings symbol s = 4 t + 2 x + y (t = 0 for every trial of a log "
+                      "without a t column in pair_counts)",
+            "pair_counts": (np.asarray(scan.pair_counts, dtype=np.int64).tolist()
+                            if scan.pair_counts is not None else None),
+            "block_settings_counts": (np.asarray(scan.block_settings, dtype=np.int64).tolist()
+                                      if scan.block_settings is not None else None),
+        }
+        body["design"] = sec
+    body["inputs"] = inputs if inputs is not None else {
+        "allow_mixed_inputs": False, "input_problems": [],
+        "allow_seed_reuse": False, "seed_problems": []}
+    if screens is not None:
+        body["output_screens"] = screens
     return plain(body)
 
 
@@ -940,7 +1087,8 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
-            idle_timeout_s: float | None = 300.0) -> CertifyResult:
+            idle_timeout_s: float | None = 300.0, allow_mixed_inputs: bool = False,
+            allow_seed_reuse: bool = False) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -970,6 +1118,13 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         what was read; a record is still written).
     poll_s, idle_timeout_s : float
         Follow mode: pause between looks for new bytes, and the idle timeout (None: none).
+    allow_mixed_inputs : bool
+        Accept a multi-file log with files of equal content, a file next to its ``.gz`` copy,
+        or mixed formats (refused otherwise as bad input); recorded in ``inputs``.
+    allow_seed_reuse : bool
+        Accept a seed whose SHA-256 equals the log's (or one of its files') or one already
+        used in the chain (refused otherwise); recorded in ``inputs``. A constant or
+        short-period seed is always refused.
 
     Returns
     -------
@@ -1035,8 +1190,37 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             raise LogFormatError(log, "", f"the protocol declares every round a test round "
                                  f"(settings.gamma = 1) but the log marks {generation_rounds} "
                                  f"trials as generation rounds (t = 0)")
+        from dicert.logs import input_identity_problems
+
+        input_problems = input_identity_problems(
+            [Path(e["name"]) for e in scan.file_entries] if len(scan.file_entries) > 1 else [],
+            scan.formats if len(scan.formats) > 1 else None,
+            [e["sha256"] for e in scan.file_entries] if len(scan.file_entries) > 1 else None)
+        if input_problems and not allow_mixed_inputs:
+            raise LogFormatError(log, "", f"{input_problems[0]}; refusing a log that may hold "
+                                 "the same data twice or mix sources (pass --allow-mixed-inputs "
+                                 "if this is intended; it is then recorded)")
         analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
-                                  log_end=log_end_note(scan))
+                                  log_end=log_end_note(scan), design=design_report(scan, proto))
+        seed_issues: list[str] = []
+        if analysis.status == "certified":
+            from dicert.design import seed_problems
+
+            check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
+            used = _chain_seed_digests(chain_dir) if chain_dir is not None else ()
+            digests = (scan.sha256,) + tuple(str(e.get("sha256")) for e in scan.file_entries)
+            fatal, seed_issues = seed_problems(seed_bytes, log_digests=digests,
+                                               used_digests=used)
+            if fatal:
+                raise SeedError(f"{seed_label}: {fatal[0]}; an extractor seed must be "
+                                "uniformly random")
+            if seed_issues and not allow_seed_reuse:
+                raise SeedError(f"{seed_label}: {seed_issues[0]}; use a fresh uniformly random "
+                                "seed (or pass --allow-seed-reuse; it is then recorded)")
+        inputs = {"allow_mixed_inputs": bool(allow_mixed_inputs),
+                  "input_problems": list(input_problems),
+                  "allow_seed_reuse": bool(allow_seed_reuse),
+                  "seed_problems": list(seed_issues)}
         timings["analysis"] = time.perf_counter() - t2
 
         extraction = None
@@ -1050,26 +1234,35 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
                 raise DicertError("extractor returned a different output length")
         timings["extraction"] = time.perf_counter() - t3
+        screens = None
+        if extraction is not None:
+            from dicert.design import output_screens, spec_of
+
+            screens = output_screens(extraction.output, analysis.output_bits,
+                                     spec_of(proto).significance)
+            analysis = withhold(analysis, screens)
 
         t4 = time.perf_counter()
         out.mkdir(parents=True, exist_ok=True)
         bits_path = out / BITS_NAME
         record_path = out / RECORD_NAME
-        if extraction is not None:
+        publish = extraction is not None and analysis.status == "certified"
+        if publish:
             tmp_files.append(write_temp_sibling(out / BITS_NAME, extraction.output, 0o600))
         timings["write"] = time.perf_counter() - t4
         volatile = {"timestamps": {"started": started, "finished": _now(clock)},
                     "timings_s": {k: round(v, 6) for k, v in timings.items()}}
         body = build_body(protocol=proto, scan=scan, analysis=analysis, seed_sha256=seed_sha,
                           seed_bytes=len(seed_bytes), extraction=extraction,
-                          chain_info=chain_info, volatile=volatile)
+                          chain_info=chain_info, volatile=volatile, inputs=inputs,
+                          screens=screens)
         from dicert.audit.record import record_bytes, record_digest, seal_record
 
         record = seal_record(body, signer)
         rec_bytes = record_bytes(record)
         tmp_files.append(write_temp_sibling(out / RECORD_NAME, rec_bytes))
         # Commit point: rename into place (bits first, record last).
-        if extraction is not None:
+        if publish:
             os.replace(tmp_files[0], bits_path)
         else:
             # A bits file left by an earlier run in this directory must not be mistaken for
@@ -1087,7 +1280,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             except BaseException:
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(record_path)
-                if extraction is not None:
+                if publish:
                     with contextlib.suppress(FileNotFoundError):
                         os.unlink(bits_path)
                 raise
@@ -1098,7 +1291,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
                 os.unlink(p)
     return CertifyResult(
         status=analysis.status, output_bits=analysis.output_bits,
-        bits_file=bits_path if extraction is not None else None, record_file=record_path,
+        bits_file=bits_path if publish else None, record_file=record_path,
         chain_file=chain_file, min_entropy_bits=analysis.min_entropy_bits,
         error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
         abort_reason=analysis.abort_reason, record_sha256=record_digest(record), record=record,
@@ -1128,6 +1321,25 @@ def _load_key(key: Any) -> Any:
 
         return load_private_key(key)
     return key
+
+
+def _chain_seed_digests(chain_dir: Path) -> tuple[str, ...]:
+    """Seed digests already used (seed bits consumed) by the records of a beacon chain."""
+    import json
+
+    out = []
+    if not chain_dir.is_dir():
+        return ()
+    for p in sorted(chain_dir.glob("*.json")):
+        try:
+            rec = json.loads(p.read_bytes())
+        except (OSError, ValueError):
+            continue  # verify --chain reports unreadable pulses
+        ex = rec.get("extractor") if isinstance(rec, dict) else None
+        if isinstance(ex, dict) and isinstance(ex.get("seed_sha256"), str) \
+                and (ex.get("seed_bits_used") or 0) > 0:
+            out.append(ex["seed_sha256"])
+    return tuple(out)
 
 
 def _chain_position(chain_dir: Path | None) -> tuple[int, str | None] | None:
@@ -1164,6 +1376,8 @@ __all__ = [
     "LogScan",
     "analyse_counts",
     "build_body",
+    "design_report",
+    "withhold",
     "certify",
     "check_seed_length",
     "expected_raw_bits",

@@ -35,8 +35,9 @@ import io
 import os
 import struct
 import zipfile
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -186,10 +187,17 @@ class LogSummary:
     has_test_flag : bool
         Whether the log has a ``t`` column.
     sha256 : str or None
-        SHA-256 of the log's bytes (the concatenation of its files' bytes, in order).
+        Digest of the log: a single file's SHA-256; for several files the SHA-256 of the
+        RFC 8785 canonical JSON of their list (:func:`files_digest`).
     size_bytes : int
         Total size of the log's files.
     files : tuple of FileInfo
+    pair_counts : ndarray, shape (8, 8), int64
+        Counts of consecutive settings symbols s = 4 t + 2 x + y (previous, current), across
+        chunk and file boundaries (for the serial-independence check of :mod:`dicert.design`).
+    trials_in_log : int
+        Trials present in the log; more than ``trials`` when ``max_trials`` limited the
+        analysed prefix.
     """
 
     trials: int
@@ -200,6 +208,8 @@ class LogSummary:
     sha256: str | None
     size_bytes: int
     files: tuple[FileInfo, ...]
+    pair_counts: np.ndarray | None = None  # (8, 8) consecutive settings symbols (4t+2x+y)
+    trials_in_log: int | None = None  # trials present (>= trials when max_trials cut the scan)
 
 
 # --------------------------------------------------------------------------------------------
@@ -844,6 +854,7 @@ def summarize_log(
     format: str | None = None,
     on_chunk: Callable[[LogChunk], object] | None = None,
     progress: Callable[[int, int], object] | None = None,
+    max_trials: int | None = None,
 ) -> LogSummary:
     """Read a log once, streaming, and return its counts (total and per block) and digest.
 
@@ -859,22 +870,40 @@ def summarize_log(
         pass).
     progress : callable, optional
         Called as ``progress(bytes_done, bytes_total)``.
+    max_trials : int, optional
+        Count (and pass to ``on_chunk``) only the first ``max_trials`` trials; the rest of
+        the log is still read, validated and hashed, and counted in ``trials_in_log``.
     """
-    from dicert._kernels import count_blocks
+    from dicert._kernels import count_blocks, count_pairs
 
     if block_trials <= 0:
         raise ParameterError("block_trials must be positive")
     log = open_log(source, format=format)
     total_bytes = sum(f.stat().st_size for f in log.files)
-    hasher = hashlib.sha256() if digest else None
     blocks: list[np.ndarray] = []
     partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
     in_partial = 0
     trials = 0
+    in_log = 0
+    pairs = np.zeros(64, dtype=np.int64)
+    prev = -1  # settings symbol of the last trial counted (carried across chunks and files)
     # Without a consumer of the chunks the buffers can be reused (nothing keeps the codes).
-    for chunk in log.iter_chunks(chunk_trials, hasher=hasher, hash_files=digest,
+    # The digest is built from the per-file digests (see files_digest), so no second hasher.
+    for chunk in log.iter_chunks(chunk_trials, hash_files=digest,
                                  reuse_buffers=on_chunk is None):
         codes = chunk.codes
+        in_log += codes.size
+        if max_trials is not None:
+            room = max_trials - trials
+            if room <= 0:
+                if progress is not None:
+                    progress(min(total_bytes, _bytes_done(log, in_log, total_bytes)), total_bytes)
+                continue
+            if codes.size > room:
+                codes = codes[:room]
+                chunk = LogChunk(codes=codes, start=chunk.start, has_test_flag=chunk.has_test_flag)
+        pc, prev = count_pairs(codes, prev)
+        pairs += pc
         pos = 0
         if in_partial:
             take = min(block_trials - in_partial, codes.size)
@@ -906,16 +935,72 @@ def summarize_log(
     if not log.has_test_flag:
         block_counts = np.stack([np.zeros_like(block_counts[:, 0]), block_counts.sum(axis=1)], axis=1)
     counts = block_counts.sum(axis=0) if block_counts.size else np.zeros((2,) * 5, dtype=np.int64)
+    sha = None
+    if digest:
+        infos = log.file_infos
+        sha = infos[0].sha256 if len(infos) == 1 else files_digest(
+            {"name": Path(f.path).name, "bytes": f.size_bytes, "sha256": f.sha256} for f in infos)
     return LogSummary(
         trials=trials,
         counts=counts,
         block_trials=block_trials,
         block_counts=block_counts,
         has_test_flag=log.has_test_flag,
-        sha256=hasher.hexdigest() if hasher is not None else None,
+        sha256=sha,
         size_bytes=total_bytes,
         files=tuple(log.file_infos),
+        pair_counts=pairs.reshape(8, 8),
+        trials_in_log=in_log,
     )
+
+
+def input_identity_problems(files: Iterable[Any], formats: Iterable[str] | None = None,
+                            digests: Iterable[str | None] | None = None) -> list[str]:
+    """Reasons why a multi-file log looks like it holds the same data twice or mixes sources.
+
+    Flags a file next to its own ``.gz`` copy (``run.csv`` and ``run.csv.gz``), files of
+    different formats in one log, and (given the per-file ``digests``) files of equal content.
+    Returns an empty list for a clean log; callers refuse the log unless the user explicitly
+    allows it.
+    """
+    paths = [Path(f) for f in files]
+    out: list[str] = []
+    names = {(p.parent, p.name.lower()) for p in paths}
+    for p in paths:
+        low = p.name.lower()
+        if low.endswith(".gz") and (p.parent, low[:-3]) in names:
+            out.append(f"{p} is a compressed copy of {p.with_name(p.name[:-3])}, which is also "
+                       "part of the log")
+    if formats is not None:
+        fm = list(formats)
+        if len(set(fm)) > 1:
+            kinds = ", ".join(f"{q.name} ({f})" for q, f in zip(paths, fm))
+            out.append(f"the log mixes file formats: {kinds}")
+    if digests is not None:
+        seen: dict[str, Path] = {}
+        for p, d in zip(paths, digests):
+            if d is None:
+                continue
+            if d in seen:
+                out.append(f"{p} has the same content (SHA-256 {d[:16]}...) as {seen[d]}")
+            else:
+                seen[d] = p
+    return out
+
+
+def files_digest(entries: Iterable[Mapping[str, Any]]) -> str:
+    """Digest of a multi-file log: SHA-256 of the RFC 8785 canonical JSON of its files list.
+
+    ``entries`` are ``{"name": file name, "bytes": size, "sha256": hex SHA-256 of the file}``
+    in read order; the list is canonicalised (RFC 8785: keys sorted, no whitespace) and
+    hashed. Each file's digest can be computed independently (in parallel), then combined
+    here. A single-file log uses the file's own SHA-256 instead.
+    """
+    from dicert.audit.canonical import canonicalize
+
+    items = [{"name": str(e["name"]), "bytes": int(e["bytes"]), "sha256": str(e["sha256"])}
+             for e in entries]
+    return hashlib.sha256(canonicalize(items)).hexdigest()
 
 
 def _bytes_done(log: TrialLog, trials: int, total_bytes: int) -> int:
@@ -1042,6 +1127,8 @@ __all__ = [
     "TrialLog",
     "convert_log",
     "detect_format",
+    "files_digest",
+    "input_identity_problems",
     "open_log",
     "read_binary_header",
     "read_trials",

@@ -56,7 +56,8 @@ METHODS = ("martingale", "eat", "pef")
 EXTRACTOR_KINDS = ("toeplitz",)
 OUTPUT_RULES = ("lhl-conservative",)
 
-_TOP_KEYS = ("format", "name", "description", "bell", "settings", "harvest", "analysis", "extractor")
+_TOP_KEYS = ("format", "name", "description", "bell", "settings", "harvest", "analysis", "extractor",
+             "design")
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -107,6 +108,7 @@ class Protocol:
     analysis: Any  # MartingaleParams | EatParams | PefParams
     extractor: ExtractorSpec
     description: str = ""
+    conformance: Any = None  # dicert.design.DesignSpec (the optional [design] table)
 
     @property
     def gamma(self) -> float:
@@ -333,6 +335,7 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     method, params = _parse_analysis(ctx, d)
     extractor = _parse_extractor(ctx, d)
     _cross_checks(ctx, bell=bell, design=design, harvest=harvest, method=method, params=params)
+    conformance = _parse_design(ctx, d, params)
     if text is None:
         import json
 
@@ -341,7 +344,18 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
         sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return Protocol(name=name.strip(), path=path or source, sha256=sha256, text=text, bell=bell,
                     design=design, harvest=harvest, method=method, analysis=params,
-                    extractor=extractor, description=desc)
+                    extractor=extractor, description=desc, conformance=conformance)
+
+
+def _parse_design(ctx: _Ctx, d: Mapping[str, Any], params: Any):
+    """The optional [design] table (significance of the conformance checks, declared n)."""
+    from dicert.design import DesignSpec
+
+    spec = DesignSpec.from_mapping(d.get("design", {}), ctx.source)
+    rounds = getattr(params, "rounds", None)
+    if spec.trials is not None and isinstance(rounds, int) and rounds != spec.trials:
+        raise ctx.fail("design.trials", f"{spec.trials} disagrees with analysis.rounds = {rounds}")
+    return spec
 
 
 def _plain(obj: Any) -> Any:

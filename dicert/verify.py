@@ -198,13 +198,27 @@ def check_signature(record: Mapping[str, Any], public_key: Any = None) -> tuple[
 def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.certify import analyse_counts, build_body, log_end_note
+    from dicert.certify import analyse_counts, build_body, design_report, log_end_note, withhold
     from dicert.extract import seed_bits_required
 
+    legacy = body.get("format") == "dicert-record/1"
+    if legacy:
+        from dicert.design import DesignReport, spec_of
+
+        # A /1 record predates the design stage: its numbers are re-derived without it.
+        spec = spec_of(protocol)
+        design = DesignReport(significance=spec.significance, block_trials=spec.block_trials,
+                              trials=scan.trials, trials_in_log=scan.trials,
+                              declared_trials=None, checks=())
+    else:
+        design = design_report(scan, protocol)
     analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite,
-                              log_end=log_end_note(scan))
+                              log_end=log_end_note(scan), design=design)
+    screens = body.get("output_screens") if isinstance(body.get("output_screens"), Mapping) \
+        else None
+    analysis = withhold(analysis, screens)
     extraction = None
-    if analysis.status == "certified":
+    if analysis.status in ("certified", "withheld"):
         extraction = _ExtractionStandIn(
             seed_bits_used=int(seed_bits_required(scan.raw_bits, analysis.output_bits)),
             output_sha256=output_sha256,
@@ -214,9 +228,20 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     chain_info = None
     if body.get("pulse_index") is not None or body.get("previous_record_sha256") is not None:
         chain_info = (body.get("pulse_index"), body.get("previous_record_sha256"))
+    inputs = body.get("inputs") if isinstance(body.get("inputs"), Mapping) else None
     exp = build_body(protocol=protocol, scan=scan, analysis=analysis, seed_sha256=seed_sha256,
                      seed_bytes=seed_bytes, extraction=extraction, chain_info=chain_info,
-                     volatile=body.get("volatile"))
+                     volatile=body.get("volatile"), inputs=dict(inputs) if inputs else None,
+                     screens=screens)
+    if legacy:
+        # Members added by dicert-record/2 are absent from a /1 record (see verify's notes).
+        exp["format"] = body.get("format")
+        for k in _V2_MEMBERS:
+            exp.pop(k, None)
+        if isinstance(exp.get("log"), dict):
+            exp["log"].pop("trials_in_log", None)
+            exp["log"]["files"] = [e["name"] if isinstance(e, Mapping) else e
+                                   for e in exp["log"]["files"]]
     # A record written by another version is compared on its numbers, not its version string;
     # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])
@@ -229,10 +254,18 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     return exp
 
 
+#: Top-level record members introduced by dicert-record/2.
+_V2_MEMBERS = ("design", "inputs", "output_screens")
+#: What a dicert-record/1 record lacks (said in verify's notes).
+LEGACY_LACKS = ("design-conformance checks (test-round fraction, settings distribution, "
+                "serial independence, physical range, declared trial count)",
+                "per-file digests of the log", "input identity and seed checks",
+                "output screens")
+
 #: Members of the record's ``log`` section that describe what part of the log was read.
 _SCOPE_KEYS = ("scope", "bytes_read", "trials_read", "stopped_early", "stop_trial_index",
                "ended_by", "follow")
-_ENDINGS = ("end-of-log", "decision", "idle-timeout")
+_ENDINGS = ("end-of-log", "decision", "idle-timeout", "declared-trials")
 
 
 def _scope_of(body: Mapping[str, Any], trials: int, size_bytes: Any) -> dict:
@@ -297,13 +330,65 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
     size_bytes = _get(body, "log.size_bytes")
     scope = _scope_of(body, trials, size_bytes)
     if scope["scope"] == "prefix":
-        _require(protocol.method == "pef", "log.scope",
-                 "only method pef stops reading a log early")
+        _require(protocol.method == "pef" or scope.get("ended_by") == "declared-trials",
+                 "log.scope", "only method pef stops reading a log early")
+    if scope.get("ended_by") == "declared-trials":
+        from dicert.design import declared_trials
+
+        _require(declared_trials(protocol) == trials, "log.trials_read",
+                 "a prefix of declared trials must hold exactly the protocol's declared n")
+    extra: dict[str, Any] = {}
+    design = body.get("design")
+    if isinstance(design, Mapping):
+        inputs = design.get("inputs") if isinstance(design.get("inputs"), Mapping) else {}
+        extra["pair_counts"] = _int_table(inputs.get("pair_counts"), (8, 8),
+                                          "design.inputs.pair_counts")
+        blocks = inputs.get("block_settings_counts")
+        extra["block_settings"] = None if blocks is None else _int_table(
+            blocks, (-1, 8), "design.inputs.block_settings_counts")
+        in_log = _get(body, "log.trials_in_log")
+        _require(isinstance(in_log, int) and in_log >= trials, "log.trials_in_log",
+                 f"expected an integer >= log.trials, got {in_log!r}")
+        extra["trials_in_log"] = in_log
+    if isinstance(files, list) and files and all(isinstance(f, Mapping) for f in files):
+        extra["file_entries"] = tuple(dict(f) for f in files)
+        files = [f.get("name") for f in files]
     return LogScan(counts=counts, trials=trials, sha256=_get(body, "log.sha256"),
                    size_bytes=size_bytes,
                    files=tuple(files) if isinstance(files, list) else files,
                    has_test_flag=has_t, raw_bits=raw_bits,
-                   raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite, **scope)
+                   raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite, **scope,
+                   **extra)
+
+
+def _legacy_design_note(scan: Any, protocol: Any) -> str:
+    """What the design checks the counts allow say about a /1 record (informational)."""
+    from dicert.design import check_design
+
+    try:
+        rep = check_design(scan.counts, protocol)
+    except DicertError:
+        return ""
+    if rep.passed:
+        return "; the checks its counts allow pass today"
+    return ("; WARNING: re-run on its counts, these checks FAIL today: "
+            + ", ".join(c.name for c in rep.failed))
+
+
+def _int_table(values: Any, shape: tuple[int, int], field: str) -> np.ndarray | None:
+    if values is None:
+        return None
+    try:
+        arr = np.array(values, dtype=object)
+        ok = arr.ndim == 2 and (shape[0] < 0 or arr.shape[0] == shape[0]) \
+            and arr.shape[1] == shape[1] and all(
+                isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in arr.ravel())
+    except (ValueError, TypeError):
+        ok = False
+    if not ok and np.array(values, dtype=object).size == 0 and shape[0] < 0:
+        return np.zeros((0, shape[1]), dtype=np.int64)
+    _require(ok, field, f"expected a table of non-negative integers with {shape[1]} columns")
+    return np.array(values, dtype=np.int64).reshape(-1, shape[1])
 
 
 def _finite_from_record(body: Mapping[str, Any]):
@@ -374,16 +459,37 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     seed_bytes_n = _get(body, "extractor.seed_bytes")
     output_sha = _get(body, "extractor.output_sha256")
     status = _get(body, "status")
-    _require(status in ("certified", "aborted"), "status", f"unknown status {status!r}")
+    _require(status in ("certified", "aborted", "withheld"), "status",
+             f"unknown status {status!r}")
     exp = expected_body(body, protocol, rec_scan, seed_sha256=seed_sha, seed_bytes=seed_bytes_n,
                         output_sha256=output_sha)
     _compare(exp, body)
     used = _get(body, "extractor.seed_bits_used")
     _require(isinstance(seed_bytes_n, int) and seed_bytes_n * 8 >= used, "extractor.seed_bytes",
              f"{seed_bytes_n!r} bytes cannot supply {used} seed bits")
-    if status == "certified":
+    if status in ("certified", "withheld"):
         _require(isinstance(output_sha, str) and len(output_sha) == 64, "extractor.output_sha256",
                  "a certified record must carry the output digest")
+    if body.get("format") == "dicert-record/1":
+        notes.append("record format dicert-record/1: it lacks " + "; ".join(LEGACY_LACKS)
+                     + " (not checked when it was written)" + _legacy_design_note(rec_scan,
+                                                                                   protocol))
+    else:
+        des = _get(body, "design")
+        failed = [c.get("name") for c in des.get("checks", []) if isinstance(c, Mapping)
+                  and not c.get("passed")]
+        checked.append(f"design conformance re-run ({len(des.get('checks', []))} checks"
+                       + (f"; failed: {', '.join(map(str, failed))})" if failed else ", all passed)"))
+        inp = body.get("inputs") if isinstance(body.get("inputs"), Mapping) else {}
+        if inp.get("allow_mixed_inputs") and inp.get("input_problems"):
+            notes.append("the operator allowed a log with input identity problems: "
+                         + "; ".join(map(str, inp["input_problems"])))
+        if inp.get("allow_seed_reuse") and inp.get("seed_problems"):
+            notes.append("the operator allowed a seed problem: "
+                         + "; ".join(map(str, inp["seed_problems"])))
+        if status == "withheld":
+            notes.append("the output was withheld: its screens failed grossly ("
+                         + str((body.get("output_screens") or {}).get("failure")) + ")")
     checked.append("internal consistency (protocol digest, counts, estimate, finite-size "
                    "bound, acceptance, eps terms, output length, seed bits)")
     if protocol.method == "pef" and log is None:
@@ -423,7 +529,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         parties, rounds = protocol.harvest.parties, protocol.harvest.rounds
         spill = Path(tempfile.gettempdir())
         try:
-            if rec_scan.scope == "prefix":
+            if rec_scan.scope == "prefix" and rec_scan.ended_by != "declared-trials":
                 # Only the recorded prefix is read: the file may have grown since, or still
                 # lack its trailer; nothing after the prefix is looked at.
                 _require(_single_binary(log) is not None, "log.scope",
@@ -448,12 +554,17 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         try:
             exp = expected_body(body, protocol, scan, seed_sha256=seed_sha,
                                 seed_bytes=seed_bytes_n, output_sha256=output_sha)
-            # The log may have been moved or renamed; its bytes are what is certified.
-            exp["log"]["files"] = body["log"]["files"] if len(body["log"]["files"]) == len(
-                exp["log"]["files"]) else exp["log"]["files"]
+            # The log may have been moved or renamed; its bytes are what is certified (a
+            # multi-file digest covers the names, so only a single file may be renamed).
+            rf, ef = body["log"]["files"], exp["log"]["files"]
+            if isinstance(rf, list) and len(rf) == len(ef):
+                exp["log"]["files"] = [
+                    {**e, "name": r["name"]} if isinstance(e, Mapping) and isinstance(r, Mapping)
+                    and "name" in r else (r if not isinstance(e, Mapping) else e)
+                    for e, r in zip(ef, rf)]
             _compare(exp, body)
             checked.append("log digest, size, trial count, counts and harvested raw bits")
-            if seed_data is not None and status == "certified":
+            if seed_data is not None and status in ("certified", "withheld"):
                 from dicert.extract import extract_toeplitz
 
                 res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits)
@@ -461,6 +572,13 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                          "re-running the extractor on the log and seed gives other bits")
                 recomputed_output = bytes(res.output)
                 checked.append("extraction re-run from log and seed")
+                if "output_screens" in body:
+                    from dicert.design import output_screens, spec_of
+
+                    scr = output_screens(recomputed_output, output_bits,
+                                         spec_of(protocol).significance)
+                    _compare({"output_screens": scr}, {"output_screens": body["output_screens"]})
+                    checked.append("output screens re-run on the recomputed output")
         finally:
             sink.discard()
     else:

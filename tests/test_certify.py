@@ -213,7 +213,9 @@ def test_chain_links_pulses(small_run, tmp_path):
     _d, log, seed = small_run
     chain = tmp_path / "chain"
     r1 = certify(log, uniform_protocol(), seed, tmp_path / "p1", chain=chain)
-    r2 = certify(log, uniform_protocol(), seed, tmp_path / "p2", chain=chain)
+    # (reusing a seed in a chain is refused unless explicitly allowed; see test_design.py)
+    r2 = certify(log, uniform_protocol(), seed, tmp_path / "p2", chain=chain,
+                 allow_seed_reuse=True)
     assert r1.record["pulse_index"] == 1 and r1.record["previous_record_sha256"] is None
     assert r2.record["pulse_index"] == 2
     assert r2.record["previous_record_sha256"] == record_digest(r1.record)

@@ -1,0 +1,698 @@
+"""Design conformance: refuse data that plainly contradict the protocol's declared design.
+
+A device-independent certificate rests on assumptions about how the experiment was run: the
+settings of every round are drawn independently of everything else with the declared
+distribution (test rounds with probability ``gamma``, uniform or declared test settings,
+fixed generation settings), the round type and settings stay unknown to the devices until the
+round, and the number of trials n is fixed in advance. The software cannot prove these; it
+can, and must, refuse logs whose counts contradict them. :func:`check_design` is the one
+stage that does that. It is pure (counts in, a frozen report out) and every path runs it
+before any finite-size method: :func:`dicert.certify.certify` (a failed check ABORTS the run:
+a record is written, 0 bits), :func:`dicert.verify.verify` (re-derives every check),
+``dicert inspect`` and ``dicert entropy --from-log`` (show the checks).
+
+Checks (each at the protocol's significance ``alpha``, key ``[design] significance``,
+default :data:`DEFAULT_SIGNIFICANCE`):
+
+* ``test_fraction``: number of test rounds against Binomial(n, gamma), two-sided exact
+  binomial test (reference implementation: ``scipy.stats.binomtest``).
+* ``test_settings_x`` / ``test_settings_y`` / ``test_settings_xor``: among test rounds, the
+  counts of x = 0, y = 0 and x XOR y = 0 against the declared test-settings distribution
+  (uniform, or ``p_x0``/``p_y0`` with bias bounds: the p-value is then the largest over the
+  declared interval). The three binomial tests together test the joint distribution of
+  (x, y), i.e. both marginals and their independence.
+* ``generation_settings``: generation rounds (t = 0) must use the declared generation
+  settings (deterministic: any other setting fails).
+* ``*_per_block``: the same binomial tests in every block of ``block_trials`` trials, with a
+  Bonferroni correction (threshold alpha / number of tests in the family; common practice).
+* ``serial_independence``: counts of consecutive settings pairs (symbol s = (t, x, y)) against
+  independence, likelihood-ratio (G) test of a zero-order against a first-order Markov chain
+  (Anderson & Goodman 1957), chi-square with (k - 1)^2 degrees of freedom; symbols with few
+  occurrences are pooled so that every expected cell holds at least :data:`MIN_EXPECTED`
+  pairs (pooling a function of an i.i.d. sequence keeps it i.i.d., so the test stays valid).
+  It catches predictable sequences with perfect marginals (e.g. settings cycling 00, 01, 10,
+  11), the same job as the serial test of NIST SP 800-22 rev. 1a section 2.11 on bit streams.
+* ``chsh_physical_range``: the importance-weighted CHSH estimate must not exceed 4 (the
+  no-signalling maximum) and its lower confidence bound must not exceed the maximum of the
+  method's device model (2 sqrt 2 for quantum devices, 4 for no-signalling ones). A value
+  beyond them means the declared gamma or settings distribution is not the one the data came
+  from.
+* ``trial_count``: with a pre-declared n (``[design] trials``), the log must hold at least n
+  trials (a longer log is analysed up to n, see :mod:`dicert.certify`).
+
+False alarms: with k checks at level alpha each the probability that an honest run is
+refused is at most k * alpha by the union bound (k <= 12, so <= 1.2e-8 at the default); the
+test suite measures it on honest simulated runs (``tests/test_design.py``).
+
+References
+----------
+.. [1] T. W. Anderson, L. A. Goodman, "Statistical inference about Markov chains", Ann. Math.
+   Statist. 28, 89-110 (1957) (test of independence against a first-order chain).
+.. [2] A. Rukhin et al., NIST SP 800-22 rev. 1a (2010), section 2.11 (serial test).
+.. [3] C. J. Clopper, E. S. Pearson, Biometrika 26, 404 (1934); scipy.stats.binomtest (exact
+   two-sided binomial test, "minlike" p-value).
+.. [4] K. Azuma, Tohoku Math. J. 19, 357 (1967) (martingale bound of the CHSH estimate).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from dicert.errors import ParameterError, ProtocolError
+
+#: Default significance of every design-conformance test (a protocol key overrides it).
+DEFAULT_SIGNIFICANCE = 1e-9
+#: Default block size of the per-block tests.
+DEFAULT_BLOCK_TRIALS = 1 << 20
+#: Smallest expected count of a cell of the serial-independence table after pooling.
+MIN_EXPECTED = 50.0
+
+TSIRELSON = 2.0 * math.sqrt(2.0)
+NO_SIGNALLING_MAX = 4.0
+
+#: What the stage checks, in words (recorded).
+CHECKED = (
+    "the number of test rounds is consistent with the declared test-round probability gamma",
+    "the settings of test rounds are consistent with the declared distribution (each party's "
+    "marginal and their independence), in the whole log and in every block",
+    "generation rounds use the declared generation settings",
+    "consecutive settings (round type and x, y) show no serial dependence",
+    "the CHSH estimate and its lower bound lie in the physical range of the device model",
+    "with a declared number of trials n, the log holds at least n trials",
+)
+#: What no test on the data can establish: only assumed (recorded).
+ASSUMED = (
+    "the settings and the round type of each round are drawn independently of the devices "
+    "and of any adversary, and stay unknown to the devices until that round (a statistical "
+    "test can only catch gross departures, never prove this)",
+    "the two stations do not communicate during a round (no signalling)",
+    "the number of trials n and every threshold were fixed before the data were taken",
+    "the log records every trial, in order, faithfully (no trial dropped or selected after "
+    "the fact)",
+)
+
+
+# --------------------------------------------------------------------------- protocol keys
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class DesignSpec:
+    """The protocol's ``[design]`` table: what the conformance stage is told in advance.
+
+    Attributes
+    ----------
+    significance : float
+        Significance level of every conformance test (default 1e-9).
+    trials : int or None
+        Pre-declared number of trials n. None: n is taken from the log (the record says so).
+    block_trials : int
+        Block size of the per-block tests.
+    """
+
+    significance: float = DEFAULT_SIGNIFICANCE
+    trials: int | None = None
+    block_trials: int = DEFAULT_BLOCK_TRIALS
+
+    def __post_init__(self) -> None:
+        if not (isinstance(self.significance, float) and 0.0 < self.significance < 0.5):
+            raise ParameterError(f"design significance must lie in (0, 0.5), got "
+                                 f"{self.significance!r}")
+        if self.trials is not None and (isinstance(self.trials, bool)
+                                        or not isinstance(self.trials, int) or self.trials < 1):
+            raise ParameterError(f"declared trials must be a positive integer, got {self.trials!r}")
+        if isinstance(self.block_trials, bool) or not isinstance(self.block_trials, int) \
+                or self.block_trials < 1:
+            raise ParameterError(f"block_trials must be a positive integer, got "
+                                 f"{self.block_trials!r}")
+
+    @classmethod
+    def from_mapping(cls, d: Mapping[str, Any], source: str = "<protocol>") -> DesignSpec:
+        """Validate the ``[design]`` table; errors name the file and the key."""
+        def fail(key: str, problem: str) -> ProtocolError:
+            return ProtocolError(f"{source}: key 'design.{key}': {problem}")
+
+        if not isinstance(d, Mapping):
+            raise ProtocolError(f"{source}: key 'design': expected a table [design]")
+        for k in d:
+            if k not in ("significance", "trials", "block_trials"):
+                raise fail(str(k), "unknown key; allowed here: significance, trials, block_trials")
+        sig = d.get("significance", DEFAULT_SIGNIFICANCE)
+        if isinstance(sig, bool) or not isinstance(sig, (int, float)) or not math.isfinite(sig) \
+                or not 0.0 < float(sig) < 0.5:
+            raise fail("significance", f"expected a number in (0, 0.5), got {sig!r}")
+        out = {"significance": float(sig)}
+        for key in ("trials", "block_trials"):
+            if key in d:
+                v = d[key]
+                if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+                    raise fail(key, f"expected a positive integer, got {v!r}")
+                out[key] = int(v)
+        return cls(**out)
+
+
+def declared_trials(protocol: Any) -> int | None:
+    """The pre-declared number of trials of a protocol (``[design] trials``, or the entropy
+    accumulation key ``[analysis] rounds``), or None."""
+    spec = getattr(protocol, "conformance", None)
+    n = getattr(spec, "trials", None)
+    if n is None:
+        n = getattr(getattr(protocol, "analysis", None), "rounds", None)
+        if isinstance(n, str):  # the harvest selector, not a count
+            n = None
+    return int(n) if n is not None else None
+
+
+def spec_of(protocol: Any) -> DesignSpec:
+    spec = getattr(protocol, "conformance", None)
+    return spec if isinstance(spec, DesignSpec) else DesignSpec()
+
+
+# --------------------------------------------------------------------------- report
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class DesignCheck:
+    """One conformance check.
+
+    ``p_value`` and ``threshold`` are None for deterministic checks; ``applicable`` is False
+    when the data hold too little for the test (it then passes and says why).
+    """
+
+    name: str
+    statistic: float
+    p_value: float | None
+    threshold: float | None
+    passed: bool
+    applicable: bool
+    meaning: str
+    detail: str
+    reference: str
+
+    def to_dict(self) -> dict:
+        return {"name": self.name, "statistic": _num(self.statistic),
+                "p_value": _num(self.p_value), "threshold": _num(self.threshold),
+                "passed": bool(self.passed), "applicable": bool(self.applicable),
+                "meaning": self.meaning, "detail": self.detail, "reference": self.reference}
+
+
+def _num(v: Any) -> Any:
+    if v is None:
+        return None
+    v = float(v)
+    if math.isnan(v):
+        return None
+    if math.isinf(v):
+        return 1e308 if v > 0 else -1e308
+    return v
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class DesignReport:
+    """Every conformance check of one log against one protocol."""
+
+    significance: float
+    block_trials: int
+    trials: int
+    trials_in_log: int
+    declared_trials: int | None
+    checks: tuple[DesignCheck, ...]
+    checked: tuple[str, ...] = CHECKED
+    assumed: tuple[str, ...] = ASSUMED
+
+    @property
+    def passed(self) -> bool:
+        return all(c.passed for c in self.checks)
+
+    @property
+    def failed(self) -> tuple[DesignCheck, ...]:
+        return tuple(c for c in self.checks if not c.passed)
+
+    @property
+    def trial_count_source(self) -> str:
+        return "declared" if self.declared_trials is not None else "log"
+
+    @property
+    def abort_reason(self) -> str | None:
+        bad = self.failed
+        if not bad:
+            return None
+        first = bad[0]
+        more = f" (and {len(bad) - 1} more failed check(s): " + ", ".join(
+            c.name for c in bad[1:]) + ")" if len(bad) > 1 else ""
+        return (f"the log contradicts the protocol's declared design: check {first.name!r} "
+                f"failed: {first.detail}{more}")
+
+    def get(self, name: str) -> DesignCheck:
+        for c in self.checks:
+            if c.name == name:
+                return c
+        raise KeyError(name)
+
+    def to_dict(self) -> dict:
+        return {
+            "significance": float(self.significance),
+            "block_trials": int(self.block_trials),
+            "trials": {"analysed": int(self.trials), "in_log": int(self.trials_in_log),
+                       "declared": self.declared_trials,
+                       "source": self.trial_count_source,
+                       "note": ("n was pre-declared in the protocol" if self.declared_trials
+                                is not None else "n was not pre-declared: it was taken from "
+                                "the log")},
+            "passed": bool(self.passed),
+            "checks": [c.to_dict() for c in self.checks],
+            "checked": list(self.checked),
+            "assumed": list(self.assumed),
+            "false_alarm_bound": float(min(1.0, len(self.checks) * self.significance)),
+        }
+
+
+# --------------------------------------------------------------------------- statistics
+
+
+def binomial_two_sided(k: int, n: int, lo: float, hi: float | None = None) -> float:
+    """Two-sided exact binomial p-value of k successes in n under p in [lo, hi].
+
+    For an interval (a composite null) the largest p-value over the interval is taken,
+    evaluated at the point of the interval nearest k/n and at both ends (``scipy.stats.binomtest``,
+    the "minlike" two-sided p-value).
+    """
+    from scipy.stats import binomtest
+
+    hi = lo if hi is None else hi
+    if n <= 0:
+        return 1.0
+    cands = {min(max(k / n, lo), hi), lo, hi}
+    best = 0.0
+    for p in cands:
+        if p <= 0.0:
+            pv = 1.0 if k == 0 else 0.0
+        elif p >= 1.0:
+            pv = 1.0 if k == n else 0.0
+        else:
+            pv = float(binomtest(int(k), int(n), float(p)).pvalue)
+        best = max(best, pv)
+    return min(1.0, best)
+
+
+def serial_g_test(pair_counts: np.ndarray, min_expected: float = MIN_EXPECTED
+                  ) -> tuple[float, int, float, str]:
+    """G-test of independence of consecutive symbols from their transition counts.
+
+    ``pair_counts[s, s']`` counts the overlapping pairs (symbol i, symbol i+1). Symbols are
+    pooled until every expected cell holds at least ``min_expected`` pairs. Returns
+    ``(G, dof, p_value, note)``; dof 0 (fewer than two groups) means not applicable (p = 1).
+    """
+    from scipy.stats import chi2
+
+    pc = np.asarray(pair_counts, dtype=np.float64)
+    n = float(pc.sum())
+    if n <= 0:
+        return 0.0, 0, 1.0, "no consecutive pairs"
+    occ = pc.sum(axis=1) + pc.sum(axis=0)  # occurrences (each symbol counted as prev and cur)
+    need = math.sqrt(min_expected * n) * 2.0
+    order = np.argsort(occ)[::-1]
+    keep = [int(s) for s in order if occ[s] >= need]
+    rest = [int(s) for s in order if 0 < occ[s] < need]
+    groups = [[s] for s in keep]
+    if rest:
+        if sum(occ[s] for s in rest) >= need or not groups:
+            groups.append(rest)
+        else:
+            groups[-1] = groups[-1] + rest  # too few to stand alone: join the smallest kept
+    k = len(groups)
+    if k < 2:
+        return 0.0, 0, 1.0, "fewer than two distinct settings symbols with enough occurrences"
+    tab = np.array([[pc[np.ix_(g, h)].sum() for h in groups] for g in groups])
+    rows = tab.sum(axis=1, keepdims=True)
+    cols = tab.sum(axis=0, keepdims=True)
+    exp = rows * cols / n
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = np.where(tab > 0, tab * np.log(tab / exp), 0.0)
+    g = float(2.0 * terms.sum())
+    dof = (k - 1) ** 2
+    p = float(chi2.sf(g, dof))
+    note = f"{k} symbol groups ({dof} degrees of freedom)"
+    return g, dof, p, note
+
+
+def settings_symbol_counts(counts: np.ndarray) -> np.ndarray:
+    """Counts of the settings symbol s = 4 t + 2 x + y from a [t, x, y, a, b] table (or a
+    stack of them), shape (..., 8)."""
+    c = np.asarray(counts, dtype=np.int64)
+    if c.shape[-5:] == (2, 2, 2, 2, 2):
+        c = c.sum(axis=(-1, -2))
+        return c.reshape(c.shape[:-3] + (8,))
+    if c.shape[-1] == 8:
+        return c
+    raise ParameterError(f"expected counts [t,x,y,a,b] or settings-symbol counts, got shape {c.shape}")
+
+
+def _test_settings_model(protocol: Any) -> tuple[float, float, float, float]:
+    an = getattr(protocol, "analysis", None)
+    return (float(getattr(an, "p_x0", 0.5)), float(getattr(an, "p_y0", 0.5)),
+            float(getattr(an, "bias_x", 0.0)), float(getattr(an, "bias_y", 0.0)))
+
+
+def _xor_range(px: tuple[float, float], py: tuple[float, float]) -> tuple[float, float]:
+    # P(x XOR y = 0) = px py + (1 - px)(1 - py) is bilinear: extremes at the corners.
+    vals = [a * b + (1 - a) * (1 - b) for a in px for b in py]
+    return min(vals), max(vals)
+
+
+def _device_max(protocol: Any) -> tuple[float, str]:
+    method = getattr(protocol, "method", None)
+    model = getattr(getattr(protocol, "analysis", None), "model", None)
+    if method == "pef" and model == "ns":
+        return NO_SIGNALLING_MAX, "no-signalling devices (maximum 4)"
+    return TSIRELSON, "quantum devices (Tsirelson bound 2 sqrt 2)"
+
+
+def weighted_chsh(counts: np.ndarray, gamma: float, px0: float, py0: float,
+                  eps: float) -> tuple[float, float]:
+    """Importance-weighted CHSH estimate with the declared settings probabilities, and its
+    Azuma-Hoeffding lower bound at error eps (valid for devices with memory)."""
+    c = np.asarray(counts, dtype=np.int64)
+    n = int(c.sum())
+    if n == 0:
+        return math.nan, math.nan
+    px = (px0, 1 - px0)
+    py = (py0, 1 - py0)
+    total = 0.0
+    pmin = 1.0
+    for x in (0, 1):
+        for y in (0, 1):
+            p = gamma * px[x] * py[y]
+            if p <= 0:
+                continue
+            pmin = min(pmin, p)
+            same = int(c[1, x, y, 0, 0] + c[1, x, y, 1, 1])
+            diff = int(c[1, x, y, 0, 1] + c[1, x, y, 1, 0])
+            sign = -1 if (x and y) else 1
+            total += sign * (same - diff) / p
+    est = total / n
+    width = 2.0 / pmin
+    margin = width * math.sqrt(math.log(1.0 / eps) / (2.0 * n))
+    return est, est - margin
+
+
+# --------------------------------------------------------------------------- the stage
+
+
+def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray | None = None,
+                 pair_counts: np.ndarray | None = None, trials_in_log: int | None = None,
+                 decided_early: bool = False, eps: float | None = None) -> DesignReport:
+    """Run every design-conformance check of a log against a protocol.
+
+    Parameters
+    ----------
+    counts : ndarray (2, 2, 2, 2, 2)
+        ``counts[t, x, y, a, b]`` of the analysed trials.
+    protocol : Protocol
+        Supplies the settings design, the test-settings model (``p_x0``/``p_y0``, bias
+        bounds of method pef), the device model and the ``[design]`` keys.
+    block_counts : ndarray (B, 2, 2, 2, 2, 2) or (B, 8), optional
+        Per-block counts (or settings-symbol counts s = 4t + 2x + y) for the per-block tests.
+    pair_counts : ndarray (8, 8), optional
+        Counts of consecutive settings symbols (previous, current) for the serial test.
+    trials_in_log : int, optional
+        Trials present in the log (may exceed the analysed trials when n was declared).
+    decided_early : bool
+        Method pef stopped reading at its decision (a declared n is then not required).
+    eps : float, optional
+        Error of the lower bound on CHSH (default: the protocol's estimation error, 1e-6).
+
+    Returns
+    -------
+    DesignReport
+    """
+    spec = spec_of(protocol)
+    alpha = spec.significance
+    c = np.asarray(counts, dtype=np.int64)
+    if c.shape != (2, 2, 2, 2, 2):
+        raise ParameterError(f"counts must have shape (2,2,2,2,2), got {c.shape}")
+    n = int(c.sum())
+    in_log = int(trials_in_log) if trials_in_log is not None else n
+    design = protocol.design
+    gamma = float(design.gamma)
+    gen = tuple(int(v) for v in design.generation)
+    px0, py0, bx, by = _test_settings_model(protocol)
+    declared = declared_trials(protocol)
+    checks: list[DesignCheck] = []
+    ref_binom = ("exact two-sided binomial test (scipy.stats.binomtest, minlike p-value; "
+                 "Clopper & Pearson 1934)")
+
+    # -- trial count
+    if declared is not None:
+        ok = in_log >= declared or decided_early
+        checks.append(DesignCheck(
+            name="trial_count", statistic=float(in_log), p_value=None, threshold=None,
+            passed=bool(ok), applicable=True,
+            meaning="the log holds at least the pre-declared number of trials n",
+            detail=(f"the protocol declares n = {declared} trials; the log holds {in_log}"
+                    + ("" if ok else " (too few: a run shorter than declared is not the run the "
+                       "protocol describes)")
+                    + (f"; the first {declared} are analysed" if in_log > declared else "")),
+            reference="pre-declared run length (methods notes: n fixed before the run)"))
+
+    # -- test-round fraction
+    n_test = int(c[1].sum())
+    if gamma < 1.0:
+        p = binomial_two_sided(n_test, n, gamma)
+        checks.append(DesignCheck(
+            name="test_fraction", statistic=float(n_test), p_value=p, threshold=alpha,
+            passed=p >= alpha, applicable=n > 0,
+            meaning="test rounds occur with the declared probability gamma",
+            detail=(f"{n_test} test rounds in {n} trials ({n_test / max(n, 1):.6g}); "
+                    f"declared gamma = {gamma:g} (expected {gamma * n:.6g}); two-sided "
+                    f"p = {p:.3g}, significance {alpha:g}"),
+            reference=ref_binom))
+        wrong_gen = int(c[0].sum() - c[0, gen[0], gen[1]].sum())
+        checks.append(DesignCheck(
+            name="generation_settings", statistic=float(wrong_gen), p_value=None,
+            threshold=None, passed=wrong_gen == 0, applicable=True,
+            meaning="generation rounds use the declared generation settings",
+            detail=(f"{wrong_gen} generation rounds (t = 0) with settings other than the "
+                    f"declared {list(gen)}"),
+            reference="protocol definition (deterministic check)"))
+
+    # -- test settings
+    tc = c[1].sum(axis=(2, 3))  # [x, y]
+    pxr = (max(px0 - bx, 0.0), min(px0 + bx, 1.0))
+    pyr = (max(py0 - by, 0.0), min(py0 + by, 1.0))
+    xr = _xor_range(pxr, pyr)
+
+    def settings_tests(tcxy: np.ndarray) -> list[tuple[str, int, int, tuple[float, float], float]]:
+        m = int(tcxy.sum())
+        kx = int(tcxy[0].sum())
+        ky = int(tcxy[:, 0].sum())
+        kxor = int(tcxy[0, 0] + tcxy[1, 1])
+        return [("x", kx, m, pxr, binomial_two_sided(kx, m, *pxr)),
+                ("y", ky, m, pyr, binomial_two_sided(ky, m, *pyr)),
+                ("xor", kxor, m, xr, binomial_two_sided(kxor, m, *xr))]
+
+    descr = {"x": "P(x = 0)", "y": "P(y = 0)", "xor": "P(x XOR y = 0)"}
+    for which, k, m, rng_, p in settings_tests(tc):
+        want = f"{rng_[0]:g}" if rng_[0] == rng_[1] else f"[{rng_[0]:g}, {rng_[1]:g}]"
+        checks.append(DesignCheck(
+            name=f"test_settings_{which}", statistic=float(k), p_value=p, threshold=alpha,
+            passed=p >= alpha, applicable=m > 0,
+            meaning=("the test-round settings follow the declared distribution"
+                     + (" (independence of x and y)" if which == "xor" else "")),
+            detail=(f"{k} of {m} test rounds with {descr[which].split('(')[1][:-1]} "
+                    f"({k / max(m, 1):.6g}); declared {descr[which]} = {want}; two-sided "
+                    f"p = {p:.3g}, significance {alpha:g}"),
+            reference=ref_binom))
+
+    # -- per block (Bonferroni)
+    if block_counts is not None:
+        sym = settings_symbol_counts(block_counts)
+        sym = sym[sym.sum(axis=1) > 0]
+        nb = int(sym.shape[0])
+        if nb > 1:
+            if gamma < 1.0:
+                thr = alpha / nb
+                worst, at, stat = 1.0, -1, 0.0
+                for i, s in enumerate(sym):
+                    nt, nn = int(s[4:].sum()), int(s.sum())
+                    p = binomial_two_sided(nt, nn, gamma)
+                    if p < worst:
+                        worst, at, stat = p, i, float(nt)
+                checks.append(DesignCheck(
+                    name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
+                    passed=worst >= thr, applicable=True,
+                    meaning="test rounds occur with probability gamma in every block",
+                    detail=(f"smallest p-value {worst:.3g} in block {at} of {nb} "
+                            f"({spec.block_trials} trials per block); Bonferroni threshold "
+                            f"{alpha:g}/{nb} = {thr:.3g}"),
+                    reference=ref_binom + "; Bonferroni correction (common practice)"))
+            thr = alpha / (3 * nb)
+            worst, at, stat, what = 1.0, -1, 0.0, "x"
+            for i, s in enumerate(sym):
+                tcxy = s[4:].reshape(2, 2)
+                if tcxy.sum() == 0:
+                    continue
+                for which, k, _m, _r, p in settings_tests(tcxy):
+                    if p < worst:
+                        worst, at, stat, what = p, i, float(k), which
+            checks.append(DesignCheck(
+                name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
+                passed=worst >= thr, applicable=True,
+                meaning="the test-round settings follow the declared distribution in every block",
+                detail=(f"smallest p-value {worst:.3g} ({descr[what]}, block {at} of {nb}); "
+                        f"Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
+                reference=ref_binom + "; Bonferroni correction (common practice)"))
+
+    # -- serial independence
+    if pair_counts is not None:
+        g, dof, p, note = serial_g_test(pair_counts)
+        checks.append(DesignCheck(
+            name="serial_independence", statistic=g, p_value=p if dof else None,
+            threshold=alpha if dof else None, passed=(p >= alpha) if dof else True,
+            applicable=dof > 0,
+            meaning=("consecutive rounds' settings and round types are independent (a "
+                     "predictable settings sequence fails even with exact marginals)"),
+            detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p = {p:.3g}, "
+                    f"significance {alpha:g}" if dof else f"not applicable: {note}"),
+            reference=("likelihood-ratio test of independence against a first-order Markov "
+                       "chain (Anderson & Goodman 1957); cf. NIST SP 800-22 rev. 1a section "
+                       "2.11 serial test")))
+
+    # -- physical range
+    if eps is None:
+        eps = _estimate_eps(protocol)
+    if n > 0 and n_test > 0:
+        est, lower = weighted_chsh(c, gamma, px0, py0, eps)
+        smax, model = _device_max(protocol)
+        ok = est <= NO_SIGNALLING_MAX and lower <= smax
+        checks.append(DesignCheck(
+            name="chsh_physical_range", statistic=float(est), p_value=None, threshold=smax,
+            passed=bool(ok), applicable=True,
+            meaning="the CHSH estimate is physically possible for the method's device model",
+            detail=(f"weighted CHSH estimate {est:.6g}, lower bound {lower:.6g} at eps = "
+                    f"{eps:g}; limits: estimate <= 4, lower bound <= {smax:.6g} ({model})"
+                    + ("" if ok else "; the data cannot come from the declared design: most "
+                       "likely a wrong gamma or settings distribution in the protocol, or a "
+                       "log that is not from this experiment")),
+            reference="CHSH 1969 (no-signalling maximum 4); Cirel'son 1980 (2 sqrt 2)"))
+    return DesignReport(significance=alpha, block_trials=spec.block_trials, trials=n,
+                        trials_in_log=in_log, declared_trials=declared, checks=tuple(checks))
+
+
+def _estimate_eps(protocol: Any) -> float:
+    for name in ("eps_est", "eps_ea", "eps_pe"):
+        v = getattr(getattr(protocol, "analysis", None), name, None)
+        if isinstance(v, (int, float)) and 0 < v < 1:
+            return float(v)
+    return 1e-6
+
+
+__all__ = [
+    "ASSUMED",
+    "CHECKED",
+    "DEFAULT_BLOCK_TRIALS",
+    "DEFAULT_SIGNIFICANCE",
+    "DesignCheck",
+    "DesignReport",
+    "DesignSpec",
+    "binomial_two_sided",
+    "check_design",
+    "declared_trials",
+    "serial_g_test",
+    "settings_symbol_counts",
+    "spec_of",
+    "weighted_chsh",
+]
+
+
+# --------------------------------------------------------------------------- output screens
+
+#: Screens run on at most this many output bits (the first ones).
+SCREEN_MAX_BITS = 1 << 24
+#: Below this many output bits a constant output is not called a failure (2^-63 for fair bits).
+CONSTANT_MIN_BITS = 64
+
+
+def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIGNIFICANCE
+                   ) -> dict:
+    """Gross-failure screens on extractor output bits, as a record section.
+
+    The NIST SP 800-22 rev. 1a frequency, block-frequency, runs and longest-run tests and the
+    SP 800-90B section 6.3.1 most-common-value estimate (:func:`dicert.health.run_health_checks`)
+    at the significance ``significance`` (far below the standard's 0.01: this screen only
+    withholds grossly failing output), plus a constant-output check. ``passed`` is False on a
+    gross failure; certify then withholds the bits (status "withheld", exit 5). Passing proves
+    nothing about unpredictability.
+    """
+    n = int(min(m_bits, SCREEN_MAX_BITS))
+    out: dict[str, Any] = {"significance": float(significance), "bits_screened": n,
+                           "output_bits": int(m_bits)}
+    if n < 2:
+        out.update(passed=True, applicable=False, tests=[], constant=False,
+                   failure=None, note="fewer than 2 output bits: nothing to screen")
+        return out
+    from dicert.health import STATEMENT, as_bits, run_health_checks
+
+    bits = as_bits(bytes(output), n)
+    constant = bool(n >= CONSTANT_MIN_BITS and (bits.min() == bits.max()))
+    rep = run_health_checks(bits, alpha=significance)
+    tests = [{"name": t.name, "section": t.section, "statistic": _num(t.statistic),
+              "p_value": _num(t.p_value), "applicable": bool(t.applicable),
+              "passed": t.passed} for t in rep.tests]
+    failure = None
+    if constant:
+        failure = f"the output is constant ({n} bits all {int(bits[0])})"
+    else:
+        bad = [t for t in rep.tests if t.applicable and t.passed is False]
+        if bad:
+            failure = "; ".join(f"{t.name} P = {t.p_value:.3g} < {significance:g}" for t in bad)
+    out.update(passed=failure is None, applicable=True, tests=tests, constant=constant,
+               mcv_min_entropy_per_bit=_num(rep.mcv_per_bit.min_entropy_per_sample),
+               failure=failure, statement=STATEMENT,
+               references=["NIST SP 800-22 rev. 1a (2010), sections 2.1-2.4",
+                           "NIST SP 800-90B (2018), section 6.3.1"])
+    return out
+
+
+# --------------------------------------------------------------------------- seed sanity
+
+
+def seed_problems(seed: bytes, *, log_digests: tuple[str, ...] = (),
+                  used_digests: tuple[str, ...] = ()) -> tuple[list[str], list[str]]:
+    """(fatal, overridable) problems of an extractor seed.
+
+    Fatal: the seed is constant (every byte equal) or its first MiB repeats with a period of
+    at most 64 bytes: it cannot be uniformly random. Overridable (an explicit flag allows
+    them, and the record says so): its SHA-256 equals the digest of the log or of one of its
+    files (the log given as its own seed), or a seed with this digest was already used by an
+    earlier record of the beacon chain.
+    """
+    import hashlib
+
+    fatal: list[str] = []
+    soft: list[str] = []
+    if seed:
+        arr = np.frombuffer(seed, dtype=np.uint8)
+        if arr.min() == arr.max():
+            fatal.append(f"the seed is constant (all {arr.size} bytes are 0x{int(arr[0]):02x})")
+        else:
+            head = seed[: 1 << 20]
+            for p in range(1, min(65, len(head))):
+                if head[p:] == head[:-p]:
+                    fatal.append(f"the seed repeats with a period of {p} bytes")
+                    break
+    digest = hashlib.sha256(seed).hexdigest()
+    if digest in log_digests:
+        soft.append("the seed has the same SHA-256 as the log (the log itself was given as "
+                    "the seed?)")
+    if digest in used_digests:
+        soft.append("a seed with this SHA-256 was already used by an earlier record of the "
+                    "chain")
+    return fatal, soft
+
+
+__all__ += ["output_screens", "seed_problems"]
