@@ -71,6 +71,29 @@ _LOG_SUFFIXES = (".csv", ".csv.gz", ".txt", ".txt.gz", ".btl", ".npz")
 # --------------------------------------------------------------------------------------------
 
 
+def _check_bits(values: Any, name: str) -> None:
+    """Raise ParameterError naming the column and the first value outside {0, 1}."""
+    arr = np.asarray(values)
+    if arr.size == 0:
+        return
+    if arr.dtype == np.bool_:
+        return
+    if arr.dtype.kind == "u":
+        bad = arr > 1
+    else:
+        try:
+            bad = ~((arr == 0) | (arr == 1))
+        except (TypeError, ValueError):
+            raise ParameterError(f"TrialArrays: column {name!r} must hold 0/1 values") from None
+        bad = np.asarray(bad, dtype=bool)
+    if bad.any():
+        i = int(np.flatnonzero(bad.ravel())[0])
+        v = arr.ravel()[i]
+        v = v.item() if hasattr(v, "item") else v
+        raise ParameterError(f"TrialArrays: column {name!r} holds {v!r} at index "
+                             f"{i}; every value must be 0 or 1")
+
+
 @dataclasses.dataclass(frozen=True, slots=True, eq=False)
 class TrialArrays:
     """Per-trial settings and outcomes held in memory (uint8 arrays of equal length).
@@ -89,6 +112,12 @@ class TrialArrays:
         for name in ("y", "a", "b") + (("t",) if self.t is not None else ()):
             if len(getattr(self, name)) != n:
                 raise ParameterError(f"TrialArrays: column {name!r} has a different length")
+        self.validate()
+
+    def validate(self) -> None:
+        """Raise ParameterError naming the column and value if any value is outside {0, 1}."""
+        for name in ("x", "y", "a", "b") + (("t",) if self.t is not None else ()):
+            _check_bits(getattr(self, name), name)
 
     def __len__(self) -> int:
         return len(self.x)
@@ -1033,7 +1062,12 @@ def _as_code_chunks(trials) -> tuple[bool, Iterator[np.ndarray]]:
         raise ParameterError("no trials to write") from None
 
     def codes_of(item) -> np.ndarray:
-        return item.codes if isinstance(item, LogChunk) else item.codes()
+        if isinstance(item, LogChunk):
+            if item.codes.size and int(item.codes.max()) > 0x1F:
+                raise ParameterError("write_log: a chunk holds trial codes with reserved bits set")
+            return item.codes
+        item.validate()  # the arrays may have been changed since construction
+        return item.codes()
 
     flag = first.has_test_flag
 

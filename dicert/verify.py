@@ -242,6 +242,16 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
             exp["log"].pop("trials_in_log", None)
             exp["log"]["files"] = [e["name"] if isinstance(e, Mapping) else e
                                    for e in exp["log"]["files"]]
+        est, rest = exp.get("estimate"), body.get("estimate")
+        if isinstance(est, dict) and isinstance(rest, Mapping):
+            # /2 added these members and bases the local-realism p-value on the observed
+            # settings frequencies; a /1 record keeps its own (informational) p-value.
+            for k in ("gamma_source", "local_win_bound"):
+                if k not in rest:
+                    est.pop(k, None)
+            for k in ("p_value_local", "log10_p_value_local", "p_value_method"):
+                if k in rest:
+                    est[k] = rest[k]
     # A record written by another version is compared on its numbers, not its version string;
     # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])

@@ -23,6 +23,7 @@ def entropy_cmd(
     method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve) or table (precomputed certificates).")] = "auto",
     tolerance: Annotated[float, typer.Option("--tolerance", help="Slack allowed on each observed correlator (with --from-log).")] = 0.0,
     fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz).")] = None,
+    protocol: Annotated[Optional[str], typer.Option("--protocol", help="With --from-log: the protocol whose declared design the log is checked against (default: every round a test round, or the observed test fraction of a log with a t column).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Lower-bound the entropy per round of the outcomes, against an adversary holding quantum
@@ -46,11 +47,29 @@ def entropy_cmd(
         from dicert.logs import summarize_log
 
         summary = summarize_log(from_log, digest=True, format=fmt)
+        from types import SimpleNamespace
+
+        from dicert.design import check_design
+        from dicert.estimate import observed_design
+
+        if protocol is not None:
+            from dicert.protocol import load_protocol
+
+            like = load_protocol(protocol)
+        else:
+            like = SimpleNamespace(design=observed_design(summary.counts), analysis=None,
+                                   method=None, conformance=None)
+        report = check_design(summary.counts, like, block_counts=summary.block_counts,
+                              pair_counts=summary.pair_counts)
+        if not report.passed:
+            raise ParameterError(f"{from_log}: refusing to bound entropy from this log: "
+                                 f"{report.abort_reason}")
         try:
             correlators = correlators_from_counts(summary.counts)
         except ParameterError as exc:
             raise ParameterError(f"{from_log}: {exc}") from None
-        log_info = {"path": from_log, "sha256": summary.sha256, "trials": summary.trials}
+        log_info = {"path": from_log, "sha256": summary.sha256, "trials": summary.trials,
+                    "design_checks": report.to_dict()}
     result = bound_entropy(
         chsh=chsh, correlators=correlators, parties=parties, measure=measure, level=level,
         method=method, tolerance=tolerance,
@@ -90,4 +109,7 @@ def entropy_cmd(
         rows.append(("fallback reason", result.fallback_reason))
     if log_info is not None:
         rows.append(("log trials", log_info["trials"]))
+        dc = log_info["design_checks"]
+        rows.append(("design checks", f"{len(dc['checks'])} run at significance "
+                     f"{dc['significance']:g}: all passed"))
     stdout_console().print(kv_table("single-round entropy bound", rows))
