@@ -369,7 +369,7 @@ def _device_max(protocol: Any) -> tuple[float, str]:
     model = getattr(getattr(protocol, "analysis", None), "model", None)
     if method == "pef" and model == "ns":
         return NO_SIGNALLING_MAX, "no-signalling devices (maximum 4)"
-    return TSIRELSON, "quantum devices (Tsirelson bound 2 sqrt 2)"
+    return TSIRELSON, "quantum devices: a larger value lies outside the quantum set (Tsirelson bound 2 sqrt 2)"
 
 
 def weighted_chsh(counts: np.ndarray, gamma: float, px0: float, py0: float,
