@@ -74,8 +74,9 @@ def inspect_cmd(
     est = estimate_chsh(summary.counts, design, eps=error)
     blocks = block_estimates(summary.block_counts, summary.block_trials, design, eps=block_error)
     lower_shown, lower_note = _clip(est.chsh_lower)
-    p_refused = None if settings_ok else ("refused: the settings frequencies or sequence "
-                                          "contradict the declared design")
+    declared = proto is not None or gamma is not None
+    p_refused = None if settings_ok or not declared else (
+        "refused: the settings frequencies or sequence contradict the declared design")
     if plot is not None:
         from dicert.plotting import plot_chsh_blocks
 
