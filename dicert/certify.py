@@ -87,7 +87,9 @@ ASSUMPTIONS = (
     ("No communication between the two stations during a trial (locality / no signalling "
     "between the measurement devices within each round)."),
     ("Measurement settings are chosen independently of the devices and of any adversary, "
-    "with the distribution declared in the protocol."),
+    "with the distribution declared in the protocol, and the round type and settings of each "
+    "round stay unknown to the devices until that round (the design section of the record "
+    "lists what was checked on the data; the rest is assumed)."),
     ("The classical processing (logging, this software, the machine running it) is trusted "
     "and the log faithfully records the settings and outcomes of every trial in order."),
     "The extractor seed is uniformly random and independent of the devices and the raw bits.",

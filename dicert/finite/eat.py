@@ -440,6 +440,8 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
         "sequential (entropy accumulation channel structure)",
         "settings drawn independently of the devices and of any adversary, with the known "
         f"probabilities (gamma = {gamma:g}, uniform test settings, generation settings {gen})",
+        "the round type (test or generation) and the settings of each round stay unknown to "
+        "the devices until that round",
         "number of rounds n, gamma and the acceptance threshold fixed before the run; only "
         "the tangent point and alpha are optimised after the data",
         "trusted classical post-processing and trial recording",
