@@ -274,29 +274,86 @@ class DesignReport:
 # --------------------------------------------------------------------------- statistics
 
 
+def _lpmf(j: int, n: int, p: float) -> float:
+    from dicert.estimate import _log_binom_pmf
+
+    return _log_binom_pmf(j, n, p)
+
+
+def _binom_two_sided_point(k: int, n: int, p: float) -> float:
+    """Exact two-sided ("minlike") binomial p-value, free of scipy (``dicert inspect`` stays
+    fast); the same definition as ``scipy.stats.binomtest`` (tests compare the two)."""
+    from dicert.estimate import _log_tail_sum
+
+    if p <= 0.0:
+        return 1.0 if k == 0 else 0.0
+    if p >= 1.0:
+        return 1.0 if k == n else 0.0
+    if k == p * n:
+        return 1.0
+    target = _lpmf(k, n, p) + math.log1p(1e-7)  # scipy's relative tolerance
+    if k < p * n:
+        lo, hi = int(math.ceil(p * n)), n
+        if _lpmf(hi, n, p) > target:
+            other = -math.inf
+        else:
+            while lo < hi:  # smallest j in [ceil(np), n] with pmf(j) <= pmf(k)
+                mid = (lo + hi) // 2
+                if _lpmf(mid, n, p) <= target:
+                    hi = mid
+                else:
+                    lo = mid + 1
+            other = _log_tail_sum(lo, n, p, +1)
+        near = _log_tail_sum(k, n, p, -1)
+    else:
+        lo, hi = 0, int(math.floor(p * n))
+        if _lpmf(lo, n, p) > target:
+            other = -math.inf
+        else:
+            while lo < hi:  # largest j in [0, floor(np)] with pmf(j) <= pmf(k)
+                mid = (lo + hi + 1) // 2
+                if _lpmf(mid, n, p) <= target:
+                    lo = mid
+                else:
+                    hi = mid - 1
+            other = _log_tail_sum(lo, n, p, -1)
+        near = _log_tail_sum(k, n, p, +1)
+    total = math.exp(near) + (math.exp(other) if other > -math.inf else 0.0)
+    return min(1.0, total)
+
+
 def binomial_two_sided(k: int, n: int, lo: float, hi: float | None = None) -> float:
     """Two-sided exact binomial p-value of k successes in n under p in [lo, hi].
 
-    For an interval (a composite null) the largest p-value over the interval is taken,
-    evaluated at the point of the interval nearest k/n and at both ends (``scipy.stats.binomtest``,
-    the "minlike" two-sided p-value).
+    The "minlike" two-sided p-value of ``scipy.stats.binomtest`` (the total probability of
+    the outcomes no more likely than k), computed without scipy. For an interval (a
+    composite null) the largest p-value over the interval is taken, evaluated at the point of
+    the interval nearest k/n and at both ends.
     """
-    from scipy.stats import binomtest
-
     hi = lo if hi is None else hi
     if n <= 0:
         return 1.0
-    cands = {min(max(k / n, lo), hi), lo, hi}
     best = 0.0
-    for p in cands:
-        if p <= 0.0:
-            pv = 1.0 if k == 0 else 0.0
-        elif p >= 1.0:
-            pv = 1.0 if k == n else 0.0
-        else:
-            pv = float(binomtest(int(k), int(n), float(p)).pvalue)
-        best = max(best, pv)
+    for p in {min(max(k / n, lo), hi), lo, hi}:
+        best = max(best, _binom_two_sided_point(int(k), int(n), float(p)))
     return min(1.0, best)
+
+
+def chi2_sf(x: float, dof: int) -> float:
+    """Survival function of the chi-square distribution with an integer number of degrees of
+    freedom (closed forms of the regularised upper incomplete gamma function Q(dof/2, x/2);
+    scipy-free, compared with ``scipy.stats.chi2.sf`` in the tests)."""
+    if x <= 0:
+        return 1.0
+    h = x / 2.0
+    if dof % 2 == 0:
+        terms = [-h + i * math.log(h) - math.lgamma(i + 1) for i in range(dof // 2)]
+        base = 0.0
+    else:
+        terms = [-h + (i + 0.5) * math.log(h) - math.lgamma(i + 1.5)
+                 for i in range((dof - 1) // 2)]
+        base = math.erfc(math.sqrt(h))
+    return float(min(1.0, base + sum(math.exp(t) for t in terms)))
 
 
 def serial_g_test(pair_counts: np.ndarray, min_expected: float = MIN_EXPECTED
@@ -307,8 +364,6 @@ def serial_g_test(pair_counts: np.ndarray, min_expected: float = MIN_EXPECTED
     pooled until every expected cell holds at least ``min_expected`` pairs. Returns
     ``(G, dof, p_value, note)``; dof 0 (fewer than two groups) means not applicable (p = 1).
     """
-    from scipy.stats import chi2
-
     pc = np.asarray(pair_counts, dtype=np.float64)
     n = float(pc.sum())
     if n <= 0:
@@ -335,7 +390,7 @@ def serial_g_test(pair_counts: np.ndarray, min_expected: float = MIN_EXPECTED
         terms = np.where(tab > 0, tab * np.log(tab / exp), 0.0)
     g = float(2.0 * terms.sum())
     dof = (k - 1) ** 2
-    p = float(chi2.sf(g, dof))
+    p = chi2_sf(g, dof)
     note = f"{k} symbol groups ({dof} degrees of freedom)"
     return g, dof, p, note
 
@@ -443,7 +498,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
     px0, py0, bx, by = _test_settings_model(protocol)
     declared = declared_trials(protocol)
     checks: list[DesignCheck] = []
-    ref_binom = ("exact two-sided binomial test (scipy.stats.binomtest, minlike p-value; "
+    ref_binom = ("exact two-sided binomial test (minlike p-value, as scipy.stats.binomtest; "
                  "Clopper & Pearson 1934)")
 
     # -- trial count
@@ -601,6 +656,7 @@ __all__ = [
     "DesignSpec",
     "binomial_two_sided",
     "check_design",
+    "chi2_sf",
     "declared_trials",
     "serial_g_test",
     "settings_symbol_counts",

@@ -572,3 +572,27 @@ def test_inspect_defaults_and_refusals(tmp_path):
     r = runner.invoke(app, ["inspect", str(b), "--json"])
     js = json.loads(r.stdout)
     assert js["local_win_bound"] > 0.95 and js["p_value_local"] > 1e-3
+
+
+@pytest.mark.parametrize("k,n,p", [(0, 10, 0.3), (10, 10, 0.3), (3, 10, 0.3), (4, 10, 0.3),
+                                   (499_000, 1_000_000, 0.5), (52_000, 1_000_000, 0.05),
+                                   (48_000, 1_000_000, 0.05), (26, 1_000, 0.05), (1, 1, 0.5),
+                                   (9_999, 200_000, 0.05)])
+def test_binomial_p_value_matches_scipy_binomtest(k, n, p):
+    # Reference library: scipy.stats.binomtest (two-sided, minlike); ours avoids importing
+    # scipy so that `dicert inspect` starts fast.
+    from scipy.stats import binomtest
+
+    ref = binomtest(k, n, p).pvalue
+    got = binomial_two_sided(k, n, p)
+    assert got == pytest.approx(ref, rel=1e-6, abs=1e-300)
+
+
+@pytest.mark.parametrize("dof", [1, 2, 3, 4, 9, 16, 25, 49])
+@pytest.mark.parametrize("x", [0.5, 3.0, 20.0, 80.0, 200.0])
+def test_chi2_sf_matches_scipy(dof, x):
+    from scipy.stats import chi2
+
+    from dicert.design import chi2_sf
+
+    assert chi2_sf(x, dof) == pytest.approx(chi2.sf(x, dof), rel=1e-9, abs=1e-300)
