@@ -596,3 +596,41 @@ def test_chi2_sf_matches_scipy(dof, x):
     from dicert.design import chi2_sf
 
     assert chi2_sf(x, dof) == pytest.approx(chi2.sf(x, dof), rel=1e-9, abs=1e-300)
+
+
+def test_cli_exit_codes_for_withheld_and_mixed_inputs(tmp_path):
+    import json
+
+    from typer.testing import CliRunner
+
+    from dicert.cli.app import app
+
+    try:
+        runner = CliRunner(mix_stderr=False)
+    except TypeError:
+        runner = CliRunner()
+    log = tmp_path / "u.btl"
+    write_log(log, sim_trials(100_000, seed=18, visibility=0.97))
+    sb = bytearray(100_000)
+    sb[0] = 0x5A
+    seed = tmp_path / "bad.bin"
+    seed.write_bytes(bytes(sb))
+    proto = str(PROTOS / "chsh-uniform.toml")
+    r = runner.invoke(app, ["certify", str(log), "--protocol", proto, "--seed", str(seed),
+                            "--out", str(tmp_path / "o"), "--json"])
+    assert r.exit_code == 5, r.output  # exit code 5: output withheld (COMMON brief)
+    js = json.loads(r.stdout)
+    assert js["status"] == "withheld" and js["bits_file"] is None
+    assert (tmp_path / "o" / "record.json").exists()
+    d = tmp_path / "run"
+    d.mkdir()
+    write_log(d / "run.csv", sim_trials(30_000, seed=19, visibility=0.97))
+    write_log(d / "run.csv.gz", sim_trials(30_000, seed=19, visibility=0.97))
+    r = runner.invoke(app, ["certify", str(d), "--protocol", proto, "--seed",
+                            str(_seed(tmp_path)), "--out", str(tmp_path / "o2")])
+    assert r.exit_code == 2 and len(r.stderr.strip().splitlines()) == 1
+    assert "--allow-mixed-inputs" in r.stderr and not (tmp_path / "o2").exists()
+    r = runner.invoke(app, ["certify", str(d), "--protocol", proto, "--seed",
+                            str(_seed(tmp_path)), "--out", str(tmp_path / "o2"),
+                            "--allow-mixed-inputs", "--json"])
+    assert r.exit_code == 0, r.output
