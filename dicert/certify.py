@@ -1241,7 +1241,10 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             from dicert.design import output_screens, spec_of
 
             screens = output_screens(extraction.output, analysis.output_bits,
-                                     spec_of(proto).significance)
+                                     spec_of(proto).significance, raw=sink.data(),
+                                     raw_bits=scan.raw_bits,
+                                     bits_per_symbol=proto.harvest.bits_per_trial,
+                                     min_entropy_bits=analysis.min_entropy_bits)
             analysis = withhold(analysis, screens)
 
         t4 = time.perf_counter()

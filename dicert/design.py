@@ -673,8 +673,81 @@ SCREEN_MAX_BITS = 1 << 24
 CONSTANT_MIN_BITS = 64
 
 
-def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIGNIFICANCE
-                   ) -> dict:
+def longest_symbol_run(raw: Any, raw_bits: int, bits_per_symbol: int,
+                       chunk_bytes: int = 1 << 22) -> tuple[int, int]:
+    """(longest run of identical symbols, number of symbols) of packed raw bits.
+
+    ``raw`` holds the bits packed big-endian (bytes, or a path to a file of them); a symbol is
+    ``bits_per_symbol`` consecutive bits (one trial's harvested outcomes). Streams in chunks
+    with the run carried across chunk boundaries.
+    """
+    from pathlib import Path as _P
+
+    k = int(bits_per_symbol)
+    n_sym = int(raw_bits) // k
+    if n_sym == 0:
+        return 0, 0
+    longest, run, last = 0, 0, -1
+    done = 0
+    fh = open(raw, "rb") if isinstance(raw, (str, _P)) else None
+    try:
+        pos = 0
+        while done < n_sym:
+            if fh is not None:
+                data = fh.read(chunk_bytes)
+            else:
+                data = bytes(raw[pos:pos + chunk_bytes])
+                pos += chunk_bytes
+            if not data:
+                break
+            bits = np.unpackbits(np.frombuffer(data, dtype=np.uint8))
+            take = min(bits.size // k, n_sym - done)
+            bits = bits[:take * k].reshape(take, k)
+            sym = (bits[:, 0] if k == 1 else bits[:, 0] * 2 + bits[:, 1]).astype(np.int64)
+            done += take
+            if sym.size == 0:
+                continue
+            cuts = np.flatnonzero(sym[1:] != sym[:-1]) + 1
+            lens = np.diff(np.concatenate([[0], cuts, [sym.size]]))
+            if int(sym[0]) == last:
+                lens[0] += run
+            longest = max(longest, int(lens.max()))
+            run = int(lens[-1])
+            last = int(sym[-1])
+    finally:
+        if fh is not None:
+            fh.close()
+    return longest, done
+
+
+def repetition_count_screen(raw: Any, raw_bits: int, bits_per_symbol: int,
+                            min_entropy_bits: float) -> dict:
+    """NIST SP 800-90B section 4.4.1 repetition count test on the harvested outcome symbols.
+
+    Cutoff C = 1 + ceil(-log2(alpha) / H) with H = the certified min-entropy per symbol
+    (k / number of symbols, at most the symbol's bit count) and alpha = 2^-40 / N for N
+    symbols, so that the whole stream, not each sample, has false-alarm probability at most
+    about 2^-40 for outcomes with that min-entropy. A longer run of identical outcomes means a
+    stuck detector or a broken pipeline.
+    """
+    longest, n_sym = longest_symbol_run(raw, raw_bits, bits_per_symbol)
+    out: dict[str, Any] = {"name": "repetition count (raw outcomes)",
+                           "section": "NIST SP 800-90B 4.4.1", "symbols": n_sym,
+                           "bits_per_symbol": int(bits_per_symbol), "longest_run": longest}
+    h = float(min_entropy_bits) / n_sym if n_sym else 0.0
+    if h <= 0 or n_sym < 2:
+        out.update(applicable=False, cutoff=None, min_entropy_per_symbol=h, passed=True)
+        return out
+    neg_log2_alpha = 40.0 + math.log2(n_sym)
+    cutoff = 1 + math.ceil(neg_log2_alpha / min(h, float(bits_per_symbol)))
+    out.update(applicable=True, cutoff=int(cutoff), min_entropy_per_symbol=h,
+               passed=longest < cutoff)
+    return out
+
+
+def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIGNIFICANCE,
+                   *, raw: Any = None, raw_bits: int = 0, bits_per_symbol: int = 2,
+                   min_entropy_bits: float = 0.0) -> dict:
     """Gross-failure screens on extractor output bits, as a record section.
 
     The NIST SP 800-22 rev. 1a frequency, block-frequency, runs and longest-run tests and the
@@ -682,7 +755,9 @@ def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIG
     at the significance ``significance`` (far below the standard's 0.01: this screen only
     withholds grossly failing output), plus a constant-output check. ``passed`` is False on a
     gross failure; certify then withholds the bits (status "withheld", exit 5). Passing proves
-    nothing about unpredictability.
+    nothing about unpredictability. With ``raw`` (the packed harvested bits) the SP 800-90B
+    repetition count test also runs on the raw outcome symbols
+    (:func:`repetition_count_screen`), to catch a stuck detector.
     """
     n = int(min(m_bits, SCREEN_MAX_BITS))
     out: dict[str, Any] = {"significance": float(significance), "bits_screened": n,
@@ -699,18 +774,27 @@ def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIG
     tests = [{"name": t.name, "section": t.section, "statistic": _num(t.statistic),
               "p_value": _num(t.p_value), "applicable": bool(t.applicable),
               "passed": t.passed} for t in rep.tests]
+    rct = None
+    if raw is not None:
+        rct = repetition_count_screen(raw, raw_bits, bits_per_symbol, min_entropy_bits)
     failure = None
-    if constant:
+    if rct is not None and not rct["passed"]:
+        failure = (f"stuck outcomes: {rct['longest_run']} identical raw outcome symbols in a "
+                   f"row (repetition count cutoff {rct['cutoff']})")
+    elif constant:
         failure = f"the output is constant ({n} bits all {int(bits[0])})"
     else:
         bad = [t for t in rep.tests if t.applicable and t.passed is False]
         if bad:
             failure = "; ".join(f"{t.name} P = {t.p_value:.3g} < {significance:g}" for t in bad)
+    if rct is not None:
+        out["raw_repetition_count"] = rct
     out.update(passed=failure is None, applicable=True, tests=tests, constant=constant,
                mcv_min_entropy_per_bit=_num(rep.mcv_per_bit.min_entropy_per_sample),
                failure=failure, statement=STATEMENT,
                references=["NIST SP 800-22 rev. 1a (2010), sections 2.1-2.4",
-                           "NIST SP 800-90B (2018), section 6.3.1"])
+                           "NIST SP 800-90B (2018), section 6.3.1",
+                           "NIST SP 800-90B (2018), section 4.4.1 (raw outcomes)"])
     return out
 
 
@@ -751,4 +835,4 @@ def seed_problems(seed: bytes, *, log_digests: tuple[str, ...] = (),
     return fatal, soft
 
 
-__all__ += ["output_screens", "seed_problems"]
+__all__ += ["longest_symbol_run", "output_screens", "repetition_count_screen", "seed_problems"]

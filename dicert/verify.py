@@ -585,8 +585,13 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                 if "output_screens" in body:
                     from dicert.design import output_screens, spec_of
 
-                    scr = output_screens(recomputed_output, output_bits,
-                                         spec_of(protocol).significance)
+                    scr = output_screens(
+                        recomputed_output, output_bits, spec_of(protocol).significance,
+                        raw=sink.data(), raw_bits=scan.raw_bits,
+                        bits_per_symbol=protocol.harvest.bits_per_trial,
+                        min_entropy_bits=float(_get(body, "certified_min_entropy_bits"))
+                        if status == "certified" else float(
+                            _get(body, "entropy.finite_size.min_entropy_bits")))
                     _compare({"output_screens": scr}, {"output_screens": body["output_screens"]})
                     checked.append("output screens re-run on the recomputed output")
         finally:

@@ -634,3 +634,36 @@ def test_cli_exit_codes_for_withheld_and_mixed_inputs(tmp_path):
                             str(_seed(tmp_path)), "--out", str(tmp_path / "o2"),
                             "--allow-mixed-inputs", "--json"])
     assert r.exit_code == 0, r.output
+
+
+def test_longest_symbol_run_matches_a_naive_loop():
+    from dicert.design import longest_symbol_run
+
+    rng = np.random.default_rng(2)
+    bits = (rng.random(20_002) < 0.9).astype(np.uint8)  # long runs of (1, 1) symbols
+    packed = np.packbits(bits).tobytes()
+    sym = bits[0::2] * 2 + bits[1::2]
+    best = cur = 1
+    for i in range(1, sym.size):  # naive oracle
+        cur = cur + 1 if sym[i] == sym[i - 1] else 1
+        best = max(best, cur)
+    assert longest_symbol_run(packed, bits.size, 2, chunk_bytes=7) == (best, sym.size)
+    assert longest_symbol_run(packed, bits.size, 2)[0] == best
+
+
+def test_stuck_detector_withholds_the_output(tmp_path):
+    # A stretch of 5,000 trials with outcomes stuck at (0, 0) inside an otherwise honest run:
+    # the SP 800-90B 4.4.1 repetition count test on the raw outcomes fires (NIST SP 800-90B,
+    # section 4.4.1: cutoff 1 + ceil(-log2(alpha) / H)).
+    tr = sim_trials(200_000, seed=20, visibility=1.0)
+    a, b = tr.a.copy(), tr.b.copy()
+    a[50_000:55_000] = 0
+    b[50_000:55_000] = 0
+    log = tmp_path / "stuck.btl"
+    write_log(log, TrialArrays(x=tr.x, y=tr.y, a=a, b=b))
+    out = tmp_path / "out"
+    res = certify(log, uniform_protocol(), _seed(tmp_path, n=800_000), out)
+    assert res.status == "withheld" and res.exit_code == 5 and res.bits_file is None
+    rct = res.record["output_screens"]["raw_repetition_count"]
+    assert rct["longest_run"] >= 5_000 and rct["longest_run"] >= rct["cutoff"]
+    assert "stuck outcomes" in res.abort_reason
