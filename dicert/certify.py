@@ -8,9 +8,16 @@ This is the one-call recipe the ``dicert certify`` command uses. It
    output directory. With method "pef" on a single binary log, reading stops at the trial
    where the outcome is decided and the record covers exactly the bytes read (see
    *Log scope*); ``follow`` waits for a growing log;
-3. estimates the CHSH value (:func:`dicert.estimate.estimate_chsh`, informational) and runs the
+3. checks the log against the protocol's declared design (:func:`dicert.design.check_design`:
+   test-round fraction, settings distribution, serial independence, physical range, declared
+   n; a failed check aborts the run with that reason), refuses a multi-file log holding the
+   same data twice or mixing formats, estimates the CHSH value
+   (:func:`dicert.estimate.estimate_chsh`, informational) and runs the
    protocol's finite-size method on the counts (:func:`dicert.finite.certify_counts`), which
    decides accepted/aborted against the PRE-DECLARED threshold and bounds the min-entropy;
+   before extraction the seed is checked (:func:`dicert.design.seed_problems`) and after it
+   the output and the raw outcomes are screened (:func:`dicert.design.output_screens`): a
+   gross failure withholds the bits (status "withheld", the record is still written);
 4. on acceptance sizes the output with the leftover hash lemma
    (:func:`dicert.extract.lhl_output_length`) and runs the Toeplitz extractor;
 5. writes the bits file and the signed record atomically (temporary files renamed into place
@@ -45,7 +52,7 @@ even when the PEF run was decided earlier; the success trial is in the finite-si
 Every reader stops at the same trial however the bytes arrive (a trial outside the settings
 model stops the run at that very trial).
 
-Exit codes of the CLI: 0 certified, 3 aborted, 2 bad input, 1 verification failure.
+Exit codes of the CLI: 0 certified, 3 aborted, 5 withheld, 2 bad input, 1 verification failure.
 """
 
 from __future__ import annotations

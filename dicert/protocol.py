@@ -32,6 +32,11 @@ Layout (all tables required unless marked optional)::
     eps_ext = 1e-8
     output_rule = "lhl-conservative"
 
+    [design]                          # optional: design-conformance checks (dicert.design)
+    significance = 1e-9               # of every check
+    trials = 1000000                  # optional pre-declared number of trials n
+    block_trials = 1048576            # block size of the per-block checks
+
 Errors are :class:`~dicert.errors.ProtocolError` with one line naming the file and the key.
 """
 
