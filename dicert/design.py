@@ -200,6 +200,11 @@ class DesignCheck:
                 "meaning": self.meaning, "detail": self.detail, "reference": self.reference}
 
 
+def _fp(p: float) -> str:
+    """A p-value for messages (an underflow to 0 is shown as a bound)."""
+    return "< 1e-300" if p <= 0 else f"= {p:.3g}"
+
+
 def _num(v: Any) -> Any:
     if v is None:
         return None
@@ -524,7 +529,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             meaning="test rounds occur with the declared probability gamma",
             detail=(f"{n_test} test rounds in {n} trials ({n_test / max(n, 1):.6g}); "
                     f"declared gamma = {gamma:g} (expected {gamma * n:.6g}); two-sided "
-                    f"p = {p:.3g}, significance {alpha:g}"),
+                    f"p {_fp(p)}, significance {alpha:g}"),
             reference=ref_binom))
         wrong_gen = int(c[0].sum() - c[0, gen[0], gen[1]].sum())
         checks.append(DesignCheck(
@@ -560,7 +565,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
                      + (" (independence of x and y)" if which == "xor" else "")),
             detail=(f"{k} of {m} test rounds with {descr[which].split('(')[1][:-1]} "
                     f"({k / max(m, 1):.6g}); declared {descr[which]} = {want}; two-sided "
-                    f"p = {p:.3g}, significance {alpha:g}"),
+                    f"p {_fp(p)}, significance {alpha:g}"),
             reference=ref_binom))
 
     # -- per block (Bonferroni)
@@ -581,7 +586,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
                     name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
                     passed=worst >= thr, applicable=True,
                     meaning="test rounds occur with probability gamma in every block",
-                    detail=(f"smallest p-value {worst:.3g} in block {at} of {nb} "
+                    detail=(f"smallest p-value {_fp(worst)[2:] if worst > 0 else '< 1e-300'} in block {at} of {nb} "
                             f"({spec.block_trials} trials per block); Bonferroni threshold "
                             f"{alpha:g}/{nb} = {thr:.3g}"),
                     reference=ref_binom + "; Bonferroni correction (common practice)"))
@@ -598,7 +603,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
                 name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
                 passed=worst >= thr, applicable=True,
                 meaning="the test-round settings follow the declared distribution in every block",
-                detail=(f"smallest p-value {worst:.3g} ({descr[what]}, block {at} of {nb}); "
+                detail=(f"smallest p-value {_fp(worst)[2:] if worst > 0 else '< 1e-300'} ({descr[what]}, block {at} of {nb}); "
                         f"Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
                 reference=ref_binom + "; Bonferroni correction (common practice)"))
 
@@ -611,7 +616,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             applicable=dof > 0,
             meaning=("consecutive rounds' settings and round types are independent (a "
                      "predictable settings sequence fails even with exact marginals)"),
-            detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p = {p:.3g}, "
+            detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p {_fp(p)}, "
                     f"significance {alpha:g}" if dof else f"not applicable: {note}"),
             reference=("likelihood-ratio test of independence against a first-order Markov "
                        "chain (Anderson & Goodman 1957); cf. NIST SP 800-22 rev. 1a section "
