@@ -130,7 +130,7 @@ def inspect_cmd(
         ("trials", f"{summary.trials:,}"),
         ("test rounds", f"{est.test_trials:,}"),
         ("CHSH S (ratio estimator)", f"{est.chsh:.5f} \u00b1 {est.chsh_stderr:.5f} (i.i.d. std. error)"),
-        ("CHSH S (martingale estimator)", f"{est.chsh_martingale:.5f}"),
+        ("CHSH S (martingale estimator)", (lambda v, note: f"{v:.5f}" + (f"  ({note})" if note else ""))(*_clip(est.chsh_martingale))),
         ("gamma (test-round probability)", f"{design.gamma:.6g} ({source})"),
         (f"lower bound on S at eps={error:g}", f"{lower_shown:.5f}  (margin {est.margin:.5f}; valid with memory{'; ' + lower_note if lower_note else ''})"),
         ("CHSH-game win probability", f"{est.win_probability:.6f}"),
