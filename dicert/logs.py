@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import concurrent.futures
 import dataclasses
+import functools
 import glob as _glob
 import gzip
 import hashlib
@@ -931,8 +932,13 @@ def summarize_log(
             if codes.size > room:
                 codes = codes[:room]
                 chunk = LogChunk(codes=codes, start=chunk.start, has_test_flag=chunk.has_test_flag)
-        pc, prev = count_pairs(codes, prev)
-        pairs += pc
+        # Pair counting runs in a worker thread while this one counts the blocks (both C
+        # kernels release the GIL); it finishes before the next chunk reuses the buffer.
+        big = codes.size >= _PAIR_THREAD_MIN
+        fut = _pair_pool().submit(count_pairs, codes, prev) if big else None
+        if fut is None:
+            pc, prev = count_pairs(codes, prev)
+            pairs += pc
         pos = 0
         if in_partial:
             take = min(block_trials - in_partial, codes.size)
@@ -953,6 +959,9 @@ def summarize_log(
             if rest.size % block_trials:
                 partial += c[-1]
                 in_partial = rest.size % block_trials
+        if fut is not None:
+            pc, prev = fut.result()
+            pairs += pc
         trials += codes.size
         if on_chunk is not None:
             on_chunk(chunk)
@@ -1015,6 +1024,16 @@ def input_identity_problems(files: Iterable[Any], formats: Iterable[str] | None 
             else:
                 seen[d] = p
     return out
+
+
+_PAIR_THREAD_MIN = 1 << 20
+
+
+@functools.cache
+def _pair_pool():
+    from concurrent.futures import ThreadPoolExecutor
+
+    return ThreadPoolExecutor(max_workers=1, thread_name_prefix="dicert-pairs")
 
 
 def files_digest(entries: Iterable[Mapping[str, Any]]) -> str:
