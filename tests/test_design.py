@@ -667,3 +667,34 @@ def test_stuck_detector_withholds_the_output(tmp_path):
     rct = res.record["output_screens"]["raw_repetition_count"]
     assert rct["longest_run"] >= 5_000 and rct["longest_run"] >= rct["cutoff"]
     assert "stuck outcomes" in res.abort_reason
+
+
+def test_declared_trial_count_with_streaming_probability_estimation(tmp_path):
+    # Method pef on a binary log: reading stops at the declared n at the latest; a run
+    # decided earlier does not need n trials; a run that ends undecided before n aborts.
+    from dicert.simulate import device_model, simulate_to_file
+    from dicert.verify import verify
+
+    log = tmp_path / "ph.btl"
+    simulate_to_file(log, 500_000, device_model("photonic"), rng_seed=5)
+    seed = _seed(tmp_path)
+    d = tomllib.loads((PROTOS / "ch-photonic.toml").read_text())
+    d["analysis"].update(calibration_trials=200_000, sigma_target_bits=128, n_max=2_000_000)
+    d["extractor"]["eps_ext"] = 1e-6
+    d["design"]["trials"] = 260_000  # too few analysis trials to reach the target
+    res = certify(log, protocol_from_dict(d, "pef-short"), seed, tmp_path / "a")
+    assert res.status == "aborted" and res.trials == 260_000
+    assert res.record["log"]["ended_by"] == "declared-trials"
+    import hashlib
+
+    # The digest covers exactly the header (24 bytes) and the declared trials (one byte each).
+    prefix = log.read_bytes()[:24 + 260_000]
+    assert res.record["log"]["sha256"] == hashlib.sha256(prefix).hexdigest()
+    verify(res.record_file, log=log, seed=seed)
+    d["design"]["trials"] = 2_000_000  # longer than the log: fine only if decided earlier
+    res = certify(log, protocol_from_dict(d, "pef-long"), seed, tmp_path / "b")
+    if res.record["log"]["ended_by"] == "decision":
+        assert res.certified
+    else:
+        _aborted(res, "trial_count", tmp_path / "b")
+    verify(res.record_file, log=log, seed=seed)
