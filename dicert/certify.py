@@ -774,6 +774,17 @@ def design_report(scan: LogScan, protocol: Any) -> Any:
                         decided_early=scan.ended_by == "decision", eps=_estimate_eps(protocol))
 
 
+def input_problems_of(scan: LogScan) -> list[str]:
+    """Input identity problems of a multi-file log (:func:`dicert.logs.input_identity_problems`)."""
+    from dicert.logs import input_identity_problems
+
+    if len(scan.file_entries) < 2:
+        return []
+    return input_identity_problems([Path(str(e["name"])) for e in scan.file_entries],
+                                   scan.formats if len(scan.formats) > 1 else None,
+                                   [e.get("sha256") for e in scan.file_entries])
+
+
 def withhold(analysis: Analysis, screens: Mapping[str, Any] | None) -> Analysis:
     """The analysis with status "withheld" when the output screens failed grossly."""
     if screens is None or screens.get("passed", True) or analysis.status != "certified":
@@ -1199,12 +1210,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             raise LogFormatError(log, "", f"the protocol declares every round a test round "
                                  f"(settings.gamma = 1) but the log marks {generation_rounds} "
                                  f"trials as generation rounds (t = 0)")
-        from dicert.logs import input_identity_problems
-
-        input_problems = input_identity_problems(
-            [Path(e["name"]) for e in scan.file_entries] if len(scan.file_entries) > 1 else [],
-            scan.formats if len(scan.formats) > 1 else None,
-            [e["sha256"] for e in scan.file_entries] if len(scan.file_entries) > 1 else None)
+        input_problems = input_problems_of(scan)
         if input_problems and not allow_mixed_inputs:
             raise LogFormatError(log, "", f"{input_problems[0]}; refusing a log that may hold "
                                  "the same data twice or mix sources (pass --allow-mixed-inputs "
@@ -1394,6 +1400,7 @@ __all__ = [
     "check_seed_length",
     "expected_raw_bits",
     "harvest_bits",
+    "input_problems_of",
     "log_end_note",
     "read_seed",
     "scan_log",

@@ -371,6 +371,16 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
                    **extra)
 
 
+def _concatenated_digest(files: list[Path]) -> str:
+    """SHA-256 of the concatenated bytes of a log's files (the dicert-record/1 definition)."""
+    h = hashlib.sha256()
+    for f in files:
+        with open(f, "rb") as fh:
+            while block := fh.read(1 << 22):
+                h.update(block)
+    return h.hexdigest()
+
+
 def _legacy_design_note(scan: Any, protocol: Any) -> str:
     """What the design checks the counts allow say about a /1 record (informational)."""
     from dicert.design import check_design
@@ -561,6 +571,15 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         if ended == "limit" and rec_scan.ended_by == "idle-timeout":
             ended = "idle-timeout"
         scan = dataclasses.replace(scan, follow=rec_scan.follow, ended_by=ended)
+        if body.get("format") == "dicert-record/1" and len(scan.file_entries) > 1:
+            # A /1 record digested the concatenation of the files' bytes.
+            scan = dataclasses.replace(scan, sha256=_concatenated_digest(resolve_sources(log)))
+        elif isinstance(body.get("inputs"), Mapping):
+            from dicert.certify import input_problems_of
+
+            _require(input_problems_of(scan) == list(body["inputs"].get("input_problems", [])),
+                     "inputs.input_problems", "the input identity problems of the given log "
+                     "differ from the recorded ones")
         try:
             exp = expected_body(body, protocol, scan, seed_sha256=seed_sha,
                                 seed_bytes=seed_bytes_n, output_sha256=output_sha)

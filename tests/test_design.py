@@ -698,3 +698,33 @@ def test_declared_trial_count_with_streaming_probability_estimation(tmp_path):
     else:
         _aborted(res, "trial_count", tmp_path / "b")
     verify(res.record_file, log=log, seed=seed)
+
+
+def test_old_multi_file_record_keeps_its_concatenated_digest(tmp_path):
+    # A dicert-record/1 record of a multi-file log digested the files' concatenated bytes;
+    # verify still re-checks it with the log.
+    import hashlib
+
+    from dicert.audit.record import read_record, record_bytes, seal_record
+    from dicert.verify import verify
+
+    d = tmp_path / "run"
+    d.mkdir()
+    write_log(d / "a.btl", sim_trials(40_000, seed=21, visibility=0.97))
+    write_log(d / "b.btl", sim_trials(40_000, seed=22, visibility=0.97))
+    seed = _seed(tmp_path)
+    res = certify(d, uniform_protocol(), seed, tmp_path / "out")
+    rec = read_record(res.record_file)
+    old = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
+    old["format"] = "dicert-record/1"
+    for k in ("design", "inputs", "output_screens"):
+        old.pop(k)
+    old["log"].pop("trials_in_log")
+    old["log"]["files"] = [f["name"] for f in old["log"]["files"]]
+    old["log"]["sha256"] = hashlib.sha256((d / "a.btl").read_bytes()
+                                          + (d / "b.btl").read_bytes()).hexdigest()
+    for k in ("gamma_source", "local_win_bound"):
+        old["estimate"].pop(k)
+    p = tmp_path / "old.json"
+    p.write_bytes(record_bytes(seal_record(old, None)))
+    assert verify(p, log=d, seed=seed, bits=res.bits_file).scope == "full"
