@@ -201,7 +201,7 @@ class DesignCheck:
 
 
 def _fp(p: float) -> str:
-    """A p-value for messages (an underflow to 0 is shown as a bound)."""
+    """A p-value for messages: "= 0.0123", or "< 1e-300" for an underflow to 0."""
     return "< 1e-300" if p <= 0 else f"= {p:.3g}"
 
 
@@ -409,7 +409,8 @@ def settings_symbol_counts(counts: np.ndarray) -> np.ndarray:
         return c.reshape(c.shape[:-3] + (8,))
     if c.shape[-1] == 8:
         return c
-    raise ParameterError(f"expected counts [t,x,y,a,b] or settings-symbol counts, got shape {c.shape}")
+    raise ParameterError(f"expected counts [t,x,y,a,b] or settings-symbol counts, got shape "
+                         f"{c.shape}")
 
 
 def _test_settings_model(protocol: Any) -> tuple[float, float, float, float]:
@@ -429,7 +430,8 @@ def _device_max(protocol: Any) -> tuple[float, str]:
     model = getattr(getattr(protocol, "analysis", None), "model", None)
     if method == "pef" and model == "ns":
         return NO_SIGNALLING_MAX, "no-signalling devices (maximum 4)"
-    return TSIRELSON, "quantum devices: a larger value lies outside the quantum set (Tsirelson bound 2 sqrt 2)"
+    return TSIRELSON, ("quantum devices: a larger value lies outside the quantum set "
+                       "(Tsirelson bound 2 sqrt 2)")
 
 
 def weighted_chsh(counts: np.ndarray, gamma: float, px0: float, py0: float,
@@ -586,7 +588,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
                     name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
                     passed=worst >= thr, applicable=True,
                     meaning="test rounds occur with probability gamma in every block",
-                    detail=(f"smallest p-value {_fp(worst)[2:] if worst > 0 else '< 1e-300'} in block {at} of {nb} "
+                    detail=(f"smallest p-value {_fp(worst)} in block {at} of {nb} "
                             f"({spec.block_trials} trials per block); Bonferroni threshold "
                             f"{alpha:g}/{nb} = {thr:.3g}"),
                     reference=ref_binom + "; Bonferroni correction (common practice)"))
@@ -603,7 +605,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
                 name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
                 passed=worst >= thr, applicable=True,
                 meaning="the test-round settings follow the declared distribution in every block",
-                detail=(f"smallest p-value {_fp(worst)[2:] if worst > 0 else '< 1e-300'} ({descr[what]}, block {at} of {nb}); "
+                detail=(f"smallest p-value {_fp(worst)} ({descr[what]}, block {at} of {nb}); "
                         f"Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
                 reference=ref_binom + "; Bonferroni correction (common practice)"))
 

@@ -498,8 +498,10 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         des = _get(body, "design")
         failed = [c.get("name") for c in des.get("checks", []) if isinstance(c, Mapping)
                   and not c.get("passed")]
-        checked.append(f"design conformance re-run ({len(des.get('checks', []))} checks"
-                       + (f"; failed: {', '.join(map(str, failed))})" if failed else ", all passed)"))
+        n_checks = len(des.get("checks", []))
+        checked.append(f"design conformance re-run ({n_checks} checks"
+                       + (f"; failed: {', '.join(map(str, failed))})" if failed
+                          else ", all passed)"))
         inp = body.get("inputs") if isinstance(body.get("inputs"), Mapping) else {}
         if inp.get("allow_mixed_inputs") and inp.get("input_problems"):
             notes.append("the operator allowed a log with input identity problems: "
