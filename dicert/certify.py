@@ -774,6 +774,58 @@ def design_report(scan: LogScan, protocol: Any) -> Any:
                         decided_early=scan.ended_by == "decision", eps=_estimate_eps(protocol))
 
 
+def checked_analysis(scan: LogScan, proto: Any, *, log: Any, seed_bytes: bytes,
+                     seed_label: str, chain_dir: Path | None, allow_mixed_inputs: bool,
+                     allow_seed_reuse: bool) -> tuple[Analysis, dict]:
+    """Certify's stages between the scan and the extraction, with the record's ``inputs``.
+
+    Input identity of a multi-file log (bad input unless allowed), the design-conformance
+    stage and the analysis (:func:`analyse_counts`), then, when the seed will be used, its
+    length and sanity (:func:`dicert.design.seed_problems`; bad input unless allowed).
+    """
+    input_problems = input_problems_of(scan)
+    if input_problems and not allow_mixed_inputs:
+        raise LogFormatError(log, "", f"{input_problems[0]}; refusing a log that may hold "
+                             "the same data twice or mix sources (pass --allow-mixed-inputs "
+                             "if this is intended; it is then recorded)")
+    analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
+                              log_end=log_end_note(scan), design=design_report(scan, proto))
+    seed_issues: list[str] = []
+    if analysis.status == "certified":
+        from dicert.design import seed_problems
+
+        check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
+        used = _chain_seed_digests(chain_dir) if chain_dir is not None else ()
+        digests = (scan.sha256,) + tuple(str(e.get("sha256")) for e in scan.file_entries)
+        fatal, seed_issues = seed_problems(seed_bytes, log_digests=digests, used_digests=used)
+        if fatal:
+            raise SeedError(f"{seed_label}: {fatal[0]}; an extractor seed must be "
+                            "uniformly random")
+        if seed_issues and not allow_seed_reuse:
+            raise SeedError(f"{seed_label}: {seed_issues[0]}; use a fresh uniformly random "
+                            "seed (or pass --allow-seed-reuse; it is then recorded)")
+    inputs = {"allow_mixed_inputs": bool(allow_mixed_inputs),
+              "input_problems": list(input_problems),
+              "allow_seed_reuse": bool(allow_seed_reuse),
+              "seed_problems": list(seed_issues)}
+    return analysis, inputs
+
+
+def screened(extraction: Any, analysis: Analysis, proto: Any, scan: LogScan,
+             raw: Any) -> tuple[Analysis, dict | None]:
+    """Output screens after extraction (:func:`dicert.design.output_screens`); a gross
+    failure turns the analysis into status "withheld"."""
+    if extraction is None:
+        return analysis, None
+    from dicert.design import output_screens, spec_of
+
+    screens = output_screens(extraction.output, analysis.output_bits,
+                             spec_of(proto).significance, raw=raw, raw_bits=scan.raw_bits,
+                             bits_per_symbol=proto.harvest.bits_per_trial,
+                             min_entropy_bits=analysis.min_entropy_bits)
+    return withhold(analysis, screens), screens
+
+
 def input_problems_of(scan: LogScan) -> list[str]:
     """Input identity problems of a multi-file log (:func:`dicert.logs.input_identity_problems`)."""
     from dicert.logs import input_identity_problems
@@ -783,6 +835,25 @@ def input_problems_of(scan: LogScan) -> list[str]:
     return input_identity_problems([Path(str(e["name"])) for e in scan.file_entries],
                                    scan.formats if len(scan.formats) > 1 else None,
                                    [e.get("sha256") for e in scan.file_entries])
+
+
+def _chain_seed_digests(chain_dir: Path) -> tuple[str, ...]:
+    """Seed digests already used (seed bits consumed) by the records of a beacon chain."""
+    import json
+
+    out = []
+    if not chain_dir.is_dir():
+        return ()
+    for p in sorted(chain_dir.glob("*.json")):
+        try:
+            rec = json.loads(p.read_bytes())
+        except (OSError, ValueError):
+            continue  # verify --chain reports unreadable pulses
+        ex = rec.get("extractor") if isinstance(rec, dict) else None
+        if isinstance(ex, dict) and isinstance(ex.get("seed_sha256"), str) \
+                and (ex.get("seed_bits_used") or 0) > 0:
+            out.append(ex["seed_sha256"])
+    return tuple(out)
 
 
 def withhold(analysis: Analysis, screens: Mapping[str, Any] | None) -> Analysis:
@@ -1210,32 +1281,10 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             raise LogFormatError(log, "", f"the protocol declares every round a test round "
                                  f"(settings.gamma = 1) but the log marks {generation_rounds} "
                                  f"trials as generation rounds (t = 0)")
-        input_problems = input_problems_of(scan)
-        if input_problems and not allow_mixed_inputs:
-            raise LogFormatError(log, "", f"{input_problems[0]}; refusing a log that may hold "
-                                 "the same data twice or mix sources (pass --allow-mixed-inputs "
-                                 "if this is intended; it is then recorded)")
-        analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
-                                  log_end=log_end_note(scan), design=design_report(scan, proto))
-        seed_issues: list[str] = []
-        if analysis.status == "certified":
-            from dicert.design import seed_problems
-
-            check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
-            used = _chain_seed_digests(chain_dir) if chain_dir is not None else ()
-            digests = (scan.sha256,) + tuple(str(e.get("sha256")) for e in scan.file_entries)
-            fatal, seed_issues = seed_problems(seed_bytes, log_digests=digests,
-                                               used_digests=used)
-            if fatal:
-                raise SeedError(f"{seed_label}: {fatal[0]}; an extractor seed must be "
-                                "uniformly random")
-            if seed_issues and not allow_seed_reuse:
-                raise SeedError(f"{seed_label}: {seed_issues[0]}; use a fresh uniformly random "
-                                "seed (or pass --allow-seed-reuse; it is then recorded)")
-        inputs = {"allow_mixed_inputs": bool(allow_mixed_inputs),
-                  "input_problems": list(input_problems),
-                  "allow_seed_reuse": bool(allow_seed_reuse),
-                  "seed_problems": list(seed_issues)}
+        analysis, inputs = checked_analysis(
+            scan, proto, log=log, seed_bytes=seed_bytes, seed_label=seed_label,
+            chain_dir=chain_dir, allow_mixed_inputs=allow_mixed_inputs,
+            allow_seed_reuse=allow_seed_reuse)
         timings["analysis"] = time.perf_counter() - t2
 
         extraction = None
@@ -1249,16 +1298,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
                 raise DicertError("extractor returned a different output length")
         timings["extraction"] = time.perf_counter() - t3
-        screens = None
-        if extraction is not None:
-            from dicert.design import output_screens, spec_of
-
-            screens = output_screens(extraction.output, analysis.output_bits,
-                                     spec_of(proto).significance, raw=sink.data(),
-                                     raw_bits=scan.raw_bits,
-                                     bits_per_symbol=proto.harvest.bits_per_trial,
-                                     min_entropy_bits=analysis.min_entropy_bits)
-            analysis = withhold(analysis, screens)
+        analysis, screens = screened(extraction, analysis, proto, scan, sink.data())
 
         t4 = time.perf_counter()
         out.mkdir(parents=True, exist_ok=True)
@@ -1341,25 +1381,6 @@ def _load_key(key: Any) -> Any:
     return key
 
 
-def _chain_seed_digests(chain_dir: Path) -> tuple[str, ...]:
-    """Seed digests already used (seed bits consumed) by the records of a beacon chain."""
-    import json
-
-    out = []
-    if not chain_dir.is_dir():
-        return ()
-    for p in sorted(chain_dir.glob("*.json")):
-        try:
-            rec = json.loads(p.read_bytes())
-        except (OSError, ValueError):
-            continue  # verify --chain reports unreadable pulses
-        ex = rec.get("extractor") if isinstance(rec, dict) else None
-        if isinstance(ex, dict) and isinstance(ex.get("seed_sha256"), str) \
-                and (ex.get("seed_bits_used") or 0) > 0:
-            out.append(ex["seed_sha256"])
-    return tuple(out)
-
-
 def _chain_position(chain_dir: Path | None) -> tuple[int, str | None] | None:
     if chain_dir is None:
         return None
@@ -1394,6 +1415,7 @@ __all__ = [
     "LogScan",
     "analyse_counts",
     "build_body",
+    "checked_analysis",
     "design_report",
     "withhold",
     "certify",
@@ -1404,4 +1426,5 @@ __all__ = [
     "log_end_note",
     "read_seed",
     "scan_log",
+    "screened",
 ]
