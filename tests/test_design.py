@@ -389,12 +389,17 @@ def test_unsafe_seeds_are_refused(tmp_path):
     assert res.certified and res.record["inputs"]["seed_problems"]
     rep = verify(res.record_file, log=log, seed=log)
     assert any("seed problem" in n for n in rep.notes)
-    # A seed already used in the beacon chain.
+    # A seed already used in the beacon chain (a chain is extended with signed records).
+    from dicert.audit.signing import write_keypair
+
+    key = write_keypair(tmp_path / "op.pem").private_key_file
     chain = tmp_path / "chain"
     seed = _seed(tmp_path, k=3)
-    certify(log, uniform_protocol(), seed, tmp_path / "p1", chain=chain)
+    log2 = tmp_path / "u2.btl"
+    write_log(log2, sim_trials(100_000, seed=23, visibility=0.97))
+    certify(log, uniform_protocol(), seed, tmp_path / "p1", chain=chain, key=key)
     with pytest.raises(SeedError, match="already used"):
-        certify(log, uniform_protocol(), seed, tmp_path / "p2", chain=chain)
+        certify(log2, uniform_protocol(), seed, tmp_path / "p2", chain=chain, key=key)
     assert not (tmp_path / "p2").exists()
 
 
