@@ -161,8 +161,8 @@ class ChainState:
     head_index: int | None
     head_sha256: str | None
     protocol_sha256: str | None
-    seeds_used: frozenset[str]
-    logs_used: frozenset[str]
+    seeds_used: Mapping[str, int]  # seed digest -> pulse that used it
+    logs_used: Mapping[str, int]  # log digest -> pulse it fed
     report: ChainReport
 
     def next_link(self) -> dict[str, Any]:
@@ -600,8 +600,8 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
         result=result,
     )
     state = ChainState(head_index=head_index, head_sha256=head_digest,
-                       protocol_sha256=proto_sha, seeds_used=frozenset(seeds),
-                       logs_used=frozenset(logs), report=report)
+                       protocol_sha256=proto_sha, seeds_used=seeds,
+                       logs_used=logs, report=report)
     return report, state
 
 
@@ -678,7 +678,7 @@ def chain_state(chain_dir: str | os.PathLike[str], trusted: Any) -> ChainState:
                             signer_trusted=True, strict=True, findings=(),
                             authenticated=True, result="VERIFIED")
         return ChainState(head_index=None, head_sha256=None, protocol_sha256=None,
-                          seeds_used=frozenset(), logs_used=frozenset(), report=empty)
+                          seeds_used={}, logs_used={}, report=empty)
     report, state = _walk(p, trusted=trusted, strict=True)
     _raise_first(report)
     return state

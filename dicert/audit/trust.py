@@ -33,6 +33,7 @@ import dataclasses
 import datetime as _dt
 import hashlib
 import os
+import re
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -42,6 +43,7 @@ from dicert.errors import ParameterError, VerificationError
 #: Format string of trusted-keys files.
 TRUSTED_KEYS_FORMAT = "dicert-trusted-keys/1"
 _MAX_FILE_BYTES = 1 << 20
+_HEX64 = re.compile(r"[0-9a-fA-F]{64}")
 _KEY_FIELDS = {"label", "public_key", "public_key_file", "first_pulse", "last_pulse",
                "not_before", "not_after"}
 
@@ -160,7 +162,7 @@ def trust_from(public_key: Any = None, trusted_keys: Any = None) -> TrustSet | N
             sources.append(ts.source)
     if public_key is not None:
         if isinstance(public_key, (str, os.PathLike)) and not (
-                isinstance(public_key, str) and len(public_key) == 64):
+                isinstance(public_key, str) and _HEX64.fullmatch(public_key)):
             from dicert.audit.signing import load_public_key
 
             public_key = load_public_key(public_key)
