@@ -194,8 +194,13 @@ def publish_stage(stage: Path, out: Path, *, replace: bool) -> None:
                 return
             old = out.parent / f".{out.name}.old-{secrets.token_hex(6)}"
             os.rename(out, old)
-            fault_point("after-exchange")
-            os.rename(stage, out)
+            try:
+                fault_point("after-exchange")
+                os.rename(stage, out)
+            except BaseException:
+                with contextlib.suppress(OSError):
+                    os.rename(old, out)  # (a crash here is undone by clean_stale)
+                raise
             fsync_dir(out.parent)
             remove_tree(old)
             return
@@ -209,7 +214,8 @@ def clean_stale(out: Path) -> list[str]:
     """Remove what a crashed run left next to ``out`` (call with the out lock held).
 
     Staging and spill folders are deleted; an earlier run's folder moved aside by an
-    interrupted ``--force`` is restored if ``out`` is missing, deleted otherwise.
+    interrupted ``--force`` is restored if ``out`` is missing, deleted otherwise. A folder
+    handed to a chain's commit journal (``.DIR.pending-*``) is left to that chain's next run.
     """
     done: list[str] = []
     parent = out.parent
@@ -235,6 +241,50 @@ def clean_stale(out: Path) -> list[str]:
     return done
 
 
+def sweep_siblings(out: Path) -> list[str]:
+    """Clean up after crashed runs on other folders next to ``out``.
+
+    For every ``PARENT/.NAME.lock`` whose lock is free (no run on NAME is active), the
+    leftovers of NAME are removed as by :func:`clean_stale`. Never waits.
+    """
+    done: list[str] = []
+    parent = out.parent
+    for entry in sorted(os.scandir(parent), key=lambda e: e.name):
+        name = entry.name
+        if not (name.startswith(".") and name.endswith(".lock")) or name == f".{out.name}.lock":
+            continue
+        other = parent / name[1:-len(".lock")]
+        prefix = f".{other.name}."
+        if not any(e.name.startswith(prefix) and e.name != name
+                   and e.name[len(prefix):].startswith(("new-", "raw-", "old-"))
+                   for e in os.scandir(parent)):
+            continue
+        try:
+            fd = os.open(entry.path, os.O_RDWR | os.O_CLOEXEC)
+        except OSError:
+            continue
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(fd)
+            continue  # a run on that folder is active
+        try:
+            done.extend(clean_stale(other))
+        finally:
+            os.close(fd)
+    return done
+
+
+def hand_to_journal(stage: Path, out: Path) -> Path:
+    """Rename a complete staging folder to ``.DIR.pending-*`` (owned by a chain journal)."""
+    pending = out.parent / f".{out.name}.pending-{secrets.token_hex(6)}"
+    try:
+        os.rename(stage, pending)
+    except OSError as exc:
+        raise output_error(pending, exc) from None
+    return pending
+
+
 # --------------------------------------------------------------------------- chain journal
 
 
@@ -245,8 +295,13 @@ def write_journal(chain_dir: Path, *, stage: Path, out: Path, pulse: str, record
                        "pulse": pulse, "record_sha256": record_sha256,
                        "replace": bool(replace)}, sort_keys=True).encode()
     tmp = chain_dir / f".commit.json.{secrets.token_hex(6)}.part"
-    write_public_file(tmp, data)
-    os.replace(tmp, path)
+    try:
+        write_public_file(tmp, data)
+        os.replace(tmp, path)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise output_error(path, exc) from None
     fsync_dir(chain_dir)
     return path
 
@@ -282,7 +337,7 @@ def recover_chain(chain_dir: Path) -> list[str]:
     if pulse_path.is_file() and "/" not in pulse:
         with contextlib.suppress(DicertError, OSError):
             committed = record_digest(read_record(pulse_path)) == digest
-    if stage.is_dir() and stage.name.startswith(f".{out.name}.new-"):
+    if stage.is_dir() and stage.name.startswith(f".{out.name}.pending-"):
         with held_lock(out_lock_path(out)):
             if committed:
                 publish_stage(stage, out, replace=replace)

@@ -1043,6 +1043,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             raise outputs.output_error(out.parent, exc) from None
         held.enter_context(outputs.held_lock(outputs.out_lock_path(out)))
         outputs.clean_stale(out)
+        outputs.sweep_siblings(out)
         _check_out(out, force)
         return _certify_locked(
             log=log, proto=proto, seed_bytes=seed_bytes, seed_label=seed_label,
@@ -1141,7 +1142,22 @@ def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
         outputs.fault_point("after-stage-write")
         chain_file = None
         if chain_dir is not None:
-            chain_file = _append_and_publish(chain_dir, record, rec_sha, stage, out, force)
+            pulse = pulse_name(int(record["pulse_index"]))
+            stage = outputs.hand_to_journal(stage, out)
+            journal = outputs.write_journal(chain_dir, stage=stage, out=out, pulse=pulse,
+                                            record_sha256=rec_sha, replace=force)
+            chain_file = _append_pulse(chain_dir, record, journal)
+            # Committed: from here the journal owns the staging folder; should anything fail
+            # now, the next certify --chain on this chain puts it in place.
+            committed, stage = stage, None
+            outputs.fault_point("after-chain-append")
+            try:
+                outputs.publish_stage(committed, out, replace=force)
+            except DicertError as exc:
+                raise DicertError(f"{exc} (pulse {pulse} is in the chain; the next certify "
+                                  f"--chain on {chain_dir} completes {out})") from None
+            os.unlink(journal)
+            outputs.fsync_dir(chain_dir)
         else:
             outputs.publish_stage(stage, out, replace=force)
         stage = None
@@ -1242,36 +1258,25 @@ def _check_out(out: Path, force: bool) -> None:
                              "--force replaces only an earlier certification's folder")
 
 
-def _append_and_publish(chain_dir: Path, record: dict, rec_sha: str, stage: Path, out: Path,
-                        force: bool) -> Path:
-    """Commit point: link the pulse into the chain, then put the output folder in place.
+def pulse_name(index: int) -> str:
+    from dicert.audit.chain import pulse_file_name
 
-    A journal in the chain folder names the staging folder in between, so a crash there is
-    completed (or undone) by the next run on the chain.
-    """
+    return pulse_file_name(index)
+
+
+def _append_pulse(chain_dir: Path, record: dict, journal: Path) -> Path:
+    """The commit point: link the pulse into the chain (the journal goes if this fails)."""
     from dicert import _outputs as outputs
-    from dicert.audit.chain import append_to_chain, pulse_file_name
+    from dicert.audit.chain import append_to_chain
 
-    pulse = pulse_file_name(int(record["pulse_index"]))
-    journal = outputs.write_journal(chain_dir, stage=stage, out=out, pulse=pulse,
-                                    record_sha256=rec_sha, replace=force)
     try:
-        chain_file = Path(append_to_chain(chain_dir, record))
+        return Path(append_to_chain(chain_dir, record))
     except OSError as exc:
         os.unlink(journal)
-        raise outputs.output_error(chain_dir / pulse, exc) from None
+        raise outputs.output_error(chain_dir, exc) from None
     except BaseException:
         os.unlink(journal)
         raise
-    outputs.fault_point("after-chain-append")
-    try:
-        outputs.publish_stage(stage, out, replace=force)
-    except DicertError as exc:
-        raise DicertError(f"{exc} (pulse {pulse} is in the chain; the next certify --chain "
-                          f"on {chain_dir} completes the output folder)") from None
-    os.unlink(journal)
-    outputs.fsync_dir(chain_dir)
-    return chain_file
 
 
 def _extractor_convention() -> str:
