@@ -203,19 +203,24 @@ class _BitSink:
         if not data:
             return
         self._hash.update(data)
-        if self._fh is None and self._mem + len(data) > _SPILL_BYTES and self._spill_dir is not None:
-            self._spill_dir.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(prefix=".raw.", suffix=".part", dir=self._spill_dir)
-            self._fh = os.fdopen(fd, "wb")
-            self.path = Path(tmp)
-            for p in self._parts:
-                self._fh.write(p)
-            self._parts = []
-        if self._fh is not None:
-            self._fh.write(data)
-        else:
-            self._parts.append(data)
-            self._mem += len(data)
+        try:
+            if (self._fh is None and self._mem + len(data) > _SPILL_BYTES
+                    and self._spill_dir is not None):
+                self._spill_dir.mkdir(parents=True, exist_ok=True)
+                fd, tmp = tempfile.mkstemp(prefix=".raw.", suffix=".part", dir=self._spill_dir)
+                self._fh = os.fdopen(fd, "wb")
+                self.path = Path(tmp)
+                for p in self._parts:
+                    self._fh.write(p)
+                self._parts = []
+            if self._fh is not None:
+                self._fh.write(data)
+                return
+        except OSError as exc:  # disk full, quota: one line naming the spill folder
+            raise DicertError(f"{self.path or self._spill_dir}: cannot write the raw-bit "
+                              f"spill file ({exc.strerror or exc})") from None
+        self._parts.append(data)
+        self._mem += len(data)
 
     def add(self, bits: np.ndarray) -> None:
         if bits.size == 0:

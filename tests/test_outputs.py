@@ -437,3 +437,21 @@ def test_seed_reuse_refused_before_reading_the_log(tmp_path, inputs, two_pulses)
         certify(d / "log2.btl", _proto(), d / "seed0.bin", tmp_path / "next",
                 chain=two_pulses, key=keys.private_key_file)
     shutil.rmtree(tmp_path / "next", ignore_errors=True)
+
+
+def test_disk_full_while_spilling_raw_bits(tmp_path, inputs, monkeypatch):
+    import dicert.certify as certify_mod
+
+    d, _keys = inputs
+
+    def full(*a, **k):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(certify_mod, "_SPILL_BYTES", 16)
+    monkeypatch.setattr(certify_mod.tempfile, "mkstemp", full)
+    r = _runner().invoke(app, ["certify", str(d / "log0.btl"), "--protocol", UNIFORM, "--seed",
+                               str(d / "seed0.bin"), "--out", str(tmp_path / "out")])
+    assert r.exit_code == 2, r.output
+    err = r.stderr.strip()
+    assert err.splitlines() == [err] and "spill" in err and "No space left" in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == [".out.lock"]
