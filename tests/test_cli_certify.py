@@ -156,6 +156,11 @@ def test_demo_end_to_end(tmp_path):
     assert statuses[:2] == ["certified", "certified"] and statuses[2] == "aborted"
     assert len(d["tamper_checks"]) >= 4
     assert all(c["verification"] == "failed as expected" for c in d["tamper_checks"])
+    # Verified against the operator's public key; without it only integrity is established.
+    assert all(p["result"] == "VERIFIED" for p in d["pulses"])
+    assert d["chain"]["result"] == "VERIFIED" and d["without_key"] == "INTEGRITY-ONLY"
+    kinds = {c["tampered"].split(" (")[0] for c in d["tamper_checks"]}
+    assert {"log", "seed", "bits", "record", "chain"} <= kinds
     # Everything written stays inside --out.
     for p in d["pulses"]:
         assert Path(p["record_file"]).resolve().is_relative_to((tmp_path / "demo").resolve())
