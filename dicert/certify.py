@@ -1233,7 +1233,7 @@ def _check_chain(chain_dir: Path, trust: Any, signer: Any, seed_sha: str, seed_l
     if seed_sha in state.seeds_used:
         raise SeedError(f"{seed_label}: this extractor seed (SHA-256 {seed_sha[:16]}...) was "
                         f"already used by pulse {state.seeds_used[seed_sha]} of {chain_dir}; "
-                        "use a fresh seed for every pulse")
+                        "use a fresh seed for every pulse (an aborted pulse's seed included)")
     prev = state.protocol_sha256
     if prev is not None and proto.sha256 != prev and protocol_change is None:
         raise ParameterError(

@@ -455,3 +455,16 @@ def test_disk_full_while_spilling_raw_bits(tmp_path, inputs, monkeypatch):
     err = r.stderr.strip()
     assert err.splitlines() == [err] and "spill" in err and "No space left" in err
     assert sorted(p.name for p in tmp_path.iterdir()) == [".out.lock"]
+
+
+def test_an_aborted_pulses_seed_is_not_reused_either(tmp_path, inputs):
+    d, keys = inputs
+    chain = tmp_path / "chain"
+    classical = tmp_path / "classical.btl"
+    write_log(classical, sim_trials(4_000, seed=9, model="classical"))
+    res = certify(classical, _proto(), d / "seed0.bin", tmp_path / "a", chain=chain,
+                  key=keys.private_key_file)
+    assert res.status == "aborted"
+    with pytest.raises(SeedError, match="already used by pulse 1"):
+        certify(d / "log1.btl", _proto(), d / "seed0.bin", tmp_path / "b", chain=chain,
+                key=keys.private_key_file)

@@ -161,7 +161,7 @@ class ChainState:
     head_index: int | None
     head_sha256: str | None
     protocol_sha256: str | None
-    seeds_used: Mapping[str, int]  # seed digest -> pulse that used it
+    seeds_used: Mapping[str, int]  # seed digest -> first pulse that names it (used or not)
     logs_used: Mapping[str, int]  # log digest -> pulse it fed
     report: ChainReport
 
@@ -413,6 +413,7 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
     body_index_at: dict[Any, str] = {}  # claimed pulse_index -> file name
     prev_claimed: dict[str, str] = {}  # previous digest -> file name
     seeds: dict[str, int] = {}
+    seeds_named: dict[str, int] = {}  # every seed digest, used or not (appenders refuse any)
     logs: dict[str, int] = {}
     fingerprints: list[str] = []
     unsigned: list[tuple[int, str]] = []
@@ -516,6 +517,10 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
                     f"({this_prev_digest[:16]}...)", (index,))
         digest_at[digest] = index
         # Reuse of inputs.
+        ext = record.get("extractor")
+        named = ext.get("seed_sha256") if isinstance(ext, Mapping) else None
+        if isinstance(named, str):
+            seeds_named.setdefault(named, index)
         seed = used_seed(record)
         if seed is not None:
             if seed in seeds:
@@ -600,7 +605,7 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
         result=result,
     )
     state = ChainState(head_index=head_index, head_sha256=head_digest,
-                       protocol_sha256=proto_sha, seeds_used=seeds,
+                       protocol_sha256=proto_sha, seeds_used=seeds_named,
                        logs_used=logs, report=report)
     return report, state
 
