@@ -1025,6 +1025,8 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     seed_sha = hashlib.sha256(seed_bytes).hexdigest()
     signer = _load_key(key)
     out = Path(out_dir)
+    if out.name in ("", ".", ".."):  # the folder is replaced as a whole: name it
+        out = Path(os.path.abspath(out))
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: --out must be a directory")
     chain_dir = Path(chain) if chain is not None else None

@@ -112,6 +112,8 @@ def certify_cmd(
             "side_information": rec["entropy"]["finite_size"]["side_information"],
             "abort_reason": result.abort_reason,
             "signed": rec.get("signature") is not None,
+            "pulse_index": rec.get("pulse_index"),
+            "protocol_change": rec.get("protocol_change"),
             "exit_code": result.exit_code,
         })
     else:
@@ -135,6 +137,8 @@ def certify_cmd(
             rows.insert(2, ("success at trial", result.success_trial_index))
         if result.chain_file:
             rows.append(("chain pulse", str(result.chain_file)))
+        if rec.get("protocol_change"):
+            rows.append(("protocol change", rec["protocol_change"]["reason"]))
         if result.abort_reason:
             rows.append(("abort reason", result.abort_reason))
         console = stdout_console()
