@@ -29,6 +29,7 @@ import errno
 import fcntl
 import json
 import os
+import re
 import secrets
 import shutil
 from collections.abc import Iterator
@@ -46,6 +47,8 @@ PRIVATE_FILE_MODE = 0o600
 #: Environment variable read by :func:`fault_point` (tests only).
 FAULT_ENV = "DICERT_TEST_FAULT"
 CHAIN_LOCK_NAME = ".lock"
+#: What follows ``.DIR.`` in the names of a run's leftovers (the token is secrets.token_hex(6)).
+_LEFTOVER = re.compile(r"(new|raw|old)-[0-9a-f]{12}")
 CHAIN_JOURNAL_NAME = ".commit.json"
 
 
@@ -228,6 +231,8 @@ def clean_stale(out: Path) -> list[str]:
             continue
         rest = name[len(prefix):]
         path = Path(entry.path)
+        if not _LEFTOVER.fullmatch(rest):
+            continue
         if rest.startswith("old-"):
             if not out.exists():
                 os.rename(path, out)
@@ -255,8 +260,7 @@ def sweep_siblings(out: Path) -> list[str]:
             continue
         other = parent / name[1:-len(".lock")]
         prefix = f".{other.name}."
-        if not any(e.name.startswith(prefix) and e.name != name
-                   and e.name[len(prefix):].startswith(("new-", "raw-", "old-"))
+        if not any(e.name.startswith(prefix) and _LEFTOVER.fullmatch(e.name[len(prefix):])
                    for e in os.scandir(parent)):
             continue
         try:

@@ -251,7 +251,7 @@ def test_force_replaces_only_after_the_new_set_is_complete(tmp_path, inputs, mon
         assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == [".out.lock"]
     # A crash between the two renames (earlier folder moved aside, new one not yet in place)
     # is undone by the next run, which then refuses the non-empty folder as usual.
-    aside = tmp_path / ".out.old-0123456789ab"
+    aside = tmp_path / ".out.old-0123456789ab"  # the name a run gives it
     out.rename(aside)
     with pytest.raises(ParameterError, match="not empty"):
         certify(d / "log1.btl", _proto(), d / "seed1.bin", out)
@@ -468,3 +468,26 @@ def test_an_aborted_pulses_seed_is_not_reused_either(tmp_path, inputs):
     with pytest.raises(SeedError, match="already used by pulse 1"):
         certify(d / "log1.btl", _proto(), d / "seed0.bin", tmp_path / "b", chain=chain,
                 key=keys.private_key_file)
+
+
+def test_leftovers_of_an_active_run_are_not_swept(tmp_path, inputs):
+    import fcntl
+
+    d, _keys = inputs
+    busy = tmp_path / ".busy.new-0123456789ab"
+    busy.mkdir()
+    lock = tmp_path / ".busy.lock"
+    fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)  # a run on "busy" is active
+        certify(d / "log0.btl", _proto(), d / "seed0.bin", tmp_path / "out")
+        assert busy.exists()
+    finally:
+        os.close(fd)
+    certify(d / "log1.btl", _proto(), d / "seed1.bin", tmp_path / "out2")
+    assert not busy.exists()  # its lock is free now: a crashed run's folder
+    # Entries that only look similar are never touched.
+    other = tmp_path / ".busy.new-notours"
+    other.mkdir()
+    certify(d / "log2.btl", _proto(), d / "seed2.bin", tmp_path / "out3")
+    assert other.exists()
