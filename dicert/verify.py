@@ -595,7 +595,9 @@ def _named_bits(body: Mapping[str, Any], record_path: Path, status: str,
     if "bits_file" in body:
         name = body["bits_file"]
         if name is None:
-            return None
+            # An abort has no output: a bits file next to it is not covered by the record.
+            stray = record_path.parent / BITS_NAME
+            return stray if status != "certified" and stray.is_file() else None
         _require(isinstance(name, str) and name not in ("", ".", "..") and "/" not in name
                  and "\\" not in name and "\x00" not in name, "bits_file",
                  "expected a plain file name next to the record")

@@ -5,6 +5,11 @@ certify makes before extending a chain.
 Each fault test asserts the exit code, the one-line message, and the exact state of the
 output folders and the chain afterwards; then a later certify --chain and verify --chain
 must succeed (a crash never blocks the beacon).
+
+The design relies on facts of the platform: rename(2) of a directory onto a missing or empty
+one is atomic (POSIX.1-2017, rename()); link(2) never replaces an existing name (POSIX.1-2017,
+link()); renameat2(RENAME_EXCHANGE) swaps two names atomically (Linux man-pages, rename(2));
+flock(2) locks are released when the holder dies (Linux man-pages, flock(2)).
 """
 
 from __future__ import annotations

@@ -264,6 +264,11 @@ def test_aborted_record_verifies_and_bits_not_required(tmp_path):
     with pytest.raises(VerificationError) as info:
         verify(write_record(tmp_path / "f.json", forged))
     assert info.value.field in ("status", "entropy.finite_size.accepted", "abort_reason")
+    # Bits next to an abort are not covered by it: checking the folder fails.
+    (tmp_path / "out" / "random.bits").write_bytes(b"\x5a" * 16)
+    with pytest.raises(VerificationError, match="abort") as info:
+        verify(res.record_file, log=log, seed=seed)
+    assert info.value.field == "bits"
 
 
 def test_chain_verification(run, tmp_path):
