@@ -1030,6 +1030,11 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: --out must be a directory")
     chain_dir = Path(chain) if chain is not None else None
+    if chain_dir is not None:
+        a, b = Path(os.path.abspath(out)), Path(os.path.abspath(chain_dir))
+        if a == b or a.is_relative_to(b) or b.is_relative_to(a):
+            raise ParameterError(f"{out}: --out and --chain must be separate folders (neither "
+                                 "inside the other)")
     trust = _operator_trust(signer, trusted_keys, chain_dir, protocol_change)
     timings["setup"] = time.perf_counter() - t0
 

@@ -496,3 +496,12 @@ def test_leftovers_of_an_active_run_are_not_swept(tmp_path, inputs):
     other.mkdir()
     certify(d / "log2.btl", _proto(), d / "seed2.bin", tmp_path / "out3")
     assert other.exists()
+
+
+def test_out_and_chain_must_be_separate(tmp_path, inputs):
+    d, keys = inputs
+    for out, chain in ((tmp_path / "c" / "o", tmp_path / "c"), (tmp_path / "x", tmp_path / "x")):
+        with pytest.raises(ParameterError, match="separate folders"):
+            certify(d / "log0.btl", _proto(), d / "seed0.bin", out, chain=chain,
+                    key=keys.private_key_file)
+    assert list(tmp_path.iterdir()) == []
