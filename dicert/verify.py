@@ -462,6 +462,11 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                      "are not certified and not checked")
     output_bits = int(_get(body, "extractor.output_bits"))
     not_checked: list[str] = []
+    if body.get("protocol_change") is not None:
+        pc = body["protocol_change"]
+        notes.append(f"the record declares a protocol change (previous protocol "
+                     f"{pc['previous_protocol_sha256'][:16]}...): {pc['reason']}; check it "
+                     "along the chain with verify --chain")
 
     seed_data = None
     if seed is not None:

@@ -417,6 +417,9 @@ def test_protocol_change_needs_a_signed_declaration(tmp_path, inputs, two_pulses
                   key=keys.private_key_file, protocol_change="threshold re-planned (invented)")
     pc = res.record["protocol_change"]
     assert pc["reason"] == "threshold re-planned (invented)"
+    assert pc["previous_protocol_sha256"] == _proto().sha256
+    rep = verify(res.record_file, public_key=keys.public_key_file)
+    assert any("declares a protocol change" in n for n in rep.notes)
     rep = verify_chain(chain, public_key=keys.public_key_file)
     assert rep.result == "VERIFIED"
     assert [(f.kind, f.severity) for f in rep.infos] == [("protocol-change", "info")]
