@@ -75,7 +75,8 @@ def fault_point(stage: str) -> None:
 def output_error(path: os.PathLike[str] | str, exc: OSError) -> DicertError:
     """A one-line error naming the path and the cause of an OS error on output."""
     cause = exc.strerror or str(exc)
-    return DicertError(f"{path}: cannot write output ({cause})")
+    code = errno.errorcode.get(exc.errno or 0)
+    return DicertError(f"{path}: cannot write output ({cause}{', ' + code if code else ''})")
 
 
 @contextlib.contextmanager
