@@ -20,9 +20,9 @@ This is the one-call recipe the ``dicert certify`` command uses. It
    gross failure withholds the bits (status "withheld", the record is still written);
 4. on acceptance sizes the output with the leftover hash lemma
    (:func:`dicert.extract.lhl_output_length`) and runs the Toeplitz extractor;
-5. writes the bits file and the signed record atomically (temporary files renamed into place
-   only at the very end; nothing is left behind on failure) and, with ``chain``, appends the
-   record to a beacon chain.
+5. writes the bits file and the signed record into a complete folder next to ``out_dir`` and
+   renames it into place in one step (with ``chain``, after linking the record into the
+   beacon chain, the commit point); see :mod:`dicert._outputs`.
 
 An abort is a normal outcome: status ``"aborted"``, 0 output bits, a record is still written.
 
@@ -72,7 +72,7 @@ from typing import Any
 import numpy as np
 
 from dicert import __version__
-from dicert._io import read_user_file, write_temp_sibling
+from dicert._io import read_user_file
 from dicert._plain import plain
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 
@@ -223,19 +223,24 @@ class _BitSink:
         if not data:
             return
         self._hash.update(data)
-        if self._fh is None and self._mem + len(data) > _SPILL_BYTES and self._spill_dir is not None:
-            self._spill_dir.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(prefix=".raw.", suffix=".part", dir=self._spill_dir)
-            self._fh = os.fdopen(fd, "wb")
-            self.path = Path(tmp)
-            for p in self._parts:
-                self._fh.write(p)
-            self._parts = []
-        if self._fh is not None:
-            self._fh.write(data)
-        else:
-            self._parts.append(data)
-            self._mem += len(data)
+        try:
+            if (self._fh is None and self._mem + len(data) > _SPILL_BYTES
+                    and self._spill_dir is not None):
+                self._spill_dir.mkdir(parents=True, exist_ok=True)
+                fd, tmp = tempfile.mkstemp(prefix=".raw.", suffix=".part", dir=self._spill_dir)
+                self._fh = os.fdopen(fd, "wb")
+                self.path = Path(tmp)
+                for p in self._parts:
+                    self._fh.write(p)
+                self._parts = []
+            if self._fh is not None:
+                self._fh.write(data)
+                return
+        except OSError as exc:  # disk full, quota: one line naming the spill folder
+            raise DicertError(f"{self.path or self._spill_dir}: cannot write the raw-bit "
+                              f"spill file ({exc.strerror or exc})") from None
+        self._parts.append(data)
+        self._mem += len(data)
 
     def add(self, bits: np.ndarray) -> None:
         if bits.size == 0:
@@ -1178,8 +1183,9 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
-            idle_timeout_s: float | None = 300.0, allow_mixed_inputs: bool = False,
-            allow_seed_reuse: bool = False) -> CertifyResult:
+            idle_timeout_s: float | None = 300.0, force: bool = False,
+            trusted_keys: Any = None, protocol_change: str | None = None,
+            allow_mixed_inputs: bool = False, allow_seed_reuse: bool = False) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -1191,12 +1197,17 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     seed : bytes or path
         Uniformly random extractor seed; it must hold n + m - 1 bits (n raw bits, m output).
     out_dir : path
-        Directory receiving ``random.bits`` (certified runs only) and ``record.json``.
+        Directory receiving ``random.bits`` (certified runs only) and ``record.json``. It must
+        be missing or empty unless ``force``; the files appear together (the folder is built
+        next to it and renamed into place) or not at all.
     key : private key or path, optional
         Ed25519 private key (object or PEM file) that signs the record; unsigned otherwise.
     chain : path, optional
-        Beacon chain directory: the record carries the previous record's digest and a
-        pulse index, and a copy is appended to the chain.
+        Beacon chain directory: the whole chain is first verified against the operator's
+        keys (``key``'s public half and ``trusted_keys``); a chain with foreign-signed or
+        unsigned pulses, gaps, swapped pulses, reuse or undeclared protocol changes is
+        refused, as is a log or seed that already fed a pulse. The record carries the
+        previous record's digest and a pulse index, and a copy is appended to the chain.
     clock : callable, optional
         Returns the current time (datetime or ISO string); only the record's ``volatile``
         section depends on it.
@@ -1209,13 +1220,20 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         what was read; a record is still written).
     poll_s, idle_timeout_s : float
         Follow mode: pause between looks for new bytes, and the idle timeout (None: none).
+    force : bool
+        Replace an earlier certification's ``out_dir`` (only after the new set is complete).
+    trusted_keys : path or TrustSet, optional
+        With ``chain``: further keys trusted for earlier pulses (key rotation).
+    protocol_change : str, optional
+        With ``chain``: the reason for a deliberate protocol change; recorded (with the
+        previous protocol's digest) in the signed record as ``protocol_change``.
     allow_mixed_inputs : bool
         Accept a multi-file log with files of equal content, a file next to its ``.gz`` copy,
         or mixed formats (refused otherwise as bad input); recorded in ``inputs``.
     allow_seed_reuse : bool
-        Accept a seed whose SHA-256 equals the log's (or one of its files') or one already
-        used in the chain (refused otherwise); recorded in ``inputs``. A constant or
-        short-period seed is always refused.
+        Accept a seed whose SHA-256 equals the log's (or one of its files') (refused
+        otherwise); recorded in ``inputs``. A seed already used in a beacon chain is always
+        refused with ``chain``, and a constant or short-period seed always.
 
     Returns
     -------
@@ -1253,12 +1271,56 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     seed_sha = hashlib.sha256(seed_bytes).hexdigest()
     signer = _load_key(key)
     out = Path(out_dir)
+    if out.name in ("", ".", ".."):  # the folder is replaced as a whole: name it
+        out = Path(os.path.abspath(out))
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: --out must be a directory")
     chain_dir = Path(chain) if chain is not None else None
-    chain_info = _chain_position(chain_dir)
+    if chain_dir is not None:
+        a, b = Path(os.path.abspath(out)), Path(os.path.abspath(chain_dir))
+        if a == b or a.is_relative_to(b) or b.is_relative_to(a):
+            raise ParameterError(f"{out}: --out and --chain must be separate folders (neither "
+                                 "inside the other)")
+    trust = _operator_trust(signer, trusted_keys, chain_dir, protocol_change)
     timings["setup"] = time.perf_counter() - t0
 
+    from dicert import _outputs as outputs
+
+    with contextlib.ExitStack() as held:
+        # Locks for the whole run, chain first: a holder knows no other run is active.
+        state = None
+        if chain_dir is not None:
+            outputs.make_public_dir(chain_dir)
+            held.enter_context(outputs.held_lock(chain_dir / outputs.CHAIN_LOCK_NAME))
+            outputs.recover_chain(chain_dir)
+            state = _check_chain(chain_dir, trust, signer, seed_sha, seed_label, proto,
+                                 protocol_change)
+        try:
+            out.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise outputs.output_error(out.parent, exc) from None
+        held.enter_context(outputs.held_lock(outputs.out_lock_path(out)))
+        outputs.clean_stale(out)
+        outputs.sweep_siblings(out)
+        _check_out(out, force)
+        return _certify_locked(
+            log=log, proto=proto, seed_bytes=seed_bytes, seed_label=seed_label,
+            seed_sha=seed_sha, signer=signer, out=out, chain_dir=chain_dir, state=state,
+            protocol_change=protocol_change, force=force, clock=clock, progress=progress,
+            follow=follow, poll_s=poll_s, idle_timeout_s=idle_timeout_s, timings=timings,
+            started=started, allow_mixed_inputs=allow_mixed_inputs,
+            allow_seed_reuse=allow_seed_reuse)
+
+
+def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
+                    seed_sha: str, signer: Any, out: Path, chain_dir: Path | None, state: Any,
+                    protocol_change: str | None, force: bool, clock: Clock | None,
+                    progress: Progress | None, follow: bool, poll_s: float,
+                    idle_timeout_s: float | None, timings: dict[str, float],
+                    started: str, allow_mixed_inputs: bool = False,
+                    allow_seed_reuse: bool = False) -> CertifyResult:
+    """The run itself, with the locks held (see :func:`certify`)."""
+    from dicert import _outputs as outputs
     from dicert.logs import open_log
 
     spec = FollowSpec(poll_s=poll_s, idle_timeout_s=idle_timeout_s) if follow else None
@@ -1266,97 +1328,220 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         # (the binary PEF reader checks this from the header it reads)
         _check_design_flag(proto, open_log(log).has_test_flag, log)
     t1 = time.perf_counter()
-    spill = out if out.is_dir() else out.parent
-    scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds, spill_dir=spill,
-                          progress=progress, protocol=proto, follow=spec)
-    timings["scan"] = time.perf_counter() - t1
-    tmp_files: list[Path] = []
+    spill = outputs.new_spill_dir(out)  # private (0700): raw bits never sit in --out
+    stage: Path | None = None
     try:
-        t2 = time.perf_counter()
-        if scan.trials == 0:
-            raise LogFormatError(log, "", "no trial arrived before the idle timeout; nothing "
-                                 "to certify" if scan.follow else "contains no trials")
-        generation_rounds = int(scan.counts[0].sum())
-        if proto.design.gamma >= 1.0 and generation_rounds:
-            raise LogFormatError(log, "", f"the protocol declares every round a test round "
-                                 f"(settings.gamma = 1) but the log marks {generation_rounds} "
-                                 f"trials as generation rounds (t = 0)")
-        analysis, inputs = checked_analysis(
-            scan, proto, log=log, seed_bytes=seed_bytes, seed_label=seed_label,
-            chain_dir=chain_dir, allow_mixed_inputs=allow_mixed_inputs,
-            allow_seed_reuse=allow_seed_reuse)
-        timings["analysis"] = time.perf_counter() - t2
+        scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds,
+                              spill_dir=spill, progress=progress, protocol=proto, follow=spec)
+        timings["scan"] = time.perf_counter() - t1
+        outputs.fault_point("after-scan")
+        try:
+            t2 = time.perf_counter()
+            if scan.trials == 0:
+                raise LogFormatError(log, "", "no trial arrived before the idle timeout; "
+                                     "nothing to certify" if scan.follow else "contains no trials")
+            generation_rounds = int(scan.counts[0].sum())
+            if proto.design.gamma >= 1.0 and generation_rounds:
+                raise LogFormatError(log, "", f"the protocol declares every round a test round "
+                                     f"(settings.gamma = 1) but the log marks "
+                                     f"{generation_rounds} trials as generation rounds (t = 0)")
+            if state is not None and scan.sha256 in state.logs_used:
+                raise ParameterError(
+                    f"{log}: this log (SHA-256 {scan.sha256[:16]}...) already fed pulse "
+                    f"{state.logs_used[scan.sha256]} of {chain_dir}; every pulse needs fresh "
+                    "trials")
+            analysis, inputs = checked_analysis(
+                scan, proto, log=log, seed_bytes=seed_bytes, seed_label=seed_label,
+                chain_dir=chain_dir, allow_mixed_inputs=allow_mixed_inputs,
+                allow_seed_reuse=allow_seed_reuse)
+            timings["analysis"] = time.perf_counter() - t2
 
-        extraction = None
-        t3 = time.perf_counter()
-        if analysis.status == "certified":
-            check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
-            from dicert.extract import extract_toeplitz
+            extraction = None
+            t3 = time.perf_counter()
+            if analysis.status == "certified":
+                check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
+                from dicert.extract import extract_toeplitz
 
-            extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
-                                          n_bits=scan.raw_bits)
-            if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
-                raise DicertError("extractor returned a different output length")
-        timings["extraction"] = time.perf_counter() - t3
-        analysis, screens = screened(extraction, analysis, proto, scan, sink.data())
+                extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
+                                              n_bits=scan.raw_bits)
+                if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
+                    raise DicertError("extractor returned a different output length")
+            timings["extraction"] = time.perf_counter() - t3
+            analysis, screens = screened(extraction, analysis, proto, scan, sink.data())
+            outputs.fault_point("after-extract")
+        finally:
+            sink.discard()
 
         t4 = time.perf_counter()
-        out.mkdir(parents=True, exist_ok=True)
-        bits_path = out / BITS_NAME
-        record_path = out / RECORD_NAME
         publish = extraction is not None and analysis.status == "certified"
-        if publish:
-            tmp_files.append(write_temp_sibling(out / BITS_NAME, extraction.output, 0o600))
-        timings["write"] = time.perf_counter() - t4
+        chain_info = None
+        if state is not None:
+            link = state.next_link()
+            chain_info = (int(link["pulse_index"]), link["previous_record_sha256"])
         volatile = {"timestamps": {"started": started, "finished": _now(clock)},
                     "timings_s": {k: round(v, 6) for k, v in timings.items()}}
         body = build_body(protocol=proto, scan=scan, analysis=analysis, seed_sha256=seed_sha,
                           seed_bytes=len(seed_bytes), extraction=extraction,
                           chain_info=chain_info, volatile=volatile, inputs=inputs,
                           screens=screens)
+        # The record names its bits file (next to it); verify checks it by default.
+        body["bits_file"] = BITS_NAME if publish else None
+        if protocol_change is not None:
+            body["protocol_change"] = {"previous_protocol_sha256": state.protocol_sha256,
+                                       "reason": protocol_change.strip()}
         from dicert.audit.record import record_bytes, record_digest, seal_record
 
         record = seal_record(body, signer)
         rec_bytes = record_bytes(record)
-        tmp_files.append(write_temp_sibling(out / RECORD_NAME, rec_bytes))
-        # Commit point: rename into place (bits first, record last).
-        if publish:
-            os.replace(tmp_files[0], bits_path)
-        else:
-            # A bits file left by an earlier run in this directory must not be mistaken for
-            # the output of this (aborted) one.
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(bits_path)
-        os.replace(tmp_files[-1], record_path)
-        tmp_files = []
+        rec_sha = record_digest(record)
+        # Build the complete output folder next to --out, then commit it in one step.
+        stage = outputs.new_stage(out)
+        try:
+            if publish:
+                outputs.write_public_file(stage / BITS_NAME, bytes(extraction.output))
+            outputs.write_public_file(stage / RECORD_NAME, rec_bytes)
+            outputs.fsync_dir(stage)
+        except OSError as exc:
+            raise outputs.output_error(exc.filename or stage, exc) from None
+        timings["write"] = time.perf_counter() - t4
+        outputs.fault_point("after-stage-write")
         chain_file = None
         if chain_dir is not None:
-            from dicert.audit.chain import append_to_chain
-
+            pulse = pulse_name(int(record["pulse_index"]))
+            stage = outputs.hand_to_journal(stage, out)
+            journal = outputs.write_journal(chain_dir, stage=stage, out=out, pulse=pulse,
+                                            record_sha256=rec_sha, replace=force)
+            chain_file = _append_pulse(chain_dir, record, journal)
+            # Committed: from here the journal owns the staging folder; should anything fail
+            # now, the next certify --chain on this chain puts it in place.
+            committed, stage = stage, None
+            outputs.fault_point("after-chain-append")
             try:
-                chain_file = Path(append_to_chain(chain_dir, record))
-            except BaseException:
-                with contextlib.suppress(FileNotFoundError):
-                    os.unlink(record_path)
-                if publish:
-                    with contextlib.suppress(FileNotFoundError):
-                        os.unlink(bits_path)
-                raise
+                outputs.publish_stage(committed, out, replace=force)
+            except DicertError as exc:
+                raise DicertError(f"{exc} (pulse {pulse} is in the chain; the next certify "
+                                  f"--chain on {chain_dir} completes {out})") from None
+            os.unlink(journal)
+            outputs.fsync_dir(chain_dir)
+        else:
+            outputs.publish_stage(stage, out, replace=force)
+        stage = None
     finally:
-        sink.discard()
-        for p in tmp_files:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(p)
+        if stage is not None:
+            outputs.remove_tree(stage)
+        outputs.remove_tree(spill)
+    bits_path = out / BITS_NAME
     return CertifyResult(
         status=analysis.status, output_bits=analysis.output_bits,
-        bits_file=bits_path if publish else None, record_file=record_path,
+        bits_file=bits_path if publish else None,
+        record_file=out / RECORD_NAME,
         chain_file=chain_file, min_entropy_bits=analysis.min_entropy_bits,
         error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
-        abort_reason=analysis.abort_reason, record_sha256=record_digest(record), record=record,
+        abort_reason=analysis.abort_reason, record_sha256=rec_sha, record=record,
         log_scope=scan.scope, stopped_early=scan.stopped_early,
         stop_trial_index=scan.stop_trial_index,
         success_trial_index=_success_index(analysis.finite), ended_by=scan.ended_by,
     )
+
+
+def _operator_trust(signer: Any, trusted_keys: Any, chain_dir: Path | None,
+                    protocol_change: str | None) -> Any:
+    """The keys an operator trusts for the existing chain: its own and a trusted-keys file."""
+    if protocol_change is not None:
+        if chain_dir is None:
+            raise ParameterError("--protocol-change applies only with --chain")
+        if not isinstance(protocol_change, str) or not protocol_change.strip():
+            raise ParameterError("--protocol-change: give the reason for the change")
+    if chain_dir is None:
+        if trusted_keys is not None:
+            raise ParameterError("--trusted-keys applies only with --chain")
+        return None
+    if chain_dir.exists() and not chain_dir.is_dir():
+        raise ParameterError(f"{chain_dir}: --chain must be a directory")
+    if signer is None:
+        raise ParameterError("--chain needs --key: a beacon chain is extended only with "
+                             "records signed by its operator")
+    from dicert.audit.signing import public_key_bytes
+    from dicert.audit.trust import trust_from
+
+    public = public_key_bytes(signer.public_key() if hasattr(signer, "public_key")
+                              and callable(signer.public_key) else signer)
+    return trust_from(public, trusted_keys)
+
+
+def _check_chain(chain_dir: Path, trust: Any, signer: Any, seed_sha: str, seed_label: str,
+                 proto: Any, protocol_change: str | None) -> Any:
+    """Verify the whole chain against the operator's trusted keys; refuse what cannot extend it."""
+    from dicert.audit.chain import ChainVerificationError, chain_state
+    from dicert.audit.signing import fingerprint
+    from dicert.errors import VerificationError
+
+    try:
+        state = chain_state(chain_dir, trust)
+    except ChainVerificationError as exc:
+        raise VerificationError(f"{chain_dir}: refusing to extend a chain that does not "
+                                f"verify against the operator's keys: {exc}",
+                                "chain") from None
+    link = state.next_link()
+    fp = fingerprint(signer.public_key() if hasattr(signer, "public_key")
+                     and callable(signer.public_key) else signer)
+    try:
+        trust.authorise(fp, link["pulse_index"], _now(None))
+    except VerificationError as exc:
+        raise ParameterError(f"--key: not trusted for pulse {link['pulse_index']} "
+                             f"({exc})") from None
+    if seed_sha in state.seeds_used:
+        raise SeedError(f"{seed_label}: this extractor seed (SHA-256 {seed_sha[:16]}...) was "
+                        f"already used by pulse {state.seeds_used[seed_sha]} of {chain_dir}; "
+                        "use a fresh seed for every pulse (an aborted pulse's seed included)")
+    prev = state.protocol_sha256
+    if prev is not None and proto.sha256 != prev and protocol_change is None:
+        raise ParameterError(
+            f"{proto.name}: the protocol (SHA-256 {proto.sha256[:16]}...) differs from the "
+            f"chain's ({prev[:16]}...); pass --protocol-change REASON to record a deliberate "
+            "change in the signed record")
+    if protocol_change is not None and (prev is None or proto.sha256 == prev):
+        raise ParameterError("--protocol-change: the protocol is the same as the chain's "
+                             "(or the chain is empty); nothing to declare")
+    return state
+
+
+def _check_out(out: Path, force: bool) -> None:
+    """Refuse a non-empty --out unless --force, and --force over files certify did not write."""
+    if not out.is_dir():
+        return
+    names = sorted(p.name for p in out.iterdir())
+    if not names:
+        return
+    if not force:
+        raise ParameterError(f"{out}: --out is not empty (holds {names[0]}"
+                             f"{' and more' if len(names) > 1 else ''}); refusing to replace "
+                             "an earlier run's outputs (use --force, or a new folder)")
+    foreign = [n for n in names if n not in (BITS_NAME, RECORD_NAME)]
+    if foreign:
+        raise ParameterError(f"{out}: holds {foreign[0]}, which certify did not write; "
+                             "--force replaces only an earlier certification's folder")
+
+
+def pulse_name(index: int) -> str:
+    from dicert.audit.chain import pulse_file_name
+
+    return pulse_file_name(index)
+
+
+def _append_pulse(chain_dir: Path, record: dict, journal: Path) -> Path:
+    """The commit point: link the pulse into the chain (the journal goes if this fails)."""
+    from dicert import _outputs as outputs
+    from dicert.audit.chain import append_to_chain
+
+    try:
+        return Path(append_to_chain(chain_dir, record))
+    except OSError as exc:
+        os.unlink(journal)
+        raise outputs.output_error(chain_dir, exc) from None
+    except BaseException:
+        os.unlink(journal)
+        raise
 
 
 def _extractor_convention() -> str:
@@ -1379,17 +1564,6 @@ def _load_key(key: Any) -> Any:
 
         return load_private_key(key)
     return key
-
-
-def _chain_position(chain_dir: Path | None) -> tuple[int, str | None] | None:
-    if chain_dir is None:
-        return None
-    if chain_dir.exists() and not chain_dir.is_dir():
-        raise ParameterError(f"{chain_dir}: --chain must be a directory")
-    from dicert.audit.chain import next_link
-
-    link = next_link(chain_dir)
-    return (int(link["pulse_index"]), link["previous_record_sha256"])
 
 
 def iter_record_items(record: Mapping[str, Any], prefix: str = "") -> Iterator[tuple[str, Any]]:

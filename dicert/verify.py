@@ -3,15 +3,22 @@
 :func:`verify` checks, in order:
 
 1. the record's format, digest and Ed25519 signature (:func:`dicert.audit.record.check_record`);
-   with ``public_key`` the signature must come from that key, without it the record's own
-   embedded key is used and the report says that the signer was not authenticated;
+   the record is *authenticated* only when it is signed by a key the caller trusts
+   (``public_key``, or ``trusted_keys``: a trusted-keys file, :mod:`dicert.audit.trust`); a
+   record signed by another key fails; without a trusted key, or for an unsigned record, the
+   result is ``INTEGRITY-ONLY`` (exit code 4 in the CLI), never ``VERIFIED``;
 2. internal consistency: the protocol content matches its SHA-256 and re-validates; the counts
    table is well formed and sums to the trial count; every derived number (estimate, finite-size
    bound, accept/abort, eps terms, output length, seed bits used, raw-bit count) is recomputed
    from the recorded counts and protocol and compared;
 3. with ``log``: the log is read again and its digest, size, counts and harvested raw bits are
    compared; with ``seed``: its digest, and (with the log too) the extraction is re-run and the
-   output digest compared; with ``bits``: the bits file's length and digest are compared.
+   output digest compared; the bits file (``bits``, or by default the file the record names
+   in ``bits_file``, next to the record) has its length and digest compared.
+
+The result word is ``VERIFIED`` (authenticated, and log, seed and bits all checked),
+``VERIFIED-PARTIAL`` (authenticated, something not checked: listed in ``not_checked``) or
+``INTEGRITY-ONLY`` (not authenticated). With ``strict`` anything not established raises.
 
 The first disagreement raises :class:`~dicert.errors.VerificationError` naming the field
 (dotted path into the record, e.g. ``entropy.finite_size.min_entropy_bits``). A failure can
@@ -36,6 +43,12 @@ from dicert.errors import DicertError, VerificationError
 #: Record members outside the body (added by sealing).
 _SEAL_KEYS = ("record_sha256", "signature")
 _REL_TOL = 1e-9
+#: Exit code of ``dicert verify`` when integrity was checked but authenticity was not.
+EXIT_NOT_AUTHENTICATED = 4
+#: Result words.
+RESULT_VERIFIED = "VERIFIED"
+RESULT_PARTIAL = "VERIFIED-PARTIAL"
+RESULT_INTEGRITY_ONLY = "INTEGRITY-ONLY"
 _ABS_TOL = 1e-15
 
 
@@ -58,6 +71,13 @@ class VerifyReport:
     not_checked: tuple[str, ...]
     notes: tuple[str, ...]
     message: str
+    result: str = RESULT_INTEGRITY_ONLY
+    authenticated: bool = False
+    bits_file: str | None = None
+
+    @property
+    def exit_code(self) -> int:
+        return 0 if self.authenticated else EXIT_NOT_AUTHENTICATED
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -195,6 +215,29 @@ def check_signature(record: Mapping[str, Any], public_key: Any = None) -> tuple[
             "check that it is the operator's key"), fp
 
 
+def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None, bool]:
+    """Check format, digest and signature, then whether a trusted key signed it.
+
+    Returns (description, key fingerprint, authenticated). A signature by a key that is not
+    trusted (or not for this pulse) raises VerificationError.
+    """
+    from dicert.audit.record import check_record
+    from dicert.audit.trust import record_time
+
+    chk = check_record(record)
+    if not chk.signed:
+        return ("none: the record is UNSIGNED; its digest detects accidental change, not "
+                "forgery; authenticity NOT established"), None, False
+    fp = chk.key_fingerprint
+    if trust is None:
+        return (f"valid for the key embedded in the record (fingerprint {fp}); authenticity "
+                "NOT established: pass --pubkey or --trusted-keys"), fp, False
+    key = trust.authorise(fp, record.get("pulse_index"), record_time(record))
+    if key.label == "the given public key":
+        return f"valid, made by the given public key (fingerprint {fp})", fp, True
+    return f"valid, made by trusted key '{key.label}' (fingerprint {fp})", fp, True
+
+
 def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
@@ -256,6 +299,14 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])
     exp["volatile"] = body.get("volatile")
+    if "bits_file" in body:  # the record names its bits file (older records do not)
+        from dicert.certify import BITS_NAME
+
+        exp["bits_file"] = BITS_NAME if exp.get("status") == "certified" else None
+    if "protocol_change" in body:  # a signed declaration, checked along the chain
+        from dicert.audit.chain import protocol_change_of
+
+        exp["protocol_change"] = protocol_change_of(body)
     log_rec = body.get("log")
     if isinstance(log_rec, Mapping) and "scope" not in log_rec and isinstance(exp.get("log"), dict):
         # A record from before log scopes: it always covered the whole log.
@@ -432,7 +483,9 @@ def _finite_from_record(body: Mapping[str, Any]):
 
 def verify(record_path: str | os.PathLike[str], *, log: Any = None,
            seed: bytes | str | os.PathLike[str] | None = None,
-           bits: str | os.PathLike[str] | None = None, public_key: Any = None) -> VerifyReport:
+           bits: str | os.PathLike[str] | None = None, public_key: Any = None,
+           trusted_keys: Any = None, strict: bool = False,
+           find_bits: bool = True) -> VerifyReport:
     """Re-check an audit record; with the log and seed, re-derive every number.
 
     Parameters
@@ -446,7 +499,14 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     bits : path, optional
         The output bits file; its length and digest are compared.
     public_key : key object or path, optional
-        The operator's Ed25519 public key; without it the record's embedded key is used.
+        The operator's Ed25519 public key (trusted for every record).
+    trusted_keys : path or TrustSet, optional
+        A trusted-keys file (keys with optional pulse/time ranges, :mod:`dicert.audit.trust`).
+        Without a trusted key the record is checked for integrity only (``INTEGRITY-ONLY``).
+    strict : bool
+        Raise unless the record is authenticated and log, seed and bits were all checked.
+    find_bits : bool
+        Without ``bits``, check the bits file the record names (next to the record) if present.
 
     Returns
     -------
@@ -463,9 +523,14 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     record = read_record(path)
     if not isinstance(record, Mapping):
         raise VerificationError("expected a JSON object", "record")
-    signature, fp = check_signature(record, public_key)
+    from dicert.audit.trust import trust_from
+
+    trust = trust_from(_load_public_key(public_key), trusted_keys)
+    signature, fp, authenticated = authenticate(record, trust)
     body = _body_of(record)
     checked = ["format", "record digest", "signature" if fp else "digest (unsigned record)"]
+    if authenticated:
+        checked.append("signer is a trusted key")
     notes: list[str] = []
     if body.get("tool", {}).get("version") != __version__:
         notes.append(f"record written by dicert {body.get('tool', {}).get('version')}, "
@@ -525,6 +590,11 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                      "are not certified and not checked")
     output_bits = int(_get(body, "extractor.output_bits"))
     not_checked: list[str] = []
+    if body.get("protocol_change") is not None:
+        pc = body["protocol_change"]
+        notes.append(f"the record declares a protocol change (previous protocol "
+                     f"{pc['previous_protocol_sha256'][:16]}...): {pc['reason']}; check it "
+                     "along the chain with verify --chain")
 
     seed_data = None
     if seed is not None:
@@ -620,6 +690,8 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     else:
         not_checked.append("log")
 
+    if bits is None and find_bits:
+        bits = _named_bits(body, path, status, notes)
     if bits is not None:
         bpath = Path(bits)
         try:
@@ -648,44 +720,86 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         scope = "partial"
     if scope == "record-only":
         message = ("Only the signature and the internal consistency of the record were "
-                   "checked; pass --log and --seed (and --bits) to re-derive the bits.")
+                   "checked" + (" (and the bits file)" if "bits" not in not_checked
+                                 and status == "certified" else "")
+                   + "; pass --log and --seed to re-derive the bits.")
     elif scope == "partial":
         message = f"Checked what was given; not checked: {', '.join(not_checked)}."
     else:
         message = "Every number was re-derived from the log and the seed, and the bits match."
+    if not authenticated:
+        message = ("Integrity checked, authenticity NOT established ("
+                   + ("unsigned record" if fp is None else "no trusted key given")
+                   + "). " + message)
+    if strict:
+        missing = ([] if authenticated else ["authenticity"]) + not_checked
+        if missing:
+            raise VerificationError(f"not established: {', '.join(missing)}",
+                                    "strict")
+    result = (RESULT_INTEGRITY_ONLY if not authenticated
+              else RESULT_VERIFIED if scope == "full" else RESULT_PARTIAL)
     return VerifyReport(record_file=str(path), record_sha256=record_digest(record),
                         status=status, output_bits=output_bits, signature=signature,
                         key_fingerprint=fp, scope=scope, checked=tuple(checked),
-                        not_checked=tuple(not_checked), notes=tuple(notes), message=message)
+                        not_checked=tuple(not_checked), notes=tuple(notes), message=message,
+                        result=result, authenticated=authenticated,
+                        bits_file=str(bits) if bits is not None else None)
+
+
+def _named_bits(body: Mapping[str, Any], record_path: Path, status: str,
+                notes: list[str]) -> Path | None:
+    """The bits file the record names, next to it, if present (None otherwise)."""
+    from dicert.certify import BITS_NAME
+
+    if "bits_file" in body:
+        name = body["bits_file"]
+        if name is None:
+            # An abort has no output: a bits file next to it is not covered by the record.
+            stray = record_path.parent / BITS_NAME
+            return stray if status != "certified" and stray.is_file() else None
+        _require(isinstance(name, str) and name not in ("", ".", "..") and "/" not in name
+                 and "\\" not in name and "\x00" not in name, "bits_file",
+                 "expected a plain file name next to the record")
+    elif status == "certified":
+        name = BITS_NAME  # records from before bits_file: certify always used this name
+    else:
+        return None
+    candidate = record_path.parent / name
+    if candidate.is_file():
+        return candidate
+    notes.append(f"the bits file the record names ({name}) is not next to the record; "
+                 "pass --bits to check it")
+    return None
 
 
 def verify_chain(chain_dir: str | os.PathLike[str], *, public_key: Any = None,
-                 strict: bool = False, records: bool = True) -> Any:
-    """Check a beacon chain (signatures, links, gaps, order, forks, seed reuse).
+                 trusted_keys: Any = None, head: str | None = None, strict: bool = False,
+                 records: bool = True) -> Any:
+    """Check a beacon chain in one streaming pass.
 
-    Delegates to :func:`dicert.audit.chain.verify_chain`; with ``records`` every pulse's
-    record is also re-checked for internal consistency (as :func:`verify` without inputs).
-    Returns the chain report; raises VerificationError on the first problem.
+    Signatures against the trusted keys (``public_key`` and/or ``trusted_keys``), links,
+    gaps, order, forks, seed and log reuse, key changes and undeclared protocol changes are
+    all failures; ``head`` (a published head digest) detects truncation. With ``records``
+    every pulse's record is also re-checked for internal consistency (as :func:`verify`
+    without inputs). Returns the chain report (``result`` ``VERIFIED`` or
+    ``INTEGRITY-ONLY``); raises VerificationError on the first problem, and with ``strict``
+    also when the chain is not authenticated.
     """
     from dicert.audit.chain import verify_chain as _verify_chain
 
     key = _load_public_key(public_key)
-    try:
-        report = _verify_chain(chain_dir, public_key=key, strict=strict)
-    except TypeError:  # an implementation without the strict switch
-        report = _verify_chain(chain_dir, public_key=key)
-    if records:
-        for p in sorted(Path(chain_dir).glob("*.json")):
-            try:
-                verify(p, public_key=key)
-            except VerificationError as exc:
-                text = str(exc)
-                if exc.field and text.startswith(f"{exc.field}: "):
-                    text = text[len(exc.field) + 2:]
-                raise VerificationError(text, f"{p.name}:{exc.field}") from None
-            except DicertError:
-                raise
+    chain = Path(chain_dir)
+
+    def consistent(name: str, index: int, record: Mapping[str, Any]) -> None:
+        verify(chain / name, find_bits=False)
+
+    report = _verify_chain(chain_dir, public_key=key, trusted=trusted_keys, head=head,
+                           on_record=consistent if records else None)
+    if strict and not report.authenticated:
+        raise VerificationError("authenticity not established (give --pubkey or "
+                                "--trusted-keys)", "strict")
     return report
 
 
-__all__ = ["VerifyReport", "check_signature", "expected_body", "verify", "verify_chain"]
+__all__ = ["EXIT_NOT_AUTHENTICATED", "VerifyReport", "authenticate", "check_signature",
+           "expected_body", "verify", "verify_chain"]

@@ -89,6 +89,21 @@ def _flip_byte(src: Path, dst: Path, offset_from_end: int = 1) -> int:
     return pos
 
 
+def _resign(path: Path) -> None:
+    """Re-seal a pulse with a freshly made (foreign) key: valid signature, wrong signer."""
+    from dicert.audit.record import read_record, record_bytes, seal_record
+    from dicert.audit.signing import generate_keypair
+
+    body = {k: v for k, v in read_record(path).items() if k not in ("record_sha256", "signature")}
+    path.write_bytes(record_bytes(seal_record(body, generate_keypair())))
+
+
+def _truncated(chain: Path, dst: Path) -> Path:
+    shutil.copytree(chain, dst)
+    sorted(dst.glob("pulse-*.json"))[-1].unlink()
+    return dst
+
+
 def run_demo(out: Path | None = None, *, scenario: dict | None = None,
              say=lambda msg: None) -> dict:
     """Run the invented scenario; returns a JSON-able summary. Raises if a check misbehaves."""
@@ -125,9 +140,12 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
                       chain=chain)
         say(f"{p['label']}: {res.status.upper()}, {res.output_bits} bits "
             f"(min-entropy {res.min_entropy_bits:.1f} bits, error {res.error:.3g})")
-        rep = verify(res.record_file, log=log_path, seed=seed_path, bits=res.bits_file,
+        rep = verify(res.record_file, log=log_path, seed=seed_path,
                      public_key=keys.public_key_file)
-        say(f"  verified from the raw inputs ({rep.scope})")
+        if rep.result != "VERIFIED":  # pragma: no cover - the demo's own check
+            raise VerificationError(f"demo pulse {i} verified only as {rep.result}", "demo")
+        say(f"  {rep.result} against the operator's public key, every number re-derived "
+            f"from the raw inputs")
         pulses.append({
             "pulse": i, "label": p["label"], "model": p["model"], "trials": res.trials,
             "status": res.status, "output_bits": res.output_bits,
@@ -136,10 +154,17 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
             "log_file": str(log_path), "seed_file": str(seed_path),
             "bits_file": str(res.bits_file) if res.bits_file else None,
             "record_file": str(res.record_file), "record_sha256": res.record_sha256,
-            "verified": rep.scope,
+            "verified": rep.scope, "result": rep.result,
         })
     chain_report = verify_chain(chain, public_key=keys.public_key_file)
-    say(f"chain of {len(pulses)} pulses verified: {chain}")
+    head = chain_report.head_sha256
+    verify_chain(chain, public_key=keys.public_key_file, head=head)
+    say(f"chain of {len(pulses)} pulses: {chain_report.result} against the operator's key "
+        f"(head {head[:16]}...): {chain}")
+    # Without a trusted key a record's integrity can be checked, not who made it.
+    anon = verify(pulses[0]["record_file"])
+    say(f"the same record checked without the operator's key: {anon.result} (authenticity "
+        "not established)")
 
     # Tampering: each must make verification fail.
     first = pulses[0]
@@ -185,11 +210,19 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         bad_rec, public_key=keys.public_key_file))
     bad_chain = tdir / "chain"
     shutil.copytree(chain, bad_chain)
-    victims = sorted(bad_chain.glob("*.json"))
+    victims = sorted(bad_chain.glob("pulse-*.json"))
     if len(victims) >= 2:
         victims[1].unlink()
         expect_failure("chain (a pulse removed)", lambda: verify_chain(
             bad_chain, public_key=keys.public_key_file))
+        forged_chain = tdir / "chain-resigned"
+        shutil.copytree(chain, forged_chain)
+        _resign(sorted(forged_chain.glob("pulse-*.json"))[-1])
+        expect_failure("chain (newest pulse re-signed with a foreign key)", lambda: verify_chain(
+            forged_chain, public_key=keys.public_key_file))
+        expect_failure("chain (newest pulse removed, head published)", lambda: verify_chain(
+            _truncated(chain, tdir / "chain-truncated"),
+            public_key=keys.public_key_file, head=head))
 
     from dicert.cli._common import to_jsonable
 
@@ -201,7 +234,9 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         "public_key_file": keys.public_key_file,
         "key_fingerprint": keys.fingerprint,
         "pulses": pulses,
-        "chain": {"dir": str(chain), "report": to_jsonable(chain_report)},
+        "chain": {"dir": str(chain), "head_sha256": head, "result": chain_report.result,
+                  "report": to_jsonable(chain_report)},
+        "without_key": anon.result,
         "tamper_checks": checks,
         "ok": True,
         "caution": CAUTION,
@@ -228,14 +263,17 @@ def demo_cmd(
         rows.append((f"pulse {p['pulse']} ({p['model']})",
                      f"{p['status']}: {p['output_bits']} bits, CHSH {p['chsh']:.4f}"))
     for c in summary["tamper_checks"]:
-        rows.append((f"tampered {c['tampered'].split(' ')[0]}", f"detected ({c['field'] or 'error'})"))
+        rows.append((f"tampered {c['tampered']}", f"detected ({c['field'] or 'error'})"))
     rows.append(("outputs", summary["out_dir"]))
     console.print(kv_table(f"dicert demo: {summary['scenario']}", rows))
     first = summary["pulses"][0]
     console.print("Re-check a pulse yourself:\n"
                   f"  dicert verify {first['record_file']} --log {first['log_file']} "
                   f"--seed {first['seed_file']} --bits {first['bits_file']} "
-                  f"--pubkey {summary['public_key_file']}", highlight=False, soft_wrap=True)
+                  f"--pubkey {summary['public_key_file']}\n"
+                  f"  dicert verify --chain {summary['chain']['dir']} "
+                  f"--pubkey {summary['public_key_file']} --head {summary['chain']['head_sha256']}",
+                  highlight=False, soft_wrap=True)
     console.print(f"INVENTED scenario, simulated data. CAUTION: {CAUTION}", style="dim")
 
 
