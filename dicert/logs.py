@@ -45,7 +45,7 @@ from pathlib import Path
 
 import numpy as np
 
-from dicert._io import atomic_writer
+from dicert._io import atomic_writer, output_errors
 from dicert.errors import LogFormatError, ParameterError
 
 BIT_B, BIT_A, BIT_Y, BIT_X, BIT_T = 1, 2, 4, 8, 16
@@ -760,20 +760,26 @@ class BinaryLogWriter:
         codes = np.ascontiguousarray(codes, dtype=np.uint8)
         if codes.size and int(codes.max()) > self._mask:
             raise ParameterError("trial codes have bits outside the declared columns")
-        self._fh.write(codes.tobytes())
+        with output_errors(self.path):  # disk full: name the log being written
+            self._fh.write(codes.tobytes())
+            if self.streamed:
+                self._fh.flush()
         self.count += codes.size
-        if self.streamed:
-            self._fh.flush()
 
     def close(self) -> None:
-        if self.streamed:
-            self._fh.write(TRAILER.pack(TRAILER_MARK, self.count))
-            self._fh.close()
-            return
-        self._fh.seek(16)
-        self._fh.write(struct.pack("<Q", self.count))
-        self._fh.seek(0, 2)
-        self._ctx.__exit__(None, None, None)
+        with output_errors(self.path):
+            if self.streamed:
+                self._fh.write(TRAILER.pack(TRAILER_MARK, self.count))
+                self._fh.close()
+                return
+            try:
+                self._fh.seek(16)
+                self._fh.write(struct.pack("<Q", self.count))
+                self._fh.seek(0, 2)
+            except BaseException:
+                self.abort()  # remove the temporary file; path stays untouched
+                raise
+            self._ctx.__exit__(None, None, None)
 
     def abort(self) -> None:
         if self.streamed:
@@ -1133,7 +1139,9 @@ def _read_npy_header(m, info: zipfile.ZipInfo, path, key: str, limits: ReadLimit
             raise ValueError(f"unsupported .npy version {version}")
     except LogFormatError:
         raise
-    except (ValueError, SyntaxError, TypeError, KeyError) as exc:
+    except _READ_FAILURES as exc:
+        raise _read_error(path, exc, where) from None
+    except Exception as exc:  # numpy parses the (bounded) header with tokenize/ast: any error
         raise LogFormatError(path, where, f"member {info.filename!r} is not a valid .npy array "
                              f"({' '.join(str(exc).split())[:120]})") from None
     if dtype.hasobject:
