@@ -750,11 +750,17 @@ class BinaryLogWriter:
         header = BINARY_HEADER.pack(BINARY_MAGIC, BINARY_VERSION, flags, bytes(6), COUNT_STREAMED)
         if streamed:
             self._ctx = None
-            self._fh = open(self.path, "wb")
+            with output_errors(self.path):
+                self._fh = open(self.path, "wb")
         else:
             self._ctx = atomic_writer(self.path, "wb")
             self._fh = self._ctx.__enter__()
-        self._fh.write(header)
+        try:
+            with output_errors(self.path):
+                self._fh.write(header)
+        except BaseException:
+            self.abort()
+            raise
 
     def append(self, codes: np.ndarray) -> None:
         codes = np.ascontiguousarray(codes, dtype=np.uint8)

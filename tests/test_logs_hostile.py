@@ -506,3 +506,10 @@ def test_cli_read_limits_from_the_environment(tmp_path):
     assert "line 2" in _one_line_error(res)
     res = runner.invoke(app, ["inspect", str(p), "--json"])
     assert res.exit_code == 0
+
+
+def test_cli_inspect_dev_zero_one_line():
+    if not os.path.exists("/dev/zero"):
+        pytest.skip("no /dev/zero on this system")
+    line = _one_line_error(runner.invoke(app, ["inspect", "/dev/zero"]))
+    assert "/dev/zero, line 1" in line and "max_line_bytes" in line
