@@ -110,12 +110,20 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
         fh.write(data)
 
 
-def read_user_file(path: str | os.PathLike[str], what: str, error: type[Exception]) -> bytes:
+def read_user_file(path: str | os.PathLike[str], what: str, error: type[Exception],
+                   max_bytes: int | None = None) -> bytes:
     """Bytes of an input file named by the user; problems become ``error`` with one line
-    naming the file (e.g. ``read_user_file(p, "seed file", SeedError)``)."""
+    naming the file (e.g. ``read_user_file(p, "seed file", SeedError)``). With ``max_bytes``
+    a longer file (or an endless device such as /dev/zero) is refused after that many bytes."""
     p = Path(path)
     try:
-        return p.read_bytes()
+        if max_bytes is None:
+            return p.read_bytes()
+        with open(p, "rb") as fh:
+            data = fh.read(max_bytes + 1)
+        if len(data) > max_bytes:
+            raise error(f"{p}: larger than {max_bytes} bytes; not a {what}")
+        return data
     except FileNotFoundError:
         raise error(f"{p}: {what} not found") from None
     except IsADirectoryError:

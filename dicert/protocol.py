@@ -474,7 +474,7 @@ def load_protocol(path: str | os.PathLike[str]) -> Protocol:
     from dicert._io import read_user_file
 
     p = Path(path)
-    data = read_user_file(p, "protocol file (.toml)", ProtocolError)
+    data = read_user_file(p, "protocol file (.toml)", ProtocolError, max_bytes=1 << 20)
     return protocol_from_bytes(data, str(p), path=str(p))
 
 

@@ -155,3 +155,13 @@ def test_cli_reports_out_of_range_protocol_before_any_work(tmp_path, args):
     lines = res.stderr.strip().splitlines()
     assert len(lines) == 1 and "analysis.n_max" in lines[0] and "Traceback" not in res.output
     assert not out.exists()  # nothing written, not even an empty folder
+
+
+def test_endless_protocol_file_is_refused():
+    # /dev/zero never ends: the loader stops after 1 MiB instead of exhausting memory.
+    import os
+
+    if not os.path.exists("/dev/zero"):
+        pytest.skip("no /dev/zero on this system")
+    with pytest.raises(ProtocolError, match="larger than 1048576 bytes"):
+        load_protocol("/dev/zero")
