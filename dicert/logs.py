@@ -19,6 +19,11 @@ Supported formats (see the README, section "Trial-log formats", for the contract
 A log may be one file, a directory (its log files in sorted name order) or a glob pattern
 (sorted); such a multi-file log is one run.
 
+Every reader treats its file as hostile: :class:`ReadLimits` (line length, columns,
+compression ratio, npz size) are checked before memory is spent, and every failure, including
+I/O errors and a part of a directory log that cannot be read, is one
+:class:`~dicert.errors.LogFormatError` naming the file.
+
 Every trial is coded in one byte, ``code = (t<<4) | (x<<3) | (y<<2) | (a<<1) | b``. Logs without
 a ``t`` column carry t = 0 in the code but *every* trial is a test round; :func:`summarize_log`
 therefore files their counts under t = 1.
