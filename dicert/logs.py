@@ -138,7 +138,7 @@ def _limits_from_env() -> ReadLimits:
     text = os.environ.get(LIMITS_ENV, "").strip()
     if not text:
         return ReadLimits()
-    names = {f.name: f.type for f in dataclasses.fields(ReadLimits)}
+    names = [f.name for f in dataclasses.fields(ReadLimits)]
     values: dict[str, float | int] = {}
     for item in text.split(","):
         key, sep, val = item.partition("=")
@@ -148,7 +148,7 @@ def _limits_from_env() -> ReadLimits:
                                  f"with NAME one of {', '.join(names)}; got {item.strip()!r}")
         try:
             num = float(val) if key == "max_compression_ratio" else int(float(val))
-        except ValueError:
+        except (ValueError, OverflowError):
             raise ParameterError(f"{LIMITS_ENV}: {key} must be a number, got {val.strip()!r}") from None
         values[key] = num
     return ReadLimits(**values)

@@ -87,9 +87,10 @@ def test_limits_are_documented_defaults_and_overridable(monkeypatch):
     monkeypatch.setenv("DICERT_READ_LIMITS", "max_line_bytes=4096, max_compression_ratio=1000")
     assert current_read_limits().max_line_bytes == 4096
     assert current_read_limits().max_compression_ratio == 1000.0
-    monkeypatch.setenv("DICERT_READ_LIMITS", "max_lines=3")
-    with pytest.raises(ParameterError, match="DICERT_READ_LIMITS"):
-        current_read_limits()
+    for bad in ("max_lines=3", "max_line_bytes=inf", "max_columns=-1", "max_columns"):
+        monkeypatch.setenv("DICERT_READ_LIMITS", bad)
+        with pytest.raises(ParameterError):
+            current_read_limits()
     with pytest.raises(ParameterError):
         ReadLimits(max_columns=0)
 
