@@ -165,3 +165,15 @@ def test_endless_protocol_file_is_refused():
         pytest.skip("no /dev/zero on this system")
     with pytest.raises(ProtocolError, match="larger than 1048576 bytes"):
         load_protocol("/dev/zero")
+
+
+def test_cli_plan_trials_beyond_2_53_is_one_line():
+    from typer.testing import CliRunner
+
+    from dicert.cli.app import app
+
+    res = CliRunner().invoke(app, ["plan", "--protocol", str(ROOT / "protocols" / "chsh-spotcheck.toml"),
+                                   "--trials", str(2**60)])
+    assert res.exit_code == 2
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and "--trials" in lines[0] and "Traceback" not in res.output
