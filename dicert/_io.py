@@ -10,6 +10,7 @@ import contextlib
 import errno
 import hashlib
 import os
+import stat
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
@@ -110,6 +111,10 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
         fh.write(data)
 
 
+#: Most bytes read from a user input that is not a regular file (a pipe or a device).
+MAX_STREAM_BYTES = 256 << 20
+
+
 def read_user_file(path: str | os.PathLike[str], what: str, error: type[Exception],
                    max_bytes: int | None = None) -> bytes:
     """Bytes of an input file named by the user; problems become ``error`` with one line
@@ -117,12 +122,14 @@ def read_user_file(path: str | os.PathLike[str], what: str, error: type[Exceptio
     a longer file (or an endless device such as /dev/zero) is refused after that many bytes."""
     p = Path(path)
     try:
-        if max_bytes is None:
-            return p.read_bytes()
         with open(p, "rb") as fh:
-            data = fh.read(max_bytes + 1)
-        if len(data) > max_bytes:
-            raise error(f"{p}: larger than {max_bytes} bytes; not a {what}")
+            cap = max_bytes
+            if cap is None and not stat.S_ISREG(os.fstat(fh.fileno()).st_mode):
+                cap = MAX_STREAM_BYTES  # a pipe or device may never end (/dev/zero)
+            data = fh.read() if cap is None else fh.read(cap + 1)
+        if cap is not None and len(data) > cap:
+            hint = "" if max_bytes is not None else " (not a regular file; save it to a file)"
+            raise error(f"{p}: larger than {cap} bytes; not a {what}{hint}")
         return data
     except FileNotFoundError:
         raise error(f"{p}: {what} not found") from None

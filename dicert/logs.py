@@ -149,7 +149,8 @@ def _limits_from_env() -> ReadLimits:
         try:
             num = float(val) if key == "max_compression_ratio" else int(float(val))
         except (ValueError, OverflowError):
-            raise ParameterError(f"{LIMITS_ENV}: {key} must be a number, got {val.strip()!r}") from None
+            raise ParameterError(f"{LIMITS_ENV}: {key} must be a number, "
+                                 f"got {val.strip()!r}") from None
         values[key] = num
     return ReadLimits(**values)
 
@@ -179,16 +180,16 @@ def _read_error(path, exc: BaseException, where: str = "") -> LogFormatError:
     """One-line LogFormatError for an exception raised while reading ``path``."""
     if isinstance(exc, LogFormatError):
         return exc
+    text = " ".join(str(exc).split())[:200]
     if isinstance(exc, OSError) and exc.strerror:
-        name = errno.errorcode.get(exc.errno or 0, "")
-        return LogFormatError(path, where, f"cannot read: {exc.strerror}" + (f" ({name})" if name else ""))
+        return LogFormatError(path, where, _os_cause(exc, "cannot read"))
     if isinstance(exc, zipfile.BadZipFile):
-        return LogFormatError(path, where, f"not a valid .npz archive ({' '.join(str(exc).split())})")
+        return LogFormatError(path, where, f"not a valid .npz archive ({text})")
     if isinstance(exc, zlib.error):
-        return LogFormatError(path, where, f"corrupt compressed data ({' '.join(str(exc).split())})")
+        return LogFormatError(path, where, f"corrupt compressed data ({text})")
     if isinstance(exc, EOFError):
         return LogFormatError(path, where, "truncated compressed data")
-    return LogFormatError(path, where, f"cannot read ({type(exc).__name__}: {' '.join(str(exc).split())[:200]})")
+    return LogFormatError(path, where, f"cannot read ({type(exc).__name__}: {text})")
 
 
 #: What a reader can raise on a corrupt, truncated or unreadable file (mapped by _read_error).
@@ -431,7 +432,8 @@ def _is_member(q: Path) -> bool:
         raise LogFormatError(q, "", "disappeared while the log was being listed") from None
     except OSError as exc:
         if exc.errno == errno.ELOOP:
-            raise LogFormatError(q, "", "symbolic link loop; a part of the log cannot be read") from None
+            raise LogFormatError(q, "", "symbolic link loop; a part of the log cannot be "
+                                 "read") from None
         raise LogFormatError(q, "", _os_cause(exc, "cannot access")) from None
     return not stat.S_ISDIR(st.st_mode)
 
@@ -446,7 +448,8 @@ def _check_glob_base(pattern: str) -> None:
     except FileNotFoundError:
         return
     except OSError as exc:
-        raise LogFormatError(base, "", _os_cause(exc, "cannot list the directory of the pattern")) from None
+        raise LogFormatError(base, "", _os_cause(exc, "cannot list the directory of the "
+                                                 "pattern")) from None
 
 
 class _HashingReader(io.RawIOBase):
@@ -480,11 +483,13 @@ class TrialLog:
         Resource limits (default: :func:`current_read_limits`).
     """
 
-    def __init__(self, source, format: str | None = None, *, limits: ReadLimits | None = None) -> None:
+    def __init__(self, source, format: str | None = None, *,
+                 limits: ReadLimits | None = None) -> None:
         self.limits = limits if limits is not None else current_read_limits()
         self.files = resolve_sources(source)
         self.formats = [format_from_name(f, format) if format else detect_format(f) for f in self.files]
-        flags = {self._peek_test_flag(f, fmt, self.limits) for f, fmt in zip(self.files, self.formats)}
+        flags = {self._peek_test_flag(f, fmt, self.limits)
+                 for f, fmt in zip(self.files, self.formats)}
         if len(flags) > 1:
             raise LogFormatError(
                 self.files[0], "", "the files of this log disagree on whether a t column is present"
@@ -876,7 +881,8 @@ def _read_csv_header(fh, path, limits: ReadLimits | None = None) -> tuple[list[s
         return names, lineno
 
 
-def _iter_csv(path: Path, chunk_trials: int, hasher, limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
+def _iter_csv(path: Path, chunk_trials: int, hasher,
+              limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
     limits = limits if limits is not None else current_read_limits()
     max_line = limits.max_line_bytes
     with _open_checked(path) as raw0:
@@ -1053,7 +1059,8 @@ def _parse_csv_slow(data: bytes, ncol, want, tcol, path, first_line) -> np.ndarr
 # --------------------------------------------------------------------------------------------
 
 
-def _iter_npz(path: Path, chunk_trials: int, hasher, limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
+def _iter_npz(path: Path, chunk_trials: int, hasher,
+              limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
     """Stream the trials of an npz log.
 
     The file is read into memory once (at most ``limits.max_npz_bytes``), so that its digest
@@ -1065,12 +1072,13 @@ def _iter_npz(path: Path, chunk_trials: int, hasher, limits: ReadLimits | None =
     with _open_checked(path) as fh:
         size = os.fstat(fh.fileno()).st_size
         if size > limits.max_npz_bytes:
-            raise LogFormatError(path, "", f"npz file of {size} bytes exceeds the limit max_npz_bytes "
-                                 f"= {limits.max_npz_bytes}; convert it to the binary format "
-                                 "(dicert convert), which streams")
+            raise LogFormatError(path, "", f"npz file of {size} bytes exceeds the limit "
+                                 f"max_npz_bytes = {limits.max_npz_bytes}; convert it to the "
+                                 "binary format (dicert convert), which streams")
         data = fh.read(limits.max_npz_bytes + 1)
     if len(data) > limits.max_npz_bytes:
-        raise LogFormatError(path, "", f"npz file exceeds the limit max_npz_bytes = {limits.max_npz_bytes}")
+        raise LogFormatError(path, "", "npz file exceeds the limit max_npz_bytes = "
+                             f"{limits.max_npz_bytes}")
     hasher.update(data)
     try:
         zf = zipfile.ZipFile(io.BytesIO(data))
@@ -1090,7 +1098,8 @@ def _iter_npz(path: Path, chunk_trials: int, hasher, limits: ReadLimits | None =
         names = ["x", "y", "a", "b"] + (["t"] if "t" in members else [])
         total = sum(members[k].file_size for k in names)
         packed = sum(members[k].compress_size for k in names)
-        if total > limits.ratio_grace_bytes and total > limits.max_compression_ratio * max(packed, 1):
+        if (total > limits.ratio_grace_bytes
+                and total > limits.max_compression_ratio * max(packed, 1)):
             raise LogFormatError(path, "", f"arrays decompress to more than "
                                  f"{limits.max_compression_ratio:g} times their compressed size "
                                  "(limit max_compression_ratio; a decompression bomb?)")
@@ -1104,7 +1113,8 @@ def _iter_npz(path: Path, chunk_trials: int, hasher, limits: ReadLimits | None =
                 if n is None:
                     n = count
                 elif count != n:
-                    raise LogFormatError(path, f"array {k!r}", f"has {count} entries, array 'x' has {n}")
+                    raise LogFormatError(path, f"array {k!r}",
+                                         f"has {count} entries, array 'x' has {n}")
                 streams[k] = (m, dtype)
             offset = 0
             while offset < n:
@@ -1124,7 +1134,8 @@ def _iter_npz(path: Path, chunk_trials: int, hasher, limits: ReadLimits | None =
             for k in names:  # reach each member's end: zipfile checks its CRC-32 there
                 m, _ = streams[k]
                 if m.read(1):
-                    raise LogFormatError(path, f"array {k!r}", "member holds more bytes than its header declares")
+                    raise LogFormatError(path, f"array {k!r}",
+                                         "member holds more bytes than its header declares")
         except LogFormatError:
             raise
         except (*_READ_FAILURES, ValueError, NotImplementedError, RuntimeError) as exc:
@@ -1141,11 +1152,11 @@ def _read_npy_header(m, info: zipfile.ZipInfo, path, key: str, limits: ReadLimit
     where = f"array {key!r}"
     try:
         version = npf.read_magic(m)
+        cap = int(limits.max_npy_header_bytes)
         if version == (1, 0):
-            shape, fortran, dtype = npf.read_array_header_1_0(m, max_header_size=limits.max_npy_header_bytes)
+            shape, _, dtype = npf.read_array_header_1_0(m, max_header_size=cap)
         elif version in ((2, 0), (3, 0)):
-            reader = npf.read_array_header_2_0
-            shape, fortran, dtype = reader(m, max_header_size=limits.max_npy_header_bytes)
+            shape, _, dtype = npf.read_array_header_2_0(m, max_header_size=cap)
         else:  # pragma: no cover - read_magic accepts only the versions above
             raise ValueError(f"unsupported .npy version {version}")
     except LogFormatError:
@@ -1156,7 +1167,8 @@ def _read_npy_header(m, info: zipfile.ZipInfo, path, key: str, limits: ReadLimit
         raise LogFormatError(path, where, f"member {info.filename!r} is not a valid .npy array "
                              f"({' '.join(str(exc).split())[:120]})") from None
     if dtype.hasobject:
-        raise LogFormatError(path, where, "is an object (pickled) array; refused (expected integers 0/1)")
+        raise LogFormatError(path, where, "is an object (pickled) array; refused (expected "
+                             "integers 0/1)")
     if dtype.kind not in "biuf" or dtype.itemsize > 16:
         raise LogFormatError(path, where, f"has dtype {dtype}; expected integers 0/1")
     if len(shape) != 1:
@@ -1165,8 +1177,9 @@ def _read_npy_header(m, info: zipfile.ZipInfo, path, key: str, limits: ReadLimit
     header_len = m.tell() if hasattr(m, "tell") else None
     data_bytes = count * dtype.itemsize
     if header_len is not None and header_len + data_bytes != info.file_size:
-        raise LogFormatError(path, where, f"header declares shape {shape} ({data_bytes} bytes) but "
-                             f"the member holds {max(info.file_size - header_len, 0)} bytes of data")
+        held = max(info.file_size - header_len, 0)
+        raise LogFormatError(path, where, f"header declares shape {shape} ({data_bytes} bytes) "
+                             f"but the member holds {held} bytes of data")
     return dtype, count
 
 

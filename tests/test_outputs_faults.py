@@ -214,3 +214,18 @@ def test_real_disk_full_and_read_only_on_tmpfs(tmp_path, small_tmpfs):
         line = _assert_one_line(res, "EROFS")
         assert any(str(f) in line for f in files), (name, line)
     assert _state(out) == before
+
+
+def test_endless_seed_device_is_refused(tmp_path, monkeypatch):
+    # A seed given as a device that never ends is read up to a cap, then refused in one line.
+    if not os.path.exists("/dev/zero"):
+        pytest.skip("no /dev/zero on this system")
+    import dicert._io as dio
+    from dicert.errors import SeedError
+
+    monkeypatch.setattr(dio, "MAX_STREAM_BYTES", 1 << 16)
+    with pytest.raises(SeedError, match="not a regular file"):
+        dio.read_user_file("/dev/zero", "seed file (raw bytes)", SeedError)
+    small = tmp_path / "seed.bin"
+    small.write_bytes(b"abc")
+    assert dio.read_user_file(small, "seed file", SeedError) == b"abc"
