@@ -181,11 +181,15 @@ def test_cli_gzip_bomb_bounded_memory(tmp_path):
     # the 3 GiB the bomb expands to. Not a timing test: the limit is generous.
     p = tmp_path / "bomb.csv.gz"
     _gzip_bomb(p, 3072)
-    code = ("import sys; from dicert.cli.app import app; sys.argv=['dicert','inspect',sys.argv[1]];"
-            "app()")
+    code = ("import resource, sys\n"
+            "from dicert.cli.app import app\n"
+            "sys.argv = ['dicert', 'inspect', sys.argv[1]]\n"
+            "try:\n    app()\nexcept SystemExit as exc:\n    rc = exc.code\n"
+            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
+            "sys.exit(rc)\n")
     proc = subprocess.run([sys.executable, "-c", code, str(p)], capture_output=True, text=True,
                           timeout=300)
-    peak_kib = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    peak_kib = int(proc.stdout.strip().splitlines()[-1])  # this child's own peak
     assert proc.returncode == 2
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and str(p) in lines[0] and "longer than" in lines[0]
