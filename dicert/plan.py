@@ -77,6 +77,7 @@ import numpy as np
 from dicert.entropy.analytic import TSIRELSON, W_QUANTUM, binary_entropy
 from dicert.errors import ParameterError
 from dicert.finite.params import EatParams, MartingaleParams
+from dicert.protocol import MAX_INTEGER, MIN_GAMMA
 
 DEFAULT_TRIALS = 10**7
 DEFAULT_EPS_COMP = 1e-6
@@ -705,14 +706,16 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
                   f"{8.0 * win - 4.0:.6g}")
     design = getattr(protocol, "design", None)
     g = float(gamma if gamma is not None else getattr(design, "gamma", 1.0))
-    if not (math.isfinite(g) and 0.0 < g <= 1.0):
-        raise ParameterError(f"--gamma must lie in (0, 1], got {gamma!r}")
+    if not (math.isfinite(g) and MIN_GAMMA <= g <= 1.0):
+        raise ParameterError(f"--gamma must lie in [{MIN_GAMMA:g}, 1], got {gamma!r}")
     source = "given"
     if trials is None:
         declared = getattr(analysis, "n_max" if is_pef else "rounds", None)
         trials, source = (declared, "protocol") if declared else (DEFAULT_TRIALS, "default")
-    if isinstance(trials, bool) or int(trials) != trials or trials < 1:
-        raise ParameterError(f"--trials must be a positive integer, got {trials!r}")
+    if (isinstance(trials, bool) or not math.isfinite(trials) or int(trials) != trials
+            or not 1 <= trials <= MAX_INTEGER):
+        # Bounded so that every count stays exact in double precision and in the record.
+        raise ParameterError(f"--trials must be an integer in [1, 2**53 - 1], got {trials!r}")
     n = int(trials)
     eps_comp = float(getattr(analysis, "eps_comp", None) or DEFAULT_EPS_COMP)
     models = _models(protocol, win, eps_comp, box)

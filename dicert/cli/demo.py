@@ -8,6 +8,7 @@ log, a record and a bits file to show that verification fails. It writes only in
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import shutil
 from pathlib import Path
@@ -85,7 +86,9 @@ def _flip_byte(src: Path, dst: Path, offset_from_end: int = 1) -> int:
     data = bytearray(src.read_bytes())
     pos = len(data) - offset_from_end
     data[pos] ^= 0x01
-    dst.write_bytes(bytes(data))
+    from dicert._io import atomic_write_bytes
+
+    atomic_write_bytes(dst, bytes(data))
     return pos
 
 
@@ -107,8 +110,28 @@ def _truncated(chain: Path, dst: Path) -> Path:
 def run_demo(out: Path | None = None, *, scenario: dict | None = None,
              say=lambda msg: None) -> dict:
     """Run the invented scenario; returns a JSON-able summary. Raises if a check misbehaves."""
+    sc = scenario if scenario is not None else load_scenario()
+    existed = out is not None and out.exists()
+    out = _fresh_out(out)
+    try:
+        return _run_demo(out, sc, existed, say)
+    except BaseException:
+        # --out was new or empty: a failed demo (disk full, ...) leaves it as it was.
+        with contextlib.suppress(OSError):
+            for child in out.iterdir():
+                if child.is_dir() and not child.is_symlink():
+                    shutil.rmtree(child)
+                else:
+                    child.unlink()
+            if not existed:
+                out.rmdir()
+        raise
+
+
+def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     import numpy as np
 
+    from dicert._io import atomic_write_bytes
     from dicert.audit.signing import write_keypair
     from dicert.certify import certify
     from dicert.errors import DicertError, VerificationError
@@ -116,8 +139,6 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
     from dicert.protocol import load_protocol, shipped_protocol_path
     from dicert.verify import verify, verify_chain
 
-    sc = scenario if scenario is not None else load_scenario()
-    out = _fresh_out(out)
     protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
     rng_seed = int(sc["rng_seed"])
     say(f"[invented scenario] {sc['title']}")
@@ -135,7 +156,7 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         log_path = pdir / "trials.btl"
         write_log(log_path, trials)
         seed_path = pdir / "seed.bin"
-        seed_path.write_bytes(_demo_seed(rng_seed, i, (4 * int(p["trials"])) // 8 + 8))
+        atomic_write_bytes(seed_path, _demo_seed(rng_seed, i, (4 * int(p["trials"])) // 8 + 8))
         res = certify(log_path, protocol, seed_path, pdir / "certified", key=keys.private_key_file,
                       chain=chain)
         say(f"{p['label']}: {res.status.upper()}, {res.output_bits} bits "
@@ -204,8 +225,8 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
     bad_rec = tdir / "record.json"
     text = Path(first["record_file"]).read_text(encoding="utf-8")
     old = f'"output_bits":{first["output_bits"]}'
-    bad_rec.write_text(text.replace(old, f'"output_bits":{first["output_bits"] + 1000}', 1),
-                       encoding="utf-8")
+    atomic_write_bytes(bad_rec, text.replace(
+        old, f'"output_bits":{first["output_bits"] + 1000}', 1).encode("utf-8"))
     expect_failure("record (claims 1000 more output bits)", lambda: verify(
         bad_rec, public_key=keys.public_key_file))
     bad_chain = tdir / "chain"

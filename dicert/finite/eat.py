@@ -288,6 +288,36 @@ class EatThreshold:
     derived: bool
 
 
+def _binomial_limit(acceptance: str, eps: float, n: int, p: float) -> int:
+    """L_max = min{l : P[Bin(n, p) > l] <= eps} ("losses") or W_min = max{w : P[Bin(n, p) < w]
+    <= eps} ("wins"), by integer bisection on scipy.stats.binom.sf / cdf.
+
+    At most ceil(log2(n + 2)) + 1 steps of closed-form tail evaluations (regularised incomplete
+    beta), so it ends for every n; scipy's own quantile search (binom.isf / ppf) can run for
+    minutes or return NaN for n near 2**53 and tiny eps. A NaN tail counts as "above eps",
+    which can only loosen the threshold and so lower the certified win rate (never optimistic).
+    """
+    from scipy.stats import binom
+
+    if acceptance == "losses":
+        lo, hi = -1, n  # sf(-1) = 1 > eps, sf(n) = 0 <= eps
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            if float(binom.sf(mid, n, p)) <= eps:
+                hi = mid
+            else:
+                lo = mid
+        return hi
+    lo, hi = 0, n + 1  # P[W < 0] = 0 <= eps, P[W < n + 1] = 1 > eps
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if float(binom.cdf(mid - 1, n, p)) <= eps:
+            lo = mid
+        else:
+            hi = mid
+    return lo
+
+
 def threshold(params: EatParams, n: int, gamma: float) -> EatThreshold:
     """Integer acceptance threshold from the pre-declared parameters and the number of rounds.
 
@@ -305,15 +335,8 @@ def threshold(params: EatParams, n: int, gamma: float) -> EatThreshold:
             limit = math.ceil(ng * (w - delta))
         derived = False
     else:
-        from scipy.stats import binom
-
-        if params.acceptance == "losses":
-            limit = int(binom.isf(params.eps_comp, n, gamma * (1.0 - w)))
-        else:
-            # P[W < w0] = P[W <= w0 - 1] = cdf(w0 - 1) <= eps_comp.
-            limit = int(binom.ppf(params.eps_comp, n, gamma * w))
-            if binom.cdf(limit - 1, n, gamma * w) > params.eps_comp:  # pragma: no cover
-                limit -= 1
+        limit = _binomial_limit(params.acceptance, params.eps_comp, n,
+                                gamma * (1.0 - w) if params.acceptance == "losses" else gamma * w)
         delta = (limit / ng - (1.0 - w)) if params.acceptance == "losses" else (w - limit / ng)
         derived = True
     limit = max(int(limit), 0)
