@@ -109,21 +109,22 @@ def _is_previous_site(path: Path) -> bool:
     return isinstance(data, dict) and data.get("format") == SITE_FORMAT
 
 
-def _check_out_dir(out: Path, chain_dir: Path) -> bool:
-    """Whether ``out`` exists and will be replaced; raise if it must not be touched."""
+def _check_out_dir(out: Path, chain_dir: Path) -> tuple[bool, bool]:
+    """(``out`` exists, it holds an earlier site); raise if it must not be touched."""
+    exists = replaced = False
     if out.exists() or out.is_symlink():
         if out.is_symlink() or not out.is_dir():
             raise ParameterError(f"{out}: exists and is not a folder; give a new folder for the site")
-        if any(out.iterdir()) and not _is_previous_site(out):
-            raise ParameterError(f"{out}: folder is not empty and holds no site built by dicert "
-                                 f"publish ({MANIFEST_NAME}); give a new or empty folder")
-        replaced = True
-    else:
-        replaced = False
+        exists = True
+        if any(out.iterdir()):
+            if not _is_previous_site(out):
+                raise ParameterError(f"{out}: folder is not empty and holds no site built by "
+                                     f"dicert publish ({MANIFEST_NAME}); give a new or empty folder")
+            replaced = True
     c, o = chain_dir.resolve(), out.resolve()
     if c == o or o in c.parents or c in o.parents:
         raise ParameterError(f"{out}: the site folder must lie outside the chain folder {chain_dir}")
-    return replaced
+    return exists, replaced
 
 
 def _write(root: Path, rel: str, data: bytes) -> None:
@@ -202,7 +203,7 @@ def build_site(chain_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str
     out = Path(out_dir)
     if not chain.is_dir():
         raise ParameterError(f"{chain}: chain folder does not exist or is not a folder")
-    replaced = _check_out_dir(out, chain)
+    exists, replaced = _check_out_dir(out, chain)
     key = _load_key(public_key)
     report = inspect_chain(chain, key[0] if key else None)
     if report.errors:
@@ -287,7 +288,7 @@ def build_site(chain_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str
         for sub in (CHAIN_SUBDIR, PAGES_SUBDIR, "assets"):
             os.chmod(tmp / sub, DIR_MODE)
         files = sum(1 for p in tmp.rglob("*") if p.is_file())
-        _swap_in(tmp, out, replaced)
+        _swap_in(tmp, out, exists)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -297,9 +298,9 @@ def build_site(chain_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str
                      warnings=warnings)
 
 
-def _swap_in(tmp: Path, out: Path, replaced: bool) -> None:
-    """Rename the finished site into place (moving an earlier site aside first)."""
-    if not replaced:
+def _swap_in(tmp: Path, out: Path, exists: bool) -> None:
+    """Rename the finished site into place (moving an existing folder aside first)."""
+    if not exists:
         try:
             os.rename(tmp, out)
         except OSError:

@@ -318,6 +318,37 @@ def _fmt(value: Any, digits: int = 6) -> str:
     return str(value)
 
 
+def _group(text: str) -> str:
+    head, dot, tail = text.partition(".")
+    sign = "-" if head.startswith("-") else ""
+    digits = head.lstrip("-")
+    groups = []
+    while len(digits) > 3:
+        groups.insert(0, digits[-3:])
+        digits = digits[:-3]
+    groups.insert(0, digits)
+    return sign + "\u202f".join(groups) + dot + tail
+
+
+def _down(value: float | None, decimals: int) -> str:
+    """A bound written rounded DOWN (never optimistic), e.g. a lower bound or certified bits."""
+    if value is None:
+        return _DASH
+    from decimal import ROUND_FLOOR, Decimal
+
+    q = Decimal(value).quantize(Decimal(1).scaleb(-decimals), rounding=ROUND_FLOOR)
+    return _group(f"{q:f}")
+
+
+def _exact(value: Any) -> str:
+    """A number written in full (shortest round-trip form, as in the record)."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return _DASH if value is None else _e(value)
+    if isinstance(value, int):
+        return str(value)
+    return repr(value) if math.isfinite(value) else _e(value)
+
+
 def _code(value: str | None) -> str:
     if value is None:
         return _DASH
@@ -392,7 +423,7 @@ def render_index(info: SiteInfo, pulses: Sequence[PulseView]) -> str:
     for p in pulses:
         chsh = _fmt(p.chsh)
         if p.chsh_lower is not None:
-            chsh += f'<br><span class="small">lower bound {_fmt(p.chsh_lower)}</span>'
+            chsh += f'<br><span class="small">lower bound {_down(p.chsh_lower, 5)}</span>'
         rows.append(
             f'<tr id="pulse-{p.index}" data-index="{p.index}" '
             f'data-record-sha256="{_e(p.record_sha256)}">\n'
@@ -401,7 +432,7 @@ def render_index(info: SiteInfo, pulses: Sequence[PulseView]) -> str:
             f'<td class="status status-{_e(p.status or "unknown")}">{_e(p.status or _DASH)}</td>\n'
             f'<td class="num">{_fmt(p.output_bits)}</td>\n'
             f'<td class="num">{chsh}</td>\n'
-            f'<td class="num">{_fmt(p.min_entropy_bits)}</td>\n'
+            f'<td class="num">{_down(p.min_entropy_bits, 1)}</td>\n'
             f"<td>record {_code(p.record_sha256)}<br>previous {_code(p.previous_record_sha256)}"
             f"<br>output {_code(p.output_sha256)}</td>\n"
             f'<td class="check-cell" data-state="pending" data-result-for="{p.index}">'
@@ -434,6 +465,7 @@ def _dl(rows: Sequence[tuple[str, str]]) -> str:
 
 
 def _eps_table(record: Mapping[str, Any]) -> str:
+    """The error budget term by term, numbers in full (as recorded, never rounded)."""
     eps = record.get("eps")
     if not isinstance(eps, Mapping):
         return "<p>The record holds no error budget.</p>\n"
@@ -442,18 +474,19 @@ def _eps_table(record: Mapping[str, Any]) -> str:
     if isinstance(terms, Mapping):
         for name in sorted(terms):
             rows.append(f"<tr><td><code>{_e(name)}</code></td>"
-                        f'<td class="num">{_e(_fmt(terms[name], 10))}</td></tr>')
-    for name in sorted(k for k in eps if k not in ("terms", "total", "form")):
-        value = eps[name]
-        if isinstance(value, (int, float)) and not isinstance(value, bool):
-            rows.append(f"<tr><td><code>{_e(name)}</code> (part of the budget above)</td>"
-                        f'<td class="num">{_e(_fmt(value, 10))}</td></tr>')
-    rows.append(f"<tr class=\"total\"><td>total soundness error</td>"
-                f'<td class="num">{_e(_fmt(eps.get("total"), 10))}</td></tr>')
+                        f'<td class="num">{_exact(terms[name])}</td></tr>')
+    rows.append('<tr class="total"><td>total soundness error</td>'
+                f'<td class="num">{_exact(eps.get("total"))}</td></tr>')
+    other = [(k, eps[k]) for k in sorted(eps) if k not in ("terms", "total", "form")]
     form = _str(eps.get("form"))
+    extra = ""
+    if other:
+        extra = ("<p>Other error parameters in the record's <code>eps</code> section:</p>\n"
+                 + _dl([(k, _exact(v)) for k, v in other]))
     return ('<table class="eps"><thead><tr><th>term</th><th>value</th></tr></thead>\n<tbody>'
             + "\n".join(rows) + "</tbody></table>\n"
-            + (f'<p class="small">Meaning: {_e(form)}</p>\n' if form else ""))
+            + (f'<p class="small">Meaning of the total: {_e(form)}</p>\n' if form else "")
+            + extra)
 
 
 def _assumptions(record: Mapping[str, Any]) -> str:
@@ -482,16 +515,16 @@ def render_pulse_page(info: SiteInfo, pulse: PulseView, record: Mapping[str, Any
         ("trials", _fmt(pulse.trials)),
         ("CHSH estimate", _fmt(pulse.chsh)),
         ("its standard error", _fmt(_num(est.get("chsh_stderr")))),
-        ("lower confidence bound on CHSH", _fmt(pulse.chsh_lower)),
-        ("acceptance threshold (declared in the protocol)", _fmt(threshold)),
+        ("lower confidence bound on CHSH (rounded down)", _down(pulse.chsh_lower, 6)),
+        ("acceptance threshold (declared in the protocol)", _exact(threshold)),
         ("CHSH-game win probability", _fmt(_num(est.get("win_probability")))),
         ("log10 p-value of local realism", _fmt(_num(est.get("log10_p_value_local")))),
         ("finite-size method", _e(pulse.method or _DASH)),
         ("side information", _e(_str(fin.get("side_information") if isinstance(fin, Mapping)
                                       else None) or _DASH)),
-        ("certified smooth min-entropy (bits)", _fmt(pulse.min_entropy_bits)),
+        ("certified smooth min-entropy (bits, rounded down)", _down(pulse.min_entropy_bits, 3)),
         ("output bits", _fmt(pulse.output_bits)),
-        ("total soundness error", _fmt(pulse.eps_total, 10)),
+        ("total soundness error", _exact(pulse.eps_total)),
         ("protocol", _e(pulse.protocol_name or _DASH) + " "
          + _code(_str(_get(record, "protocol.sha256")))),
     ]

@@ -338,11 +338,39 @@
     }
   }
 
-  document.addEventListener('DOMContentLoaded', function () {
-    var form = document.getElementById('compare');
+  // The primitives the checks use, exposed read-only so they can be tested against published
+  // vectors (RFC 8785, RFC 8032) in a browser.
+  window.dicertSite = Object.freeze({
+    canonicalize: function (value) { return canon(value, null); },
+    verifyEd25519: async function (publicKeyHex, messageHex, signatureHex) {
+      var der = new Uint8Array(44);
+      der.set(SPKI_PREFIX, 0);
+      der.set(fromHex(publicKeyHex), 12);
+      var key;
+      try {
+        key = await crypto.subtle.importKey('spki', der, { name: SIG_ALGORITHM }, false, ['verify']);
+      } catch (e) {
+        return 'unsupported';
+      }
+      return crypto.subtle.verify({ name: SIG_ALGORITHM }, key, fromHex(signatureHex), fromHex(messageHex));
+    }
+  });
+
+  // A head digest obtained elsewhere can be given in the address: page.html#head=<64 hex>.
+  function headFromAddress() {
     var input = document.getElementById('expected-head');
     var m = /(?:^#|&)head=([0-9a-fA-F]{64})/.exec(window.location.hash);
     if (m && input) input.value = m[1];
+  }
+
+  window.addEventListener('hashchange', function () {
+    headFromAddress();
+    compareHead();
+  });
+
+  document.addEventListener('DOMContentLoaded', function () {
+    var form = document.getElementById('compare');
+    headFromAddress();
     if (form) {
       form.addEventListener('submit', function (ev) {
         ev.preventDefault();
