@@ -386,3 +386,17 @@ def test_manifest_reads_back_with_the_strict_reader(site):
     out, _ = site
     data = (out / "manifest.json").read_bytes()
     assert canonicalize(parse_json(data)) + b"\n" == data
+
+
+def test_demo_builds_and_checks_its_site(tmp_path):
+    runner = CliRunner()
+    res = runner.invoke(app, ["demo", "--out", str(tmp_path / "demo"), "--json"])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.stdout)
+    site = summary["site"]
+    assert Path(site["index_file"]).is_file()
+    assert site["checked"]["signatures_checked"] is True
+    assert site["checked"]["pulses"] == len(summary["pulses"])
+    assert site["head_sha256"] == summary["pulses"][-1]["record_sha256"]
+    assert site["serve"].endswith(site["dir"]) and "--bind 127.0.0.1" in site["serve"]
+    check_site(site["dir"], summary["public_key_file"])

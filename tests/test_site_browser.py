@@ -336,3 +336,15 @@ def test_page_checks_only_fetch_from_the_site(browser, server, sites):
     names = browser.execute_script(
         "return performance.getEntriesByType('resource').map(function (e) { return e.name; });")
     assert names and all(n.startswith(base + "/") for n in names), names
+
+
+def test_demo_site_shows_valid(browser, server):
+    """The site `dicert demo` builds from its chain checks out in the browser."""
+    from dicert.cli.demo import run_demo
+
+    root, base = server
+    summary = run_demo(root / "demo")
+    rel = Path(summary["site"]["index_file"]).relative_to(root)
+    state, text, cells = _open(browser, f"{base}/{rel.as_posix()}")
+    assert state == "valid", text
+    assert sorted(cells) == [p["pulse"] for p in summary["pulses"]]

@@ -141,6 +141,15 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
     chain_report = verify_chain(chain, public_key=keys.public_key_file)
     say(f"chain of {len(pulses)} pulses verified: {chain}")
 
+    # The beacon's public face: a static site built from the chain, then re-checked.
+    from dicert.beacon import build_site, check_site
+
+    site = build_site(chain, out / "site", public_key=keys.public_key_file,
+                      title=f"{sc['title']} (invented demo)")
+    site_check = check_site(site.site_dir, keys.public_key_file)
+    say(f"beacon site built and checked ({site_check.pulses} pulses, head "
+        f"{site_check.head_sha256[:16]}...): {site.index_file}")
+
     # Tampering: each must make verification fail.
     first = pulses[0]
     tdir = out / "tampered"
@@ -202,6 +211,9 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         "key_fingerprint": keys.fingerprint,
         "pulses": pulses,
         "chain": {"dir": str(chain), "report": to_jsonable(chain_report)},
+        "site": {"dir": site.site_dir, "index_file": site.index_file,
+                 "head_sha256": site.head_sha256, "checked": to_jsonable(site_check),
+                 "serve": _serve_hint(site.site_dir)},
         "tamper_checks": checks,
         "ok": True,
         "caution": CAUTION,
@@ -236,7 +248,16 @@ def demo_cmd(
                   f"  dicert verify {first['record_file']} --log {first['log_file']} "
                   f"--seed {first['seed_file']} --bits {first['bits_file']} "
                   f"--pubkey {summary['public_key_file']}", highlight=False, soft_wrap=True)
+    console.print("Open the beacon site (its pages re-check the chain in your browser):\n"
+                  f"  {summary['site']['serve']}\n  then visit http://127.0.0.1:8000/",
+                  highlight=False, soft_wrap=True, markup=False)
     console.print(f"INVENTED scenario, simulated data. CAUTION: {CAUTION}", style="dim")
+
+
+def _serve_hint(site_dir: str) -> str:
+    import shlex
+
+    return f"python3 -m http.server 8000 --bind 127.0.0.1 --directory {shlex.quote(site_dir)}"
 
 
 def _sha256(path: Path) -> str:  # pragma: no cover - small helper kept for scripts
