@@ -72,3 +72,29 @@ def synthetic_chain(root: Path, bodies: list[dict], secret: bytes = OPERATOR_SEC
                 **body, **next_link(chain)}
         append_to_chain(chain, seal_record(full, key))
     return chain
+
+
+def build_pef_chain(root: Path) -> Path:
+    """One pulse certified by probability estimation with adaptive calibration (per-block
+    scores in the record): the shipped ch-photonic protocol with small, fast parameters."""
+    import tomllib
+
+    from dicert.certify import certify
+    from dicert.logs import write_log
+    from dicert.protocol import protocol_from_dict
+    from helpers import ROOT
+
+    d = tomllib.loads((ROOT / "protocols" / "ch-photonic.toml").read_text())
+    d["analysis"].pop("calibration_trials", None)
+    d["analysis"].update(calibration="adaptive", block_trials=1500, beta=0.05, eps_pe=1e-6,
+                         sigma_target_bits=1024, n_max=10**6)
+    d["extractor"]["eps_ext"] = 1e-6
+    protocol = protocol_from_dict(d, "test-pef-adaptive")
+    run = root / "pef-run"
+    run.mkdir(parents=True)
+    write_log(run / "log.btl", sim_trials(40_000, seed=3))
+    (run / "seed.bin").write_bytes(np.random.default_rng(1).bytes(40_000))
+    chain = root / "chain"
+    certify(run / "log.btl", protocol, run / "seed.bin", run / "out", key=operator_key(),
+            chain=chain, clock=lambda: "2026-01-05T12:00:00Z")
+    return chain

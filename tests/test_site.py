@@ -23,6 +23,7 @@ from typer.testing import CliRunner
 from site_support import (
     OTHER_SECRET,
     build_chain,
+    build_pef_chain,
     synthetic_chain,
     write_public_key,
 )
@@ -336,6 +337,30 @@ def test_block_plot_from_per_block_chsh_values(tmp_path):
     assert ys[2] == pytest.approx(lines["ref-quantum"], abs=0.01)
     assert ys[3] < ys[1] < ys[0]  # larger values are drawn higher
     assert len([ln for ln in root.findall("s:line", ns) if ln.get("class") == "bar"]) == 4
+
+
+def test_block_plot_of_a_probability_estimation_pulse(tmp_path):
+    """A real adaptive-calibration run (ch-photonic protocol, small parameters): the pulse page
+    plots one point per block at that block's recorded share of log2 T."""
+    chain = build_pef_chain(tmp_path)
+    build_site(chain, tmp_path / "site")
+    record = json.loads((tmp_path / "site/chain/pulse-000001.json").read_bytes())
+    blocks = record["entropy"]["finite_size"]["details"]["blocks"]
+    assert len(blocks) >= 3
+    page = (tmp_path / "site/pulses/pulse-000001.html").read_text(encoding="utf-8")
+    svg = ET.fromstring(page[page.index("<svg"):page.index("</svg>") + 6])
+    ns = {"s": "http://www.w3.org/2000/svg"}
+    points = svg.findall("s:circle", ns)
+    assert len(points) == len(blocks)
+    zero = next(float(ln.get("y1")) for ln in svg.findall("s:line", ns)
+                if ln.get("class") == "ref-local")
+    ys = [float(c.get("cy")) for c in points]
+    # Linear scale: heights above the zero line are proportional to the scores.
+    k = max(range(len(blocks)), key=lambda i: abs(blocks[i]["log2_t_block"]))
+    scale = (zero - ys[k]) / blocks[k]["log2_t_block"]
+    for y, b in zip(ys, blocks, strict=True):
+        assert zero - y == pytest.approx(scale * b["log2_t_block"], abs=0.02)
+    assert "block" in points[1].find("s:title", ns).text
 
 
 def test_block_series_finds_probability_estimation_scores():

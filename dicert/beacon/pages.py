@@ -209,6 +209,20 @@ def _c(v: float) -> str:
     return "0.00" if text == "-0.00" else text
 
 
+def _nice_ticks(lo: float, hi: float, target: int = 6) -> list[float]:
+    """Tick values at 1, 2, 2.5 or 5 times a power of ten inside [lo, hi] (common practice)."""
+    raw = (hi - lo) / max(target - 1, 1)
+    mag = 10.0 ** math.floor(math.log10(raw))
+    step = next(m * mag for m in (1, 2, 2.5, 5, 10) if m * mag >= raw)
+    first = math.ceil(lo / step)
+    ticks = []
+    k = first
+    while k * step <= hi + 1e-12 * step:
+        ticks.append(round(k * step, 12))
+        k += 1
+    return ticks
+
+
 def svg_block_plot(series: BlockSeries, *, threshold: float | None = None,
                    width: int = 720, height: int = 260) -> str:
     """An inline SVG plot of a per-block series (no scripts, no external references).
@@ -255,8 +269,7 @@ def svg_block_plot(series: BlockSeries, *, threshold: float | None = None,
         f"<title>{title}</title>",
         f'<rect class="frame" x="{_c(left)}" y="{_c(top)}" width="{_c(pw)}" height="{_c(ph)}"/>',
     ]
-    for k in range(5):  # y ticks
-        v = lo + (hi - lo) * k / 4
+    for v in _nice_ticks(lo, hi):
         y = sy(v)
         parts.append(f'<line class="grid" x1="{_c(left)}" y1="{_c(y)}" x2="{_c(left + pw)}" '
                      f'y2="{_c(y)}"/>')
@@ -491,9 +504,14 @@ def _eps_table(record: Mapping[str, Any]) -> str:
 
 def _assumptions(record: Mapping[str, Any]) -> str:
     groups = []
+    seen: set[str] = set()
     for path, title in (("assumptions", "Assumptions of the certificate"),
-                        ("entropy.finite_size.assumptions", "Assumptions of the finite-size method")):
+                        ("entropy.finite_size.assumptions",
+                         "Further assumptions of the finite-size method")):
         items = _get(record, path)
+        if isinstance(items, list):
+            items = [x for x in items if str(x) not in seen]
+            seen.update(str(x) for x in items)
         if isinstance(items, list) and items:
             lis = "".join(f"<li>{_e(x)}</li>" for x in items)
             groups.append(f"<h3>{_e(title)}</h3>\n<ul>{lis}</ul>\n")
