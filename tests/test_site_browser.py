@@ -348,3 +348,37 @@ def test_demo_site_shows_valid(browser, server):
     state, text, cells = _open(browser, f"{base}/{rel.as_posix()}")
     assert state == "valid", text
     assert sorted(cells) == [p["pulse"] for p in summary["pulses"]]
+
+
+def test_browser_without_ed25519_says_signature_check_unavailable(browser, server, sites):
+    """A browser whose WebCrypto lacks Ed25519 (simulated: importKey rejects the algorithm as
+    older browsers do) checks the hash chain and says the signature check is unavailable."""
+    src = """(function () {
+      var orig = crypto.subtle.importKey.bind(crypto.subtle);
+      crypto.subtle.importKey = function (fmt, data, alg, ext, usages) {
+        var name = typeof alg === 'string' ? alg : alg && alg.name;
+        if (name === 'Ed25519') {
+          return Promise.reject(new DOMException('Unrecognized algorithm', 'NotSupportedError'));
+        }
+        return orig(fmt, data, alg, ext, usages);
+      };
+    })();"""
+    ident = browser.execute_cdp_cmd("Page.addScriptToEvaluateOnNewDocument", {"source": src})
+    try:
+        _, base = server
+        state, text, cells = _open(browser, f"{base}/good/index.html")
+        assert state == "partial", text
+        assert "Signature check unavailable in this browser" in text
+        assert cells == {i: ("partial", "hash chain valid; signature check unavailable in this "
+                                        "browser") for i in (1, 2, 3)}
+        # The hash chain is still checked: a changed byte is caught without signatures.
+        site = _copy(sites, server, "tampered-nosig")
+        p = site / "chain" / "pulse-000001.json"
+        data = bytearray(p.read_bytes())
+        at = data.index(b'"output_bits":4542') + len('"output_bits":')
+        data[at] = ord("3")
+        p.write_bytes(bytes(data))
+        state, text, cells = _open(browser, f"{base}/tampered-nosig/index.html")
+        assert state == "invalid" and "[invalid: pulse 1]" in text
+    finally:
+        browser.execute_cdp_cmd("Page.removeScriptToEvaluateOnNewDocument", ident)

@@ -123,7 +123,8 @@ def _check_out_dir(out: Path, chain_dir: Path) -> tuple[bool, bool]:
             replaced = True
     c, o = chain_dir.resolve(), out.resolve()
     if c == o or o in c.parents or c in o.parents:
-        raise ParameterError(f"{out}: the site folder must lie outside the chain folder {chain_dir}")
+        raise ParameterError(f"{out}: the site folder and the chain folder {chain_dir} must not "
+                             "contain one another")
     return exists, replaced
 
 
