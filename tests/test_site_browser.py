@@ -28,7 +28,7 @@ CHROMEDRIVER = Path("/usr/bin/chromedriver")
 VECTORS = Path(__file__).parent / "vectors"
 FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
          "--disable-background-networking", "--disable-component-update", "--disable-sync",
-         "--window-size=1400,1000")
+         "--disable-dev-shm-usage", "--window-size=1400,1000")
 
 
 def _need_browser():
