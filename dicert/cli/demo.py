@@ -205,15 +205,15 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
     return {
         "scenario": sc["title"],
         "invented": True,
+        "site": {"dir": site.site_dir, "index_file": site.index_file,
+                 "head_sha256": site.head_sha256, "checked": to_jsonable(site_check),
+                 "serve": _serve_hint(site.site_dir)},
         "out_dir": str(out),
         "protocol": {"name": protocol.name, "sha256": protocol.sha256},
         "public_key_file": keys.public_key_file,
         "key_fingerprint": keys.fingerprint,
         "pulses": pulses,
         "chain": {"dir": str(chain), "report": to_jsonable(chain_report)},
-        "site": {"dir": site.site_dir, "index_file": site.index_file,
-                 "head_sha256": site.head_sha256, "checked": to_jsonable(site_check),
-                 "serve": _serve_hint(site.site_dir)},
         "tamper_checks": checks,
         "ok": True,
         "caution": CAUTION,
@@ -243,14 +243,14 @@ def demo_cmd(
         rows.append((f"tampered {c['tampered'].split(' ')[0]}", f"detected ({c['field'] or 'error'})"))
     rows.append(("outputs", summary["out_dir"]))
     console.print(kv_table(f"dicert demo: {summary['scenario']}", rows))
+    console.print("Open the beacon site (its pages re-check the chain in your browser):\n"
+                  f"  {summary['site']['serve']}\n  then visit http://127.0.0.1:8000/",
+                  highlight=False, soft_wrap=True, markup=False)
     first = summary["pulses"][0]
     console.print("Re-check a pulse yourself:\n"
                   f"  dicert verify {first['record_file']} --log {first['log_file']} "
                   f"--seed {first['seed_file']} --bits {first['bits_file']} "
                   f"--pubkey {summary['public_key_file']}", highlight=False, soft_wrap=True)
-    console.print("Open the beacon site (its pages re-check the chain in your browser):\n"
-                  f"  {summary['site']['serve']}\n  then visit http://127.0.0.1:8000/",
-                  highlight=False, soft_wrap=True, markup=False)
     console.print(f"INVENTED scenario, simulated data. CAUTION: {CAUTION}", style="dim")
 
 
