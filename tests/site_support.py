@@ -37,13 +37,13 @@ def write_public_key(path: Path, secret: bytes = OPERATOR_SECRET) -> Path:
     return path
 
 
-def build_chain(root: Path, *, signed: bool = True) -> Path:
+def build_chain(root: Path) -> Path:
     """Certify the simulated pulses into ``root/chain`` (fresh log and seed per pulse)."""
     from dicert.certify import certify
     from dicert.logs import write_log
 
     chain = root / "chain"
-    key = operator_key() if signed else None
+    key = operator_key()
     for i, (sim_seed, model) in enumerate(PULSES, start=1):
         run = root / f"run-{i}"
         run.mkdir(parents=True)
@@ -57,14 +57,15 @@ def build_chain(root: Path, *, signed: bool = True) -> Path:
     return chain
 
 
-def synthetic_chain(root: Path, bodies: list[dict], secret: bytes = OPERATOR_SECRET) -> Path:
-    """A chain of invented record bodies (sealed, linked, signed with ``secret``)."""
+def synthetic_chain(root: Path, bodies: list[dict], secret: bytes | None = OPERATOR_SECRET) -> Path:
+    """A chain of invented record bodies (sealed, linked, signed with ``secret``; unsigned
+    with ``secret=None``)."""
     from dicert.audit import signing
     from dicert.audit.chain import append_to_chain, next_link
     from dicert.audit.record import seal_record
 
     chain = root / "chain"
-    key = signing.private_key_from_bytes(secret)
+    key = None if secret is None else signing.private_key_from_bytes(secret)
     for n, body in enumerate(bodies):
         full = {"format": "dicert-record/1",
                 "extractor": {"seed_sha256": hashlib.sha256(f"seed-{n}".encode()).hexdigest(),

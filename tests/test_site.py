@@ -294,14 +294,26 @@ def test_check_site_detects_tampering_and_removal(site, tmp_path):
         check_site(removed)
 
 
-def test_unsigned_chain_publishes_without_key(tmp_path):
-    chain = build_chain(tmp_path / "b", signed=False)
+def test_without_a_key_the_site_publishes_none_and_says_so(beacon, tmp_path):
+    _, chain, _ = beacon
     res = build_site(chain, tmp_path / "site")
     assert res.key_fingerprint is None
     m = _manifest(tmp_path / "site")
     assert m["public_key"] is None and not (tmp_path / "site/operator-key.pub").exists()
-    assert any("unsigned" in w for w in m["build_check"]["warnings"])
+    assert m["build_check"]["signer_trusted"] is False
+    assert any("integrity, not authorship" in n for n in m["build_check"]["notes"])
+    assert "no operator key was published" in (tmp_path / "site/index.html").read_text()
     assert check_site(tmp_path / "site").signatures_checked is False
+
+
+def test_unsigned_chain_publishes_with_a_warning(tmp_path):
+    chain = synthetic_chain(tmp_path, [{"status": "certified"}] * 2, secret=None)
+    res = build_site(chain, tmp_path / "site")
+    assert res.key_fingerprint is None and len(res.warnings) >= 1
+    assert any("unsigned" in w for w in _manifest(tmp_path / "site")["build_check"]["warnings"])
+    # An unsigned chain cannot be published under an operator key.
+    with pytest.raises(VerificationError):
+        build_site(chain, tmp_path / "keyed", public_key=write_public_key(tmp_path / "k.pub"))
 
 
 # ------------------------------------------------------------------ block-by-block plot
