@@ -376,6 +376,26 @@ def test_block_plot_of_a_probability_estimation_pulse(tmp_path):
     assert "block" in points[1].find("s:title", ns).text
 
 
+def test_recorded_checks_are_listed(tmp_path):
+    body = {"status": "certified",
+            "design": {"checks": [
+                {"name": "test_fraction", "statistic": 12.0, "p_value": 0.31, "threshold": 1e-9,
+                 "passed": True, "applicable": True},
+                {"name": "serial_settings", "statistic": 3.5, "p_value": 1e-12,
+                 "threshold": 1e-9, "passed": False, "applicable": True}]},
+            "output_screens": {"tests": [
+                {"name": "monobit", "statistic": 0.2, "p_value": 0.84, "passed": True,
+                 "applicable": True},
+                {"name": "runs", "statistic": None, "p_value": None, "passed": None,
+                 "applicable": False}]}}
+    chain = synthetic_chain(tmp_path, [body])
+    build_site(chain, tmp_path / "site")
+    page = (tmp_path / "site/pulses/pulse-000001.html").read_text(encoding="utf-8")
+    rows = re.findall(r"<tr><td><code>(\w+)</code></td>.*?<td>([\w ]+)</td></tr>", page)
+    assert rows == [("test_fraction", "passed"), ("serial_settings", "FAILED"),
+                    ("monobit", "passed"), ("runs", "not applicable")]
+
+
 def test_block_series_finds_probability_estimation_scores():
     record = {"entropy": {"finite_size": {"details": {"blocks": [
         {"index": 0, "first_trial": 0, "log2_t_block": 0.0},

@@ -518,6 +518,34 @@ def _assumptions(record: Mapping[str, Any]) -> str:
     return "".join(groups) or "<p>The record lists no assumptions.</p>\n"
 
 
+def _checks(record: Mapping[str, Any]) -> str:
+    """Tables of the statistical checks a record carries (design conformance, output screens)."""
+    out = []
+    for path, title in (("design.checks", "Design-conformance checks"),
+                        ("output_screens.tests", "Screens of the output bits")):
+        items = _get(record, path)
+        if not isinstance(items, list) or not items:
+            continue
+        rows = []
+        for c in items:
+            if not isinstance(c, Mapping):
+                continue
+            passed = c.get("passed")
+            verdict = ("passed" if passed is True else "FAILED" if passed is False else _DASH)
+            if c.get("applicable") is False:
+                verdict = "not applicable"
+            rows.append(
+                f"<tr><td><code>{_e(c.get('name', _DASH))}</code></td>"
+                f'<td class="num">{_e(_fmt(_num(c.get("statistic"))))}</td>'
+                f'<td class="num">{_e(_fmt(_num(c.get("p_value"))))}</td>'
+                f'<td class="num">{_e(_fmt(_num(c.get("threshold"))))}</td>'
+                f"<td>{_e(verdict)}</td></tr>")
+        out.append(f"<h3>{_e(title)}</h3>\n<table class=\"checks\"><thead><tr><th>check</th>"
+                   "<th>statistic</th><th>p-value</th><th>threshold</th><th>result</th></tr>"
+                   "</thead>\n<tbody>" + "\n".join(rows) + "</tbody></table>\n")
+    return "".join(out)
+
+
 def render_pulse_page(info: SiteInfo, pulse: PulseView, record: Mapping[str, Any], *,
                       previous: PulseView | None, following: PulseView | None) -> str:
     """The page of one pulse (``pulses/pulse-NNNNNN.html``)."""
@@ -584,6 +612,7 @@ def render_pulse_page(info: SiteInfo, pulse: PulseView, record: Mapping[str, Any
         + "<h2>Numbers</h2>\n" + _dl(numbers)
         + "<h2>Error budget</h2>\n" + _eps_table(record)
         + "<h2>Block by block</h2>\n" + plot_html
+        + ("<h2>Recorded checks</h2>\n" + checks if (checks := _checks(record)) else "")
         + "<h2>Assumptions</h2>\n" + _assumptions(record)
         + "<h2>Digests</h2>\n" + _dl(digests)
         + f'<p><a href="{root}/{_e(pulse.record_file)}">The record as published (JSON, exact '
