@@ -187,6 +187,15 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     say(f"the same record checked without the operator's key: {anon.result} (authenticity "
         "not established)")
 
+    # The beacon's public face: a static site built from the chain, then re-checked.
+    from dicert.beacon import build_site, check_site
+
+    site = build_site(chain, out / "site", public_key=keys.public_key_file,
+                      title=f"{sc['title']} (invented demo)")
+    site_check = check_site(site.site_dir, keys.public_key_file)
+    say(f"beacon site built and checked ({site_check.pulses} pulses, head "
+        f"{site_check.head_sha256[:16]}...): {site.index_file}")
+
     # Tampering: each must make verification fail.
     first = pulses[0]
     tdir = out / "tampered"
@@ -250,6 +259,9 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     return {
         "scenario": sc["title"],
         "invented": True,
+        "site": {"dir": site.site_dir, "index_file": site.index_file,
+                 "head_sha256": site.head_sha256, "checked": to_jsonable(site_check),
+                 "serve": _serve_hint(site.site_dir)},
         "out_dir": str(out),
         "protocol": {"name": protocol.name, "sha256": protocol.sha256},
         "public_key_file": keys.public_key_file,
@@ -287,6 +299,9 @@ def demo_cmd(
         rows.append((f"tampered {c['tampered']}", f"detected ({c['field'] or 'error'})"))
     rows.append(("outputs", summary["out_dir"]))
     console.print(kv_table(f"dicert demo: {summary['scenario']}", rows))
+    console.print("Open the beacon site (its pages re-check the chain in your browser):\n"
+                  f"  {summary['site']['serve']}\n  then visit http://127.0.0.1:8000/",
+                  highlight=False, soft_wrap=True, markup=False)
     first = summary["pulses"][0]
     console.print("Re-check a pulse yourself:\n"
                   f"  dicert verify {first['record_file']} --log {first['log_file']} "
@@ -296,6 +311,12 @@ def demo_cmd(
                   f"--pubkey {summary['public_key_file']} --head {summary['chain']['head_sha256']}",
                   highlight=False, soft_wrap=True)
     console.print(f"INVENTED scenario, simulated data. CAUTION: {CAUTION}", style="dim")
+
+
+def _serve_hint(site_dir: str) -> str:
+    import shlex
+
+    return f"python3 -m http.server 8000 --bind 127.0.0.1 --directory {shlex.quote(site_dir)}"
 
 
 def _sha256(path: Path) -> str:  # pragma: no cover - small helper kept for scripts
