@@ -5,27 +5,30 @@ holding quantum side information, as an **affine function of the CHSH win probab
 for every quantum strategy**: ``H >= offset + slope * w``. Method of Brown, Fawzi & Fawzi [BFF]
 (Quantum 8, 1445 (2024), arXiv:2106.13692), with per-node SDPs and exactly checked duals.
 
-Derivation (numbers refer to [BFF] where the step is theirs; "[D]" marks a step derived here)
+Derivation ("[BFF]" marks a step that is theirs, sections as in arXiv:2106.13692; their
+theorem and equation numbers were not re-checked against the published version, so every step
+is also re-derived here, "[D]", and tested numerically on random states in the tests)
 ----------------------------------------------------------------------------------------------
 1. Integral representation. ln x = int_0^1 f_t(x) dt with f_t(x) = (x - 1)/(t (x - 1) + 1);
    H(A|E) ln 2 = -D(rho_AE || 1_A (x) rho_E) ln 2 = <rho^1/2, ln(Delta) rho^1/2> with the
-   relative modular operator Delta (X -> sigma X rho^-1), sigma = 1_A (x) rho_E ([BFF] sec. 2,
-   eqs. (8)-(11)).
+   relative modular operator Delta (X -> sigma X rho^-1), sigma = 1_A (x) rho_E ([BFF] sec. 2).
 2. Quadrature in the valid direction. For the m-point Gauss-Radau rule on [0, 1] with the right
    end point t_m = 1 fixed (:mod:`dicert.entropy.quadrature`) the error is
    int - Q_m = -c_m d^(2m-1)/dt^(2m-1) f_t(x) |_(t=xi) with c_m > 0, and
    d^(2m-1) f_t / dt^(2m-1) = -(2m-1)! (x - 1)^(2m) / (t (x - 1) + 1)^(2m) <= 0, so
-   r_m(x) := sum_i w_i f_(t_i)(x) <= ln x for every x > 0 ([BFF] Lemma 3.? / eq. (13): the
-   Radau rule with the fixed node at 1 under-approximates ln; checked here numerically in the
-   tests, and it follows from Abramowitz & Stegun 25.4.31's error term). Functional calculus
-   on Delta then gives H ln 2 >= sum_i w_i <rho^1/2, f_(t_i)(Delta) rho^1/2>.
-3. Variational form of each node [BFF] (eq. (15) / Lemma 2.?) [re-derived, D]: for t in (0, 1],
+   r_m(x) := sum_i w_i f_(t_i)(x) <= ln x for every x > 0. (The error term of [AS] 25.4.31,
+   E = 2^(2m-1) m ((m-1)!)^4 / ((2m-1)!)^3 f^(2m-1)(xi) for the fixed node at -1, changes sign
+   under the reflection to the fixed node +1 because 2m - 1 is odd; [BFF] sec. 2 choose the
+   Radau rule with the fixed node at t = 1 for this reason. Checked numerically in the tests.)
+   Functional calculus on Delta then gives H ln 2 >= sum_i w_i <rho^1/2, f_(t_i)(Delta)
+   rho^1/2>.
+3. Variational form of each node ([BFF] sec. 2, re-derived [D]): for t in (0, 1],
    <rho^1/2, f_t(Delta) rho^1/2> = (1/t) (1 + inf_Z { Tr rho (Z + Z* + (1 - t) Z* Z)
    + t Tr sigma Z Z* }); for a classical-quantum rho the optimal Z is block diagonal,
    Z = sum_a |a><a| (x) Z_a, and in the device picture the infimum reads
    sum_a < M_a (x) (Z_a + Z_a* + (1 - t) Z_a* Z_a) + t 1 (x) Z_a Z_a* >, M_a Alice's
    projector (M_a N_b for the pair), Z_a on Eve's system.
-4. The node t_m = 1 is dropped [BFF Theorem 2.? drops it too]. Valid because its term is
+4. The node t_m = 1 is dropped (as in [BFF]'s statement of the bound). Valid because its term is
    >= 0 [D]: it equals w_m (1 - sum_a Tr rho_E^-1 rho_a^2) and rho_a <= rho_E gives
    Tr rho_E^-1 rho_a^2 <= Tr rho_a. Hence (the formula of the methods note)
 
@@ -40,16 +43,17 @@ Derivation (numbers refer to [BFF] where the step is theirs; "[D]" marks a step 
    operators. Alice's and Bob's +-1 observables square to 1 and commute with each other and
    with Eve's Z's (no further relation on Z). Real parts of a complex moment matrix are
    feasible with the same value of every self-adjoint objective, so the real relaxation is a
-   relaxation. No bound on ||Z|| is assumed.
-7. Certificate [D]: the dual gives lambda, nu >= 0 and PSD matrices Y_a with
-   objective(y) = lambda + nu w(y) + sum_a <Y_a, Gamma_a(y)> as an identity of linear forms in
-   the moments y; so inf_i >= lambda_i + nu_i w for EVERY strategy (no constraint value
-   enters: the bound is affine in w and valid for all w). The solver is asked for Y_a >= eps I;
-   the float solution is rounded to dyadic rationals, projected exactly onto the affine
-   identity (each residual spread evenly over the matrix positions of its moment, lambda
-   absorbing the identity moment) and each Y_a is proven positive definite in exact integer
-   arithmetic (:func:`dicert.entropy.npa._exactly_positive_definite`). No primal value and no
-   unrepaired solver number reaches the bound. Nodes and weights are exact rationals (rounded
+   relaxation.
+7. Certificate [D]: the dual gives nu >= 0 and PSD matrices Y_a; with the exact residual
+   r = c - nu a - sum_a Gamma_a^*(Y_a) (c the objective, a the win-probability form),
+   objective(y) = r_0 + nu w(y) + sum_a <Y_a, Gamma_a(y)> + sum_(k>=1) r_k y_k for every
+   moment vector y. Each Y_a is symmetrised and shifted by s I until an exact rational
+   factorisation proves it positive definite (:func:`dicert.entropy.npa._certify_psd`), the
+   residual is computed exactly in rationals, and |y_k| <= alpha^(number of Z letters of
+   word k) at the minimiser (alpha from :func:`z_norm_bound`) charges it:
+   inf_i >= lambda_i + nu_i w with lambda_i = r_0 - sum_k |r_k| alpha^(deg k), for EVERY
+   strategy whatever its win probability w (affine in w, valid for all w). No primal value
+   and no unrepaired solver number reaches the bound. Nodes and weights are exact rationals (rounded
    from 60-digit values); the final division by ln 2 is done in mpmath and rounded down, with
    a 1e-12 safety term that covers the rounding of the nodes.
 

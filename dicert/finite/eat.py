@@ -33,6 +33,14 @@ The note flags log2(2 d^2 + 1) vs log2(1 + 2 d) and the prefactor of K_alpha as 
 this module uses the CONSERVATIVE choice it names (log2(2 d^2 + 1) = log2 33 and the full
 K_alpha) and labels the method "eat-df-conservative".
 
+Pair of outcomes (``single_round = "radau-vn-AB"``): instead of tangents of G, the min-tradeoff
+function is built from one of the shipped certified lines g(w) = a w + b (a >= 0) that bound
+H(A_i B_i | X_i Y_i T_i E) for every quantum strategy (Gauss-Radau quadrature with exactly checked
+SDP duals, Brown, Fawzi & Fawzi, Quantum 8, 1445 (2024); :mod:`dicert.entropy.vnquad`). The DF
+and ARV forms, Var(f), R and ||grad f|| depend on g only through (a, b), so both engines apply
+unchanged; the line is chosen after the data like the tangent point (:func:`quadrature_lines`
+explains why no (1 - gamma) factor is needed).
+
 Both are statements about the state conditioned on acceptance: either P(accept) < eps_EA or
 the bound holds; extraction by two-universal hashing with m <= H - 2 log2(1/eps_ext) then
 gives soundness eps_EA + 2 eps_s + eps_ext in "P(accept) x distance" form (Tomamichel et al.
@@ -325,7 +333,9 @@ def optimise_lines(variant: str, lines, w_c: float, n: float, gamma: float, eps_
                        eps_ea)
     r = np.where(np.isfinite(r), r, -np.inf)
     best = (-np.inf, 0, 0.0)
-    for k in range(len(lines)):
+    coarse = r.max(axis=1)
+    for k in np.argsort(-coarse)[:4]:  # refine alpha on the four best lines
+        k = int(k)
         j = int(np.argmax(r[k]))
         lo, hi = la[max(j - 1, 0)], la[min(j + 1, len(la) - 1)]
 
