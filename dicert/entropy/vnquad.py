@@ -216,7 +216,7 @@ def _vec(struct: _Structure, form: dict) -> np.ndarray:
 @functools.lru_cache(maxsize=8)
 def _dual_problem(parties: str, zlevel: str):
     """Parametrised dual SDP (compiled once per structure): maximise lambda + nu w0 subject to
-    c - lambda e_0 - nu a = sum_b adj_b(Y_b), Y_b >= eps I, nu >= 0."""
+    c - lambda e_0 - nu a = sum_b adj_b(Y_b), Y_b >= eps I (eps = 0 in use), nu >= 0."""
     import cvxpy as cp
     import scipy.sparse as sp
 
