@@ -61,7 +61,8 @@ def radau_nodes(m: int) -> tuple[tuple[Fraction, ...], tuple[Fraction, ...]]:
         ws = [(1 + x) / (m * m * mpmath.legendre(m - 1, x) ** 2) for x in xs]
         ws.append(mpmath.mpf(2) / (m * m))
         xs.append(mpmath.mpf(1))
-        t = [Fraction(mpmath.nstr((1 + x) / 2, DPS + 5, min_fixed=-1, max_fixed=1)) for x in xs[:-1]]
+        t = [Fraction(mpmath.nstr((1 + x) / 2, DPS + 5, min_fixed=-1, max_fixed=1))
+             for x in xs[:-1]]
         t.append(Fraction(1))
         w = [Fraction(mpmath.nstr(v / 2, DPS + 5, min_fixed=-1, max_fixed=1)) for v in ws]
     return tuple(t), tuple(w)
