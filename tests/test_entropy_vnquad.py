@@ -294,3 +294,16 @@ def test_table_never_exceeds_random_two_qubit_strategies():
             assert tab.bound(w, "AB")[0] <= h_ab + 1e-9
             assert tab.bound(w, "A")[0] <= h_a + 1e-9
     assert checked > 150
+
+
+@pytest.mark.slow
+def test_shipped_one_party_line_is_reproduced():
+    # The shipped table is what this code computes: re-solve one one-party line (7 SDPs) and
+    # compare (solver round-off across machines allowed at 1e-5 in the bound).
+    from dicert.entropy.vnquad import certified_line
+
+    tab = load_vn_table()
+    w0, off, sl = tab.lines["A"][7]
+    qb = certified_line(w0, parties="A", nodes=tab.nodes, level=tab.level)
+    assert qb.at(w0) == pytest.approx(off + sl * w0, abs=1e-5)
+    assert qb.slope == pytest.approx(sl, rel=1e-3)
