@@ -203,6 +203,8 @@ def bound_entropy(
     inputs = (int(inputs[0]), int(inputs[1]))
     chsh_input = chsh if chsh is not None else (correlators.chsh if correlators is not None else None)
 
+    if measure == "min" and method in ("radau", "radau-table"):
+        raise ParameterError(f"method {method!r} bounds the von Neumann entropy; use measure 'vn'")
     if measure == "vn":
         return _bound_vn(
             chsh=chsh, chsh_input=chsh_input, parties=parties, level=level,
