@@ -310,3 +310,36 @@ def test_shipped_one_party_line_is_reproduced():
     qb = certified_line(w0, parties="A", nodes=tab.nodes, level=tab.level)
     assert qb.at(w0) == pytest.approx(off + sl * w0, abs=1e-5)
     assert qb.slope == pytest.approx(sl, rel=1e-3)
+
+
+def test_certificate_from_garbage_duals_is_still_valid():
+    # Whatever the solver returns, the exact repair (PSD shift, exact residual charged with
+    # the a-priori norm bound) can only lower the bound: random dual matrices give a valid but
+    # weak line, below the certified optimum of the same node (weak duality, Boyd &
+    # Vandenberghe 2004, sec. 5.2).
+    from dicert.entropy import vnquad as V
+
+    t = radau_nodes(8)[0][3]
+    struct = V._structure("A", "z1")
+    cform = V._objective(struct, t)
+    good = V.solve_node(t, 0.84, parties="A", zlevel="z1")
+    rng = np.random.default_rng(0)
+    for _ in range(3):
+        ys = []
+        for ops in struct.blocks:
+            g = rng.normal(size=(len(ops), len(ops)))
+            ys.append(g @ g.T)
+        lam, nu, charge, _ = V._certify_node(struct, cform, t, ys, float(rng.uniform(0, 5)))
+        assert charge > 0
+        assert float(lam + nu * Fraction(0.84)) <= good.value_at(0.84)
+
+
+def test_norm_bound_rounds_up():
+    # The rational bound used for charging is >= 1/(2 sqrt(t(1-t))) (mpmath, 40 digits).
+    with mpmath.workdps(40):
+        for t in (Fraction(1, 1000), Fraction(1, 3), Fraction(1, 2), Fraction(999, 1000)):
+            exact = 1 / (2 * mpmath.sqrt(mpmath.mpf(t.numerator) / t.denominator
+                                         * (1 - mpmath.mpf(t.numerator) / t.denominator)))
+            b = z_norm_bound(t)
+            assert mpmath.mpf(b.numerator) / b.denominator >= exact
+            assert mpmath.mpf(b.numerator) / b.denominator <= exact * (1 + mpmath.mpf(10) ** -15)
