@@ -94,7 +94,7 @@ from dicert.errors import ParameterError, SolverError
 
 ZLEVELS = ("z1", "z2")
 DEFAULT_NODES = 8
-DEFAULT_ZLEVEL = "z1"
+DEFAULT_ZLEVEL = "z2"
 #: Safety subtracted from every certified offset (covers rounding of nodes and weights).
 SAFETY = 1e-12
 REFERENCE = ("P. Brown, H. Fawzi, O. Fawzi, Quantum 8, 1445 (2024), arXiv:2106.13692 "
@@ -438,7 +438,7 @@ class QuadratureBound:
 
 
 def certified_line(w0: float, *, parties: str = "AB", nodes: int = DEFAULT_NODES,
-                   level: str = "z2") -> QuadratureBound:
+                   level: str = DEFAULT_ZLEVEL) -> QuadratureBound:
     """Solve the m - 1 node SDPs at ``w0`` and assemble the certified affine bound (bits).
 
     H ln 2 >= sum_{i<m} (w_i/t_i) (1 + lambda_i + nu_i w) exactly (module docstring); the
