@@ -343,7 +343,8 @@ class _MethodModel:
             params = {"variant": p.variant, "acceptance": th.acceptance,
                       "count_limit": th.count_limit, "tolerance": th.tolerance,
                       "expected_win_probability": p.expected_win_probability,
-                      "eps_s": p.eps_s, "eps_ea": p.eps_ea, "tangent_point": rate.w_tangent
+                      "eps_s": p.eps_s, "eps_ea": p.eps_ea, "single_round": p.single_round,
+                      "tangent_point": rate.w_tangent
                       if math.isfinite(rate.w_tangent) else None, "alpha": rate.alpha}
         m = _output_bits(k, self.eps_ext)
         return _Eval(k, m, seed, m - seed, abort, params)
@@ -639,6 +640,23 @@ def _models(protocol: Any, win: float, eps_comp: float,
                       eps_s=eps_s, eps_ea=eps_ea)
         models.append(_MethodModel(p.method_name, "quantum", "derived", win, eps_ext,
                                    eps_comp, eat=p))
+    # The same EAT engines with the other single-round bound: the certified Gauss-Radau
+    # quadrature lines on H(AB|X,Y,E) (Brown, Fawzi & Fawzi 2024), or back to the analytic G.
+    declared_eat = method == "eat" and isinstance(analysis, EatParams)
+    other = ("analytic-vn-A" if declared_eat and analysis.single_round == "radau-vn-AB"
+             else "radau-vn-AB")
+    for variant in ("df-conservative", "dfr"):
+        if declared_eat:
+            p = dataclasses.replace(analysis, variant=variant, rounds=None, single_round=other)
+            how = "declared" if variant == analysis.variant else "declared-switched"
+        elif win <= 0.75:
+            continue
+        else:
+            p = EatParams(variant=variant, expected_win_probability=win, eps_comp=eps_comp,
+                          eps_s=eps_s, eps_ea=eps_ea, single_round=other)
+            how = "derived"
+        models.append(_MethodModel(p.method_name, "quantum", how, win, eps_ext, eps_comp,
+                                   eat=p))
     design = getattr(protocol, "design", None)
     generation = tuple(getattr(design, "generation", (0, 0)))
     if method == "pef":

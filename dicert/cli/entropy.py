@@ -20,7 +20,7 @@ def entropy_cmd(
     parties: Annotated[str, typer.Option("--parties", help="Whose outcomes: A (one party) or AB (the pair).")] = "A",
     measure: Annotated[str, typer.Option("--measure", help="min (min-entropy) or vn (von Neumann entropy).")] = "min",
     level: Annotated[str, typer.Option("--level", help="NPA relaxation level: 1, 1+AB or 2.")] = "1+AB",
-    method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve) or table (precomputed certificates).")] = "auto",
+    method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve), table (precomputed certificates), radau (von Neumann: solve the Gauss-Radau quadrature SDPs) or radau-table (its precomputed lines).")] = "auto",
     tolerance: Annotated[float, typer.Option("--tolerance", help="Slack allowed on each observed correlator (with --from-log).")] = 0.0,
     fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz).")] = None,
     protocol: Annotated[Optional[str], typer.Option("--protocol", help="With --from-log: the protocol whose declared design the log is checked against (default: every round a test round, or the observed test fraction of a log with a t column).")] = None,
@@ -105,6 +105,10 @@ def entropy_cmd(
         ]
     if result.table is not None:
         rows.append(("table piece / grid S", f"{result.table['piece']} / {result.table['grid_chsh']:.6g}"))
+    if result.quadrature is not None:
+        q = result.quadrature
+        rows.append(("certified line (bits)", f"{q['offset']:.6g} + {q['slope']:.6g} w (duals at w = {q['w0']:.6g})"))
+        rows.append(("quadrature nodes / relaxation", f"{q['nodes']} / {q['relaxation']}"))
     if result.fallback_reason:
         rows.append(("fallback reason", result.fallback_reason))
     if log_info is not None:
