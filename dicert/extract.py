@@ -80,9 +80,13 @@ MAX_FFT_LENGTH = 1 << 22
 MAX_FFT_LENGTH_LARGE = 1 << 24
 #: Default rounding guard: any value further than this from an integer triggers the exact path.
 ROUNDING_THRESHOLD = 0.25
-#: Default memory budget for the spectra held at once: max(1 GiB, 20 bytes per input bit).
-MEMORY_BUDGET = 1 << 30
-_MEMORY_PER_INPUT_BIT = 20
+#: Default memory budget (bytes) for the extractor's working arrays, whatever the input size.
+MEMORY_BUDGET = 1 << 29
+#: Largest n + m - 1 computed by a single in-memory cyclic convolution; beyond it (unless tiles
+#: are asked for) the four-step transform of :mod:`dicert._fourstep` is used.
+SINGLE_LIMIT = MAX_FFT_LENGTH
+#: Strategies accepted by :func:`extract_toeplitz`.
+STRATEGIES = ("auto", "tiled", "four-step")
 #: Tile width used by the exact integer fallback (direct convolution, O(width^2) per tile).
 _EXACT_TILE = 1 << 12
 
@@ -435,6 +439,9 @@ def extract_toeplitz(
     rounding_threshold: float = ROUNDING_THRESHOLD,
     workers: int | None = None,
     memory_budget: int | None = None,
+    strategy: str = "auto",
+    temp_dir: Any = None,
+    scheduler: Any = None,
 ) -> ExtractionResult:
     """Hash n input bits to m output bits with a seeded Toeplitz matrix over GF(2).
 
@@ -461,8 +468,20 @@ def extract_toeplitz(
     workers : int, optional
         Threads for FFTs (default: 2 if the machine has more than one core).
     memory_budget : int, optional
-        Bytes allowed for the spectra held at once (default max(1 GiB, 20 bytes per input
-        bit)); when the output blocks do not fit, the input is read in several passes.
+        Bytes allowed for the working arrays held at once (default :data:`MEMORY_BUDGET`,
+        512 MiB, independent of the input size). The four-step method keeps a larger working
+        array in a private temporary file (``temp_dir``); the tiled method reads the input in
+        several passes when its output blocks do not fit.
+    strategy : {"auto", "tiled", "four-step"}, optional
+        "auto" (default): one in-memory cyclic convolution when n + m - 1 <= 2**22, tiles when
+        ``block_bits`` is given, else the four-step transform. The bits never depend on it.
+    temp_dir : path, optional
+        Directory for the four-step method's work file (default: the system temporary
+        directory). The file is private (mode 0600) and removed when done.
+    scheduler : str or dask.distributed.Client, optional
+        Run the four-step method's pieces as tasks on a dask.distributed cluster (optional
+        extra ``dicert[cluster]``); ``temp_dir`` must then be a directory every worker sees.
+        Default: the ``DICERT_SCHEDULER`` environment variable, else this process only.
 
     Returns
     -------
@@ -508,11 +527,24 @@ def extract_toeplitz(
         thr = float(rounding_threshold)
         if not thr < 0.5:
             raise ParameterError(f"rounding_threshold must be < 0.5, got {thr!r}")
-        budget = (max(MEMORY_BUDGET, _MEMORY_PER_INPUT_BIT * n) if memory_budget is None
-                  else int(memory_budget))
-        plan = _plan(n, m, block_bits, budget)
+        budget = MEMORY_BUDGET if memory_budget is None else _positive_int(
+            memory_budget, "memory_budget")
+        if strategy not in STRATEGIES:
+            raise ParameterError(f"strategy must be one of {', '.join(STRATEGIES)}, "
+                                 f"got {strategy!r}")
         if workers is None:
             workers = 2 if (os.cpu_count() or 1) > 1 else 1
+        four = strategy == "four-step" or (
+            strategy == "auto" and block_bits is None and need_bits > SINGLE_LIMIT)
+        if four:
+            res = _four_step(x, s, n, m, budget, thr, int(workers), temp_dir, progress,
+                             data, seed, scheduler)
+            if res is not None:
+                return res
+            # The rounding guard failed somewhere (never observed): recompute by tiles, whose
+            # own guard falls back to exact integer arithmetic block by block.
+            block_bits = block_bits or 1 << 20
+        plan = _plan(n, m, block_bits, budget)
         z, max_dev, fallback, tiles = _run(plan, x, s, need_bits, thr, int(workers), progress)
         output = np.packbits(z).tobytes()
         input_sha = x.sha256(-(-n // 8))
@@ -521,6 +553,8 @@ def extract_toeplitz(
         x.close()
         s.close()
     method = "fft-cyclic" if plan.nb * plan.mo == 1 else "fft-cyclic-tiled"
+    if four:
+        method = "fft-four-step failed the rounding guard; recomputed by " + method
     if fallback:
         method += f" + exact-integer fallback ({fallback} of {plan.mo} output blocks)"
     return ExtractionResult(
@@ -541,6 +575,46 @@ def extract_toeplitz(
         max_rounding_error=float(max_dev),
         rounding_threshold=thr,
         fallback_blocks=fallback,
+    )
+
+
+def _four_step(x: _Bits, s: _Bits, n: int, m: int, budget: int, thr: float, workers: int,
+               temp_dir: Any, progress: Callable[[int, int], None] | None, data: Any,
+               seed: Any, scheduler: Any) -> ExtractionResult | None:
+    """One long cyclic convolution by the four-step FFT; None if the rounding guard failed."""
+    from dicert import _fourstep
+
+    fplan = _fourstep.plan_four_step(n, m, budget)
+    if scheduler is None:
+        scheduler = os.environ.get("DICERT_SCHEDULER") or None
+    if scheduler is not None:
+        from dicert import cluster
+
+        output, max_dev, pieces = cluster.four_step(fplan, data, seed, scheduler=scheduler,
+                                                    temp_dir=temp_dir, progress=progress)
+    else:
+        output, max_dev, pieces = _fourstep.run_local(fplan, x, s, workers=workers,
+                                                      temp_dir=temp_dir, progress=progress)
+    if not max_dev <= thr:  # (a NaN fails this test too)
+        return None
+    return ExtractionResult(
+        output=output,
+        m_bits=m,
+        n_bits=n,
+        seed_bits_used=n + m - 1,
+        seed_bytes=s.size,
+        seed_sha256=s.sha256(),
+        input_sha256=x.sha256(-(-n // 8)),
+        output_sha256=hashlib.sha256(output).hexdigest(),
+        method="fft-four-step",
+        blocks=pieces,
+        input_block_bits=fplan.N1,
+        output_block_bits=fplan.N2,
+        fft_length=fplan.L,
+        passes=1,
+        max_rounding_error=float(max_dev),
+        rounding_threshold=thr,
+        fallback_blocks=0,
     )
 
 
