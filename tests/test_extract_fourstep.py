@@ -1,0 +1,135 @@
+"""The four-step (bounded-memory) path of dicert.extract against the dense definition.
+
+The reference is the dense GF(2) product with scipy.linalg.toeplitz (the oracle of
+test_extract.py; common practice), the tiled path, and the pinned digests of fixed-seed runs.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from dicert import _fourstep
+from dicert.errors import ParameterError
+from dicert.extract import MEMORY_BUDGET, extract_toeplitz
+
+from test_extract import oracle, random_case
+
+
+@pytest.mark.parametrize(
+    ("n", "m", "budget"),
+    [
+        (1, 1, 1),  # one row (N2 = 1)
+        (8, 1, 1),
+        (13, 40, 1),  # m > n, n not a multiple of 8
+        (999, 333, 1),  # N2 = 3 (odd: every row but 0 has a distinct partner)
+        (70, 4500, 1),  # N2 = 9, m >> n
+        (5000, 3000, 1),  # N2 = 16 (even: row N2/2 pairs with itself)
+        (5000, 3000, 1 << 29),  # whole array in memory
+        (36764, 200, 1),  # N2 = 40, most rows hold no wanted output
+        (12000, 2500, 200_000),  # packed sources in memory, work array in files
+    ],
+)
+def test_four_step_matches_dense_oracle(n, m, budget, rng, tmp_path):
+    x, s = random_case(rng, n, m, 1)
+    res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=budget,
+                           temp_dir=tmp_path)
+    assert res.method == "fft-four-step"
+    assert res.output == oracle(x, s, n, m)
+    assert res.fft_length >= n + m - 1 and res.max_rounding_error <= 0.25
+    # The work files are anonymous: nothing is left in (or ever named in) the directory.
+    assert os.listdir(tmp_path) == []
+
+
+def test_four_step_reproduces_pinned_digests():
+    # Same fixed-seed runs and digests as test_known_answers_pinned_by_sha256 (test_extract.py).
+    rng = np.random.default_rng(20240401)
+    x = rng.integers(0, 256, 512, dtype=np.uint8).tobytes()
+    s = rng.integers(0, 256, 640, dtype=np.uint8).tobytes()
+    for budget in (1, None):
+        res = extract_toeplitz(x, s, 1000, strategy="four-step", memory_budget=budget)
+        assert res.output_sha256 == (
+            "355621787c0664178d9f51f8847276ac03f697abde491001d50028b1f17967ea")
+    rng = np.random.default_rng(7)
+    x = rng.integers(0, 256, 8193, dtype=np.uint8).tobytes()
+    s = rng.integers(0, 256, 9000, dtype=np.uint8).tobytes()
+    res = extract_toeplitz(x, s, 777, n_bits=65539, strategy="four-step", memory_budget=1)
+    assert res.output_sha256 == "c23dc0a4cd0b7bfdff3e2e43a261ebc132a15dd940f21cedb9712a3fa7000e5d"
+
+
+@settings(max_examples=25, deadline=None)
+@given(n=st.integers(1, 3000), m=st.integers(1, 3000), budget=st.sampled_from([1, 1 << 20]),
+       data=st.data())
+def test_four_step_equals_tiled(n, m, budget, data):
+    # Two independent computations of the same dense definition must agree bit for bit.
+    x = data.draw(st.binary(min_size=-(-n // 8), max_size=-(-n // 8)))
+    s = data.draw(st.binary(min_size=-(-(n + m - 1) // 8), max_size=-(-(n + m - 1) // 8)))
+    four = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=budget)
+    tiled = extract_toeplitz(x, s, m, n_bits=n, block_bits=97)
+    assert four.output == tiled.output
+
+
+def test_auto_uses_four_step_above_the_single_limit(monkeypatch, rng):
+    import dicert.extract as ex
+
+    monkeypatch.setattr(ex, "SINGLE_LIMIT", 1000)
+    x, s = random_case(rng, 2000, 700)
+    res = extract_toeplitz(x, s, 700)
+    assert res.method == "fft-four-step"
+    assert res.output == oracle(x, s, 2000, 700)
+
+
+def test_guard_failure_recomputes_exactly(rng):
+    # A negative threshold fails every guard: the tiled recomputation and its exact-integer
+    # fallback must still give the dense result, and the method must say so.
+    n, m = 1500, 700
+    x, s = random_case(rng, n, m)
+    res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", rounding_threshold=-1.0)
+    assert res.method.startswith("fft-four-step failed the rounding guard")
+    assert "exact-integer fallback" in res.method
+    assert res.output == oracle(x, s, n, m)
+
+
+def test_default_budget_does_not_grow_with_the_input():
+    # Plans for 2^24 ... 2^32 input bits all keep their blocks within the default budget.
+    for k in (24, 28, 30, 32):
+        n = 1 << k
+        plan = _fourstep.plan_four_step(n, n // 2, MEMORY_BUDGET)
+        assert plan.L >= n + n // 2 - 1
+        assert 16 * plan.N2 * plan.slab <= MEMORY_BUDGET // 8 or plan.slab == 8
+        assert 16 * plan.N1 * plan.rows <= MEMORY_BUDGET // 8 or plan.rows == 1
+        assert plan.packed == (plan.L // 4 <= MEMORY_BUDGET // 2)
+        assert not plan.in_memory or 16 * plan.L <= MEMORY_BUDGET // 4
+
+
+def test_named_work_file_is_private(tmp_path):
+    plan = _fourstep.plan_four_step(5000, 3000, 1)
+    store = _fourstep.named_store(plan, tmp_path)
+    try:
+        assert os.stat(store.path).st_mode & 0o777 == 0o600
+        assert os.path.getsize(store.path) == 16 * plan.L
+    finally:
+        store.close()
+        os.unlink(store.path)
+
+
+def test_bad_strategy():
+    with pytest.raises(ParameterError, match="strategy must be one of"):
+        extract_toeplitz(b"\x01", b"\x01", 1, strategy="magic")
+    with pytest.raises(ParameterError, match="memory_budget"):
+        extract_toeplitz(b"\x01", b"\x01", 1, memory_budget=0)
+
+
+def test_progress_counts_every_piece(rng):
+    x, s = random_case(rng, 3000, 1000)
+    calls = []
+    res = extract_toeplitz(x, s, 1000, strategy="four-step", memory_budget=1,
+                           progress=lambda d, t: calls.append((d, t)))
+    assert calls[-1] == (res.blocks, res.blocks)
+    assert [d for d, _ in calls] == list(range(1, res.blocks + 1))
+    assert math.prod((res.input_block_bits, res.output_block_bits)) == res.fft_length
