@@ -81,7 +81,9 @@ def plan_four_step(n: int, m: int, budget: int, row_length: int | None = None) -
     fill = max(1, budget // (6 * 8 * N1))
     L = N1 * N2
     in_memory = _C * L <= budget // 4
-    packed = L // 4 <= budget // 2
+    # The packed input and rotated seed in memory save one write and one read of the work
+    # array; kept to an eighth of the budget so memory stays flat as the input grows.
+    packed = L // 4 <= budget // 8
     return FourStepPlan(n=n, m=m, N1=N1, N2=N2, slab=slab, rows=rows, fill=fill,
                         in_memory=in_memory, packed=packed)
 
@@ -122,12 +124,16 @@ class FileStore:
         self.N2, self.N1, self.w, self.path = N2, N1, w, path
         self.size = _C * N1 * N2
         self._own = fd is None
-        if fd is None:
-            fd = os.open(path, os.O_RDWR | (os.O_CREAT if create else 0), 0o600)
-        self.fd = fd
+        self._fd = fd
         if create:
             # Reserve the space now: a full disk is then an error before any work is done.
-            os.posix_fallocate(fd, 0, self.size)
+            os.posix_fallocate(self.fd, 0, self.size)
+
+    @property
+    def fd(self) -> int:
+        if self._fd is None:  # opened on first use (a copy sent to a worker opens its own)
+            self._fd = os.open(self.path, os.O_RDWR)
+        return self._fd
 
     def __getstate__(self) -> dict:
         if self.path is None:
@@ -135,7 +141,9 @@ class FileStore:
         return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
 
     def __setstate__(self, st: dict) -> None:
-        self.__init__(st["N2"], st["N1"], st["w"], path=st["path"])
+        self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
+        self.size = _C * self.N1 * self.N2
+        self._own, self._fd = True, None
 
     def _read(self, buf: np.ndarray, off: int) -> None:
         view = memoryview(buf).cast("B")
@@ -178,10 +186,10 @@ class FileStore:
         self._write(v, self._slab_offset(c0 // self.w))
 
     def close(self) -> None:
-        if self.fd is not None and self._own:
+        if self._fd is not None and self._own:
             with contextlib.suppress(OSError):
-                os.close(self.fd)
-        self.fd = None
+                os.close(self._fd)
+        self._fd = None
 
 
 def open_store(plan: FourStepPlan, temp_dir: Any = None) -> ArrayStore | FileStore:

@@ -940,7 +940,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
-            idle_timeout_s: float | None = 300.0) -> CertifyResult:
+            idle_timeout_s: float | None = 300.0, scheduler: Any = None) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -1046,7 +1046,8 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             from dicert.extract import extract_toeplitz
 
             extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
-                                          n_bits=scan.raw_bits)
+                                          n_bits=scan.raw_bits, scheduler=scheduler,
+                                          temp_dir=spill if spill.is_dir() else None)
             if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
                 raise DicertError("extractor returned a different output length")
         timings["extraction"] = time.perf_counter() - t3

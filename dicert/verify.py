@@ -327,7 +327,8 @@ def _finite_from_record(body: Mapping[str, Any]):
 
 def verify(record_path: str | os.PathLike[str], *, log: Any = None,
            seed: bytes | str | os.PathLike[str] | None = None,
-           bits: str | os.PathLike[str] | None = None, public_key: Any = None) -> VerifyReport:
+           bits: str | os.PathLike[str] | None = None, public_key: Any = None,
+           scheduler: Any = None) -> VerifyReport:
     """Re-check an audit record; with the log and seed, re-derive every number.
 
     Parameters
@@ -456,7 +457,8 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
             if seed_data is not None and status == "certified":
                 from dicert.extract import extract_toeplitz
 
-                res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits)
+                res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits,
+                                       scheduler=scheduler)
                 _require(res.output_sha256 == output_sha, "extractor.output_sha256",
                          "re-running the extractor on the log and seed gives other bits")
                 recomputed_output = bytes(res.output)

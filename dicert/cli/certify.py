@@ -55,6 +55,7 @@ def certify_cmd(
     chain: Annotated[Path | None, typer.Option("--chain", help="Beacon chain directory: link the record to the previous pulse and append it.")] = None,
     follow: Annotated[bool, typer.Option("--follow", help="Method pef, binary log: follow a growing log until the outcome is decided, its trailer arrives, or the idle timeout.")] = False,
     poll: Annotated[float | None, typer.Option("--poll", metavar="SECONDS", help="With --follow: pause between looks for new trials [default: 0.5].")] = None,
+    scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     idle_timeout: Annotated[float | None, typer.Option("--idle-timeout", metavar="SECONDS", help="With --follow: abort after this long without new trials; 0 waits for ever [default: 300].")] = None,
     as_json: JsonFlag = False,
 ) -> None:
@@ -72,7 +73,7 @@ def certify_cmd(
     with progress_bar() as bar:
         task = bar.add_task("following log" if follow else "reading log", total=None)
         result = certify(
-            log, protocol, seed, out, key=key, chain=chain,
+            log, protocol, seed, out, key=key, chain=chain, scheduler=scheduler or None,
             progress=lambda stage, done, total: bar.update(task, completed=done, total=total),
             **extra,
         )

@@ -40,6 +40,7 @@ def verify_cmd(
     bits: Annotated[Path | None, typer.Option("--bits", help="The output bits file.")] = None,
     pubkey: Annotated[Path | None, typer.Option("--pubkey", help="The operator's Ed25519 public key (KEYFILE.pub).")] = None,
     chain: Annotated[Path | None, typer.Option("--chain", help="Check every record of this beacon chain directory.")] = None,
+    scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: re-run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.errors import ParameterError, VerificationError
@@ -62,7 +63,8 @@ def verify_cmd(
 def _record(record, log, seed, bits, pubkey, as_json: bool) -> None:
     from dicert.verify import verify
 
-    rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey)
+    rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
+                     scheduler=scheduler or None)
     if as_json:
         emit_json({
             "verified": True,
