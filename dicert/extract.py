@@ -20,25 +20,37 @@ convolution of any length >= n + m - 1, which is how they are computed here.
 
 Computation
 -----------
-The m x n matrix is cut into tiles of M output rows and B input columns. Each tile is
-itself a Toeplitz matrix (with a contiguous stretch of M + B - 1 seed bits), evaluated by
-one cyclic convolution of length F >= M + B - 1 with real FFTs in float64. The spectra of the
-tiles in an output block are summed (linearity) and transformed back once; every value is
-rounded to the nearest integer and reduced mod 2. Small problems use a single tile (one
-cyclic convolution of length n + m - 1); large ones use square tiles with F = 2**22 (growing
-to 2**24 for inputs beyond 2**24 bits), which bounds memory and floating-point error and lets
-two transforms run on two cores at once. Input blocks are processed in order and their
-spectra discarded, so memory is about 32 m + 80 B bytes plus the packed inputs.
+Three strategies give the same bits:
+
+* n + m - 1 <= 2**22 (default): one in-memory cyclic convolution of length >= n + m - 1 with
+  real FFTs in float64.
+* Larger inputs (default): ONE cyclic convolution of length L >= n + m - 1 by the four-step
+  FFT of :mod:`dicert._fourstep` (Bailey 1990): the seed and the input ride in one complex
+  vector, the transform runs through blocks of rows and columns of a few MB, and the rest of
+  the work array sits in private temporary files. Time grows like (n + m) log(n + m); memory
+  stays within ``memory_budget`` (default :data:`MEMORY_BUDGET`, whatever n is). The pieces
+  of each pass are independent, so they can also run as tasks on a dask cluster
+  (:mod:`dicert.cluster`).
+* Tiles (``block_bits`` given, and the recomputation after a failed guard): the m x n matrix
+  is cut into tiles of M output rows and B input columns. Each tile is itself a Toeplitz
+  matrix (with a contiguous stretch of M + B - 1 seed bits), evaluated by one cyclic
+  convolution of length F >= M + B - 1; the spectra of the tiles in an output block are
+  summed (linearity) and transformed back once. Cost ~ n m / B; the input is read in several
+  passes when the output blocks do not fit the budget.
+
+Every value is rounded to the nearest integer and reduced mod 2.
 
 Exactness: the convolution values are integers in [0, min(M, B)]. By the standard error
 analysis of the FFT (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed.,
 SIAM 2002, sec. 24.1) the computed cyclic convolution of 0/1 vectors of length <= F differs
 from the exact one by at most about 5 * log2(F) * eta * B**1.5 in the 2-norm, with eta a small
-multiple of the unit roundoff 1.1e-16; for the largest tiles used (B = 2**23, F = 2**24) this is
-~1e-3, far below 1/2. As a run-time
-guard, every output block whose values stray more than ``rounding_threshold`` (0.25) from an
-integer is recomputed with exact integer arithmetic, and ``method`` says so. Bits are never
-emitted from a block that failed the guard.
+multiple of the unit roundoff 1.1e-16; that bound is a worst case (for one transform of length
+2**31 it exceeds 1/2), and the observed errors are far smaller (below 1e-9 up to L = 2**28 in
+the benchmarks). Exactness therefore rests on the run-time guard, not on the bound: every
+value is checked, and if any strays more than ``rounding_threshold`` (0.25) from an integer,
+the four-step result is discarded and the bits recomputed by tiles, whose blocks that fail
+their own guard are recomputed with exact integer arithmetic; ``method`` says so. Bits are
+never emitted from a computation that failed the guard.
 
 References
 ----------
