@@ -178,3 +178,35 @@ def test_missing_extra_names_it(monkeypatch):
         with pytest.raises(DicertError, match=r"^running on a dask cluster needs the optional "
                                               r"extra: pip install 'dicert\[cluster\]'$"):
             call()
+
+
+def test_cli_scheduler_option_same_output(address, tmp_path, monkeypatch, rng):
+    from typer.testing import CliRunner
+
+    import dicert.extract as ex
+    from dicert.cli.app import app
+
+    runner = CliRunner()
+    d = _split_log(tmp_path, trials=5000)
+    here = runner.invoke(app, ["inspect", str(d), "--block-trials", "999", "--json"])
+    there = runner.invoke(app, ["inspect", str(d), "--block-trials", "999", "--json",
+                                "--scheduler", address])
+    assert here.exit_code == there.exit_code == 0, there.output
+    assert json.loads(here.stdout) == json.loads(there.stdout)
+    # extract with the address from the environment variable
+    monkeypatch.setattr(ex, "SINGLE_LIMIT", 1000)
+    x, s = random_case(rng, 5000, 2000)
+    (tmp_path / "x.bin").write_bytes(x)
+    (tmp_path / "s.bin").write_bytes(s)
+    work = tmp_path / "work"
+    work.mkdir()
+    outs = []
+    for i, env in enumerate(({}, {"DICERT_SCHEDULER": address})):
+        res = runner.invoke(app, ["extract", "--input", str(tmp_path / "x.bin"), "--seed",
+                                  str(tmp_path / "s.bin"), "--bits", "2000", "--out",
+                                  str(tmp_path / f"y{i}.bin"), "--work-dir", str(work),
+                                  "--json"], env=env)
+        assert res.exit_code == 0, res.output
+        outs.append((tmp_path / f"y{i}.bin").read_bytes())
+    assert outs[0] == outs[1] == oracle(x, s, 5000, 2000)
+    assert os.listdir(work) == []

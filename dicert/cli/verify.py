@@ -53,18 +53,17 @@ def verify_cmd(
         if chain is not None:
             _chain(chain, pubkey, as_json)
         else:
-            _record(record, log, seed, bits, pubkey, as_json)
+            _record(record, log, seed, bits, pubkey, as_json, scheduler=scheduler or None)
     except VerificationError as exc:
         if as_json:
             emit_json({"verified": False, "field": exc.field, "error": " ".join(str(exc).split())})
         raise
 
 
-def _record(record, log, seed, bits, pubkey, as_json: bool) -> None:
+def _record(record, log, seed, bits, pubkey, as_json: bool, scheduler=None) -> None:
     from dicert.verify import verify
 
-    rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
-                     scheduler=scheduler or None)
+    rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey, scheduler=scheduler)
     if as_json:
         emit_json({
             "verified": True,
