@@ -133,3 +133,30 @@ def test_progress_counts_every_piece(rng):
     assert calls[-1] == (res.blocks, res.blocks)
     assert [d for d, _ in calls] == list(range(1, res.blocks + 1))
     assert math.prod((res.input_block_bits, res.output_block_bits)) == res.fft_length
+
+
+def test_certify_with_spilled_bits_and_four_step_leaves_only_outputs(tmp_path, monkeypatch):
+    # The raw bits spill to a private file and the extraction uses its anonymous work files in
+    # the output directory; afterwards only the two outputs remain, and the bits equal a run
+    # with neither (the in-memory single convolution).
+    from helpers import sim_trials, uniform_protocol
+
+    import dicert.certify as certify_mod
+    import dicert.extract as ex
+    from dicert.certify import BITS_NAME, RECORD_NAME, certify
+    from dicert.logs import write_log
+
+    log = tmp_path / "log.btl"
+    write_log(log, sim_trials(20_000, seed=11))
+    seed = np.random.default_rng(5).bytes(20_000 * 4 // 8 + 64)
+    plain = certify(log, uniform_protocol(), seed, tmp_path / "plain")
+    assert plain.status == "certified" and plain.record["extractor"]["method"] == "fft-cyclic"
+    monkeypatch.setattr(certify_mod, "_SPILL_BYTES", 100)
+    monkeypatch.setattr(ex, "SINGLE_LIMIT", 1000)
+    monkeypatch.setattr(ex, "MEMORY_BUDGET", 1 << 16)  # work array in files, not in memory
+    out = tmp_path / "spill"
+    out.mkdir()
+    res = certify(log, uniform_protocol(), seed, out)
+    assert res.record["extractor"]["method"] == "fft-four-step"
+    assert (out / BITS_NAME).read_bytes() == (tmp_path / "plain" / BITS_NAME).read_bytes()
+    assert sorted(p.name for p in out.iterdir()) == sorted([BITS_NAME, RECORD_NAME])
