@@ -13,7 +13,7 @@ through blocks of bounded size:
   then holds the spectrum at frequency k2 + N2*k1 (a permuted order, which is all a
   convolution needs).
 * Both real sequences ride in one complex vector z = s' + i x (s' the seed placed so that the
-  wanted outputs land at positions 0 .. m-1, see :func:`fill_rows`); with Z its transform, the
+  wanted outputs land at positions 0 .. m-1, see :func:`_window`); with Z its transform, the
   product of the two real spectra is P(k) = (Z(k)^2 - conj(Z(-k))^2) / (4i) (common practice:
   the "two real FFTs for the price of one complex FFT" identity). Frequency -k sits in row
   (N2 - k2) mod N2, so rows are processed in pairs.
@@ -55,7 +55,11 @@ class FourStepPlan:
     rows: int  # row pairs per row block
     fill: int  # rows per block when filling
     in_memory: bool
-    packed: bool  # keep the packed input and rotated seed (L / 4 bytes) in memory
+
+    @property
+    def H(self) -> int:
+        """Rows 0 .. H of the product are stored; the others follow by symmetry."""
+        return self.N2 // 2
 
     @property
     def L(self) -> int:
@@ -78,14 +82,10 @@ def plan_four_step(n: int, m: int, budget: int, row_length: int | None = None) -
     piece = min(_PIECE, budget // 8)
     slab = 1 << max(3, min(N1.bit_length() - 1, (piece // (_C * N2)).bit_length() - 1))
     rows = max(1, piece // (_C * N1))
-    fill = max(1, budget // (6 * 8 * N1))
-    L = N1 * N2
-    in_memory = _C * L <= budget // 4
-    # The packed input and rotated seed in memory save one write and one read of the work
-    # array; kept to an eighth of the budget so memory stays flat as the input grows.
-    packed = L // 4 <= budget // 8
+    fill = max(1, min(N2, piece // N1))
+    in_memory = _C * N1 * N2 <= budget // 4
     return FourStepPlan(n=n, m=m, N1=N1, N2=N2, slab=slab, rows=rows, fill=fill,
-                        in_memory=in_memory, packed=packed)
+                        in_memory=in_memory)
 
 
 # --------------------------------------------------------------------------- storage
@@ -146,19 +146,10 @@ class FileStore:
         self._own, self._fd = True, None
 
     def _read(self, buf: np.ndarray, off: int) -> None:
-        view = memoryview(buf).cast("B")
-        pos = 0
-        while pos < len(view):
-            got = os.preadv(self.fd, [view[pos:]], off + pos)
-            if got <= 0:
-                raise OSError("short read from the extractor's work file")
-            pos += got
+        _pread_all(self.fd, buf, off)
 
     def _write(self, buf: np.ndarray, off: int) -> None:
-        view = memoryview(np.ascontiguousarray(buf)).cast("B")
-        pos = 0
-        while pos < len(view):
-            pos += os.pwrite(self.fd, view[pos:], off + pos)
+        _pwrite_all(self.fd, buf, off)
 
     def _slab_offset(self, q: int) -> int:
         return q * self.N2 * self.w * _C
@@ -192,27 +183,134 @@ class FileStore:
         self._fd = None
 
 
-def open_store(plan: FourStepPlan, temp_dir: Any = None) -> ArrayStore | FileStore:
-    """A fresh zeroed store: in memory if it fits a quarter of the budget, else an anonymous
-    temporary file (no name on disk, so nothing is left behind even if the process dies)."""
-    if plan.in_memory:
-        return ArrayStore(plan.N2, plan.N1)
+def _anonymous_fd(temp_dir: Any) -> int:
+    """An open private temporary file with no name (nothing is left behind, even if the
+    process dies)."""
     fh = tempfile.TemporaryFile(prefix=".dicert-extract-", dir=temp_dir)
     try:
         fd = os.dup(fh.fileno())
     finally:
         fh.close()
     os.fchmod(fd, 0o600)
-    store = FileStore(plan.N2, plan.N1, plan.slab, fd=fd, create=True)
+    return fd
+
+
+def open_store(plan: FourStepPlan, rows: int, temp_dir: Any = None) -> ArrayStore | FileStore:
+    """A fresh zeroed store of ``rows`` x N1: in memory if the whole array fits a quarter of
+    the budget, else an anonymous temporary file."""
+    if plan.in_memory:
+        return ArrayStore(rows, plan.N1)
+    store = FileStore(rows, plan.N1, plan.slab, fd=_anonymous_fd(temp_dir), create=True)
     store._own = True
     return store
 
 
-def named_store(plan: FourStepPlan, temp_dir: Any) -> FileStore:
+def named_store(plan: FourStepPlan, rows: int, temp_dir: Any) -> FileStore:
     """A fresh zeroed store in a named private file (for workers that open it by path)."""
     fd, path = tempfile.mkstemp(prefix=".dicert-extract-", suffix=".part", dir=temp_dir)
     os.close(fd)
-    return FileStore(plan.N2, plan.N1, plan.slab, path=path, create=True)
+    return FileStore(rows, plan.N1, plan.slab, path=path, create=True)
+
+
+class PackedStore:
+    """s' and x packed 8 positions per byte, in the slab layout of :class:`FileStore`
+    (slab q, row j2: w / 8 bytes), so a column block is one contiguous read: L / 4 bytes in
+    all, in memory or in a private file."""
+
+    def __init__(self, plan: FourStepPlan, *, path: str | None = None, fd: int | None = None,
+                 memory: bool = False) -> None:
+        self.N2, self.N1, self.w, self.path = plan.N2, plan.N1, plan.slab, path
+        self.S = self.N1 // self.w
+        self.part = self.N2 * self.w // 8  # bytes of one slab of one source
+        self.mem = np.zeros(2 * self.S * self.part, dtype=np.uint8) if memory else None
+        self._fd = fd
+        self._own = True
+
+    @property
+    def fd(self) -> int:
+        if self._fd is None:
+            self._fd = os.open(self.path, os.O_RDWR)
+        return self._fd
+
+    def __getstate__(self) -> dict:
+        if self.path is None:
+            raise TypeError("an anonymous temporary file cannot be shared with other processes")
+        return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
+
+    def __setstate__(self, st: dict) -> None:
+        self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
+        self.S, self.part = self.N1 // self.w, self.N2 * self.w // 8
+        self.mem, self._fd, self._own = None, None, True
+
+    def put_rows(self, r0: int, sp: np.ndarray, xp: np.ndarray) -> None:
+        """Rows r0 .. r0 + len - 1, each given as N1 / 8 packed bytes per source."""
+        wb = self.w // 8
+        for k, rows in enumerate((sp, xp)):
+            for q in range(self.S):
+                off = (k * self.S + q) * self.part + r0 * wb
+                chunk = np.ascontiguousarray(rows[:, q * wb:(q + 1) * wb]).reshape(-1)
+                if self.mem is not None:
+                    self.mem[off: off + chunk.size] = chunk
+                else:
+                    _pwrite_all(self.fd, chunk, off)
+
+    def slab(self, q: int) -> tuple[np.ndarray, np.ndarray]:
+        """The packed s' and x of slab q, each N2 x w / 8 bytes."""
+        out = []
+        for k in (0, 1):
+            off = (k * self.S + q) * self.part
+            if self.mem is not None:
+                a = self.mem[off: off + self.part]
+            else:
+                a = np.empty(self.part, dtype=np.uint8)
+                _pread_all(self.fd, a, off)
+            out.append(a.reshape(self.N2, self.w // 8))
+        return out[0], out[1]
+
+    def close(self) -> None:
+        if self._fd is not None and self._own:
+            with contextlib.suppress(OSError):
+                os.close(self._fd)
+        self._fd = None
+
+
+def _pread_all(fd: int, buf: np.ndarray, off: int) -> None:
+    view = memoryview(buf).cast("B")
+    pos = 0
+    while pos < len(view):
+        got = os.preadv(fd, [view[pos:]], off + pos)
+        if got <= 0:
+            raise OSError("short read from the extractor's work file")
+        pos += got
+
+
+def _pwrite_all(fd: int, buf: np.ndarray, off: int) -> None:
+    view = memoryview(np.ascontiguousarray(buf)).cast("B")
+    pos = 0
+    while pos < len(view):
+        pos += os.pwrite(fd, view[pos:], off + pos)
+
+
+def pack_sources(plan: FourStepPlan, x: Any, s: Any, dst: PackedStore, r0: int,
+                 r1: int) -> None:
+    """Rows [r0, r1) of s' and x (see :func:`_window`) into the packed store."""
+    N1 = plan.N1
+    re, im = _window(plan, x, s, r0 * N1, (r1 - r0) * N1)
+    dst.put_rows(r0, np.packbits(re).reshape(r1 - r0, N1 // 8),
+                 np.packbits(im).reshape(r1 - r0, N1 // 8))
+
+
+def open_packed(plan: FourStepPlan, temp_dir: Any = None, *, named: bool = False) -> PackedStore:
+    if plan.in_memory and not named:
+        return PackedStore(plan, memory=True)
+    if named:
+        fd, path = tempfile.mkstemp(prefix=".dicert-extract-", suffix=".part", dir=temp_dir)
+        os.posix_fallocate(fd, 0, plan.L // 4)
+        os.close(fd)
+        return PackedStore(plan, path=path)
+    fd = _anonymous_fd(temp_dir)
+    os.posix_fallocate(fd, 0, plan.L // 4)
+    return PackedStore(plan, fd=fd)
 
 
 # --------------------------------------------------------------------------- twiddles
@@ -259,50 +357,17 @@ def _window(plan: FourStepPlan, x: Any, s: Any, P0: int, cnt: int) -> tuple[np.n
     return re, im
 
 
-def fill_rows(plan: FourStepPlan, x: Any, s: Any, store: Any, r0: int, r1: int) -> None:
-    """Rows [r0, r1) of z = s' + i x (see :func:`_window`)."""
-    N1 = plan.N1
-    re, im = _window(plan, x, s, r0 * N1, (r1 - r0) * N1)
-    z = np.empty(re.size, dtype=np.complex128)
-    z.real = re
-    z.imag = im
-    store.put_rows(r0, z.reshape(r1 - r0, N1))
-
-
-def packed_sources(plan: FourStepPlan, x: Any, s: Any) -> tuple[np.ndarray, np.ndarray]:
-    """s' and x over all L positions, packed 8 per byte (L / 4 bytes in all)."""
-    L = plan.L
-    sp = np.empty(L // 8, dtype=np.uint8)
-    xp = np.empty(L // 8, dtype=np.uint8)
-    step = 1 << 24
-    for P0 in range(0, L, step):
-        re, im = _window(plan, x, s, P0, min(step, L - P0))
-        sp[P0 // 8: (P0 + re.size) // 8] = np.packbits(re)
-        xp[P0 // 8: (P0 + im.size) // 8] = np.packbits(im)
-    return sp, xp
-
-
-def columns_first(plan: FourStepPlan, packed: tuple[np.ndarray, np.ndarray], dst: Any,
-                  c0: int, c1: int, workers: int = 1) -> None:
-    """Like :func:`columns_forward`, reading columns [c0, c1) of z from the packed bits."""
+def columns_first(plan: FourStepPlan, packed: PackedStore, dst: Any, c0: int, c1: int,
+                  workers: int = 1) -> None:
+    """Columns [c0, c1) (one slab) of z = s' + i x from the packed bits: length-N2 FFTs down
+    each column, times the twiddles w**(j1*k2)."""
     import scipy.fft as sfft
 
-    sp, xp = packed
-    N2, N1 = plan.N2, plan.N1
-    t = np.empty((N2, c1 - c0), dtype=np.complex128)
-    t.real = np.unpackbits(sp.reshape(N2, N1 // 8)[:, c0 // 8: c1 // 8], axis=1)
-    t.imag = np.unpackbits(xp.reshape(N2, N1 // 8)[:, c0 // 8: c1 // 8], axis=1)
+    sp, xp = packed.slab(c0 // plan.slab)
+    t = np.empty((plan.N2, c1 - c0), dtype=np.complex128)
+    t.real = np.unpackbits(sp, axis=1)
+    t.imag = np.unpackbits(xp, axis=1)
     t = sfft.fft(t, axis=0, overwrite_x=True, workers=workers)
-    _twiddle(t, c0, plan.L, -1)
-    dst.put_cols(c0, t)
-
-
-def columns_forward(plan: FourStepPlan, src: Any, dst: Any, c0: int, c1: int,
-                    workers: int = 1) -> None:
-    """Length-N2 FFTs of columns [c0, c1), times the twiddles w**(j1*k2)."""
-    import scipy.fft as sfft
-
-    t = sfft.fft(src.cols(c0, c1), axis=0, overwrite_x=True, workers=workers)
     _twiddle(t, c0, plan.L, -1)
     dst.put_cols(c0, t)
 
@@ -339,12 +404,11 @@ def rows_middle(plan: FourStepPlan, src: Any, dst: Any, r0: int, r1: int,
     X = sfft.fft(src.rows(lo, hi), axis=1, overwrite_x=True, workers=workers)
     Y = sfft.fft(src.rows(N2 - hi + 1, N2 - lo + 1)[::-1], axis=1, overwrite_x=True,
                  workers=workers)
+    # Only the lead rows are kept: the product spectrum is that of a real sequence, so the
+    # partner rows follow from them (see :func:`columns_inverse`).
     PX = _product(X, Y[:, ::-1])
-    PY = _product(Y, X[:, ::-1])
     del X, Y
     dst.put_rows(lo, sfft.ifft(PX, axis=1, overwrite_x=True, workers=workers))
-    del PX
-    dst.put_rows(N2 - hi + 1, sfft.ifft(PY, axis=1, overwrite_x=True, workers=workers)[::-1])
 
 
 def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
@@ -356,7 +420,14 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
 
     N1, m = plan.N1, plan.m
     J = -(-m // N1)
-    t = src.cols(c0, c1)
+    N2, H = plan.N2, plan.H
+    t = np.empty((N2, c1 - c0), dtype=np.complex128)
+    t[:H + 1] = src.cols(c0, c1)[:H + 1]
+    # Q(-k) = -conj(Q(k)) for the stored Q = 4i x (spectrum of a real sequence), hence for the
+    # row inverse transforms E: E[N2 - k2, j1] = -exp(-2 pi i j1 / N1) conj(E[k2, j1]).
+    if N2 - 1 > H:
+        f = -np.exp((-2j * np.pi / N1) * np.arange(c0, c1))
+        t[H + 1:] = f[None, :] * np.conj(t[1: N2 - H][::-1])
     _twiddle(t, c0, plan.L, +1)
     t = sfft.ifft(t, axis=0, overwrite_x=True, workers=workers)
     vals = 0.25 * t.imag[:J]  # (J, w): position j2*N1 + c0 + col
@@ -379,12 +450,8 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
 def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir: Any = None,
               progress: Any = None) -> tuple[bytes, float, int]:
     """The whole computation in this process; returns (output bytes, max deviation, pieces)."""
-    N1, N2, m = plan.N1, plan.N2, plan.m
-    fills = [(r, min(r + plan.fill, N2)) for r in range(0, N2, plan.fill)]
-    slabs = [(c, min(c + plan.slab, N1)) for c in range(0, N1, plan.slab)]
-    leads = N2 // 2 + 1
-    rowblocks = [(r, min(r + plan.rows, leads)) for r in range(0, leads, plan.rows)]
-    total = len(fills) + 2 * len(slabs) + len(rowblocks)
+    pieces = plan_pieces(plan)
+    total = sum(len(v) for v in pieces.values())
     done = 0
 
     def tick() -> None:
@@ -393,36 +460,46 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
         if progress is not None:
             progress(done, total)
 
-    packed = packed_sources(plan, x, s) if plan.packed else None
-    if packed is not None:
-        total -= len(fills)
-    # Two work files: a pass never overwrites the pages it just wrote, which the kernel may be
-    # writing back to disk (overwriting those can stall); in memory one array is enough.
-    stores: list[Any] = []
+    # Separate work files: a pass never overwrites pages it wrote, which the kernel may still
+    # be writing back to disk (overwriting those stalls); in memory one array is enough.
+    opened: list[Any] = []
     try:
-        stores.append(open_store(plan, temp_dir))
-        stores.append(stores[0] if plan.in_memory else open_store(plan, temp_dir))
-        a, b = stores
-        if packed is None:
-            for r0, r1 in fills:
-                fill_rows(plan, x, s, b, r0, r1)
-                tick()
-        for c0, c1 in slabs:
-            if packed is None:
-                columns_forward(plan, b, a, c0, c1, workers)
-            else:
-                columns_first(plan, packed, a, c0, c1, workers)
+        packed = open_packed(plan, temp_dir)
+        opened.append(packed)
+        for r0, r1 in pieces["pack"]:
+            pack_sources(plan, x, s, packed, r0, r1)
             tick()
-        del packed
-        for r0, r1 in rowblocks:
+        a = open_store(plan, plan.N2, temp_dir)
+        opened.append(a)
+        for c0, c1 in pieces["first"]:
+            columns_first(plan, packed, a, c0, c1, workers)
+            tick()
+        packed.close()
+        b = a if plan.in_memory else open_store(plan, plan.H + 1, temp_dir)
+        opened.append(b)
+        for r0, r1 in pieces["middle"]:
             rows_middle(plan, a, b, r0, r1, workers)
             tick()
+        a.close()
         out, dev = assemble(plan, (columns_inverse(plan, b, c0, c1, workers)
-                                   for c0, c1 in slabs), slabs, tick)
+                                   for c0, c1 in pieces["inverse"]), pieces["inverse"], tick)
     finally:
-        for st in stores:
+        for st in opened:
             st.close()
     return out, dev, total
+
+
+def plan_pieces(plan: FourStepPlan) -> dict[str, list[tuple[int, int]]]:
+    """The independent pieces of each pass, in order."""
+    N1, N2 = plan.N1, plan.N2
+    slabs = [(c, c + plan.slab) for c in range(0, N1, plan.slab)]
+    leads = plan.H + 1
+    return {
+        "pack": [(r, min(r + plan.fill, N2)) for r in range(0, N2, plan.fill)],
+        "first": slabs,
+        "middle": [(r, min(r + plan.rows, leads)) for r in range(0, leads, plan.rows)],
+        "inverse": slabs,
+    }
 
 
 def assemble(plan: FourStepPlan, pieces: Any, slabs: list[tuple[int, int]],

@@ -115,13 +115,13 @@ def _bits(source: Any, what: str) -> Any:
     return _Bits(source, what)
 
 
-def _task_fill(plan: Any, data: Any, seed: Any, dst: Any, r0: int, r1: int) -> None:
+def _task_pack(plan: Any, data: Any, seed: Any, dst: Any, r0: int, r1: int) -> None:
     from dicert import _fourstep
 
     _fault_point()
     x, s = _bits(data, "input"), _bits(seed, "seed")
     try:
-        _fourstep.fill_rows(plan, x, s, dst, r0, r1)
+        _fourstep.pack_sources(plan, x, s, dst, r0, r1)
     finally:
         x.close()
         s.close()
@@ -135,17 +135,7 @@ def _task_first(plan: Any, packed: Any, dst: Any, c0: int, c1: int) -> None:
     try:
         _fourstep.columns_first(plan, packed, dst, c0, c1)
     finally:
-        dst.close()
-
-
-def _task_forward(plan: Any, src: Any, dst: Any, c0: int, c1: int) -> None:
-    from dicert import _fourstep
-
-    _fault_point()
-    try:
-        _fourstep.columns_forward(plan, src, dst, c0, c1)
-    finally:
-        src.close()
+        packed.close()
         dst.close()
 
 
@@ -185,12 +175,8 @@ def four_step(plan: Any, data: Any, seed: Any, *, scheduler: Any, temp_dir: Any 
 
     from dicert import _fourstep
 
-    N1, N2 = plan.N1, plan.N2
-    slabs = [(c, min(c + plan.slab, N1)) for c in range(0, N1, plan.slab)]
-    leads = N2 // 2 + 1
-    rowblocks = [(r, min(r + plan.rows, leads)) for r in range(0, leads, plan.rows)]
-    fills = [(r, min(r + plan.fill, N2)) for r in range(0, N2, plan.fill)]
-    total = 2 * len(slabs) + len(rowblocks) + (0 if plan.packed else len(fills))
+    pieces = _fourstep.plan_pieces(plan)
+    total = sum(len(v) for v in pieces.values())
     done = 0
 
     def tick() -> None:
@@ -201,43 +187,34 @@ def four_step(plan: Any, data: Any, seed: Any, *, scheduler: Any, temp_dir: Any 
 
     work = Path(temp_dir) if temp_dir is not None else Path(tempfile.gettempdir())
     tag = f"dicert-extract-{uuid.uuid4().hex[:12]}"
-    as_source = (lambda v: os.fspath(Path(v).resolve())
-                 if isinstance(v, (str, os.PathLike)) else v)
-    stores: list[Any] = []
+    d, sd = (os.fspath(Path(v).resolve()) if isinstance(v, (str, os.PathLike)) else v
+             for v in (data, seed))
+    opened: list[Any] = []
     with client_for(scheduler) as client:
         try:
-            stores.append(_fourstep.named_store(plan, work))
-            stores.append(_fourstep.named_store(plan, work))
-            a, b = stores
-            if plan.packed:
-                x, s = _bits(data, "input"), _bits(seed, "seed")
-                try:
-                    packed = _fourstep.packed_sources(plan, x, s)
-                finally:
-                    x.close()
-                    s.close()
-                [pf] = client.scatter([packed], broadcast=True, hash=False)
-                _run_all(client, _task_first, [(plan, pf, a, c0, c1) for c0, c1 in slabs],
-                         f"{tag}-first", tick)
-                pf.release()
-                del packed
-            else:
-                d, sd = as_source(data), as_source(seed)
-                if not isinstance(d, str):
-                    [d] = client.scatter([d], broadcast=True, hash=False)
-                if not isinstance(sd, str):
-                    [sd] = client.scatter([sd], broadcast=True, hash=False)
-                _run_all(client, _task_fill, [(plan, d, sd, b, r0, r1) for r0, r1 in fills],
-                         f"{tag}-fill", tick)
-                _run_all(client, _task_forward, [(plan, b, a, c0, c1) for c0, c1 in slabs],
-                         f"{tag}-forward", tick)
-            _run_all(client, _task_middle, [(plan, a, b, r0, r1) for r0, r1 in rowblocks],
-                     f"{tag}-middle", tick)
-            pieces = _run_all(client, _task_inverse, [(plan, b, c0, c1) for c0, c1 in slabs],
-                              f"{tag}-inverse", tick)
-            out, dev = _fourstep.assemble(plan, pieces, slabs)
+            packed = _fourstep.open_packed(plan, work, named=True)
+            opened.append(packed)
+            a = _fourstep.named_store(plan, plan.N2, work)
+            opened.append(a)
+            b = _fourstep.named_store(plan, plan.H + 1, work)
+            opened.append(b)
+            # Files are opened by the workers; bytes are sent to them once.
+            if not isinstance(d, str):
+                [d] = client.scatter([d], broadcast=True, hash=False)
+            if not isinstance(sd, str):
+                [sd] = client.scatter([sd], broadcast=True, hash=False)
+            _run_all(client, _task_pack, [(plan, d, sd, packed, r0, r1)
+                                          for r0, r1 in pieces["pack"]], f"{tag}-pack", tick)
+            _run_all(client, _task_first, [(plan, packed, a, c0, c1)
+                                           for c0, c1 in pieces["first"]], f"{tag}-first", tick)
+            _run_all(client, _task_middle, [(plan, a, b, r0, r1)
+                                            for r0, r1 in pieces["middle"]], f"{tag}-middle", tick)
+            got = _run_all(client, _task_inverse, [(plan, b, c0, c1)
+                                                   for c0, c1 in pieces["inverse"]],
+                           f"{tag}-inverse", tick)
+            out, dev = _fourstep.assemble(plan, got, pieces["inverse"])
         finally:
-            for st in stores:
+            for st in opened:
                 st.close()
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(st.path)

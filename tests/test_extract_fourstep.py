@@ -32,7 +32,7 @@ from test_extract import oracle, random_case
         (5000, 3000, 1),  # N2 = 16 (even: row N2/2 pairs with itself)
         (5000, 3000, 1 << 29),  # whole array in memory
         (36764, 200, 1),  # N2 = 40, most rows hold no wanted output
-        (12000, 2500, 500_000),  # packed sources in memory, work array in files
+        (12000, 2500, 500_000),  # larger blocks, work array in files
     ],
 )
 def test_four_step_matches_dense_oracle(n, m, budget, rng, tmp_path):
@@ -103,19 +103,23 @@ def test_default_budget_does_not_grow_with_the_input():
         assert plan.L >= n + n // 2 - 1
         assert 16 * plan.N2 * plan.slab <= MEMORY_BUDGET // 8 or plan.slab == 8
         assert 16 * plan.N1 * plan.rows <= MEMORY_BUDGET // 8 or plan.rows == 1
-        assert plan.packed == (plan.L // 4 <= MEMORY_BUDGET // 8)
+        assert plan.N1 * plan.fill <= 4 << 20 or plan.fill == 1
         assert not plan.in_memory or 16 * plan.L <= MEMORY_BUDGET // 4
 
 
 def test_named_work_file_is_private(tmp_path):
+    # The named files used with a cluster: private, and their space reserved up front.
     plan = _fourstep.plan_four_step(5000, 3000, 1)
-    store = _fourstep.named_store(plan, tmp_path)
+    stores = [_fourstep.named_store(plan, plan.N2, tmp_path),
+              _fourstep.open_packed(plan, tmp_path, named=True)]
     try:
-        assert os.stat(store.path).st_mode & 0o777 == 0o600
-        assert os.path.getsize(store.path) == 16 * plan.L
+        for st, size in zip(stores, (16 * plan.L, plan.L // 4), strict=True):
+            assert os.stat(st.path).st_mode & 0o777 == 0o600
+            assert os.path.getsize(st.path) == size
     finally:
-        store.close()
-        os.unlink(store.path)
+        for st in stores:
+            st.close()
+            os.unlink(st.path)
 
 
 def test_bad_strategy():
