@@ -42,7 +42,7 @@ import numpy as np
 #: Bytes per complex value of the working array.
 _C = 16
 #: Target size in bytes of one block of rows or columns.
-_PIECE = 4 << 20
+_PIECE = 8 << 20
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -81,7 +81,10 @@ def plan_four_step(n: int, m: int, budget: int, row_length: int | None = None) -
     # Blocks of a few MB (cache-friendly; measured faster than larger ones), within the budget.
     piece = min(_PIECE, budget // 8)
     slab = 1 << max(3, min(N1.bit_length() - 1, (piece // (_C * N2)).bit_length() - 1))
-    rows = max(1, piece // (_C * N1))
+    # Row blocks touch every slab: at least 64 KB per slab per read or write (fewer system
+    # calls), within half the budget for the ~6 arrays of a block.
+    rows = max(1, min(budget // (12 * _C * N1),
+                      max(piece // (_C * N1), (64 << 10) // (_C * slab))))
     fill = max(1, min(N2, piece // N1))
     in_memory = _C * N1 * N2 <= budget // 4
     return FourStepPlan(n=n, m=m, N1=N1, N2=N2, slab=slab, rows=rows, fill=fill,
