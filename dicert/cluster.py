@@ -348,5 +348,6 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
               else np.zeros((2,) * 5, dtype=np.int64))
     return LogSummary(trials=int(sum(trials)), counts=counts, block_trials=block_trials,
                       block_counts=block_counts, has_test_flag=log.has_test_flag,
-                      sha256=_log_digest(infos), size_bytes=int(sum(p.size_bytes for p in parts)),
+                      sha256=_log_digest(infos),
+                      size_bytes=int(sum(p.size_bytes for p in parts)),
                       files=tuple(infos))

@@ -96,15 +96,16 @@ def test_guard_failure_recomputes_exactly(rng):
 
 
 def test_default_budget_does_not_grow_with_the_input():
-    # Plans for 2^24 ... 2^32 input bits all keep their blocks within the default budget.
-    for k in (24, 28, 30, 32):
+    # Plans for 2^24 ... 2^34 input bits all keep their blocks within fixed sizes.
+    piece = _fourstep._PIECE
+    for k in (24, 28, 30, 32, 34):
         n = 1 << k
         plan = _fourstep.plan_four_step(n, n // 2, MEMORY_BUDGET)
         assert plan.L >= n + n // 2 - 1
-        assert 16 * plan.N2 * plan.slab <= MEMORY_BUDGET // 8 or plan.slab == 8
-        assert 16 * plan.N1 * plan.rows <= MEMORY_BUDGET // 8 or plan.rows == 1
-        assert plan.N1 * plan.fill <= 4 << 20 or plan.fill == 1
-        assert not plan.in_memory or 16 * plan.L <= MEMORY_BUDGET // 4
+        assert 16 * plan.N2 * plan.slab <= piece or plan.slab == 8
+        assert 12 * 16 * plan.N1 * plan.rows <= MEMORY_BUDGET or plan.rows == 1
+        assert plan.N1 * plan.fill <= piece
+        assert not plan.in_memory
 
 
 def test_named_work_file_is_private(tmp_path):

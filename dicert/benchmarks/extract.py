@@ -99,7 +99,8 @@ def _versus_naive(tmp: Path, quick: bool) -> list[BenchResult]:
     same = ours_out.read_bytes() == naive_out.read_bytes()
     size = f"n = {_pow(n)}, m = {_pow(m)}"
     res = [
-        BenchResult(suite=SUITE, name=f"whole-process extract / naive full-length FFT script ({size})",
+        BenchResult(suite=SUITE,
+                    name=f"whole-process extract / naive full-length FFT script ({size})",
                     value=t_ours / t_naive, unit="x", target=0.5, higher_is_better=False,
                     note=f"{t_ours:.2f} s vs {t_naive:.2f} s, best of {repeat}"),
         BenchResult(suite=SUITE, name="identical output to the naive script", value=float(same),
