@@ -187,7 +187,8 @@ def four_step(plan: Any, data: Any, seed: Any, *, scheduler: Any, temp_dir: Any 
 
     work = Path(temp_dir) if temp_dir is not None else Path(tempfile.gettempdir())
     tag = f"dicert-extract-{uuid.uuid4().hex[:12]}"
-    d, sd = (os.fspath(Path(v).resolve()) if isinstance(v, (str, os.PathLike)) else v
+    d, sd = (os.fspath(Path(v).resolve()) if isinstance(v, (str, os.PathLike))
+             else bytes(v) if isinstance(v, (memoryview, bytearray)) else v
              for v in (data, seed))
     opened: list[Any] = []
     with client_for(scheduler) as client:
