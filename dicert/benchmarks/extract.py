@@ -202,13 +202,50 @@ def _cluster(tmp: Path) -> list[BenchResult]:
         t0 = time.perf_counter()
         remote = extract_toeplitz(raw, seed, m, scheduler=address, temp_dir=tmp)
         t_remote = time.perf_counter() - t0
+        counting = _cluster_counting(tmp, address)
     finally:
         if cluster is not None:
             cluster.close()
-    return [
+    return counting + [
         BenchResult(suite=SUITE, name="cluster extract n = 2^24: speedup over one process",
                     value=t_local / t_remote, unit="x",
                     note=f"{t_remote:.2f} s on the cluster vs {t_local:.2f} s in one thread"),
         BenchResult(suite=SUITE, name="cluster extract: identical bits", unit="bool",
                     value=float(remote.output == local.output), target=1.0),
+    ]
+
+
+def _cluster_counting(tmp: Path, address: str) -> list[BenchResult]:
+    """Counting and hashing a 16-file binary log (invented random trials) locally and on the
+    cluster (one task per file)."""
+    import time
+
+    from dicert import cluster
+    from dicert.logs import TrialArrays, summarize_log, write_log
+
+    rng = np.random.default_rng(3)
+    d = tmp / "log16"
+    d.mkdir()
+    per_file = 2 * 10**6
+    for i in range(16):
+        x, y, a, b = rng.integers(0, 2, (4, per_file), dtype=np.uint8)
+        write_log(d / f"part{i:02d}.btl", TrialArrays(x=x, y=y, a=a, b=b))
+    summarize_log(d, digest=True)  # warm the page cache
+    t0 = time.perf_counter()
+    here = summarize_log(d, digest=True)
+    t_here = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    there = cluster.summarize_log(d, scheduler=address)
+    t_there = time.perf_counter() - t0
+    trials = 16 * per_file
+    same = bool(np.array_equal(here.counts, there.counts)
+                and [f.sha256 for f in here.files] == [f.sha256 for f in there.files])
+    return [
+        BenchResult(suite=SUITE, name="16-file log counted and hashed, one process",
+                    value=trials / t_here / 1e6, unit="Mtrials/s", note=f"{t_here:.2f} s"),
+        BenchResult(suite=SUITE, name="16-file log counted and hashed on the cluster",
+                    value=trials / t_there / 1e6, unit="Mtrials/s",
+                    note=f"{t_there:.2f} s; speedup {t_here / t_there:.2f}x"),
+        BenchResult(suite=SUITE, name="16-file log: identical counts and digests on the cluster",
+                    value=float(same), unit="bool", target=1.0),
     ]
