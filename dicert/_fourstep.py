@@ -41,8 +41,8 @@ import numpy as np
 
 #: Bytes per complex value of the working array.
 _C = 16
-#: Target size in bytes of one block of rows or columns.
-_PIECE = 8 << 20
+#: Target size in bytes of one block of rows or columns (a pass holds about six at once).
+_PIECE = 32 << 20
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -78,14 +78,12 @@ def plan_four_step(n: int, m: int, budget: int, row_length: int | None = None) -
         if N1 < 8 or N1 & (N1 - 1):
             raise ValueError("row_length must be a power of two >= 8")
     N2 = _fast_length(-(-total // N1))
-    # Blocks of a few MB (cache-friendly; measured faster than larger ones), within the budget.
-    piece = min(_PIECE, budget // 8)
+    # Blocks of a fixed size (not growing with n, so memory stays flat), within the budget:
+    # a pass holds about six blocks at once.
+    piece = max(1, min(_PIECE, budget // 12))
     slab = 1 << max(3, min(N1.bit_length() - 1, (piece // (_C * N2)).bit_length() - 1))
-    # Row blocks touch every slab: at least 64 KB per slab per read or write (fewer system
-    # calls), within half the budget for the ~6 arrays of a block.
-    rows = max(1, min(budget // (12 * _C * N1),
-                      max(piece // (_C * N1), (64 << 10) // (_C * slab))))
-    fill = max(1, min(N2, piece // N1))
+    rows = max(1, piece // (_C * N1))
+    fill = max(1, min(N2, piece // (4 * N1)))
     in_memory = _C * N1 * N2 <= budget // 4
     return FourStepPlan(n=n, m=m, N1=N1, N2=N2, slab=slab, rows=rows, fill=fill,
                         in_memory=in_memory)

@@ -103,8 +103,9 @@ def test_default_budget_does_not_grow_with_the_input():
         plan = _fourstep.plan_four_step(n, n // 2, MEMORY_BUDGET)
         assert plan.L >= n + n // 2 - 1
         assert 16 * plan.N2 * plan.slab <= piece or plan.slab == 8
-        assert 12 * 16 * plan.N1 * plan.rows <= MEMORY_BUDGET or plan.rows == 1
-        assert plan.N1 * plan.fill <= piece
+        assert 16 * plan.N1 * plan.rows <= piece or plan.rows == 1
+        assert 4 * plan.N1 * plan.fill <= piece
+        assert 12 * piece <= MEMORY_BUDGET
         assert not plan.in_memory
 
 
