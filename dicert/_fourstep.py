@@ -450,41 +450,61 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
 
 def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir: Any = None,
               progress: Any = None) -> tuple[bytes, float, int]:
-    """The whole computation in this process; returns (output bytes, max deviation, pieces)."""
+    """The whole computation in this process; returns (output bytes, max deviation, pieces).
+
+    With ``workers`` > 1, two pieces of a pass run at once on two threads (numpy, the FFTs and
+    the file reads and writes release the GIL), so one piece's reads and writes overlap the
+    other's arithmetic.
+    """
+    import threading
+    from concurrent.futures import ThreadPoolExecutor
+
     pieces = plan_pieces(plan)
     total = sum(len(v) for v in pieces.values())
     done = 0
+    lock = threading.Lock()
 
     def tick() -> None:
         nonlocal done
-        done += 1
-        if progress is not None:
-            progress(done, total)
+        with lock:
+            done += 1
+            if progress is not None:
+                progress(done, total)
+
+    threads = 2 if workers > 1 else 1
+    fft_workers = 1 if threads > 1 else workers
+    pool = ThreadPoolExecutor(max_workers=threads)
+
+    def each(fn: Any, jobs: list[tuple[int, int]]) -> list[Any]:
+        def run(job: tuple[int, int]) -> Any:
+            res = fn(*job)
+            tick()
+            return res
+        return list(pool.map(run, jobs))
 
     # Separate work files: a pass never overwrites pages it wrote, which the kernel may still
     # be writing back to disk (overwriting those stalls); in memory one array is enough.
     opened: list[Any] = []
     try:
+        x.read_bytes(0, 1)  # open the sources here, not in two threads at once
+        s.read_bytes(0, 1)
         packed = open_packed(plan, temp_dir)
         opened.append(packed)
-        for r0, r1 in pieces["pack"]:
-            pack_sources(plan, x, s, packed, r0, r1)
-            tick()
+        each(lambda r0, r1: pack_sources(plan, x, s, packed, r0, r1), pieces["pack"])
         a = open_store(plan, plan.N2, temp_dir)
         opened.append(a)
-        for c0, c1 in pieces["first"]:
-            columns_first(plan, packed, a, c0, c1, workers)
-            tick()
+        each(lambda c0, c1: columns_first(plan, packed, a, c0, c1, fft_workers),
+             pieces["first"])
         packed.close()
         b = a if plan.in_memory else open_store(plan, plan.H + 1, temp_dir)
         opened.append(b)
-        for r0, r1 in pieces["middle"]:
-            rows_middle(plan, a, b, r0, r1, workers)
-            tick()
+        each(lambda r0, r1: rows_middle(plan, a, b, r0, r1, fft_workers), pieces["middle"])
         a.close()
-        out, dev = assemble(plan, (columns_inverse(plan, b, c0, c1, workers)
-                                   for c0, c1 in pieces["inverse"]), pieces["inverse"], tick)
+        got = each(lambda c0, c1: columns_inverse(plan, b, c0, c1, fft_workers),
+                   pieces["inverse"])
+        out, dev = assemble(plan, got, pieces["inverse"])
     finally:
+        pool.shutdown()
         for st in opened:
             st.close()
     return out, dev, total
