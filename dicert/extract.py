@@ -26,7 +26,7 @@ Three strategies give the same bits:
   real FFTs in float64.
 * Larger inputs (default): ONE cyclic convolution of length L >= n + m - 1 by the four-step
   FFT of :mod:`dicert._fourstep` (Bailey 1990): the seed and the input ride in one complex
-  vector, the transform runs through blocks of rows and columns of a few MB, and the rest of
+  vector, the transform runs through blocks of rows and columns of 32 MB, and the rest of
   the work array sits in private temporary files. Time grows like (n + m) log(n + m); memory
   stays within ``memory_budget`` (default :data:`MEMORY_BUDGET`, whatever n is). The pieces
   of each pass are independent, so they can also run as tasks on a dask cluster
@@ -40,7 +40,7 @@ Three strategies give the same bits:
 
 Every value is rounded to the nearest integer and reduced mod 2.
 
-Exactness: the convolution values are integers in [0, min(M, B)]. By the standard error
+Exactness: the convolution values are integers in [0, min(n, m)] (in [0, min(M, B)] per tile). By the standard error
 analysis of the FFT (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed.,
 SIAM 2002, sec. 24.1) the computed cyclic convolution of 0/1 vectors of length <= F differs
 from the exact one by at most about 5 * log2(F) * eta * B**1.5 in the 2-norm, with eta a small
