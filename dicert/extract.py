@@ -40,7 +40,8 @@ Three strategies give the same bits:
 
 Every value is rounded to the nearest integer and reduced mod 2.
 
-Exactness: the convolution values are integers in [0, min(n, m)] (in [0, min(M, B)] per tile). By the standard error
+Exactness: the convolution values are integers in [0, min(n, m)] ([0, min(M, B)] per
+tile). By the standard error
 analysis of the FFT (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed.,
 SIAM 2002, sec. 24.1) the computed cyclic convolution of 0/1 vectors of length <= F differs
 from the exact one by at most about 5 * log2(F) * eta * B**1.5 in the 2-norm, with eta a small
