@@ -76,8 +76,9 @@ BITS_NAME = "random.bits"
 #: Name of the audit record inside ``out_dir``.
 RECORD_NAME = "record.json"
 
-#: Keep harvested raw bits in memory below this many bytes, spill to a temp file above.
-_SPILL_BYTES = 64 << 20
+#: Keep harvested raw bits in memory below this many bytes, spill to a private temp file
+#: (mode 0600, removed when done) above, so memory does not grow with the log.
+_SPILL_BYTES = 8 << 20
 #: Trials per streamed chunk.
 _CHUNK_TRIALS = 1 << 22
 
