@@ -46,7 +46,8 @@ analysis of the FFT (Higham, *Accuracy and Stability of Numerical Algorithms*, 2
 SIAM 2002, sec. 24.1) the computed cyclic convolution of 0/1 vectors of length <= F differs
 from the exact one by at most about 5 * log2(F) * eta * B**1.5 in the 2-norm, with eta a small
 multiple of the unit roundoff 1.1e-16; that bound is a worst case (for one transform of length
-2**31 it exceeds 1/2), and the observed errors are far smaller (1.5e-8 at n = 2**28, m = 2**27 in
+2**31 it exceeds 1/2), and the observed errors are far smaller (1.5e-8 at n = 2**28 and
+6e-8 at n = 2**30, m = n / 2, in
 the benchmarks). Exactness therefore rests on the run-time guard, not on the bound: every
 value is checked, and if any strays more than ``rounding_threshold`` (0.25) from an integer,
 the four-step result is discarded and the bits recomputed by tiles, whose blocks that fail
