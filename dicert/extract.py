@@ -598,6 +598,8 @@ def _four_step(x: _Bits, s: _Bits, n: int, m: int, budget: int, thr: float, work
     """One long cyclic convolution by the four-step FFT; None if the rounding guard failed."""
     from dicert import _fourstep
 
+    if temp_dir is not None and not Path(temp_dir).is_dir():
+        raise ParameterError(f"{temp_dir}: not a directory (temp_dir for the work files)")
     fplan = _fourstep.plan_four_step(n, m, budget)
     if scheduler is None:
         scheduler = os.environ.get("DICERT_SCHEDULER") or None

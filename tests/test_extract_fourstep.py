@@ -129,6 +129,8 @@ def test_bad_strategy():
         extract_toeplitz(b"\x01", b"\x01", 1, strategy="magic")
     with pytest.raises(ParameterError, match="memory_budget"):
         extract_toeplitz(b"\x01", b"\x01", 1, memory_budget=0)
+    with pytest.raises(ParameterError, match="not a directory"):
+        extract_toeplitz(b"\x01", b"\x01", 1, strategy="four-step", temp_dir="/nonexistent/x")
 
 
 def test_progress_counts_every_piece(rng):
