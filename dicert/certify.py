@@ -971,6 +971,9 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         what was read; a record is still written).
     poll_s, idle_timeout_s : float
         Follow mode: pause between looks for new bytes, and the idle timeout (None: none).
+    scheduler : str or dask.distributed.Client, optional
+        Run the extraction's pieces on a dask cluster (:mod:`dicert.cluster`; default
+        ``$DICERT_SCHEDULER``, else this process). Same bits and record.
 
     Returns
     -------

@@ -343,6 +343,8 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         The output bits file; its length and digest are compared.
     public_key : key object or path, optional
         The operator's Ed25519 public key; without it the record's embedded key is used.
+    scheduler : str or dask.distributed.Client, optional
+        Re-run the extraction's pieces on a dask cluster (:mod:`dicert.cluster`).
 
     Returns
     -------
