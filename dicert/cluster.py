@@ -32,7 +32,8 @@ from dicert.errors import DicertError
 
 #: Environment variable naming the default scheduler address.
 ENV_SCHEDULER = "DICERT_SCHEDULER"
-#: Times the engine may re-run a task whose worker died (dask's own default is 3).
+#: Times a task that raised an error is re-run (a task whose worker died is re-run by the
+#: scheduler itself, up to its ``allowed-failures`` setting).
 RETRIES = 2
 
 

@@ -601,10 +601,10 @@ def _four_step(x: _Bits, s: _Bits, n: int, m: int, budget: int, thr: float, work
     if temp_dir is not None and not Path(temp_dir).is_dir():
         raise ParameterError(f"{temp_dir}: not a directory (temp_dir for the work files)")
     fplan = _fourstep.plan_four_step(n, m, budget)
-    if scheduler is None:
-        scheduler = os.environ.get("DICERT_SCHEDULER") or None
+    from dicert import cluster
+
+    scheduler = cluster.scheduler_from_env(scheduler)
     if scheduler is not None:
-        from dicert import cluster
 
         output, max_dev, pieces = cluster.four_step(fplan, data, seed, scheduler=scheduler,
                                                     temp_dir=temp_dir, progress=progress)
