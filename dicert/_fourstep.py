@@ -104,8 +104,8 @@ class ArrayStore:
     def put_rows(self, r0: int, v: np.ndarray) -> None:
         self.a[r0:r0 + v.shape[0]] = v
 
-    def cols(self, c0: int, c1: int) -> np.ndarray:
-        return self.a[:, c0:c1].copy()
+    def cols(self, c0: int, c1: int, nrows: int | None = None) -> np.ndarray:
+        return self.a[:nrows, c0:c1].copy()
 
     def put_cols(self, c0: int, v: np.ndarray) -> None:
         self.a[:, c0:c0 + v.shape[1]] = v
@@ -167,10 +167,11 @@ class FileStore:
         for q in range(self.N1 // w):
             self._write(v[:, q * w:(q + 1) * w], self._slab_offset(q) + r0 * w * _C)
 
-    def cols(self, c0: int, c1: int) -> np.ndarray:
+    def cols(self, c0: int, c1: int, nrows: int | None = None) -> np.ndarray:
+        """Columns [c0, c1) (one whole slab), rows 0 .. nrows - 1 (default all)."""
         if c0 % self.w or c1 - c0 != self.w:
             raise ValueError("column blocks must be whole slabs")
-        out = np.empty((self.N2, self.w), dtype=np.complex128)
+        out = np.empty((self.N2 if nrows is None else nrows, self.w), dtype=np.complex128)
         self._read(out, self._slab_offset(c0 // self.w))
         return out
 
@@ -423,7 +424,7 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
     J = -(-m // N1)
     N2, H = plan.N2, plan.H
     t = np.empty((N2, c1 - c0), dtype=np.complex128)
-    t[:H + 1] = src.cols(c0, c1)[:H + 1]
+    t[:H + 1] = src.cols(c0, c1, H + 1)
     # Q(-k) = -conj(Q(k)) for the stored Q = 4i x (spectrum of a real sequence), hence for the
     # row inverse transforms E: E[N2 - k2, j1] = -exp(-2 pi i j1 / N1) conj(E[k2, j1]).
     if N2 - 1 > H:
@@ -482,8 +483,8 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
             return res
         return list(pool.map(run, jobs))
 
-    # Separate work files: a pass never overwrites pages it wrote, which the kernel may still
-    # be writing back to disk (overwriting those stalls); in memory one array is enough.
+    # One work array: the middle pass writes its rows in place (each row is read once, before
+    # it is overwritten, and the threads' row blocks are disjoint).
     opened: list[Any] = []
     try:
         x.read_bytes(0, 1)  # open the sources here, not in two threads at once
@@ -496,11 +497,8 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
         each(lambda c0, c1: columns_first(plan, packed, a, c0, c1, fft_workers),
              pieces["first"])
         packed.close()
-        b = a if plan.in_memory else open_store(plan, plan.H + 1, temp_dir)
-        opened.append(b)
-        each(lambda r0, r1: rows_middle(plan, a, b, r0, r1, fft_workers), pieces["middle"])
-        a.close()
-        got = each(lambda c0, c1: columns_inverse(plan, b, c0, c1, fft_workers),
+        each(lambda r0, r1: rows_middle(plan, a, a, r0, r1, fft_workers), pieces["middle"])
+        got = each(lambda c0, c1: columns_inverse(plan, a, c0, c1, fft_workers),
                    pieces["inverse"])
         out, dev = assemble(plan, got, pieces["inverse"])
     finally:
