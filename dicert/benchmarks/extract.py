@@ -9,7 +9,7 @@ best of ``repeat``; their outputs must be byte-identical.
 The scaling series runs ``dicert extract`` for n = 2^20 ... 2^28 (quick: 2^20 ... 2^22) at
 m = n / 2 and fits the growth exponent of the time (least squares of log t on log n over
 n >= 2^22, where start-up no longer dominates). n = 2^30 runs when ``DICERT_BENCH_HUGE=1``
-(it writes about 40 GB of work files). Whole-process ``certify`` on simulated 1e7- and
+(it writes about 26 GB of work files). Whole-process ``certify`` on simulated 1e7- and
 2e8-trial binary logs shows the end-to-end time and that peak memory stays flat. With
 ``DICERT_BENCH_SCHEDULER=ADDRESS`` (or the optional extra ``dicert[cluster]`` installed, on a
 2-worker LocalCluster started here) the n = 2^24 run is repeated on the cluster.
