@@ -79,6 +79,48 @@ def _pool():
     return ThreadPoolExecutor(max_workers=1, thread_name_prefix="dicert-count")
 
 
+def count_pairs_numpy(codes: np.ndarray, prev: int = -1) -> tuple[np.ndarray, int]:
+    """Reference implementation of :func:`count_pairs` with ``np.bincount``."""
+    codes = np.asarray(codes, dtype=np.uint8)
+    out = np.zeros(64, dtype=np.int64)
+    if codes.size == 0:
+        return out, prev
+    s = (codes >> 2) & 7
+    if prev >= 0:
+        out[((prev & 7) << 3) | int(s[0])] += 1
+    if s.size > 1:
+        out += np.bincount((s[:-1] << 3) | s[1:], minlength=64)[:64]
+    return out, int(s[-1])
+
+
+def count_pairs(codes: np.ndarray, prev: int = -1) -> tuple[np.ndarray, int]:
+    """Counts of consecutive settings symbols in a chunk of trial codes.
+
+    A trial's settings symbol is ``(code >> 2) & 7`` = 4 t + 2 x + y. Returns ``(pairs,
+    last)``: ``pairs[8 * s + s']`` counts trials with symbol s followed by symbol s' (the
+    pair across the chunk boundary included when ``prev``, the symbol of the trial before the
+    chunk, is >= 0), and the symbol of the chunk's last trial (carry it to the next chunk).
+    """
+    codes = np.ascontiguousarray(codes, dtype=np.uint8)
+    fn = _c_pairs()
+    if fn is None:
+        return count_pairs_numpy(codes, prev)
+    out = np.zeros(64, dtype=np.int64)
+    last = int(fn(codes, int(prev), out))
+    return out, last
+
+
+@functools.cache
+def _c_pairs():
+    if os.environ.get("DICERT_PURE_PYTHON"):
+        return None
+    try:
+        from dicert import _ccount
+    except ImportError:  # pragma: no cover - extension not built on this install
+        return None
+    return getattr(_ccount, "count_pairs", None)
+
+
 def kernel_name() -> str:
     """Which counting kernel is in use (for benchmark reports)."""
     return "C" if _c_kernel() is not None else "numpy-bincount"

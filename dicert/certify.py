@@ -8,14 +8,21 @@ This is the one-call recipe the ``dicert certify`` command uses. It
    output directory. With method "pef" on a single binary log, reading stops at the trial
    where the outcome is decided and the record covers exactly the bytes read (see
    *Log scope*); ``follow`` waits for a growing log;
-3. estimates the CHSH value (:func:`dicert.estimate.estimate_chsh`, informational) and runs the
+3. checks the log against the protocol's declared design (:func:`dicert.design.check_design`:
+   test-round fraction, settings distribution, serial independence, physical range, declared
+   n; a failed check aborts the run with that reason), refuses a multi-file log holding the
+   same data twice or mixing formats, estimates the CHSH value
+   (:func:`dicert.estimate.estimate_chsh`, informational) and runs the
    protocol's finite-size method on the counts (:func:`dicert.finite.certify_counts`), which
    decides accepted/aborted against the PRE-DECLARED threshold and bounds the min-entropy;
+   before extraction the seed is checked (:func:`dicert.design.seed_problems`) and after it
+   the output and the raw outcomes are screened (:func:`dicert.design.output_screens`): a
+   gross failure withholds the bits (status "withheld", the record is still written);
 4. on acceptance sizes the output with the leftover hash lemma
    (:func:`dicert.extract.lhl_output_length`) and runs the Toeplitz extractor;
-5. writes the bits file and the signed record atomically (temporary files renamed into place
-   only at the very end; nothing is left behind on failure) and, with ``chain``, appends the
-   record to a beacon chain.
+5. writes the bits file and the signed record into a complete folder next to ``out_dir`` and
+   renames it into place in one step (with ``chain``, after linking the record into the
+   beacon chain, the commit point); see :mod:`dicert._outputs`.
 
 An abort is a normal outcome: status ``"aborted"``, 0 output bits, a record is still written.
 
@@ -45,7 +52,7 @@ even when the PEF run was decided earlier; the success trial is in the finite-si
 Every reader stops at the same trial however the bytes arrive (a trial outside the settings
 model stops the run at that very trial).
 
-Exit codes of the CLI: 0 certified, 3 aborted, 2 bad input, 1 verification failure.
+Exit codes of the CLI: 0 certified, 3 aborted, 5 withheld, 2 bad input, 1 verification failure.
 """
 
 from __future__ import annotations
@@ -65,12 +72,14 @@ from typing import Any
 import numpy as np
 
 from dicert import __version__
-from dicert._io import read_user_file, write_temp_sibling
+from dicert._io import read_user_file
 from dicert._plain import plain
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 
 #: Exit code of ``dicert certify`` when the protocol aborts (a normal, recorded outcome).
 EXIT_ABORTED = 3
+#: Exit code when the output screens failed grossly: record written, bits withheld.
+EXIT_WITHHELD = 5
 #: Name of the raw-randomness output file inside ``out_dir``.
 BITS_NAME = "random.bits"
 #: Name of the audit record inside ``out_dir``.
@@ -86,7 +95,9 @@ ASSUMPTIONS = (
     ("No communication between the two stations during a trial (locality / no signalling "
     "between the measurement devices within each round)."),
     ("Measurement settings are chosen independently of the devices and of any adversary, "
-    "with the distribution declared in the protocol."),
+    "with the distribution declared in the protocol, and the round type and settings of each "
+    "round stay unknown to the devices until that round (the design section of the record "
+    "lists what was checked on the data; the rest is assumed)."),
     ("The classical processing (logging, this software, the machine running it) is trusted "
     "and the log faithfully records the settings and outcomes of every trial in order."),
     "The extractor seed is uniformly random and independent of the devices and the raw bits.",
@@ -131,8 +142,14 @@ class LogScan:
     trials_read: int | None = None
     stopped_early: bool = False  # reading stopped because the outcome was decided
     stop_trial_index: int | None = None  # last trial read when stopped_early
-    ended_by: str = "end-of-log"  # "end-of-log" | "decision" | "idle-timeout"
+    ended_by: str = "end-of-log"  # "end-of-log" | "decision" | "idle-timeout" | "declared-trials"
     follow: dict | None = None  # FollowSpec.to_dict() of a --follow run
+    # Inputs of the design-conformance stage (dicert.design) and the input identity.
+    block_settings: Any = None  # (B, 8) settings-symbol counts (4t+2x+y) per block
+    pair_counts: Any = None  # (8, 8) consecutive settings symbols
+    trials_in_log: int | None = None  # trials present (> trials when n was declared)
+    file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
+    formats: tuple = ()  # format of each file
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -147,6 +164,7 @@ class Analysis:
     output_bits: int
     seed_bits_needed: int
     total_error: float
+    design: Any = None  # dicert.design.DesignReport
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -181,7 +199,9 @@ class CertifyResult:
 
     @property
     def exit_code(self) -> int:
-        return 0 if self.certified else EXIT_ABORTED
+        if self.certified:
+            return 0
+        return EXIT_WITHHELD if self.status == "withheld" else EXIT_ABORTED
 
 
 # --------------------------------------------------------------------------- harvesting
@@ -204,19 +224,24 @@ class _BitSink:
         if not data:
             return
         self._hash.update(data)
-        if self._fh is None and self._mem + len(data) > _SPILL_BYTES and self._spill_dir is not None:
-            self._spill_dir.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(prefix=".raw.", suffix=".part", dir=self._spill_dir)
-            self._fh = os.fdopen(fd, "wb")
-            self.path = Path(tmp)
-            for p in self._parts:
-                self._fh.write(p)
-            self._parts = []
-        if self._fh is not None:
-            self._fh.write(data)
-        else:
-            self._parts.append(data)
-            self._mem += len(data)
+        try:
+            if (self._fh is None and self._mem + len(data) > _SPILL_BYTES
+                    and self._spill_dir is not None):
+                self._spill_dir.mkdir(parents=True, exist_ok=True)
+                fd, tmp = tempfile.mkstemp(prefix=".raw.", suffix=".part", dir=self._spill_dir)
+                self._fh = os.fdopen(fd, "wb")
+                self.path = Path(tmp)
+                for p in self._parts:
+                    self._fh.write(p)
+                self._parts = []
+            if self._fh is not None:
+                self._fh.write(data)
+                return
+        except OSError as exc:  # disk full, quota: one line naming the spill folder
+            raise DicertError(f"{self.path or self._spill_dir}: cannot write the raw-bit "
+                              f"spill file ({exc.strerror or exc})") from None
+        self._parts.append(data)
+        self._mem += len(data)
 
     def add(self, bits: np.ndarray) -> None:
         if bits.size == 0:
@@ -338,6 +363,11 @@ class _PefFeed:
         self.offset0 = offset0  # byte offset of trial 0 in the file (for error messages)
         self.counts = np.zeros(32, dtype=np.int64)
         self.fed = 0  # trials consumed by the accumulator (index of the next trial)
+        from dicert.design import spec_of
+
+        self.blocks = _BlockTally(spec_of(protocol).block_trials)
+        self.pairs = np.zeros(64, dtype=np.int64)
+        self._prev = -1
         self._zero: np.ndarray | None = None
 
     @property
@@ -378,11 +408,43 @@ class _PefFeed:
         used = self.acc.trials_seen - start  # the whole piece unless a stop inside it
         self.fed = start + used
         self.counts += np.bincount(acc_piece[:used], minlength=32)
+        from dicert._kernels import count_pairs
+
+        pc, self._prev = count_pairs(piece[:used], self._prev)
+        self.pairs += pc
+        self.blocks.add(acc_piece[:used])
         if self.hasher is not None:
             self.hasher.update(piece[:used].tobytes())
         lo = max(self.first - start, 0)
         if used > lo:
             self.sink.add(harvest_bits(piece[lo:used], self.parties, self.rounds, self.has_t))
+
+
+class _BlockTally:
+    """Per-block counts of the settings symbol (code >> 2) & 7 = 4t + 2x + y."""
+
+    def __init__(self, block: int) -> None:
+        self.block = int(block)
+        self.rows: list[np.ndarray] = []
+        self.cur = np.zeros(8, dtype=np.int64)
+        self.fill = 0
+
+    def add(self, codes: np.ndarray) -> None:
+        sym = (np.asarray(codes, dtype=np.uint8) >> 2) & 7
+        pos = 0
+        while pos < sym.size:
+            take = min(self.block - self.fill, sym.size - pos)
+            self.cur += np.bincount(sym[pos:pos + take], minlength=8)
+            self.fill += take
+            pos += take
+            if self.fill == self.block:
+                self.rows.append(self.cur.copy())
+                self.cur[:] = 0
+                self.fill = 0
+
+    def result(self) -> np.ndarray:
+        rows = self.rows + ([self.cur.copy()] if self.fill else [])
+        return np.array(rows, dtype=np.int64).reshape(-1, 8)
 
 
 class _HeaderTap:
@@ -559,9 +621,14 @@ def _scan_binary_pef(path: Path, protocol: Any, sink: _BitSink, *,
     bytes_read = BINARY_HEADER_SIZE + feed.fed + (TRAILER.size if complete and count ==
                                                    COUNT_STREAMED else 0)
     stopped = end == "decision"
+    sha = hasher.hexdigest()
     return LogScan(
+        block_settings=feed.blocks.result(), pair_counts=feed.pairs.reshape(8, 8),
+        trials_in_log=feed.fed,
+        file_entries=({"name": path.name, "bytes": int(bytes_read), "sha256": sha},),
+        formats=("binary",),
         counts=feed.counts.reshape(2, 2, 2, 2, 2).copy(), trials=feed.fed,
-        sha256=hasher.hexdigest(), size_bytes=bytes_read, files=(path.name,),
+        sha256=sha, size_bytes=bytes_read, files=(path.name,),
         has_test_flag=feed.has_t, raw_bits=sink.bits, raw_sha256="",
         finite=feed.acc.result(complete=complete),
         scope="whole" if complete else "prefix", bytes_read=bytes_read, trials_read=feed.fed,
@@ -608,6 +675,12 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
         if len(files) != 1 or binary is None:
             raise ParameterError(f"{log}: --follow needs a single binary (.btl) log file, "
                                  "the format acquisition code appends to")
+    declared_limit = False
+    if binary is not None and prefix_trials is None and follow is None:
+        from dicert.design import declared_trials
+
+        prefix_trials = declared_trials(protocol)
+        declared_limit = prefix_trials is not None
     if binary is not None or prefix_trials is not None:
         if binary is None:
             raise ParameterError(f"{log}: a prefix-scoped record needs the single binary "
@@ -620,6 +693,8 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
         except BaseException:
             sink.discard()
             raise
+        if declared_limit and scan.ended_by == "limit":
+            scan = dataclasses.replace(scan, ended_by="declared-trials")
         return dataclasses.replace(scan, raw_bits=sink.bits, raw_sha256=raw_sha), sink
     return _scan_whole(log, parties, rounds, spill_dir=spill_dir, progress=progress,
                        protocol=protocol)
@@ -627,11 +702,14 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
 
 def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                 progress: Progress | None, protocol: Any) -> tuple[LogScan, _BitSink]:
+    from dicert.design import declared_trials, settings_symbol_counts, spec_of
     from dicert.logs import summarize_log
 
     sink = _BitSink(spill_dir)
     feed: _PefFeed | None = None
     pef = protocol is not None and protocol.method == "pef"
+    n_decl = declared_trials(protocol) if protocol is not None else None
+    block_trials = spec_of(protocol).block_trials
 
     def on_chunk(chunk: Any) -> None:
         nonlocal feed
@@ -651,7 +729,8 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
 
     try:
         summary = summarize_log(log, digest=True, chunk_trials=_CHUNK_TRIALS, on_chunk=on_chunk,
-                                progress=on_progress if progress is not None else None)
+                                progress=on_progress if progress is not None else None,
+                                block_trials=block_trials, max_trials=n_decl)
         finite = None
         if pef:
             if feed is None:  # pragma: no cover - readers reject logs without trials
@@ -661,12 +740,21 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
     except BaseException:
         sink.discard()
         raise
+    in_log = int(summary.trials_in_log if summary.trials_in_log is not None else summary.trials)
+    cut = n_decl is not None and in_log > n_decl
     scan = LogScan(counts=np.asarray(summary.counts, dtype=np.int64), trials=int(summary.trials),
                    sha256=str(summary.sha256), size_bytes=int(summary.size_bytes),
                    files=tuple(Path(f.path).name for f in summary.files),
                    has_test_flag=bool(summary.has_test_flag), raw_bits=sink.bits,
-                   raw_sha256=raw_sha, finite=finite, scope="whole",
-                   bytes_read=int(summary.size_bytes), trials_read=int(summary.trials))
+                   raw_sha256=raw_sha, finite=finite, scope="prefix" if cut else "whole",
+                   bytes_read=int(summary.size_bytes), trials_read=int(summary.trials),
+                   ended_by="declared-trials" if cut else "end-of-log",
+                   block_settings=settings_symbol_counts(summary.block_counts)
+                   if summary.block_counts.size else np.zeros((0, 8), dtype=np.int64),
+                   pair_counts=summary.pair_counts, trials_in_log=in_log,
+                   file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
+                                       "sha256": f.sha256} for f in summary.files),
+                   formats=tuple(f.format for f in summary.files))
     return scan, sink
 
 
@@ -683,21 +771,156 @@ def log_end_note(scan: LogScan) -> str | None:
             f"covers the {scan.trials} trials read")
 
 
+def design_report(scan: LogScan, protocol: Any) -> Any:
+    """The design-conformance report of a scan (:func:`dicert.design.check_design`)."""
+    from dicert.design import check_design
+
+    return check_design(scan.counts, protocol, block_counts=scan.block_settings,
+                        pair_counts=scan.pair_counts, trials_in_log=scan.trials_in_log,
+                        decided_early=scan.ended_by == "decision", eps=_estimate_eps(protocol))
+
+
+def checked_analysis(scan: LogScan, proto: Any, *, log: Any, seed_bytes: bytes,
+                     seed_label: str, chain_dir: Path | None, allow_mixed_inputs: bool,
+                     allow_seed_reuse: bool) -> tuple[Analysis, dict]:
+    """Certify's stages between the scan and the extraction, with the record's ``inputs``.
+
+    Input identity of a multi-file log (bad input unless allowed), the design-conformance
+    stage and the analysis (:func:`analyse_counts`), then, when the seed will be used, its
+    length and sanity (:func:`dicert.design.seed_problems`; bad input unless allowed).
+    """
+    input_problems = input_problems_of(scan)
+    if input_problems and not allow_mixed_inputs:
+        raise LogFormatError(log, "", f"{input_problems[0]}; refusing a log that may hold "
+                             "the same data twice or mix sources (pass --allow-mixed-inputs "
+                             "if this is intended; it is then recorded)")
+    analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
+                              log_end=log_end_note(scan), design=design_report(scan, proto))
+    seed_issues: list[str] = []
+    if analysis.status == "certified":
+        from dicert.design import seed_problems
+
+        check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
+        used = _chain_seed_digests(chain_dir) if chain_dir is not None else ()
+        digests = (scan.sha256,) + tuple(str(e.get("sha256")) for e in scan.file_entries)
+        fatal, seed_issues = seed_problems(seed_bytes, log_digests=digests, used_digests=used)
+        if fatal:
+            raise SeedError(f"{seed_label}: {fatal[0]}; an extractor seed must be "
+                            "uniformly random")
+        if seed_issues and not allow_seed_reuse:
+            raise SeedError(f"{seed_label}: {seed_issues[0]}; use a fresh uniformly random "
+                            "seed (or pass --allow-seed-reuse; it is then recorded)")
+    inputs = {"allow_mixed_inputs": bool(allow_mixed_inputs),
+              "input_problems": list(input_problems),
+              "allow_seed_reuse": bool(allow_seed_reuse),
+              "seed_problems": list(seed_issues)}
+    return analysis, inputs
+
+
+def screened(extraction: Any, analysis: Analysis, proto: Any, scan: LogScan,
+             raw: Any) -> tuple[Analysis, dict | None]:
+    """Output screens after extraction (:func:`dicert.design.output_screens`); a gross
+    failure turns the analysis into status "withheld"."""
+    if extraction is None:
+        return analysis, None
+    from dicert.design import output_screens, spec_of
+
+    screens = output_screens(extraction.output, analysis.output_bits,
+                             spec_of(proto).significance, raw=raw, raw_bits=scan.raw_bits,
+                             bits_per_symbol=proto.harvest.bits_per_trial,
+                             min_entropy_bits=analysis.min_entropy_bits)
+    return withhold(analysis, screens), screens
+
+
+def input_problems_of(scan: LogScan) -> list[str]:
+    """Input identity problems of a multi-file log (:func:`dicert.logs.input_identity_problems`)."""
+    from dicert.logs import input_identity_problems
+
+    if len(scan.file_entries) < 2:
+        return []
+    return input_identity_problems([Path(str(e["name"])) for e in scan.file_entries],
+                                   scan.formats if len(scan.formats) > 1 else None,
+                                   [e.get("sha256") for e in scan.file_entries])
+
+
+def _chain_seed_digests(chain_dir: Path) -> tuple[str, ...]:
+    """Seed digests already used (seed bits consumed) by the records of a beacon chain."""
+    import json
+
+    out = []
+    if not chain_dir.is_dir():
+        return ()
+    for p in sorted(chain_dir.glob("*.json")):
+        try:
+            rec = json.loads(p.read_bytes())
+        except (OSError, ValueError):
+            continue  # verify --chain reports unreadable pulses
+        ex = rec.get("extractor") if isinstance(rec, dict) else None
+        if isinstance(ex, dict) and isinstance(ex.get("seed_sha256"), str) \
+                and (ex.get("seed_bits_used") or 0) > 0:
+            out.append(ex["seed_sha256"])
+    return tuple(out)
+
+
+def withhold(analysis: Analysis, screens: Mapping[str, Any] | None) -> Analysis:
+    """The analysis with status "withheld" when the output screens failed grossly."""
+    if screens is None or screens.get("passed", True) or analysis.status != "certified":
+        return analysis
+    return dataclasses.replace(
+        analysis, status="withheld",
+        abort_reason=f"output withheld: the output screens failed grossly "
+                     f"({screens.get('failure')})")
+
+
+def _not_run(protocol: Any, reason: str) -> Any:
+    """A finite-size result standing for a method that was not run (design check failed)."""
+    from dicert.finite.result import FiniteSizeResult
+
+    name = getattr(protocol.analysis, "method_name", None) or str(protocol.method)
+    return FiniteSizeResult(method=str(name),
+                            side_information="quantum" if protocol.method == "eat"
+                            else "classical", accepted=False, min_entropy_bits=0.0, eps={},
+                            details={"not_run": reason})
+
+
 def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
-                   finite: Any = None, log_end: str | None = None) -> Analysis:
-    """Estimate, finite-size bound, accept/abort and output length from the counts alone.
+                   finite: Any = None, log_end: str | None = None,
+                   design: Any = None) -> Analysis:
+    """Design checks, estimate, finite-size bound, accept/abort and output length.
 
     Deterministic in its inputs, so :func:`dicert.verify.verify` re-derives it from a record.
     ``finite`` supplies the result of a streaming method (pef), which depends on the trial
     order and not only on the counts. ``log_end`` (see :func:`log_end_note`) is appended to the
-    abort reason.
+    abort reason. ``design`` is the :class:`dicert.design.DesignReport` of the log (default:
+    the checks the counts alone allow); when a check fails the run aborts with that reason and
+    no finite-size method is run (a streaming pef result is kept, but not used).
     """
+    from dicert.design import check_design
     from dicert.estimate import estimate_chsh
     from dicert.extract import lhl_output_length, seed_bits_required
 
     counts = np.asarray(counts, dtype=np.int64)
     eps_est = _estimate_eps(protocol)
     estimate = estimate_chsh(counts, design=protocol.design, eps=eps_est)
+    if design is None:
+        design = check_design(counts, protocol, eps=eps_est)
+    if not design.passed:
+        if finite is None:
+            finite = _not_run(protocol, "the finite-size method was not run: " +
+                              str(design.abort_reason))
+        reason = str(design.abort_reason)
+        det = finite.details if isinstance(finite.details, Mapping) else {}
+        if not finite.accepted and "not_run" not in det:
+            why = det.get("abort_reason") or det.get("outcome")
+            if why:  # a streaming method (pef) aborted too: give its reason first
+                reason = f"the acceptance test of the protocol failed: {why}; also {reason}"
+        if log_end:
+            reason = f"{reason} ({log_end})"
+        return Analysis(estimate=estimate, finite=finite, status="aborted",
+                        abort_reason=reason, min_entropy_bits=0.0, output_bits=0,
+                        seed_bits_needed=0,
+                        total_error=float(finite.total_error(protocol.extractor.eps_ext)),
+                        design=design)
     if finite is None:
         finite = _certify_counts(counts, protocol)
     eps_ext = protocol.extractor.eps_ext
@@ -725,7 +948,7 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
     return Analysis(estimate=estimate, finite=finite, status=status, abort_reason=reason,
                     min_entropy_bits=k, output_bits=m if status == "certified" else 0,
                     seed_bits_needed=need if status == "certified" else 0,
-                    total_error=total_error)
+                    total_error=total_error, design=design)
 
 
 def _certify_counts(counts: np.ndarray, protocol: Any) -> Any:
@@ -782,7 +1005,7 @@ def _split_timing(details: Any) -> tuple[Any, float | None]:
 
 def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256: str,
                seed_bytes: int, extraction: Any | None, chain_info: tuple[int, str | None] | None,
-               volatile: dict) -> dict:
+               volatile: dict, inputs: dict | None = None, screens: dict | None = None) -> dict:
     """The record body (everything the audit layer then digests and signs)."""
     from dicert.audit.record import RECORD_FORMAT
 
@@ -802,6 +1025,7 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
                 "<= total",
     }
     certified = analysis.status == "certified"
+    published = certified
     extractor = {
         "kind": protocol.extractor.kind,
         "output_rule": protocol.extractor.output_rule,
@@ -838,7 +1062,10 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
             "sha256": scan.sha256,
             "size_bytes": int(scan.size_bytes),
             "trials": int(scan.trials),
-            "files": list(scan.files),
+            "files": ([dict(e) for e in scan.file_entries] if scan.file_entries
+                      else list(scan.files)),
+            "trials_in_log": int(scan.trials_in_log if scan.trials_in_log is not None
+                                 else scan.trials),
             "has_test_flag": bool(scan.has_test_flag),
             "scope": scan.scope,
             "bytes_read": int(scan.bytes_read if scan.bytes_read is not None
@@ -881,7 +1108,7 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "extractor": extractor,
         "status": analysis.status,
         "abort_reason": analysis.abort_reason,
-        "certified_min_entropy_bits": analysis.min_entropy_bits if certified else 0.0,
+        "certified_min_entropy_bits": analysis.min_entropy_bits if published else 0.0,
         "assumptions": assumptions,
         "caution": CAUTION,
         "references": references,
@@ -889,6 +1116,22 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "previous_record_sha256": chain_info[1] if chain_info else None,
         "volatile": volatile,
     }
+    if analysis.design is not None:
+        sec = analysis.design.to_dict()
+        sec["inputs"] = {
+            "symbol": "settings symbol s = 4 t + 2 x + y (t = 0 for every trial of a log "
+                      "without a t column in pair_counts)",
+            "pair_counts": (np.asarray(scan.pair_counts, dtype=np.int64).tolist()
+                            if scan.pair_counts is not None else None),
+            "block_settings_counts": (np.asarray(scan.block_settings, dtype=np.int64).tolist()
+                                      if scan.block_settings is not None else None),
+        }
+        body["design"] = sec
+    body["inputs"] = inputs if inputs is not None else {
+        "allow_mixed_inputs": False, "input_problems": [],
+        "allow_seed_reuse": False, "seed_problems": []}
+    if screens is not None:
+        body["output_screens"] = screens
     return plain(body)
 
 
@@ -941,7 +1184,10 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
-            idle_timeout_s: float | None = 300.0, scheduler: Any = None) -> CertifyResult:
+            idle_timeout_s: float | None = 300.0, force: bool = False,
+            trusted_keys: Any = None, protocol_change: str | None = None,
+            allow_mixed_inputs: bool = False, allow_seed_reuse: bool = False,
+            scheduler: Any = None) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -953,12 +1199,17 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     seed : bytes or path
         Uniformly random extractor seed; it must hold n + m - 1 bits (n raw bits, m output).
     out_dir : path
-        Directory receiving ``random.bits`` (certified runs only) and ``record.json``.
+        Directory receiving ``random.bits`` (certified runs only) and ``record.json``. It must
+        be missing or empty unless ``force``; the files appear together (the folder is built
+        next to it and renamed into place) or not at all.
     key : private key or path, optional
         Ed25519 private key (object or PEM file) that signs the record; unsigned otherwise.
     chain : path, optional
-        Beacon chain directory: the record carries the previous record's digest and a
-        pulse index, and a copy is appended to the chain.
+        Beacon chain directory: the whole chain is first verified against the operator's
+        keys (``key``'s public half and ``trusted_keys``); a chain with foreign-signed or
+        unsigned pulses, gaps, swapped pulses, reuse or undeclared protocol changes is
+        refused, as is a log or seed that already fed a pulse. The record carries the
+        previous record's digest and a pulse index, and a copy is appended to the chain.
     clock : callable, optional
         Returns the current time (datetime or ISO string); only the record's ``volatile``
         section depends on it.
@@ -971,6 +1222,20 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         what was read; a record is still written).
     poll_s, idle_timeout_s : float
         Follow mode: pause between looks for new bytes, and the idle timeout (None: none).
+    force : bool
+        Replace an earlier certification's ``out_dir`` (only after the new set is complete).
+    trusted_keys : path or TrustSet, optional
+        With ``chain``: further keys trusted for earlier pulses (key rotation).
+    protocol_change : str, optional
+        With ``chain``: the reason for a deliberate protocol change; recorded (with the
+        previous protocol's digest) in the signed record as ``protocol_change``.
+    allow_mixed_inputs : bool
+        Accept a multi-file log with files of equal content, a file next to its ``.gz`` copy,
+        or mixed formats (refused otherwise as bad input); recorded in ``inputs``.
+    allow_seed_reuse : bool
+        Accept a seed whose SHA-256 equals the log's (or one of its files') (refused
+        otherwise); recorded in ``inputs``. A seed already used in a beacon chain is always
+        refused with ``chain``, and a constant or short-period seed always.
     scheduler : str or dask.distributed.Client, optional
         Run the extraction's pieces on a dask cluster (:mod:`dicert.cluster`; default
         ``$DICERT_SCHEDULER``, else this process). Same bits and record.
@@ -1011,12 +1276,56 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     seed_sha = hashlib.sha256(seed_bytes).hexdigest()
     signer = _load_key(key)
     out = Path(out_dir)
+    if out.name in ("", ".", ".."):  # the folder is replaced as a whole: name it
+        out = Path(os.path.abspath(out))
     if out.exists() and not out.is_dir():
         raise ParameterError(f"{out}: --out must be a directory")
     chain_dir = Path(chain) if chain is not None else None
-    chain_info = _chain_position(chain_dir)
+    if chain_dir is not None:
+        a, b = Path(os.path.abspath(out)), Path(os.path.abspath(chain_dir))
+        if a == b or a.is_relative_to(b) or b.is_relative_to(a):
+            raise ParameterError(f"{out}: --out and --chain must be separate folders (neither "
+                                 "inside the other)")
+    trust = _operator_trust(signer, trusted_keys, chain_dir, protocol_change)
     timings["setup"] = time.perf_counter() - t0
 
+    from dicert import _outputs as outputs
+
+    with contextlib.ExitStack() as held:
+        # Locks for the whole run, chain first: a holder knows no other run is active.
+        state = None
+        if chain_dir is not None:
+            outputs.make_public_dir(chain_dir)
+            held.enter_context(outputs.held_lock(chain_dir / outputs.CHAIN_LOCK_NAME))
+            outputs.recover_chain(chain_dir)
+            state = _check_chain(chain_dir, trust, signer, seed_sha, seed_label, proto,
+                                 protocol_change)
+        try:
+            out.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise outputs.output_error(out.parent, exc) from None
+        held.enter_context(outputs.held_lock(outputs.out_lock_path(out)))
+        outputs.clean_stale(out)
+        outputs.sweep_siblings(out)
+        _check_out(out, force)
+        return _certify_locked(
+            log=log, proto=proto, seed_bytes=seed_bytes, seed_label=seed_label,
+            seed_sha=seed_sha, signer=signer, out=out, chain_dir=chain_dir, state=state,
+            protocol_change=protocol_change, force=force, clock=clock, progress=progress,
+            follow=follow, poll_s=poll_s, idle_timeout_s=idle_timeout_s, timings=timings,
+            started=started, allow_mixed_inputs=allow_mixed_inputs,
+            allow_seed_reuse=allow_seed_reuse, scheduler=scheduler)
+
+
+def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
+                    seed_sha: str, signer: Any, out: Path, chain_dir: Path | None, state: Any,
+                    protocol_change: str | None, force: bool, clock: Clock | None,
+                    progress: Progress | None, follow: bool, poll_s: float,
+                    idle_timeout_s: float | None, timings: dict[str, float],
+                    started: str, allow_mixed_inputs: bool = False,
+                    allow_seed_reuse: bool = False, scheduler: Any = None) -> CertifyResult:
+    """The run itself, with the locks held (see :func:`certify`)."""
+    from dicert import _outputs as outputs
     from dicert.logs import open_log
 
     spec = FollowSpec(poll_s=poll_s, idle_timeout_s=idle_timeout_s) if follow else None
@@ -1024,93 +1333,221 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         # (the binary PEF reader checks this from the header it reads)
         _check_design_flag(proto, open_log(log).has_test_flag, log)
     t1 = time.perf_counter()
-    spill = out if out.is_dir() else out.parent
-    scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds, spill_dir=spill,
-                          progress=progress, protocol=proto, follow=spec)
-    timings["scan"] = time.perf_counter() - t1
-    tmp_files: list[Path] = []
+    spill = outputs.new_spill_dir(out)  # private (0700): raw bits never sit in --out
+    stage: Path | None = None
     try:
-        t2 = time.perf_counter()
-        if scan.trials == 0:
-            raise LogFormatError(log, "", "no trial arrived before the idle timeout; nothing "
-                                 "to certify" if scan.follow else "contains no trials")
-        generation_rounds = int(scan.counts[0].sum())
-        if proto.design.gamma >= 1.0 and generation_rounds:
-            raise LogFormatError(log, "", f"the protocol declares every round a test round "
-                                 f"(settings.gamma = 1) but the log marks {generation_rounds} "
-                                 f"trials as generation rounds (t = 0)")
-        analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
-                                  log_end=log_end_note(scan))
-        timings["analysis"] = time.perf_counter() - t2
+        scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds,
+                              spill_dir=spill, progress=progress, protocol=proto, follow=spec)
+        timings["scan"] = time.perf_counter() - t1
+        outputs.fault_point("after-scan")
+        try:
+            t2 = time.perf_counter()
+            if scan.trials == 0:
+                raise LogFormatError(log, "", "no trial arrived before the idle timeout; "
+                                     "nothing to certify" if scan.follow else "contains no trials")
+            generation_rounds = int(scan.counts[0].sum())
+            if proto.design.gamma >= 1.0 and generation_rounds:
+                raise LogFormatError(log, "", f"the protocol declares every round a test round "
+                                     f"(settings.gamma = 1) but the log marks "
+                                     f"{generation_rounds} trials as generation rounds (t = 0)")
+            if state is not None and scan.sha256 in state.logs_used:
+                raise ParameterError(
+                    f"{log}: this log (SHA-256 {scan.sha256[:16]}...) already fed pulse "
+                    f"{state.logs_used[scan.sha256]} of {chain_dir}; every pulse needs fresh "
+                    "trials")
+            analysis, inputs = checked_analysis(
+                scan, proto, log=log, seed_bytes=seed_bytes, seed_label=seed_label,
+                chain_dir=chain_dir, allow_mixed_inputs=allow_mixed_inputs,
+                allow_seed_reuse=allow_seed_reuse)
+            timings["analysis"] = time.perf_counter() - t2
 
-        extraction = None
-        t3 = time.perf_counter()
-        if analysis.status == "certified":
-            check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
-            from dicert.extract import extract_toeplitz
+            extraction = None
+            t3 = time.perf_counter()
+            if analysis.status == "certified":
+                check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
+                from dicert.extract import extract_toeplitz
 
-            extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
-                                          n_bits=scan.raw_bits, scheduler=scheduler,
-                                          temp_dir=spill if spill.is_dir() else None)
-            if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
-                raise DicertError("extractor returned a different output length")
-        timings["extraction"] = time.perf_counter() - t3
+                extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
+                                              n_bits=scan.raw_bits, scheduler=scheduler,
+                                              temp_dir=spill)
+                if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
+                    raise DicertError("extractor returned a different output length")
+            timings["extraction"] = time.perf_counter() - t3
+            analysis, screens = screened(extraction, analysis, proto, scan, sink.data())
+            outputs.fault_point("after-extract")
+        finally:
+            sink.discard()
 
         t4 = time.perf_counter()
-        out.mkdir(parents=True, exist_ok=True)
-        bits_path = out / BITS_NAME
-        record_path = out / RECORD_NAME
-        if extraction is not None:
-            tmp_files.append(write_temp_sibling(out / BITS_NAME, extraction.output, 0o600))
-        timings["write"] = time.perf_counter() - t4
+        publish = extraction is not None and analysis.status == "certified"
+        chain_info = None
+        if state is not None:
+            link = state.next_link()
+            chain_info = (int(link["pulse_index"]), link["previous_record_sha256"])
         volatile = {"timestamps": {"started": started, "finished": _now(clock)},
                     "timings_s": {k: round(v, 6) for k, v in timings.items()}}
         body = build_body(protocol=proto, scan=scan, analysis=analysis, seed_sha256=seed_sha,
                           seed_bytes=len(seed_bytes), extraction=extraction,
-                          chain_info=chain_info, volatile=volatile)
+                          chain_info=chain_info, volatile=volatile, inputs=inputs,
+                          screens=screens)
+        # The record names its bits file (next to it); verify checks it by default.
+        body["bits_file"] = BITS_NAME if publish else None
+        if protocol_change is not None:
+            body["protocol_change"] = {"previous_protocol_sha256": state.protocol_sha256,
+                                       "reason": protocol_change.strip()}
         from dicert.audit.record import record_bytes, record_digest, seal_record
 
         record = seal_record(body, signer)
         rec_bytes = record_bytes(record)
-        tmp_files.append(write_temp_sibling(out / RECORD_NAME, rec_bytes))
-        # Commit point: rename into place (bits first, record last).
-        if extraction is not None:
-            os.replace(tmp_files[0], bits_path)
-        else:
-            # A bits file left by an earlier run in this directory must not be mistaken for
-            # the output of this (aborted) one.
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(bits_path)
-        os.replace(tmp_files[-1], record_path)
-        tmp_files = []
+        rec_sha = record_digest(record)
+        # Build the complete output folder next to --out, then commit it in one step.
+        stage = outputs.new_stage(out)
+        try:
+            if publish:
+                outputs.write_public_file(stage / BITS_NAME, bytes(extraction.output))
+            outputs.write_public_file(stage / RECORD_NAME, rec_bytes)
+            outputs.fsync_dir(stage)
+        except OSError as exc:
+            raise outputs.output_error(exc.filename or stage, exc) from None
+        timings["write"] = time.perf_counter() - t4
+        outputs.fault_point("after-stage-write")
         chain_file = None
         if chain_dir is not None:
-            from dicert.audit.chain import append_to_chain
-
+            pulse = pulse_name(int(record["pulse_index"]))
+            stage = outputs.hand_to_journal(stage, out)
+            journal = outputs.write_journal(chain_dir, stage=stage, out=out, pulse=pulse,
+                                            record_sha256=rec_sha, replace=force)
+            chain_file = _append_pulse(chain_dir, record, journal)
+            # Committed: from here the journal owns the staging folder; should anything fail
+            # now, the next certify --chain on this chain puts it in place.
+            committed, stage = stage, None
+            outputs.fault_point("after-chain-append")
             try:
-                chain_file = Path(append_to_chain(chain_dir, record))
-            except BaseException:
-                with contextlib.suppress(FileNotFoundError):
-                    os.unlink(record_path)
-                if extraction is not None:
-                    with contextlib.suppress(FileNotFoundError):
-                        os.unlink(bits_path)
-                raise
+                outputs.publish_stage(committed, out, replace=force)
+            except DicertError as exc:
+                raise DicertError(f"{exc} (pulse {pulse} is in the chain; the next certify "
+                                  f"--chain on {chain_dir} completes {out})") from None
+            os.unlink(journal)
+            outputs.fsync_dir(chain_dir)
+        else:
+            outputs.publish_stage(stage, out, replace=force)
+        stage = None
     finally:
-        sink.discard()
-        for p in tmp_files:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(p)
+        if stage is not None:
+            outputs.remove_tree(stage)
+        outputs.remove_tree(spill)
+    bits_path = out / BITS_NAME
     return CertifyResult(
         status=analysis.status, output_bits=analysis.output_bits,
-        bits_file=bits_path if extraction is not None else None, record_file=record_path,
+        bits_file=bits_path if publish else None,
+        record_file=out / RECORD_NAME,
         chain_file=chain_file, min_entropy_bits=analysis.min_entropy_bits,
         error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
-        abort_reason=analysis.abort_reason, record_sha256=record_digest(record), record=record,
+        abort_reason=analysis.abort_reason, record_sha256=rec_sha, record=record,
         log_scope=scan.scope, stopped_early=scan.stopped_early,
         stop_trial_index=scan.stop_trial_index,
         success_trial_index=_success_index(analysis.finite), ended_by=scan.ended_by,
     )
+
+
+def _operator_trust(signer: Any, trusted_keys: Any, chain_dir: Path | None,
+                    protocol_change: str | None) -> Any:
+    """The keys an operator trusts for the existing chain: its own and a trusted-keys file."""
+    if protocol_change is not None:
+        if chain_dir is None:
+            raise ParameterError("--protocol-change applies only with --chain")
+        if not isinstance(protocol_change, str) or not protocol_change.strip():
+            raise ParameterError("--protocol-change: give the reason for the change")
+    if chain_dir is None:
+        if trusted_keys is not None:
+            raise ParameterError("--trusted-keys applies only with --chain")
+        return None
+    if chain_dir.exists() and not chain_dir.is_dir():
+        raise ParameterError(f"{chain_dir}: --chain must be a directory")
+    if signer is None:
+        raise ParameterError("--chain needs --key: a beacon chain is extended only with "
+                             "records signed by its operator")
+    from dicert.audit.signing import public_key_bytes
+    from dicert.audit.trust import trust_from
+
+    public = public_key_bytes(signer.public_key() if hasattr(signer, "public_key")
+                              and callable(signer.public_key) else signer)
+    return trust_from(public, trusted_keys)
+
+
+def _check_chain(chain_dir: Path, trust: Any, signer: Any, seed_sha: str, seed_label: str,
+                 proto: Any, protocol_change: str | None) -> Any:
+    """Verify the whole chain against the operator's trusted keys; refuse what cannot extend it."""
+    from dicert.audit.chain import ChainVerificationError, chain_state
+    from dicert.audit.signing import fingerprint
+    from dicert.errors import VerificationError
+
+    try:
+        state = chain_state(chain_dir, trust)
+    except ChainVerificationError as exc:
+        raise VerificationError(f"{chain_dir}: refusing to extend a chain that does not "
+                                f"verify against the operator's keys: {exc}",
+                                "chain") from None
+    link = state.next_link()
+    fp = fingerprint(signer.public_key() if hasattr(signer, "public_key")
+                     and callable(signer.public_key) else signer)
+    try:
+        trust.authorise(fp, link["pulse_index"], _now(None))
+    except VerificationError as exc:
+        raise ParameterError(f"--key: not trusted for pulse {link['pulse_index']} "
+                             f"({exc})") from None
+    if seed_sha in state.seeds_used:
+        raise SeedError(f"{seed_label}: this extractor seed (SHA-256 {seed_sha[:16]}...) was "
+                        f"already used by pulse {state.seeds_used[seed_sha]} of {chain_dir}; "
+                        "use a fresh seed for every pulse (an aborted pulse's seed included)")
+    prev = state.protocol_sha256
+    if prev is not None and proto.sha256 != prev and protocol_change is None:
+        raise ParameterError(
+            f"{proto.name}: the protocol (SHA-256 {proto.sha256[:16]}...) differs from the "
+            f"chain's ({prev[:16]}...); pass --protocol-change REASON to record a deliberate "
+            "change in the signed record")
+    if protocol_change is not None and (prev is None or proto.sha256 == prev):
+        raise ParameterError("--protocol-change: the protocol is the same as the chain's "
+                             "(or the chain is empty); nothing to declare")
+    return state
+
+
+def _check_out(out: Path, force: bool) -> None:
+    """Refuse a non-empty --out unless --force, and --force over files certify did not write."""
+    if not out.is_dir():
+        return
+    names = sorted(p.name for p in out.iterdir())
+    if not names:
+        return
+    if not force:
+        raise ParameterError(f"{out}: --out is not empty (holds {names[0]}"
+                             f"{' and more' if len(names) > 1 else ''}); refusing to replace "
+                             "an earlier run's outputs (use --force, or a new folder)")
+    foreign = [n for n in names if n not in (BITS_NAME, RECORD_NAME)]
+    if foreign:
+        raise ParameterError(f"{out}: holds {foreign[0]}, which certify did not write; "
+                             "--force replaces only an earlier certification's folder")
+
+
+def pulse_name(index: int) -> str:
+    from dicert.audit.chain import pulse_file_name
+
+    return pulse_file_name(index)
+
+
+def _append_pulse(chain_dir: Path, record: dict, journal: Path) -> Path:
+    """The commit point: link the pulse into the chain (the journal goes if this fails)."""
+    from dicert import _outputs as outputs
+    from dicert.audit.chain import append_to_chain
+
+    try:
+        return Path(append_to_chain(chain_dir, record))
+    except OSError as exc:
+        os.unlink(journal)
+        raise outputs.output_error(chain_dir, exc) from None
+    except BaseException:
+        os.unlink(journal)
+        raise
 
 
 def _extractor_convention() -> str:
@@ -1133,17 +1570,6 @@ def _load_key(key: Any) -> Any:
 
         return load_private_key(key)
     return key
-
-
-def _chain_position(chain_dir: Path | None) -> tuple[int, str | None] | None:
-    if chain_dir is None:
-        return None
-    if chain_dir.exists() and not chain_dir.is_dir():
-        raise ParameterError(f"{chain_dir}: --chain must be a directory")
-    from dicert.audit.chain import next_link
-
-    link = next_link(chain_dir)
-    return (int(link["pulse_index"]), link["previous_record_sha256"])
 
 
 def iter_record_items(record: Mapping[str, Any], prefix: str = "") -> Iterator[tuple[str, Any]]:
@@ -1169,11 +1595,16 @@ __all__ = [
     "LogScan",
     "analyse_counts",
     "build_body",
+    "checked_analysis",
+    "design_report",
+    "withhold",
     "certify",
     "check_seed_length",
     "expected_raw_bits",
     "harvest_bits",
+    "input_problems_of",
     "log_end_note",
     "read_seed",
     "scan_log",
+    "screened",
 ]

@@ -249,23 +249,22 @@ def file_digests(paths: list[Any], *, scheduler: Any) -> list[tuple[int, str]]:
                         f"dicert-digest-{uuid.uuid4().hex[:12]}", lambda: None)
 
 
-def _log_digest(files: list[Any]) -> str:
-    """The record's log digest: a single file's own SHA-256; for several files the SHA-256 of
-    the RFC 8785 canonical JSON of [{"name", "bytes", "sha256"}, ...] in read order (so each
-    file can be hashed on its own, in parallel, and the result re-derived by verify)."""
-    from dicert.audit.canonical import canonical_sha256
-
-    if len(files) == 1:
-        return str(files[0].sha256)
-    return canonical_sha256([{"name": Path(f.path).name, "bytes": int(f.size_bytes),
-                              "sha256": str(f.sha256)} for f in files])
-
-
-def _task_summary(path: str, fmt: str, block_trials: int) -> Any:
+def _task_summary(path: str, fmt: str, block_trials: int) -> tuple[Any, int, int]:
+    """The file's summary, and the settings symbols of its first and last trial (for the
+    pairs across file boundaries)."""
     from dicert.logs import summarize_log
 
     _fault_point()
-    return summarize_log(path, format=fmt, block_trials=block_trials, digest=True)
+    ends = [-1, -1]
+
+    def edge(chunk: Any) -> None:
+        if chunk.codes.size:
+            if ends[0] < 0:
+                ends[0] = int(chunk.codes[0] >> 2) & 7
+            ends[1] = int(chunk.codes[-1] >> 2) & 7
+
+    s = summarize_log(path, format=fmt, block_trials=block_trials, digest=True, on_chunk=edge)
+    return s, ends[0], ends[1]
 
 
 def _task_blocks(path: str, fmt: str, offset: int, block_trials: int) -> Any:
@@ -308,14 +307,14 @@ def _task_blocks(path: str, fmt: str, offset: int, block_trials: int) -> Any:
 def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
                   format: str | None = None) -> Any:
     """:func:`dicert.logs.summarize_log` (with digest) with each file counted and hashed by a
-    task on the cluster; the counts, blocks and files are identical to the local pass, and
-    ``sha256`` is the log digest of :func:`_log_digest`."""
+    task on the cluster; counts, blocks, settings pairs, files and the log digest
+    (:func:`dicert.logs.files_digest` for several files) are identical to the local pass."""
     import uuid
 
     import numpy as np
 
     from dicert.errors import ParameterError
-    from dicert.logs import FileInfo, LogSummary, open_log
+    from dicert.logs import FileInfo, LogSummary, files_digest, open_log
 
     _distributed()
     if block_trials <= 0:
@@ -324,9 +323,14 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
     files = [os.fspath(Path(f).resolve()) for f in log.files]
     tag = f"dicert-log-{uuid.uuid4().hex[:12]}"
     with client_for(scheduler) as client:
-        parts = _run_all(client, _task_summary,
-                         [(f, fmt, block_trials) for f, fmt in zip(files, log.formats, strict=True)],
-                         f"{tag}-files", lambda: None)
+        got = _run_all(client, _task_summary,
+                       [(f, fmt, block_trials) for f, fmt in zip(files, log.formats, strict=True)],
+                       f"{tag}-files", lambda: None)
+        parts = [g[0] for g in got]
+        # Consecutive settings pairs: those inside each file, plus one across each boundary.
+        pairs = sum(np.asarray(p.pair_counts, dtype=np.int64) for p in parts)
+        for (_, _, last), (_, first, _) in zip(got[:-1], got[1:], strict=True):
+            pairs[last, first] += 1
         trials = [int(p.trials) for p in parts]
         offsets = np.concatenate([[0], np.cumsum(trials)[:-1]]).astype(np.int64)
         nblocks = -(-sum(trials) // block_trials)
@@ -348,8 +352,9 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
              for orig, p in zip(log.files, parts, strict=True) for fi in p.files]
     counts = (block_counts.sum(axis=0) if block_counts.size
               else np.zeros((2,) * 5, dtype=np.int64))
+    sha = infos[0].sha256 if len(infos) == 1 else files_digest(
+        {"name": Path(f.path).name, "bytes": f.size_bytes, "sha256": f.sha256} for f in infos)
     return LogSummary(trials=int(sum(trials)), counts=counts, block_trials=block_trials,
                       block_counts=block_counts, has_test_flag=log.has_test_flag,
-                      sha256=_log_digest(infos),
-                      size_bytes=int(sum(p.size_bytes for p in parts)),
-                      files=tuple(infos))
+                      sha256=sha, size_bytes=int(sum(p.size_bytes for p in parts)),
+                      files=tuple(infos), pair_counts=pairs, trials_in_log=int(sum(trials)))

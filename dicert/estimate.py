@@ -109,6 +109,8 @@ class ChshEstimate:
     log10_p_value_local: float
     p_value_method: str = "binomial bound on CHSH-game wins (Gill 2003)"
     bound_method: str = "martingale estimator, Azuma-Hoeffding, width 8/gamma"
+    gamma_source: str = "declared"  # "declared" | "observed" (t column, no design given) | "default"
+    local_win_bound: float = 0.75  # best local win probability at the observed settings frequencies
 
 
 def azuma_margin(n: int, width: float, eps: float) -> float:
@@ -205,7 +207,7 @@ def binomial_log10_p_value(wins: int, n_test: int, p_local: float = 0.75) -> flo
     Computed by summing the tail in log space (exact up to rounding); kept free of scipy so
     that ``dicert inspect`` starts fast. Tests compare it with ``scipy.stats.binom``.
     """
-    if n_test == 0 or wins <= 0:
+    if n_test == 0 or wins <= 0 or p_local >= 1.0:
         return 0.0
     if wins > n_test:
         return -math.inf
@@ -224,6 +226,41 @@ def binomial_p_value(wins: int, n_test: int, p_local: float = 0.75) -> float:
     return 10.0 ** binomial_log10_p_value(wins, n_test, p_local)
 
 
+def local_win_bound(settings_counts: np.ndarray) -> float:
+    """Largest CHSH-game win probability of a local model at the given settings frequencies.
+
+    The maximum over the 16 deterministic local strategies (a0, a1, b0, b1) of
+    sum_xy q(x, y) [a_x XOR b_y = x AND y], with q the normalised ``settings_counts[x, y]``
+    (local models are mixtures of deterministic strategies, so their win probability is at
+    most this; Fine 1982). It is 3/4 for uniform settings and at least 3/4 for any q.
+    """
+    q = np.asarray(settings_counts, dtype=np.float64).reshape(2, 2)
+    tot = q.sum()
+    if tot <= 0:
+        return 0.75
+    q = q / tot
+    best = 0.0
+    for k in range(16):
+        a = ((k >> 3) & 1, (k >> 2) & 1)
+        b = ((k >> 1) & 1, k & 1)
+        w = sum(q[x, y] for x in (0, 1) for y in (0, 1) if (a[x] ^ b[y]) == (x & y))
+        best = max(best, float(w))
+    return max(best, 0.75)
+
+
+def observed_design(counts: np.ndarray) -> SettingsDesign:
+    """The settings design a log's counts suggest: gamma = observed fraction of test rounds,
+    generation settings = the most frequent settings of generation rounds (informational only;
+    a certificate needs the design fixed in advance)."""
+    c = np.asarray(counts, dtype=np.int64)
+    n = int(c.sum())
+    n_test = int(c[1].sum())
+    if n == 0 or n_test == n or n_test == 0:
+        return SettingsDesign()
+    gen = np.unravel_index(int(np.argmax(c[0].sum(axis=(2, 3)))), (2, 2))
+    return SettingsDesign(gamma=n_test / n, generation=(int(gen[0]), int(gen[1])))
+
+
 def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps: float = 1e-6) -> ChshEstimate:
     """Estimate the CHSH value and its lower confidence bound at error ``eps``.
 
@@ -232,9 +269,19 @@ def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps:
     counts : ndarray, shape (2, 2, 2, 2, 2)
         ``counts[t, x, y, a, b]``.
     design : SettingsDesign
-        The settings distribution fixed before the run (default: uniform, every round a test).
+        The settings distribution fixed before the run. Default: every round a test round
+        (gamma = 1) when the counts hold no generation round; otherwise the OBSERVED design
+        (gamma = fraction of test rounds, ``gamma_source = "observed"``), never silently 1,
+        which would shrink the estimate by the factor gamma. A bound computed with an observed
+        gamma is indicative only.
     eps : float
         Error probability of the lower bound.
+
+    Notes
+    -----
+    The p-value of local realism uses the best local win probability at the OBSERVED test
+    settings frequencies (:func:`local_win_bound`; 3/4 when they are uniform), so that
+    biased settings cannot make a local device look non-local.
 
     Returns
     -------
@@ -244,8 +291,13 @@ def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps:
     ----------
     See the module docstring.
     """
-    design = design or SettingsDesign()
     counts = np.asarray(counts, dtype=np.int64)
+    source = "declared"
+    if design is None:
+        if counts.shape == (2, 2, 2, 2, 2) and int(counts[0].sum()) > 0:
+            design, source = observed_design(counts), "observed"
+        else:
+            design, source = SettingsDesign(), "default"
     tc = tested_counts(counts)
     n, n_test, wins = game_statistics(counts)
     if n == 0:
@@ -278,8 +330,12 @@ def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps:
         margin=margin,
         eps=eps,
         gamma=design.gamma,
-        p_value_local=10.0 ** (lp := binomial_log10_p_value(wins, n_test)),
+        p_value_local=10.0 ** (lp := binomial_log10_p_value(wins, n_test, p_loc := local_win_bound(tc.sum(axis=(2, 3))))),
         log10_p_value_local=lp,
+        p_value_method=("binomial bound on CHSH-game wins (Gill 2003) at the best local win "
+                        f"probability {p_loc:.6g} for the observed test settings frequencies"),
+        gamma_source=source,
+        local_win_bound=p_loc,
     )
 
 
@@ -359,6 +415,8 @@ __all__ = [
     "correlator_intervals",
     "estimate_chsh",
     "game_statistics",
+    "local_win_bound",
     "martingale_chsh",
+    "observed_design",
     "tested_counts",
 ]

@@ -19,6 +19,11 @@ Supported formats (see the README, section "Trial-log formats", for the contract
 A log may be one file, a directory (its log files in sorted name order) or a glob pattern
 (sorted); such a multi-file log is one run.
 
+Every reader treats its file as hostile: :class:`ReadLimits` (line length, columns,
+compression ratio, npz size) are checked before memory is spent, and every failure, including
+I/O errors and a part of a directory log that cannot be read, is one
+:class:`~dicert.errors.LogFormatError` naming the file.
+
 Every trial is coded in one byte, ``code = (t<<4) | (x<<3) | (y<<2) | (a<<1) | b``. Logs without
 a ``t`` column carry t = 0 in the code but *every* trial is a test round; :func:`summarize_log`
 therefore files their counts under t = 1.
@@ -27,20 +32,27 @@ therefore files their counts under t = 1.
 from __future__ import annotations
 
 import concurrent.futures
+import contextlib
+import contextvars
 import dataclasses
+import errno
+import functools
 import glob as _glob
 import gzip
 import hashlib
 import io
 import os
+import stat
 import struct
 import zipfile
-from collections.abc import Callable, Iterable, Iterator
+import zlib
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
-from dicert._io import atomic_writer
+from dicert._io import atomic_writer, output_errors
 from dicert.errors import LogFormatError, ParameterError
 
 BIT_B, BIT_A, BIT_Y, BIT_X, BIT_T = 1, 2, 4, 8, 16
@@ -66,8 +78,152 @@ _LOG_SUFFIXES = (".csv", ".csv.gz", ".txt", ".txt.gz", ".btl", ".npz")
 
 
 # --------------------------------------------------------------------------------------------
+# Resource limits of the readers
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class ReadLimits:
+    """Resource limits every reader checks before it spends the memory or time.
+
+    Logs may come from other institutions, so a hostile file must end in a one-line
+    :class:`~dicert.errors.LogFormatError` (exit code 2), never in a hang or an exhausted
+    machine. Override them with :func:`read_limits` (library), the ``limits`` keyword of
+    :func:`open_log`, or the environment variable ``DICERT_READ_LIMITS``
+    (``"max_line_bytes=4194304,max_compression_ratio=1000"``; the CLI reads it).
+
+    Attributes
+    ----------
+    max_line_bytes : int
+        Longest line of a text log (header, comment or trial line, newline included).
+        Checked while reading in bounded blocks, so a file without newlines costs at most
+        this much memory.
+    max_columns : int
+        Most columns in the header row.
+    max_compression_ratio : float
+        Largest ratio of decompressed to compressed bytes (gzip-compressed text logs: checked
+        as the data are decompressed; npz: from the archive directory, before reading),
+        applied once more than ``ratio_grace_bytes`` have been (or would be) decompressed.
+        Trial logs with random outcomes compress about 5-40 times; a deflate bomb about 1000.
+    ratio_grace_bytes : int
+        Decompressed size below which the ratio is not checked (small, regular test logs
+        compress far better than real ones).
+    max_npz_bytes : int
+        Largest npz file (it is read into memory once, so that its digest covers exactly the
+        bytes analysed; its arrays are then decoded in chunks). Convert larger logs to the
+        binary format (``dicert convert``), which streams.
+    max_npy_header_bytes : int
+        Largest ``.npy`` member header (numpy's own default limit is 10000).
+    """
+
+    max_line_bytes: int = 1 << 20
+    max_columns: int = 4096
+    max_compression_ratio: float = 200.0
+    ratio_grace_bytes: int = 64 << 20
+    max_npz_bytes: int = 1 << 30
+    max_npy_header_bytes: int = 10000
+
+    def __post_init__(self) -> None:
+        for f in dataclasses.fields(self):
+            v = getattr(self, f.name)
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+                raise ParameterError(f"read limit {f.name} must be a positive number, got {v!r}")
+
+
+_READ_LIMITS: contextvars.ContextVar[ReadLimits | None] = contextvars.ContextVar(
+    "dicert_read_limits", default=None
+)
+LIMITS_ENV = "DICERT_READ_LIMITS"
+
+
+def _limits_from_env() -> ReadLimits:
+    text = os.environ.get(LIMITS_ENV, "").strip()
+    if not text:
+        return ReadLimits()
+    names = [f.name for f in dataclasses.fields(ReadLimits)]
+    values: dict[str, float | int] = {}
+    for item in text.split(","):
+        key, sep, val = item.partition("=")
+        key = key.strip()
+        if not sep or key not in names:
+            raise ParameterError(f"{LIMITS_ENV}: expected NAME=VALUE items separated by commas "
+                                 f"with NAME one of {', '.join(names)}; got {item.strip()!r}")
+        try:
+            num = float(val) if key == "max_compression_ratio" else int(float(val))
+        except (ValueError, OverflowError):
+            raise ParameterError(f"{LIMITS_ENV}: {key} must be a number, "
+                                 f"got {val.strip()!r}") from None
+        values[key] = num
+    return ReadLimits(**values)
+
+
+def current_read_limits() -> ReadLimits:
+    """The limits in force: those of the innermost :func:`read_limits`, else the environment's
+    ``DICERT_READ_LIMITS``, else the defaults of :class:`ReadLimits`."""
+    lim = _READ_LIMITS.get()
+    return lim if lim is not None else _limits_from_env()
+
+
+@contextlib.contextmanager
+def read_limits(**overrides: float) -> Iterator[ReadLimits]:
+    """Raise (or lower) reader limits for the calls inside the ``with`` block.
+
+    Example: ``with read_limits(max_line_bytes=16 << 20): certify(...)``.
+    """
+    lim = dataclasses.replace(current_read_limits(), **overrides)
+    token = _READ_LIMITS.set(lim)
+    try:
+        yield lim
+    finally:
+        _READ_LIMITS.reset(token)
+
+
+def _read_error(path, exc: BaseException, where: str = "") -> LogFormatError:
+    """One-line LogFormatError for an exception raised while reading ``path``."""
+    if isinstance(exc, LogFormatError):
+        return exc
+    text = " ".join(str(exc).split())[:200]
+    if isinstance(exc, OSError) and exc.strerror:
+        return LogFormatError(path, where, _os_cause(exc, "cannot read"))
+    if isinstance(exc, zipfile.BadZipFile):
+        return LogFormatError(path, where, f"not a valid .npz archive ({text})")
+    if isinstance(exc, zlib.error):
+        return LogFormatError(path, where, f"corrupt compressed data ({text})")
+    if isinstance(exc, EOFError):
+        return LogFormatError(path, where, "truncated compressed data")
+    return LogFormatError(path, where, f"cannot read ({type(exc).__name__}: {text})")
+
+
+#: What a reader can raise on a corrupt, truncated or unreadable file (mapped by _read_error).
+_READ_FAILURES = (OSError, EOFError, zlib.error, zipfile.BadZipFile, gzip.BadGzipFile)
+
+
+# --------------------------------------------------------------------------------------------
 # In-memory representations
 # --------------------------------------------------------------------------------------------
+
+
+def _check_bits(values: Any, name: str) -> None:
+    """Raise ParameterError naming the column and the first value outside {0, 1}."""
+    arr = np.asarray(values)
+    if arr.size == 0:
+        return
+    if arr.dtype == np.bool_:
+        return
+    if arr.dtype.kind == "u":
+        bad = arr > 1
+    else:
+        try:
+            bad = ~((arr == 0) | (arr == 1))
+        except (TypeError, ValueError):
+            raise ParameterError(f"TrialArrays: column {name!r} must hold 0/1 values") from None
+        bad = np.asarray(bad, dtype=bool)
+    if bad.any():
+        i = int(np.flatnonzero(bad.ravel())[0])
+        v = arr.ravel()[i]
+        v = v.item() if hasattr(v, "item") else v
+        raise ParameterError(f"TrialArrays: column {name!r} holds {v!r} at index "
+                             f"{i}; every value must be 0 or 1")
 
 
 @dataclasses.dataclass(frozen=True, slots=True, eq=False)
@@ -88,6 +244,12 @@ class TrialArrays:
         for name in ("y", "a", "b") + (("t",) if self.t is not None else ()):
             if len(getattr(self, name)) != n:
                 raise ParameterError(f"TrialArrays: column {name!r} has a different length")
+        self.validate()
+
+    def validate(self) -> None:
+        """Raise ParameterError naming the column and value if any value is outside {0, 1}."""
+        for name in ("x", "y", "a", "b") + (("t",) if self.t is not None else ()):
+            _check_bits(getattr(self, name), name)
 
     def __len__(self) -> int:
         return len(self.x)
@@ -186,10 +348,17 @@ class LogSummary:
     has_test_flag : bool
         Whether the log has a ``t`` column.
     sha256 : str or None
-        SHA-256 of the log's bytes (the concatenation of its files' bytes, in order).
+        Digest of the log: a single file's SHA-256; for several files the SHA-256 of the
+        RFC 8785 canonical JSON of their list (:func:`files_digest`).
     size_bytes : int
         Total size of the log's files.
     files : tuple of FileInfo
+    pair_counts : ndarray, shape (8, 8), int64
+        Counts of consecutive settings symbols s = 4 t + 2 x + y (previous, current), across
+        chunk and file boundaries (for the serial-independence check of :mod:`dicert.design`).
+    trials_in_log : int
+        Trials present in the log; more than ``trials`` when ``max_trials`` limited the
+        analysed prefix.
     """
 
     trials: int
@@ -200,6 +369,8 @@ class LogSummary:
     sha256: str | None
     size_bytes: int
     files: tuple[FileInfo, ...]
+    pair_counts: np.ndarray | None = None  # (8, 8) consecutive settings symbols (4t+2x+y)
+    trials_in_log: int | None = None  # trials present (>= trials when max_trials cut the scan)
 
 
 # --------------------------------------------------------------------------------------------
@@ -223,6 +394,8 @@ def detect_format(path: str | os.PathLike[str]) -> str:
         raise LogFormatError(path, "", "no such file") from None
     except IsADirectoryError:
         raise LogFormatError(path, "", "is a directory, not a log file") from None
+    except OSError as exc:
+        raise _read_error(path, exc) from None
     if head == BINARY_MAGIC:
         return "binary"
     if head[:4] == b"PK\x03\x04":
@@ -260,21 +433,63 @@ def resolve_sources(source: str | os.PathLike[str] | Iterable[str | os.PathLike[
             raise ParameterError("no log files given")
         return paths
     p = Path(source)
-    if p.is_dir():
-        files = sorted(
-            q for q in p.iterdir() if q.is_file() and q.name.lower().endswith(_LOG_SUFFIXES)
-        )
-        if not files:
-            raise LogFormatError(p, "", "directory holds no log files (.csv, .csv.gz, .btl, .npz)")
-        return files
-    if p.exists():
-        return [p]
-    if any(ch in str(source) for ch in "*?["):
-        files = sorted(Path(q) for q in _glob.glob(str(source)) if Path(q).is_file())
-        if not files:
-            raise LogFormatError(source, "", "no file matches this pattern")
-        return files
+    try:
+        if p.is_dir():
+            files = sorted(
+                q for q in p.iterdir() if q.name.lower().endswith(_LOG_SUFFIXES) and _is_member(q)
+            )
+            if not files:
+                raise LogFormatError(p, "", "directory holds no log files (.csv, .csv.gz, .btl, .npz)")
+            return files
+        if p.exists():
+            return [p]
+        if any(ch in str(source) for ch in "*?["):
+            files = sorted(Path(q) for q in _glob.glob(str(source)) if _is_member(Path(q)))
+            if not files:
+                _check_glob_base(str(source))
+                raise LogFormatError(source, "", "no file matches this pattern")
+            return files
+    except OSError as exc:
+        raise LogFormatError(exc.filename or source, "", _os_cause(exc, "cannot access")) from None
     raise LogFormatError(p, "", "no such file")
+
+
+def _os_cause(exc: OSError, what: str) -> str:
+    name = errno.errorcode.get(exc.errno or 0, "")
+    return f"{what}: {exc.strerror or exc}" + (f" ({name})" if name else "")
+
+
+def _is_member(q: Path) -> bool:
+    """Whether a directory entry or glob match is a part of the log. A part that cannot be
+    read (broken symbolic link, link loop, no permission) is an error, never skipped: the rest
+    of the log must not be certified as if it were the whole."""
+    try:
+        st = os.stat(q)
+    except FileNotFoundError:
+        if os.path.islink(q):
+            raise LogFormatError(q, "", "broken symbolic link (its target does not exist); a "
+                                 "part of the log cannot be read") from None
+        raise LogFormatError(q, "", "disappeared while the log was being listed") from None
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise LogFormatError(q, "", "symbolic link loop; a part of the log cannot be "
+                                 "read") from None
+        raise LogFormatError(q, "", _os_cause(exc, "cannot access")) from None
+    return not stat.S_ISDIR(st.st_mode)
+
+
+def _check_glob_base(pattern: str) -> None:
+    """A glob whose fixed leading directory cannot be listed matches nothing silently; say why."""
+    parts = Path(pattern).parts
+    fixed = [part for part in parts[: next(i for i, q in enumerate(parts) if _glob.has_magic(q))]]
+    base = Path(*fixed) if fixed else Path(".")
+    try:
+        os.listdir(base)
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise LogFormatError(base, "", _os_cause(exc, "cannot list the directory of the "
+                                                 "pattern")) from None
 
 
 class _HashingReader(io.RawIOBase):
@@ -283,6 +498,7 @@ class _HashingReader(io.RawIOBase):
     def __init__(self, fh, hasher) -> None:
         self._fh = fh
         self._h = hasher
+        self.bytes_read = 0
 
     def readable(self) -> bool:
         return True
@@ -291,6 +507,7 @@ class _HashingReader(io.RawIOBase):
         n = self._fh.readinto(b)
         if n:
             self._h.update(memoryview(b)[:n])
+            self.bytes_read += n
         return n
 
 
@@ -302,12 +519,17 @@ class TrialLog:
     source : path, directory or glob pattern (or a list of paths)
     format : {"csv", "binary", "npz"}, optional
         Force the format of every file instead of detecting it.
+    limits : ReadLimits, optional
+        Resource limits (default: :func:`current_read_limits`).
     """
 
-    def __init__(self, source, format: str | None = None) -> None:
+    def __init__(self, source, format: str | None = None, *,
+                 limits: ReadLimits | None = None) -> None:
+        self.limits = limits if limits is not None else current_read_limits()
         self.files = resolve_sources(source)
         self.formats = [format_from_name(f, format) if format else detect_format(f) for f in self.files]
-        flags = {self._peek_test_flag(f, fmt) for f, fmt in zip(self.files, self.formats)}
+        flags = {self._peek_test_flag(f, fmt, self.limits)
+                 for f, fmt in zip(self.files, self.formats)}
         if len(flags) > 1:
             raise LogFormatError(
                 self.files[0], "", "the files of this log disagree on whether a t column is present"
@@ -318,21 +540,24 @@ class TrialLog:
 
     # -- header inspection ------------------------------------------------------------------
     @staticmethod
-    def _peek_test_flag(path: Path, fmt: str) -> bool:
-        if fmt == "binary":
-            with _open_checked(path) as fh:
-                return bool(read_binary_header(fh, path)[0] & FLAG_HAS_T)
-        if fmt == "npz":
-            try:
+    def _peek_test_flag(path: Path, fmt: str, limits: ReadLimits | None = None) -> bool:
+        limits = limits if limits is not None else current_read_limits()
+        try:
+            if fmt == "binary":
+                with _open_checked(path) as fh:
+                    return bool(read_binary_header(fh, path)[0] & FLAG_HAS_T)
+            if fmt == "npz":
                 with zipfile.ZipFile(path) as zf:
                     names = {n.removesuffix(".npy") for n in zf.namelist()}
-            except zipfile.BadZipFile:
-                raise LogFormatError(path, "", "not a valid .npz archive") from None
-            return "t" in names
-        with _open_checked(path) as raw:
-            fh = _maybe_gunzip(raw, path)
-            cols, _ = _read_csv_header(fh, path)
-        return "t" in cols
+                return "t" in names
+            with _open_checked(path) as raw:
+                fh = _maybe_gunzip(raw, path)
+                cols, _ = _read_csv_header(fh, path, limits)
+            return "t" in cols
+        except LogFormatError:
+            raise
+        except (*_READ_FAILURES, ValueError, NotImplementedError, RuntimeError) as exc:
+            raise _read_error(path, exc) from None
 
     # -- streaming ----------------------------------------------------------------------------
     def iter_chunks(
@@ -358,21 +583,28 @@ class TrialLog:
             if fmt == "binary":
                 chunks = _iter_binary(path, chunk_trials, multi if hashers else None, reuse_buffers)
             else:
-                chunks = {"csv": _iter_csv, "npz": _iter_npz}[fmt](path, chunk_trials, multi)
+                chunks = {"csv": _iter_csv, "npz": _iter_npz}[fmt](path, chunk_trials, multi,
+                                                                  self.limits)
             trials_here = 0
-            for codes in chunks:
-                if codes.size == 0:
-                    continue
-                yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
-                start += codes.size
-                trials_here += codes.size
+            try:
+                for codes in chunks:
+                    if codes.size == 0:
+                        continue
+                    yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
+                    start += codes.size
+                    trials_here += codes.size
+                size_bytes = path.stat().st_size
+            except LogFormatError:
+                raise
+            except _READ_FAILURES as exc:  # I/O error, corrupt compressed data: one line
+                raise _read_error(path, exc) from None
             if trials_here == 0:
                 raise LogFormatError(path, "", "contains no trials")
             self.file_infos.append(
                 FileInfo(
                     path=str(path),
                     format=fmt,
-                    size_bytes=path.stat().st_size,
+                    size_bytes=size_bytes,
                     sha256=file_hasher.hexdigest() if file_hasher is not None else None,
                     trials=trials_here,
                 )
@@ -390,9 +622,9 @@ class _MultiHash:
             h.update(data)
 
 
-def open_log(source, format: str | None = None) -> TrialLog:
+def open_log(source, format: str | None = None, *, limits: ReadLimits | None = None) -> TrialLog:
     """Open a log (file, directory or glob) for streaming; see :class:`TrialLog`."""
-    return TrialLog(source, format=format)
+    return TrialLog(source, format=format, limits=limits)
 
 
 def _open_checked(path: Path):
@@ -404,6 +636,10 @@ def _open_checked(path: Path):
         raise LogFormatError(path, "", "is a directory, not a log file") from None
     except PermissionError:
         raise LogFormatError(path, "", "permission denied") from None
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise LogFormatError(path, "", "symbolic link loop") from None
+        raise _read_error(path, exc) from None
 
 
 # --------------------------------------------------------------------------------------------
@@ -564,30 +800,42 @@ class BinaryLogWriter:
         header = BINARY_HEADER.pack(BINARY_MAGIC, BINARY_VERSION, flags, bytes(6), COUNT_STREAMED)
         if streamed:
             self._ctx = None
-            self._fh = open(self.path, "wb")
+            with output_errors(self.path):
+                self._fh = open(self.path, "wb")
         else:
             self._ctx = atomic_writer(self.path, "wb")
             self._fh = self._ctx.__enter__()
-        self._fh.write(header)
+        try:
+            with output_errors(self.path):
+                self._fh.write(header)
+        except BaseException:
+            self.abort()
+            raise
 
     def append(self, codes: np.ndarray) -> None:
         codes = np.ascontiguousarray(codes, dtype=np.uint8)
         if codes.size and int(codes.max()) > self._mask:
             raise ParameterError("trial codes have bits outside the declared columns")
-        self._fh.write(codes.tobytes())
+        with output_errors(self.path):  # disk full: name the log being written
+            self._fh.write(codes.tobytes())
+            if self.streamed:
+                self._fh.flush()
         self.count += codes.size
-        if self.streamed:
-            self._fh.flush()
 
     def close(self) -> None:
-        if self.streamed:
-            self._fh.write(TRAILER.pack(TRAILER_MARK, self.count))
-            self._fh.close()
-            return
-        self._fh.seek(16)
-        self._fh.write(struct.pack("<Q", self.count))
-        self._fh.seek(0, 2)
-        self._ctx.__exit__(None, None, None)
+        with output_errors(self.path):
+            if self.streamed:
+                self._fh.write(TRAILER.pack(TRAILER_MARK, self.count))
+                self._fh.close()
+                return
+            try:
+                self._fh.seek(16)
+                self._fh.write(struct.pack("<Q", self.count))
+                self._fh.seek(0, 2)
+            except BaseException:
+                self.abort()  # remove the temporary file; path stays untouched
+                raise
+            self._ctx.__exit__(None, None, None)
 
     def abort(self) -> None:
         if self.streamed:
@@ -622,64 +870,108 @@ def _maybe_gunzip(raw, path):
     return raw
 
 
-def _read_csv_header(fh, path) -> tuple[list[str], int]:
-    """Return (column names, line number of the header) and leave fh after the header line."""
+def _line_too_long(path, lineno: int, limits: ReadLimits) -> LogFormatError:
+    return LogFormatError(
+        path, f"line {lineno}",
+        f"line longer than {limits.max_line_bytes} bytes (limit max_line_bytes; raise it with "
+        f"{LIMITS_ENV}=max_line_bytes=N if the log really has such lines)",
+    )
+
+
+def _read_csv_header(fh, path, limits: ReadLimits | None = None) -> tuple[list[str], int]:
+    """Return (column names, line number of the header) and leave fh after the header line.
+
+    Every line is read with a bounded ``readline`` (at most ``limits.max_line_bytes``), the
+    column count is checked before the header is split, and duplicates are found with a set.
+    """
+    limits = limits if limits is not None else current_read_limits()
     lineno = 0
     while True:
         try:
-            line = fh.readline()
-        except (OSError, EOFError, gzip.BadGzipFile) as exc:
+            line = fh.readline(limits.max_line_bytes + 1)
+        except (OSError, EOFError, gzip.BadGzipFile, zlib.error) as exc:
             raise LogFormatError(path, f"line {lineno + 1}", f"cannot decompress: {exc}") from None
         lineno += 1
         if not line:
             raise LogFormatError(path, "", "empty file: no header row")
+        if len(line) > limits.max_line_bytes:
+            raise _line_too_long(path, lineno, limits)
         text = line.strip()
         if not text or text.startswith(b"#"):
             continue
+        ncol = text.count(b",") + 1
+        if ncol > limits.max_columns:
+            raise LogFormatError(path, f"line {lineno}", f"header has {ncol} columns, more than "
+                                 f"the limit max_columns = {limits.max_columns}")
         try:
             names = [c.strip().lower() for c in text.decode("utf-8-sig").split(",")]
         except UnicodeDecodeError:
             raise LogFormatError(path, f"line {lineno}", "header row is not UTF-8 text") from None
+        present = set(names)
         for req in ("x", "y", "a", "b"):
-            if req not in names:
+            if req not in present:
                 raise LogFormatError(
                     path, f"line {lineno}", f"header has no column {req!r} (required: x,y,a,b; optional t)"
                 )
-        dup = {c for c in names if names.count(c) > 1 and c in ("x", "y", "a", "b", "t")}
-        if dup:
-            raise LogFormatError(path, f"line {lineno}", f"column {sorted(dup)[0]!r} appears twice")
+        seen: set[str] = set()
+        for c in names:  # linear: a set, not names.count per column
+            if c in seen and c in ("x", "y", "a", "b", "t"):
+                raise LogFormatError(path, f"line {lineno}", f"column {c!r} appears twice")
+            seen.add(c)
         return names, lineno
 
 
-def _iter_csv(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
+def _iter_csv(path: Path, chunk_trials: int, hasher,
+              limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
+    limits = limits if limits is not None else current_read_limits()
+    max_line = limits.max_line_bytes
     with _open_checked(path) as raw0:
-        raw = io.BufferedReader(_HashingReader(raw0, hasher), buffer_size=1 << 20)
+        counted = _HashingReader(raw0, hasher)
+        raw = io.BufferedReader(counted, buffer_size=1 << 20)
         fh = _maybe_gunzip(raw, path)
-        names, lineno = _read_csv_header(fh, path)
+        gz = fh is not raw
+        names, lineno = _read_csv_header(fh, path, limits)
         ncol = len(names)
         want = [names.index(c) for c in ("x", "y", "a", "b")]
         tcol = names.index("t") if "t" in names else None
         carry = b""
         pending: list[np.ndarray] = []
         pending_n = 0
+        inflated = 0
+        # Blocks no larger than needed for long lines; carry never exceeds max_line bytes, so
+        # each block costs O(block + max_line) whatever the input (no quadratic re-copying).
+        block_bytes = max(_CSV_BLOCK_BYTES, min(max_line, 1 << 26))
         while True:
             try:
-                block = fh.read(_CSV_BLOCK_BYTES)
-            except (OSError, EOFError, gzip.BadGzipFile) as exc:
+                block = fh.read(block_bytes)
+            except (OSError, EOFError, gzip.BadGzipFile, zlib.error) as exc:
                 raise LogFormatError(path, f"after line {lineno}", f"cannot decompress: {exc}") from None
+            if gz and block:
+                inflated += len(block)
+                if (inflated > limits.ratio_grace_bytes
+                        and inflated > limits.max_compression_ratio * max(counted.bytes_read, 1)):
+                    raise LogFormatError(
+                        path, f"after line {lineno}",
+                        f"decompresses to more than {limits.max_compression_ratio:g} times its "
+                        f"compressed size (limit max_compression_ratio; a decompression bomb?)")
             if not block:
                 if carry.strip():
                     block = b"\n"  # a last line without newline
                 else:
                     break
-            data = carry + block
+            data = carry + block if carry else block
             cut = data.rfind(b"\n")
             if cut < 0:
+                if len(data) > max_line:
+                    raise _line_too_long(path, lineno + 1, limits)
                 carry = data
                 continue
             carry = data[cut + 1 :]
-            codes, nlines = _parse_csv_block(data[: cut + 1], ncol, want, tcol, path, lineno + 1)
+            codes, nlines = _parse_csv_block(data[: cut + 1], ncol, want, tcol, path, lineno + 1,
+                                             max_line)
             lineno += nlines
+            if len(carry) > max_line:
+                raise _line_too_long(path, lineno + 1, limits)
             if codes.size:
                 pending.append(codes)
                 pending_n += codes.size
@@ -696,14 +988,27 @@ def _iter_csv(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
             pass
 
 
-def _parse_csv_block(data: bytes, ncol, want, tcol, path, first_line) -> tuple[np.ndarray, int]:
-    """Parse complete lines; fast vectorised path, exact per-line path on any irregularity."""
+def _parse_csv_block(data: bytes, ncol, want, tcol, path, first_line,
+                     max_line: int | None = None) -> tuple[np.ndarray, int]:
+    """Parse complete lines; fast vectorised path, exact per-line path on any irregularity.
+
+    Lines longer than ``max_line`` bytes (newline included) are an error; the fixed-width path
+    needs no check (its lines are 2 * ncol bytes, and ncol is bounded by max_columns).
+    """
     buf = np.frombuffer(data, dtype=np.uint8)
     fixed = _parse_csv_fixed(buf, ncol, want, tcol)
     if fixed is not None:
         return fixed, fixed.size
     nl = np.flatnonzero(buf == 10)
     nlines = nl.size
+    if max_line is not None and nlines and max_line < len(data):
+        lengths = np.diff(nl, prepend=-1)
+        if int(lengths.max()) > max_line:
+            k = int(np.argmax(lengths > max_line))
+            raise LogFormatError(path, f"line {first_line + k}",
+                                 f"line longer than {max_line} bytes (limit max_line_bytes; raise "
+                                 f"it with {LIMITS_ENV}=max_line_bytes=N if the log really has "
+                                 "such lines)")
     codes = _parse_csv_fast(buf, nl, ncol, want, tcol)
     if codes is None:
         codes = _parse_csv_slow(data, ncol, want, tcol, path, first_line)
@@ -794,40 +1099,142 @@ def _parse_csv_slow(data: bytes, ncol, want, tcol, path, first_line) -> np.ndarr
 # --------------------------------------------------------------------------------------------
 
 
-def _iter_npz(path: Path, chunk_trials: int, hasher) -> Iterator[np.ndarray]:
+def _iter_npz(path: Path, chunk_trials: int, hasher,
+              limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
+    """Stream the trials of an npz log.
+
+    The file is read into memory once (at most ``limits.max_npz_bytes``), so that its digest
+    covers exactly the bytes analysed; every member's ``.npy`` header (dtype, shape, size) is
+    checked against the archive directory before anything is decompressed, and the arrays are
+    then decoded ``chunk_trials`` at a time (memory does not grow with the decompressed size).
+    """
+    limits = limits if limits is not None else current_read_limits()
     with _open_checked(path) as fh:
-        data = fh.read()
+        size = os.fstat(fh.fileno()).st_size
+        if size > limits.max_npz_bytes:
+            raise LogFormatError(path, "", f"npz file of {size} bytes exceeds the limit "
+                                 f"max_npz_bytes = {limits.max_npz_bytes}; convert it to the "
+                                 "binary format (dicert convert), which streams")
+        data = fh.read(limits.max_npz_bytes + 1)
+    if len(data) > limits.max_npz_bytes:
+        raise LogFormatError(path, "", "npz file exceeds the limit max_npz_bytes = "
+                             f"{limits.max_npz_bytes}")
     hasher.update(data)
     try:
-        arc = np.load(io.BytesIO(data), allow_pickle=False)
-    except Exception as exc:  # numpy raises several types for corrupt archives
+        zf = zipfile.ZipFile(io.BytesIO(data))
+    except (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError) as exc:
         raise LogFormatError(path, "", f"not a valid .npz archive ({type(exc).__name__})") from None
-    with arc:
-        missing = [k for k in ("x", "y", "a", "b") if k not in arc.files]
+    with zf:
+        members = {}
+        for info in zf.infolist():
+            key = info.filename.removesuffix(".npy")
+            if key in ("x", "y", "a", "b", "t"):
+                if key in members:
+                    raise LogFormatError(path, f"array {key!r}", "appears twice in the archive")
+                members[key] = info
+        missing = [k for k in ("x", "y", "a", "b") if k not in members]
         if missing:
             raise LogFormatError(path, "", f"array {missing[0]!r} missing (required: x, y, a, b; optional t)")
-        names = ["x", "y", "a", "b"] + (["t"] if "t" in arc.files else [])
+        names = ["x", "y", "a", "b"] + (["t"] if "t" in members else [])
+        total = sum(members[k].file_size for k in names)
+        packed = sum(members[k].compress_size for k in names)
+        if (total > limits.ratio_grace_bytes
+                and total > limits.max_compression_ratio * max(packed, 1)):
+            raise LogFormatError(path, "", f"arrays decompress to more than "
+                                 f"{limits.max_compression_ratio:g} times their compressed size "
+                                 "(limit max_compression_ratio; a decompression bomb?)")
+        streams = {}
+        n = None
         try:
-            arrays = {k: arc[k] for k in names}
-        except ValueError as exc:
-            raise LogFormatError(path, "", f"cannot read array: {exc}") from None
-    n = None
-    for k, arr in arrays.items():
-        if arr.ndim != 1:
-            raise LogFormatError(path, f"array {k!r}", f"must be one-dimensional, has shape {arr.shape}")
-        if n is None:
-            n = arr.size
-        elif arr.size != n:
-            raise LogFormatError(path, f"array {k!r}", f"has {arr.size} entries, array 'x' has {n}")
-        if arr.dtype.kind not in "biuf":
-            raise LogFormatError(path, f"array {k!r}", f"has dtype {arr.dtype}; expected integers 0/1")
-        bad = np.flatnonzero(~((arr == 0) | (arr == 1)))
-        if bad.size:
-            i = int(bad[0])
-            raise LogFormatError(path, f"array {k!r}, index {i}", f"value {arr[i]!r}; expected 0 or 1")
-    codes = TrialArrays(**{k: arrays[k].astype(np.uint8) for k in names}).codes()
-    for lo in range(0, codes.size, chunk_trials):
-        yield codes[lo : lo + chunk_trials]
+            for k in names:
+                m = zf.open(members[k])
+                streams[k] = m
+                dtype, count = _read_npy_header(m, members[k], path, k, limits)
+                if n is None:
+                    n = count
+                elif count != n:
+                    raise LogFormatError(path, f"array {k!r}",
+                                         f"has {count} entries, array 'x' has {n}")
+                streams[k] = (m, dtype)
+            offset = 0
+            while offset < n:
+                want = min(chunk_trials, n - offset)
+                cols = {}
+                for k in names:
+                    m, dtype = streams[k]
+                    arr = _read_npy_chunk(m, dtype, want, path, k, offset)
+                    bad = np.flatnonzero(~((arr == 0) | (arr == 1)))
+                    if bad.size:
+                        i = int(bad[0])
+                        raise LogFormatError(path, f"array {k!r}, index {offset + i}",
+                                             f"value {arr[i]!r}; expected 0 or 1")
+                    cols[k] = arr.astype(np.uint8)
+                yield TrialArrays(**cols).codes()
+                offset += want
+            for k in names:  # reach each member's end: zipfile checks its CRC-32 there
+                m, _ = streams[k]
+                if m.read(1):
+                    raise LogFormatError(path, f"array {k!r}",
+                                         "member holds more bytes than its header declares")
+        except LogFormatError:
+            raise
+        except (*_READ_FAILURES, ValueError, NotImplementedError, RuntimeError) as exc:
+            raise _read_error(path, exc) from None
+        finally:
+            for v in streams.values():
+                (v[0] if isinstance(v, tuple) else v).close()
+
+
+def _read_npy_header(m, info: zipfile.ZipInfo, path, key: str, limits: ReadLimits):
+    """(dtype, length) of a 1-D numeric ``.npy`` member, checked before any data is read."""
+    from numpy.lib import format as npf
+
+    where = f"array {key!r}"
+    try:
+        version = npf.read_magic(m)
+        cap = int(limits.max_npy_header_bytes)
+        if version == (1, 0):
+            shape, _, dtype = npf.read_array_header_1_0(m, max_header_size=cap)
+        elif version in ((2, 0), (3, 0)):
+            shape, _, dtype = npf.read_array_header_2_0(m, max_header_size=cap)
+        else:  # pragma: no cover - read_magic accepts only the versions above
+            raise ValueError(f"unsupported .npy version {version}")
+    except LogFormatError:
+        raise
+    except _READ_FAILURES as exc:
+        raise _read_error(path, exc, where) from None
+    except Exception as exc:  # numpy parses the (bounded) header with tokenize/ast: any error
+        raise LogFormatError(path, where, f"member {info.filename!r} is not a valid .npy array "
+                             f"({' '.join(str(exc).split())[:120]})") from None
+    if dtype.hasobject:
+        raise LogFormatError(path, where, "is an object (pickled) array; refused (expected "
+                             "integers 0/1)")
+    if dtype.kind not in "biuf" or dtype.itemsize > 16:
+        raise LogFormatError(path, where, f"has dtype {dtype}; expected integers 0/1")
+    if len(shape) != 1:
+        raise LogFormatError(path, where, f"must be one-dimensional, has shape {shape}")
+    count = int(shape[0])
+    header_len = m.tell() if hasattr(m, "tell") else None
+    data_bytes = count * dtype.itemsize
+    if header_len is not None and header_len + data_bytes != info.file_size:
+        held = max(info.file_size - header_len, 0)
+        raise LogFormatError(path, where, f"header declares shape {shape} ({data_bytes} bytes) "
+                             f"but the member holds {held} bytes of data")
+    return dtype, count
+
+
+def _read_npy_chunk(m, dtype: np.dtype, count: int, path, key: str, offset: int) -> np.ndarray:
+    need = count * dtype.itemsize
+    parts = []
+    got = 0
+    while got < need:
+        b = m.read(need - got)
+        if not b:
+            raise LogFormatError(path, f"array {key!r}, index {offset + got // dtype.itemsize}",
+                                 "truncated member")
+        parts.append(b)
+        got += len(b)
+    return np.frombuffer(b"".join(parts) if len(parts) > 1 else parts[0], dtype=dtype)
 
 
 # --------------------------------------------------------------------------------------------
@@ -844,6 +1251,7 @@ def summarize_log(
     format: str | None = None,
     on_chunk: Callable[[LogChunk], object] | None = None,
     progress: Callable[[int, int], object] | None = None,
+    max_trials: int | None = None,
 ) -> LogSummary:
     """Read a log once, streaming, and return its counts (total and per block) and digest.
 
@@ -859,22 +1267,45 @@ def summarize_log(
         pass).
     progress : callable, optional
         Called as ``progress(bytes_done, bytes_total)``.
+    max_trials : int, optional
+        Count (and pass to ``on_chunk``) only the first ``max_trials`` trials; the rest of
+        the log is still read, validated and hashed, and counted in ``trials_in_log``.
     """
-    from dicert._kernels import count_blocks
+    from dicert._kernels import count_blocks, count_pairs
 
     if block_trials <= 0:
         raise ParameterError("block_trials must be positive")
     log = open_log(source, format=format)
     total_bytes = sum(f.stat().st_size for f in log.files)
-    hasher = hashlib.sha256() if digest else None
     blocks: list[np.ndarray] = []
     partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
     in_partial = 0
     trials = 0
+    in_log = 0
+    pairs = np.zeros(64, dtype=np.int64)
+    prev = -1  # settings symbol of the last trial counted (carried across chunks and files)
     # Without a consumer of the chunks the buffers can be reused (nothing keeps the codes).
-    for chunk in log.iter_chunks(chunk_trials, hasher=hasher, hash_files=digest,
+    # The digest is built from the per-file digests (see files_digest), so no second hasher.
+    for chunk in log.iter_chunks(chunk_trials, hash_files=digest,
                                  reuse_buffers=on_chunk is None):
         codes = chunk.codes
+        in_log += codes.size
+        if max_trials is not None:
+            room = max_trials - trials
+            if room <= 0:
+                if progress is not None:
+                    progress(min(total_bytes, _bytes_done(log, in_log, total_bytes)), total_bytes)
+                continue
+            if codes.size > room:
+                codes = codes[:room]
+                chunk = LogChunk(codes=codes, start=chunk.start, has_test_flag=chunk.has_test_flag)
+        # Pair counting runs in a worker thread while this one counts the blocks (both C
+        # kernels release the GIL); it finishes before the next chunk reuses the buffer.
+        big = codes.size >= _PAIR_THREAD_MIN
+        fut = _pair_pool().submit(count_pairs, codes, prev) if big else None
+        if fut is None:
+            pc, prev = count_pairs(codes, prev)
+            pairs += pc
         pos = 0
         if in_partial:
             take = min(block_trials - in_partial, codes.size)
@@ -895,6 +1326,9 @@ def summarize_log(
             if rest.size % block_trials:
                 partial += c[-1]
                 in_partial = rest.size % block_trials
+        if fut is not None:
+            pc, prev = fut.result()
+            pairs += pc
         trials += codes.size
         if on_chunk is not None:
             on_chunk(chunk)
@@ -906,16 +1340,82 @@ def summarize_log(
     if not log.has_test_flag:
         block_counts = np.stack([np.zeros_like(block_counts[:, 0]), block_counts.sum(axis=1)], axis=1)
     counts = block_counts.sum(axis=0) if block_counts.size else np.zeros((2,) * 5, dtype=np.int64)
+    sha = None
+    if digest:
+        infos = log.file_infos
+        sha = infos[0].sha256 if len(infos) == 1 else files_digest(
+            {"name": Path(f.path).name, "bytes": f.size_bytes, "sha256": f.sha256} for f in infos)
     return LogSummary(
         trials=trials,
         counts=counts,
         block_trials=block_trials,
         block_counts=block_counts,
         has_test_flag=log.has_test_flag,
-        sha256=hasher.hexdigest() if hasher is not None else None,
+        sha256=sha,
         size_bytes=total_bytes,
         files=tuple(log.file_infos),
+        pair_counts=pairs.reshape(8, 8),
+        trials_in_log=in_log,
     )
+
+
+def input_identity_problems(files: Iterable[Any], formats: Iterable[str] | None = None,
+                            digests: Iterable[str | None] | None = None) -> list[str]:
+    """Reasons why a multi-file log looks like it holds the same data twice or mixes sources.
+
+    Flags a file next to its own ``.gz`` copy (``run.csv`` and ``run.csv.gz``), files of
+    different formats in one log, and (given the per-file ``digests``) files of equal content.
+    Returns an empty list for a clean log; callers refuse the log unless the user explicitly
+    allows it.
+    """
+    paths = [Path(f) for f in files]
+    out: list[str] = []
+    names = {(p.parent, p.name.lower()) for p in paths}
+    for p in paths:
+        low = p.name.lower()
+        if low.endswith(".gz") and (p.parent, low[:-3]) in names:
+            out.append(f"{p} is a compressed copy of {p.with_name(p.name[:-3])}, which is also "
+                       "part of the log")
+    if formats is not None:
+        fm = list(formats)
+        if len(set(fm)) > 1:
+            kinds = ", ".join(f"{q.name} ({f})" for q, f in zip(paths, fm))
+            out.append(f"the log mixes file formats: {kinds}")
+    if digests is not None:
+        seen: dict[str, Path] = {}
+        for p, d in zip(paths, digests):
+            if d is None:
+                continue
+            if d in seen:
+                out.append(f"{p} has the same content (SHA-256 {d[:16]}...) as {seen[d]}")
+            else:
+                seen[d] = p
+    return out
+
+
+_PAIR_THREAD_MIN = 1 << 20
+
+
+@functools.cache
+def _pair_pool():
+    from concurrent.futures import ThreadPoolExecutor
+
+    return ThreadPoolExecutor(max_workers=1, thread_name_prefix="dicert-pairs")
+
+
+def files_digest(entries: Iterable[Mapping[str, Any]]) -> str:
+    """Digest of a multi-file log: SHA-256 of the RFC 8785 canonical JSON of its files list.
+
+    ``entries`` are ``{"name": file name, "bytes": size, "sha256": hex SHA-256 of the file}``
+    in read order; the list is canonicalised (RFC 8785: keys sorted, no whitespace) and
+    hashed. Each file's digest can be computed independently (in parallel), then combined
+    here. A single-file log uses the file's own SHA-256 instead.
+    """
+    from dicert.audit.canonical import canonicalize
+
+    items = [{"name": str(e["name"]), "bytes": int(e["bytes"]), "sha256": str(e["sha256"])}
+             for e in entries]
+    return hashlib.sha256(canonicalize(items)).hexdigest()
 
 
 def _bytes_done(log: TrialLog, trials: int, total_bytes: int) -> int:
@@ -948,7 +1448,12 @@ def _as_code_chunks(trials) -> tuple[bool, Iterator[np.ndarray]]:
         raise ParameterError("no trials to write") from None
 
     def codes_of(item) -> np.ndarray:
-        return item.codes if isinstance(item, LogChunk) else item.codes()
+        if isinstance(item, LogChunk):
+            if item.codes.size and int(item.codes.max()) > 0x1F:
+                raise ParameterError("write_log: a chunk holds trial codes with reserved bits set")
+            return item.codes
+        item.validate()  # the arrays may have been changed since construction
+        return item.codes()
 
     flag = first.has_test_flag
 
@@ -1040,10 +1545,15 @@ __all__ = [
     "LogSummary",
     "TrialArrays",
     "TrialLog",
+    "ReadLimits",
     "convert_log",
+    "current_read_limits",
     "detect_format",
+    "files_digest",
+    "input_identity_problems",
     "open_log",
     "read_binary_header",
+    "read_limits",
     "read_trials",
     "resolve_sources",
     "summarize_log",

@@ -77,6 +77,7 @@ import numpy as np
 from dicert.entropy.analytic import TSIRELSON, W_QUANTUM, binary_entropy
 from dicert.errors import ParameterError
 from dicert.finite.params import EatParams, MartingaleParams
+from dicert.protocol import MAX_INTEGER, MIN_GAMMA
 
 DEFAULT_TRIALS = 10**7
 DEFAULT_EPS_COMP = 1e-6
@@ -342,7 +343,8 @@ class _MethodModel:
             params = {"variant": p.variant, "acceptance": th.acceptance,
                       "count_limit": th.count_limit, "tolerance": th.tolerance,
                       "expected_win_probability": p.expected_win_probability,
-                      "eps_s": p.eps_s, "eps_ea": p.eps_ea, "tangent_point": rate.w_tangent
+                      "eps_s": p.eps_s, "eps_ea": p.eps_ea, "single_round": p.single_round,
+                      "tangent_point": rate.w_tangent
                       if math.isfinite(rate.w_tangent) else None, "alpha": rate.alpha}
         m = _output_bits(k, self.eps_ext)
         return _Eval(k, m, seed, m - seed, abort, params)
@@ -638,6 +640,23 @@ def _models(protocol: Any, win: float, eps_comp: float,
                       eps_s=eps_s, eps_ea=eps_ea)
         models.append(_MethodModel(p.method_name, "quantum", "derived", win, eps_ext,
                                    eps_comp, eat=p))
+    # The same EAT engines with the other single-round bound: the certified Gauss-Radau
+    # quadrature lines on H(AB|X,Y,E) (Brown, Fawzi & Fawzi 2024), or back to the analytic G.
+    declared_eat = method == "eat" and isinstance(analysis, EatParams)
+    other = ("analytic-vn-A" if declared_eat and analysis.single_round == "radau-vn-AB"
+             else "radau-vn-AB")
+    for variant in ("df-conservative", "dfr"):
+        if declared_eat:
+            p = dataclasses.replace(analysis, variant=variant, rounds=None, single_round=other)
+            how = "declared" if variant == analysis.variant else "declared-switched"
+        elif win <= 0.75:
+            continue
+        else:
+            p = EatParams(variant=variant, expected_win_probability=win, eps_comp=eps_comp,
+                          eps_s=eps_s, eps_ea=eps_ea, single_round=other)
+            how = "derived"
+        models.append(_MethodModel(p.method_name, "quantum", how, win, eps_ext, eps_comp,
+                                   eat=p))
     design = getattr(protocol, "design", None)
     generation = tuple(getattr(design, "generation", (0, 0)))
     if method == "pef":
@@ -705,14 +724,16 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
                   f"{8.0 * win - 4.0:.6g}")
     design = getattr(protocol, "design", None)
     g = float(gamma if gamma is not None else getattr(design, "gamma", 1.0))
-    if not (math.isfinite(g) and 0.0 < g <= 1.0):
-        raise ParameterError(f"--gamma must lie in (0, 1], got {gamma!r}")
+    if not (math.isfinite(g) and MIN_GAMMA <= g <= 1.0):
+        raise ParameterError(f"--gamma must lie in [{MIN_GAMMA:g}, 1], got {gamma!r}")
     source = "given"
     if trials is None:
         declared = getattr(analysis, "n_max" if is_pef else "rounds", None)
         trials, source = (declared, "protocol") if declared else (DEFAULT_TRIALS, "default")
-    if isinstance(trials, bool) or int(trials) != trials or trials < 1:
-        raise ParameterError(f"--trials must be a positive integer, got {trials!r}")
+    if (isinstance(trials, bool) or not math.isfinite(trials) or int(trials) != trials
+            or not 1 <= trials <= MAX_INTEGER):
+        # Bounded so that every count stays exact in double precision and in the record.
+        raise ParameterError(f"--trials must be an integer in [1, 2**53 - 1], got {trials!r}")
     n = int(trials)
     eps_comp = float(getattr(analysis, "eps_comp", None) or DEFAULT_EPS_COMP)
     models = _models(protocol, win, eps_comp, box)

@@ -32,6 +32,11 @@ Layout (all tables required unless marked optional)::
     eps_ext = 1e-8
     output_rule = "lhl-conservative"
 
+    [design]                          # optional: design-conformance checks (dicert.design)
+    significance = 1e-9               # of every check
+    trials = 1000000                  # optional pre-declared number of trials n
+    block_trials = 1048576            # block size of the per-block checks
+
 Errors are :class:`~dicert.errors.ProtocolError` with one line naming the file and the key.
 """
 
@@ -56,7 +61,19 @@ METHODS = ("martingale", "eat", "pef")
 EXTRACTOR_KINDS = ("toeplitz",)
 OUTPUT_RULES = ("lhl-conservative",)
 
-_TOP_KEYS = ("format", "name", "description", "bell", "settings", "harvest", "analysis", "extractor")
+_TOP_KEYS = ("format", "name", "description", "bell", "settings", "harvest", "analysis", "extractor",
+             "design")
+
+#: Largest integer a protocol may hold: records are I-JSON (RFC 7493 section 2.2), whose safe
+#: integers are those within +-(2**53 - 1); a larger count would fail only when the record is
+#: written, after the whole certification.
+MAX_INTEGER = 2**53 - 1
+#: Smallest error parameter (every key named eps_*, and extractor.eps_ext) and smallest
+#: settings.gamma accepted. Below about 1e-154 a squared epsilon (g(eps_s) of entropy
+#: accumulation) or 8/gamma-type terms leave double precision and the formulas divide by zero;
+#: 1e-100 (about 2**-332) keeps a wide margin and is far below any useful security parameter.
+MIN_EPSILON = 1e-100
+MIN_GAMMA = 1e-100
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -107,6 +124,7 @@ class Protocol:
     analysis: Any  # MartingaleParams | EatParams | PefParams
     extractor: ExtractorSpec
     description: str = ""
+    conformance: Any = None  # dicert.design.DesignSpec (the optional [design] table)
 
     @property
     def gamma(self) -> float:
@@ -295,6 +313,42 @@ def _cross_checks(ctx: _Ctx, *, bell: BellTest, design: Any, harvest: Harvest, m
         raise ctx.fail("analysis.gamma", f"{p_gamma!r} disagrees with settings.gamma = {gamma!r}")
 
 
+def _check_numeric_ranges(ctx: _Ctx, d: Mapping[str, Any]) -> None:
+    """Ranges every formula downstream can handle, checked before any method parses its keys:
+    integers within +-:data:`MAX_INTEGER`; error parameters and gamma at least
+    :data:`MIN_EPSILON` / :data:`MIN_GAMMA` (when they are numbers at all; the type and the
+    upper end are checked where each key is parsed)."""
+
+    def walk(val: Any, key: str) -> None:
+        if isinstance(val, Mapping):
+            for k, v in val.items():
+                walk(v, f"{key}.{k}" if key else str(k))
+        elif isinstance(val, list):
+            for i, v in enumerate(val):
+                walk(v, f"{key}[{i}]")
+        elif isinstance(val, int) and not isinstance(val, bool) and abs(val) > MAX_INTEGER:
+            raise ctx.fail(key, f"{val} is too large; integers must lie within +-(2**53 - 1) "
+                           "= +-9007199254740991 (records are I-JSON, RFC 7493 section 2.2)")
+
+    walk(d, "")
+
+    def floor(table: str, key: str, lo: float, what: str) -> None:
+        t = d.get(table)
+        val = t.get(key) if isinstance(t, Mapping) else None
+        if (isinstance(val, (int, float)) and not isinstance(val, bool) and math.isfinite(val)
+                and 0.0 < val < lo):
+            raise ctx.fail(f"{table}.{key}", f"{val!r} is below {lo:g}, the smallest {what} "
+                           "for which every formula stays finite in double precision")
+
+    analysis = d.get("analysis")
+    if isinstance(analysis, Mapping):
+        for k in analysis:
+            if isinstance(k, str) and k.startswith("eps_"):
+                floor("analysis", k, MIN_EPSILON, "error parameter")
+    floor("extractor", "eps_ext", MIN_EPSILON, "error parameter")
+    floor("settings", "gamma", MIN_GAMMA, "test-round probability")
+
+
 def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: str | None = None,
                        sha256: str | None = None, path: str | None = None) -> Protocol:
     """Validate a protocol given as a mapping (the parsed TOML).
@@ -318,6 +372,7 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     if not isinstance(d, Mapping):
         raise ProtocolError(f"{source}: expected a table of protocol keys, got {_kind(d)}")
     ctx.no_extra(d, None, _TOP_KEYS)
+    _check_numeric_ranges(ctx, d)
     fmt = d.get("format", PROTOCOL_FORMAT)
     if fmt != PROTOCOL_FORMAT:
         raise ctx.fail("format", f"got {fmt!r}; this version reads {PROTOCOL_FORMAT!r}")
@@ -333,6 +388,7 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     method, params = _parse_analysis(ctx, d)
     extractor = _parse_extractor(ctx, d)
     _cross_checks(ctx, bell=bell, design=design, harvest=harvest, method=method, params=params)
+    conformance = _parse_design(ctx, d, params)
     if text is None:
         import json
 
@@ -341,7 +397,18 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
         sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return Protocol(name=name.strip(), path=path or source, sha256=sha256, text=text, bell=bell,
                     design=design, harvest=harvest, method=method, analysis=params,
-                    extractor=extractor, description=desc)
+                    extractor=extractor, description=desc, conformance=conformance)
+
+
+def _parse_design(ctx: _Ctx, d: Mapping[str, Any], params: Any):
+    """The optional [design] table (significance of the conformance checks, declared n)."""
+    from dicert.design import DesignSpec
+
+    spec = DesignSpec.from_mapping(d.get("design", {}), ctx.source)
+    rounds = getattr(params, "rounds", None)
+    if spec.trials is not None and isinstance(rounds, int) and rounds != spec.trials:
+        raise ctx.fail("design.trials", f"{spec.trials} disagrees with analysis.rounds = {rounds}")
+    return spec
 
 
 def _plain(obj: Any) -> Any:
@@ -352,6 +419,35 @@ def _plain(obj: Any) -> Any:
     if hasattr(obj, "isoformat"):
         return obj.isoformat()
     return obj
+
+
+def _toml_problem(text: str, exc: Exception) -> str:
+    """tomllib's message, with the key named when a key or table is given twice (tomllib
+    says only "Cannot overwrite a value (at line L, column C)")."""
+    import re
+
+    msg = " ".join(str(exc).split())
+    m = re.search(r"at line (\d+)", msg)
+    if m is None or not msg.startswith(("Cannot overwrite a value", "Cannot declare")):
+        return msg
+    lineno = int(m.group(1))
+    lines = text.splitlines()
+    if not 1 <= lineno <= len(lines):
+        return msg
+    line = lines[lineno - 1].strip()
+    header = re.match(r"^\[\[?\s*([^\]]+?)\s*\]\]?", line)
+    if header:
+        return f"table [{header.group(1)}] is declared twice (line {lineno})"
+    if "=" not in line:
+        return msg
+    key = line.split("=", 1)[0].strip().replace('"', "").replace("'", "")
+    table = ""
+    for prev in reversed(lines[: lineno - 1]):
+        h = re.match(r"^\s*\[\[?\s*([^\]]+?)\s*\]\]?", prev)
+        if h:
+            table = h.group(1).replace('"', "").replace("'", "") + "."
+            break
+    return f"key '{table}{key}' is given twice, or conflicts with an earlier key (line {lineno})"
 
 
 def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | None = None) -> Protocol:
@@ -380,7 +476,7 @@ def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | Non
     try:
         d = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise ProtocolError(f"{source}: invalid TOML: {' '.join(str(exc).split())}") from None
+        raise ProtocolError(f"{source}: invalid TOML: {_toml_problem(text, exc)}") from None
     return protocol_from_dict(d, source, text=text, sha256=hashlib.sha256(data).hexdigest(),
                               path=path or source)
 
@@ -397,7 +493,7 @@ def load_protocol(path: str | os.PathLike[str]) -> Protocol:
     from dicert._io import read_user_file
 
     p = Path(path)
-    data = read_user_file(p, "protocol file (.toml)", ProtocolError)
+    data = read_user_file(p, "protocol file (.toml)", ProtocolError, max_bytes=1 << 20)
     return protocol_from_bytes(data, str(p), path=str(p))
 
 

@@ -204,17 +204,18 @@ def test_tampered_pulse_and_wrong_key(tmp_path, key, public):
         verify_chain(chain, public)
     other = signing.generate_keypair()
     kinds = _error_kinds(chain, other.public_key)
-    assert kinds.count("record") == 3
+    # Pulse 2 fails its digest; pulses 1 and 3 verify but not under a trusted key.
+    assert kinds.count("record") == 1 and kinds.count("untrusted-key") == 2
 
 
-def test_seed_reuse_flagged(tmp_path, key, public):
+def test_seed_reuse_is_an_error(tmp_path, key, public):
     chain = tmp_path / "c"
     _grow(chain, key, 3, seeds=["s1", "s2", "s1"])
-    report = verify_chain(chain, public)  # a warning by default
-    reuse = [f for f in report.warnings if f.kind == "seed-reuse"]
+    report = inspect_chain(chain, public)
+    reuse = [f for f in report.errors if f.kind == "seed-reuse"]
     assert reuse and reuse[0].pulses == (1, 3)
     with pytest.raises(ChainVerificationError, match="seed"):
-        verify_chain(chain, public, strict=True)
+        verify_chain(chain, public)
 
 
 def test_unused_seed_is_not_reuse(tmp_path, key, public):
@@ -228,16 +229,17 @@ def test_unused_seed_is_not_reuse(tmp_path, key, public):
     verify_chain(chain, public, strict=True)
 
 
-def test_unsigned_and_key_change_flagged(tmp_path, key):
+def test_unsigned_and_key_change_are_errors(tmp_path, key):
     chain = tmp_path / "c"
     append_to_chain(chain, seal_record(_pulse_body(next_link(chain), "a"), key))
     append_to_chain(chain, seal_record(_pulse_body(next_link(chain), "b"),
                                        signing.generate_keypair()))
     append_to_chain(chain, seal_record(_pulse_body(next_link(chain), "c")))
-    report = verify_chain(chain)
-    assert {f.kind for f in report.warnings} == {"unsigned", "key-change"}
+    report = inspect_chain(chain)
+    assert {f.kind for f in report.errors} == {"unsigned", "key-change"}
+    assert report.result == "FAILED"
     with pytest.raises(ChainVerificationError):
-        verify_chain(chain, strict=True)
+        verify_chain(chain)
 
 
 def test_unexpected_files_and_missing_dir(tmp_path, key, public):
@@ -246,9 +248,11 @@ def test_unexpected_files_and_missing_dir(tmp_path, key, public):
     (chain / "notes.txt").write_text("hello")
     (chain / "pulse-2.json").write_text("{}")  # not zero-padded
     (chain / ".pulse-000002.json.abc.part").write_text("")
-    kinds = inspect_chain(chain, public).errors
-    assert [f.kind for f in kinds].count("unexpected-file") == 3
-    assert any("leftover temporary file" in f.message for f in kinds)
+    report = inspect_chain(chain, public)
+    kinds = report.errors
+    assert [f.kind for f in kinds].count("unexpected-file") == 2
+    # A temporary file of an interrupted append never blocks readers: it is reported, ignored.
+    assert [f.kind for f in report.infos] == ["temporary-file"]
     with pytest.raises(VerificationError, match="unexpected entry|leftover"):
         chain_head(chain)
     with pytest.raises(ParameterError, match="does not exist"):
@@ -261,3 +265,86 @@ def test_unreadable_pulse(tmp_path, key, public):
     paths[0].write_bytes(b"{not json")
     report = inspect_chain(chain, public)
     assert [f.kind for f in report.errors] == ["unreadable"]
+
+
+def _body_with(link, seed_label, log_label, protocol_label="p1", change=None):
+    body = _pulse_body(link, seed_label)
+    body["log"] = {"sha256": hashlib.sha256(log_label.encode()).hexdigest()}
+    body["protocol"] = {"sha256": hashlib.sha256(protocol_label.encode()).hexdigest()}
+    if change is not None:
+        body["protocol_change"] = change
+    return body
+
+
+def test_log_reuse_is_an_error(tmp_path, key, public):
+    chain = tmp_path / "c"
+    for seed, log in (("s1", "L1"), ("s2", "L2"), ("s3", "L1")):
+        append_to_chain(chain, seal_record(_body_with(next_link(chain), seed, log), key))
+    reuse = [f for f in inspect_chain(chain, public).errors if f.kind == "log-reuse"]
+    assert len(reuse) == 1 and reuse[0].pulses == (1, 3)
+
+
+def test_protocol_change_declared_or_not(tmp_path, key, public):
+    chain = tmp_path / "c"
+    p1 = hashlib.sha256(b"p1").hexdigest()
+    append_to_chain(chain, seal_record(_body_with(next_link(chain), "a", "A"), key))
+    append_to_chain(chain, seal_record(_body_with(next_link(chain), "b", "B", "p2"), key))
+    report = inspect_chain(chain, public)
+    assert [(f.kind, f.file) for f in report.errors] == [("protocol-change", "pulse-000002.json")]
+    # Declared (signed, naming the previous protocol's digest): allowed and shown.
+    chain2 = tmp_path / "c2"
+    append_to_chain(chain2, seal_record(_body_with(next_link(chain2), "a", "A"), key))
+    change = {"previous_protocol_sha256": p1, "reason": "invented re-plan"}
+    append_to_chain(chain2, seal_record(_body_with(next_link(chain2), "b", "B", "p2", change),
+                                        key))
+    report = verify_chain(chain2, public)
+    assert [(f.kind, f.severity) for f in report.findings] == [("protocol-change", "info")]
+    assert "invented re-plan" in report.findings[0].message
+    # A declaration naming another predecessor, or on an unchanged protocol, fails.
+    change_bad = {"previous_protocol_sha256": "0" * 64, "reason": "x"}
+    append_to_chain(chain2, seal_record(_body_with(next_link(chain2), "c", "C", "p3",
+                                                   change_bad), key))
+    append_to_chain(chain2, seal_record(_body_with(next_link(chain2), "d", "D", "p3", {
+        "previous_protocol_sha256": hashlib.sha256(b"p3").hexdigest(), "reason": "y"}), key))
+    errs = [(f.kind, f.file) for f in inspect_chain(chain2, public).errors]
+    assert errs == [("protocol-change", "pulse-000003.json"),
+                    ("protocol-change", "pulse-000004.json")]
+
+
+def test_published_head_detects_truncation_not_growth(tmp_path, key, public):
+    chain = tmp_path / "c"
+    paths = _grow(chain, key, 3)
+    head2 = record_digest(read_record(paths[1]))
+    report = verify_chain(chain, public, head=head2)  # the chain grew since: fine, shown
+    assert report.head_pulse == 2 and [f.kind for f in report.infos] == ["head"]
+    head3 = record_digest(read_record(paths[2]))
+    os.unlink(paths[2])
+    with pytest.raises(ChainVerificationError, match="truncated"):
+        verify_chain(chain, public, head=head3)
+
+
+def test_trusted_key_ranges_allow_rotation_only_where_listed(tmp_path, key, public):
+    from dicert.audit.trust import TrustSet, TrustedKey
+
+    other = signing.generate_keypair()
+    chain = tmp_path / "c"
+    for i, k in enumerate((key, key, other.private_key)):
+        append_to_chain(chain, seal_record(_pulse_body(next_link(chain), f"s{i}"), k))
+    fp_old = hashlib.sha256(public).hexdigest()
+    fp_new = other.fingerprint
+
+    def trust(last_old, first_new):
+        return TrustSet(source="test", keys=(
+            TrustedKey(fingerprint=fp_old, public_key_hex=public.hex(), label="old",
+                       last_pulse=last_old),
+            TrustedKey(fingerprint=fp_new, public_key_hex="", label="new",
+                       first_pulse=first_new)))
+
+    report = verify_chain(chain, trusted=trust(2, 3))
+    assert report.result == "VERIFIED" and [f.kind for f in report.infos] == ["key-rotation"]
+    kinds = [(f.kind, f.file) for f in inspect_chain(chain, trusted=trust(2, 4)).errors]
+    assert kinds == [("key-change", "pulse-000003.json")]
+    kinds = [(f.kind, f.file) for f in inspect_chain(chain, trusted=trust(1, 3)).errors]
+    assert kinds == [("untrusted-key", "pulse-000002.json")]
+    # Without trusted keys a change of key is a failure too.
+    assert [f.kind for f in inspect_chain(chain).errors] == ["key-change"]

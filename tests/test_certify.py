@@ -128,13 +128,21 @@ def test_classical_devices_abort_with_a_record(tmp_path):
 
 
 def test_abort_removes_a_stale_bits_file(small_run, tmp_path):
+    from dicert.errors import ParameterError
+
     _d, log, seed = small_run
     out = tmp_path / "out"
     assert certify(log, uniform_protocol(), seed, out).status == "certified"
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
     classical = tmp_path / "c.btl"
     write_log(classical, sim_trials(5_000, model="classical", seed=8))
-    res = certify(classical, uniform_protocol(), seed, out)
+    # A non-empty --out is refused without force, and the earlier outputs stay as they were.
+    with pytest.raises(ParameterError, match="not empty"):
+        certify(classical, uniform_protocol(), seed, out)
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+    res = certify(classical, uniform_protocol(), seed, out, force=True)
     assert res.status == "aborted" and not (out / BITS_NAME).exists()
+    assert sorted(p.name for p in out.iterdir()) == [RECORD_NAME]
 
 
 def test_two_runs_identical_except_volatile(small_run, tmp_path):
@@ -209,18 +217,34 @@ def test_spilled_raw_bits_give_the_same_result(small_run, tmp_path, monkeypatch)
 def test_chain_links_pulses(small_run, tmp_path):
     from dicert.audit.chain import verify_chain
     from dicert.audit.record import record_digest
+    from dicert.audit.signing import write_keypair
+    from dicert.errors import ParameterError
 
-    _d, log, seed = small_run
+    d, log, seed = small_run
+    keys = write_keypair(tmp_path / "k.pem")
+    log2 = tmp_path / "log2.btl"
+    write_log(log2, sim_trials(20_000, seed=12))
+    seed2 = tmp_path / "seed2.bin"
+    seed2.write_bytes(np.random.default_rng(6).bytes(20_000))
     chain = tmp_path / "chain"
-    r1 = certify(log, uniform_protocol(), seed, tmp_path / "p1", chain=chain)
-    r2 = certify(log, uniform_protocol(), seed, tmp_path / "p2", chain=chain)
+    k = keys.private_key_file
+    r1 = certify(log, uniform_protocol(), seed, tmp_path / "p1", chain=chain, key=k)
+    r2 = certify(log2, uniform_protocol(), seed2, tmp_path / "p2", chain=chain, key=k)
     assert r1.record["pulse_index"] == 1 and r1.record["previous_record_sha256"] is None
     assert r2.record["pulse_index"] == 2
     assert r2.record["previous_record_sha256"] == record_digest(r1.record)
-    rep = verify_chain(chain)
-    assert rep.pulses == 2
-    # The same seed in two pulses is flagged (extractor seeds must not be reused across pulses).
-    assert any(f.kind == "seed-reuse" for f in rep.findings)
+    rep = verify_chain(chain, keys.public_key_file)
+    assert rep.pulses == 2 and rep.result == "VERIFIED"
+    # The same seed, or the same log, in a later pulse is refused before anything is written.
+    with pytest.raises(SeedError, match="already used by pulse 1"):
+        certify(log2, uniform_protocol(), seed, tmp_path / "p3", chain=chain, key=k)
+    seed3 = tmp_path / "seed3.bin"
+    seed3.write_bytes(np.random.default_rng(7).bytes(20_000))
+    with pytest.raises(ParameterError, match="already fed pulse 2"):
+        certify(log2, uniform_protocol(), seed3, tmp_path / "p3", chain=chain, key=k)
+    assert not (tmp_path / "p3").exists()
+    assert sorted(p.name for p in chain.iterdir()) == [".lock", "pulse-000001.json",
+                                                        "pulse-000002.json"]
 
 
 def test_uniform_protocol_rejects_generation_rounds(tmp_path):

@@ -32,12 +32,16 @@ def files(tmp_path_factory):
     write_log(d / "q.btl", sim_trials(4_000, seed=31))
     write_log(d / "c.csv", sim_trials(4_000, seed=32, model="classical"))
     (d / "seed.bin").write_bytes(np.random.default_rng(3).bytes(1_500))
+    from dicert.audit.signing import write_keypair
+
+    write_keypair(d / "op.key")
     return d
 
 
 def test_certify_json_and_exit_0(files, tmp_path):
     r = _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--seed",
-                               str(files / "seed.bin"), "--out", str(tmp_path / "o"), "--json"])
+                               str(files / "seed.bin"), "--out", str(tmp_path / "o"), "--json",
+                               "--key", str(files / "op.key")])
     assert r.exit_code == 0, r.output
     d = json.loads(r.stdout)
     for key in ("status", "output_bits", "bits_file", "record_file", "min_entropy_bits", "error"):
@@ -46,10 +50,21 @@ def test_certify_json_and_exit_0(files, tmp_path):
     assert Path(d["bits_file"]).stat().st_size == (d["output_bits"] + 7) // 8
     r2 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(files / "q.btl"),
                                 "--seed", str(files / "seed.bin"), "--bits", d["bits_file"],
-                                "--json"])
+                                "--pubkey", str(files / "op.key.pub"), "--json"])
     assert r2.exit_code == 0, r2.output
     v = json.loads(r2.stdout)
-    assert v["verified"] is True and v["scope"] == "full"
+    assert v["verified"] is True and v["scope"] == "full" and v["result"] == "VERIFIED"
+    # Without a trusted key: integrity only, exit 4, the same word in JSON and in the table.
+    args = ["verify", d["record_file"], "--log", str(files / "q.btl"), "--seed",
+            str(files / "seed.bin")]
+    r3 = _runner().invoke(app, [*args, "--json"])
+    assert r3.exit_code == 4, r3.output
+    v = json.loads(r3.stdout)
+    assert v["result"] == "INTEGRITY-ONLY" and v["verified"] is False and v["exit_code"] == 4
+    r4 = _runner().invoke(app, args, terminal_width=200)
+    assert r4.exit_code == 4 and "INTEGRITY-ONLY" in r4.stdout and "VERIFIED" not in r4.stdout
+    r5 = _runner().invoke(app, [*args, "--strict"])
+    assert r5.exit_code == 1 and r5.stderr.strip().startswith("dicert: error: strict:")
 
 
 def test_abort_exit_3_with_record(files, tmp_path):
@@ -109,8 +124,10 @@ def test_verify_record_only_says_so(files, tmp_path):
     _runner().invoke(app, ["certify", str(files / "q.btl"), "--protocol", UNIFORM, "--seed",
                            str(files / "seed.bin"), "--out", str(out)])
     r = _runner().invoke(app, ["verify", str(out / "record.json")])
-    assert r.exit_code == 0
-    assert "Only the signature and the internal consistency" in r.stdout
+    assert r.exit_code == 4  # unsigned: integrity only
+    text = " ".join(r.stdout.split())
+    assert "Only the signature and the internal consistency" in text
+    assert "authenticity NOT established" in text
 
 
 def test_verify_argument_errors(tmp_path):
@@ -139,6 +156,11 @@ def test_demo_end_to_end(tmp_path):
     assert statuses[:2] == ["certified", "certified"] and statuses[2] == "aborted"
     assert len(d["tamper_checks"]) >= 4
     assert all(c["verification"] == "failed as expected" for c in d["tamper_checks"])
+    # Verified against the operator's public key; without it only integrity is established.
+    assert all(p["result"] == "VERIFIED" for p in d["pulses"])
+    assert d["chain"]["result"] == "VERIFIED" and d["without_key"] == "INTEGRITY-ONLY"
+    kinds = {c["tampered"].split(" (")[0] for c in d["tamper_checks"]}
+    assert {"log", "seed", "bits", "record", "chain"} <= kinds
     # Everything written stays inside --out.
     for p in d["pulses"]:
         assert Path(p["record_file"]).resolve().is_relative_to((tmp_path / "demo").resolve())
@@ -213,7 +235,7 @@ def test_follow_stops_at_the_target_while_the_log_grows(files, tmp_path):
     assert r2.exit_code == 0 and json.loads(r2.stdout)["stop_trial_index"] == k
     r3 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(log), "--seed",
                                 str(files / "seed.bin"), "--bits", d["bits_file"]])
-    assert r3.exit_code == 0, r3.output
+    assert r3.exit_code == 4, r3.output  # every number re-derived; unsigned: integrity only
 
 
 def test_follow_idle_timeout_and_trailer_abort_with_a_record(files, tmp_path):
@@ -232,7 +254,7 @@ def test_follow_idle_timeout_and_trailer_abort_with_a_record(files, tmp_path):
     assert d["ended_by"] == "idle-timeout" and d["log_scope"] == "prefix" and d["trials"] == 200
     assert Path(d["record_file"]).exists()
     r1 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(log)])
-    assert r1.exit_code == 0, r1.output
+    assert r1.exit_code == 4, r1.output  # consistent; unsigned: integrity only
     # Once the trailer is written the run decides with what there is: the whole log.
     w.close()
     r = _runner().invoke(app, [*args, "--out", str(tmp_path / "o2"), "--idle-timeout", "5"])

@@ -93,7 +93,10 @@ def _box_log(tmp_path, e, name="box.csv"):
                     ys += [y] * k
                     as_ += [a] * k
                     bs += [b] * k
-    arr = lambda v: np.array(v, dtype=np.uint8)  # noqa: E731
+    # Rows in a fixed random order: a sorted log has predictable settings and is refused by
+    # the serial-independence design check (dicert.design).
+    perm = np.random.default_rng(0).permutation(len(xs))
+    arr = lambda v: np.array(v, dtype=np.uint8)[perm]  # noqa: E731
     path = tmp_path / name
     write_log(path, TrialArrays(x=arr(xs), y=arr(ys), a=arr(as_), b=arr(bs)))
     return path

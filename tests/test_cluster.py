@@ -90,6 +90,8 @@ def test_multi_file_log_summary_identical(address, tmp_path):
         assert np.array_equal(there.block_counts, here.block_counts)
         assert [f.sha256 for f in there.files] == [f.sha256 for f in here.files]
         assert [f.trials for f in there.files] == [f.trials for f in here.files]
+        assert np.array_equal(there.pair_counts, here.pair_counts)  # pairs across files too
+        assert there.sha256 == here.sha256
     # The multi-file digest: SHA-256 of the RFC 8785 canonical JSON of the per-file list
     # (RFC 8785 section 3.2: sorted keys, no whitespace; ASCII strings and integers here).
     items = [{"bytes": p.stat().st_size, "name": p.name,

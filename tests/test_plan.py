@@ -104,7 +104,10 @@ def test_min_trials_net_positive_regression():
 def test_plan_eat_protocol_entries():
     res = plan(_eat_protocol(), trials=10**8, n_points=6, gamma_points=6)
     names = [m.name for m in res.methods]
-    assert names == ["martingale-azuma", "eat-df-conservative", "eat-dfr", "pef-ns"]
+    # The pair von Neumann rows (Gauss-Radau quadrature bound, issue 15) follow the one-party
+    # EAT rows.
+    assert names == ["martingale-azuma", "eat-df-conservative", "eat-dfr",
+                     "eat-df-conservative+radau-vn-AB", "eat-dfr+radau-vn-AB", "pef-ns"]
     df = res.methods[1]
     assert df.thresholds == "declared" and df.side_information == "quantum"
     # Consistent arithmetic: output = floor(k - 2 log2(1/eps_ext)) (leftover hash lemma,

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import tomllib
 from pathlib import Path
 
@@ -56,13 +57,87 @@ def test_genuine_record_verifies_fully(run):
     assert rep.scope == "full" and rep.not_checked == ()
     assert rep.output_bits == run["res"].output_bits
     assert "given public key" in rep.signature
+    assert rep.result == "VERIFIED" and rep.authenticated and rep.exit_code == 0
 
 
 def test_without_inputs_says_only_signature_and_consistency(run):
-    rep = verify(run["record"])
+    rep = verify(run["record"], public_key=run["pub"])
     assert rep.scope == "record-only"
     assert "Only the signature and the internal consistency" in rep.message
-    assert set(rep.not_checked) == {"log", "seed", "bits"}
+    # The bits file the record names, next to it, is checked by default.
+    assert set(rep.not_checked) == {"log", "seed"}
+    assert "bits file length and digest" in rep.checked
+    assert rep.bits_file == str(run["bits"])
+    assert rep.result == "VERIFIED-PARTIAL" and rep.exit_code == 0
+
+
+def test_without_a_trusted_key_integrity_only(run):
+    # A signature checked only against the key embedded in the record says nothing about who
+    # signed it: never VERIFIED, exit code 4.
+    rep = verify(run["record"], log=run["log"], seed=run["seed"])
+    assert rep.scope == "full" and not rep.authenticated
+    assert rep.result == "INTEGRITY-ONLY" and rep.exit_code == 4
+    assert "authenticity NOT established" in rep.message
+    with pytest.raises(VerificationError, match="strict: not established: authenticity"):
+        verify(run["record"], log=run["log"], seed=run["seed"], strict=True)
+    # --strict with a trusted key: anything unchecked is a failure.
+    with pytest.raises(VerificationError, match="strict: not established: seed, log"):
+        verify(run["record"], public_key=run["pub"], strict=True)
+    verify(run["record"], log=run["log"], seed=run["seed"], public_key=run["pub"], strict=True)
+
+
+def test_bits_next_to_the_record_are_checked_by_default(run, tmp_path):
+    import shutil
+
+    d = tmp_path / "copy"
+    d.mkdir()
+    shutil.copy(run["record"], d / "record.json")
+    bits = bytearray(run["bits"].read_bytes())
+    bits[-1] ^= 0x01
+    (d / "random.bits").write_bytes(bytes(bits))
+    with pytest.raises(VerificationError) as info:
+        verify(d / "record.json", public_key=run["pub"])
+    assert info.value.field == "bits"
+    (d / "random.bits").unlink()  # missing: listed as not checked, not the full word
+    rep = verify(d / "record.json", log=run["log"], seed=run["seed"], public_key=run["pub"])
+    assert rep.not_checked == ("bits",) and rep.result == "VERIFIED-PARTIAL"
+    assert any("not next to the record" in n for n in rep.notes)
+    with pytest.raises(VerificationError, match="strict"):
+        verify(d / "record.json", log=run["log"], seed=run["seed"], public_key=run["pub"],
+               strict=True)
+
+
+def test_trusted_keys_file_with_rotation_ranges(run, tmp_path):
+    from dicert.audit.signing import generate_keypair, public_key_bytes
+    from dicert.audit.trust import load_trusted_keys
+    from dicert.errors import ParameterError
+
+    pub_hex = Path(run["pub"]).read_text()
+    other = public_key_bytes(generate_keypair().public_key).hex()
+    tk = tmp_path / "trusted.toml"
+    tk.write_text('format = "dicert-trusted-keys/1"\n'
+                  f'[[key]]\nlabel = "old"\npublic_key = "{other}"\n'
+                  f'[[key]]\nlabel = "operator"\npublic_key_file = "{run["pub"]}"\n')
+    rep = verify(run["record"], log=run["log"], seed=run["seed"], trusted_keys=tk)
+    assert rep.result == "VERIFIED" and "trusted key 'operator'" in rep.signature
+    # The record is not a chain pulse: a key trusted only for a pulse range does not cover it.
+    tk.write_text('format = "dicert-trusted-keys/1"\n'
+                  f'[[key]]\npublic_key_file = "{run["pub"]}"\nfirst_pulse = 3\n')
+    with pytest.raises(VerificationError, match="only for chain pulses"):
+        verify(run["record"], trusted_keys=tk)
+    # Only a listed key authenticates.
+    tk.write_text(f'format = "dicert-trusted-keys/1"\n[[key]]\npublic_key = "{other}"\n')
+    with pytest.raises(VerificationError, match="not among the trusted keys"):
+        verify(run["record"], trusted_keys=tk)
+    assert "PUBLIC KEY" in pub_hex
+    for bad, where in (('format = "x"\n', "format"),
+                       ('format = "dicert-trusted-keys/1"\n[[key]]\nlabel = "a"\n',
+                        "key[1]: give exactly one"),
+                       (f'format = "dicert-trusted-keys/1"\n[[key]]\npublic_key = "{other}"\n'
+                        'first_pulse = 0\n', "key[1].first_pulse")):
+        tk.write_text(bad)
+        with pytest.raises(ParameterError, match=re.escape(where)):
+            load_trusted_keys(tk)
 
 
 def test_tampered_log_fails_at_every_position(run, tmp_path):
@@ -189,20 +264,39 @@ def test_aborted_record_verifies_and_bits_not_required(tmp_path):
     with pytest.raises(VerificationError) as info:
         verify(write_record(tmp_path / "f.json", forged))
     assert info.value.field in ("status", "entropy.finite_size.accepted", "abort_reason")
+    # Bits next to an abort are not covered by it: checking the folder fails.
+    (tmp_path / "out" / "random.bits").write_bytes(b"\x5a" * 16)
+    with pytest.raises(VerificationError, match="abort") as info:
+        verify(res.record_file, log=log, seed=seed)
+    assert info.value.field == "bits"
 
 
 def test_chain_verification(run, tmp_path):
+    from dicert.audit.signing import write_keypair
+
+    keys = write_keypair(tmp_path / "op.pem")
     chain = tmp_path / "chain"
     for i in range(3):
         seed = tmp_path / f"seed{i}.bin"
         seed.write_bytes(np.random.default_rng(100 + i).bytes(1_200))
-        certify(run["log"], uniform_protocol(), seed, tmp_path / f"p{i}", chain=chain)
-    rep = verify_chain(chain)
-    assert rep.pulses == 3 and rep.ok
+        log = tmp_path / f"log{i}.btl"
+        write_log(log, sim_trials(4_000, seed=60 + i))
+        certify(log, uniform_protocol(), seed, tmp_path / f"p{i}", chain=chain,
+                key=keys.private_key_file)
+    rep = verify_chain(chain, public_key=keys.public_key_file)
+    assert rep.pulses == 3 and rep.ok and rep.result == "VERIFIED"
+    assert verify_chain(chain).result == "INTEGRITY-ONLY"  # no trusted key
+    # A published head detects truncation of the newest pulses.
+    head = rep.head_sha256
+    verify_chain(chain, public_key=keys.public_key_file, head=head)
+    (chain / "pulse-000003.json").unlink()
+    with pytest.raises(VerificationError, match="truncated"):
+        verify_chain(chain, public_key=keys.public_key_file, head=head)
     # Remove the middle pulse: the gap is reported.
     (chain / "pulse-000002.json").unlink()
-    with pytest.raises(VerificationError):
-        verify_chain(chain)
+    (tmp_path / "p2" / "record.json").rename(chain / "pulse-000003.json")
+    with pytest.raises(VerificationError, match="gap"):
+        verify_chain(chain, public_key=keys.public_key_file)
 
 
 def test_record_file_is_rfc8785_canonical(run):

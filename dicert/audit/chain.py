@@ -2,19 +2,28 @@
 
 Layout
 ------
-A chain is a directory holding only ``pulse-NNNNNN.json`` files (index zero-padded to at least
+A chain is a directory holding ``pulse-NNNNNN.json`` files (index zero-padded to at least
 six digits, e.g. ``pulse-000001.json``, ``pulse-1000000.json``), each a sealed record
 (:mod:`dicert.audit.record`) whose body carries
 
 * ``pulse_index``: the integer in the file name, starting at 1 and increasing by one;
 * ``previous_record_sha256``: ``null`` for pulse 1, otherwise the ``record_sha256`` of the
-  previous pulse (:func:`dicert.audit.record.record_digest`).
+  previous pulse (:func:`dicert.audit.record.record_digest`);
+* optionally ``protocol_change``: ``{"previous_protocol_sha256", "reason"}``, the signed
+  declaration of a deliberate protocol change at this pulse (``certify --protocol-change``).
+
+Besides pulses a chain folder may hold ``.lock`` (the appenders' lock file),
+``.commit.json`` (the journal of a commit in progress) and ``.*.part`` temporary files of an
+interrupted append; readers ignore these (the next ``certify --chain`` removes stale ones).
 
 Appending never overwrites: a pulse file is created with a no-clobber hard link of a fully
-written temporary file. :func:`verify_chain` checks every record (digest, signature, optionally
-against the operator's public key) and the structure: links, gaps, reordering, forks, and reuse
-of an extractor seed (``extractor.seed_sha256``) across pulses, which is flagged -- a warning by
-default, an error with ``strict=True``.
+written temporary file (mode 0644). :func:`verify_chain` reads the pulses one at a time in
+index order (linear time, keeping a few digests per pulse) and checks every record (digest,
+signature, and with trusted keys that each pulse is signed by a key trusted for its index) and
+the structure: links, gaps, reordering, forks, reuse of an extractor seed or of a log across
+pulses, key changes not allowed by the trusted keys, protocol changes without a signed
+declaration, and (given a published head digest) truncation of the newest pulses. All of
+these are errors.
 """
 
 from __future__ import annotations
@@ -23,9 +32,8 @@ import contextlib
 import dataclasses
 import os
 import re
-import tempfile
-from collections import defaultdict
-from collections.abc import Mapping
+import secrets
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
 
@@ -36,9 +44,11 @@ __all__ = [
     "FIRST_PULSE_INDEX",
     "ChainFinding",
     "ChainReport",
+    "ChainState",
     "ChainVerificationError",
     "append_to_chain",
     "chain_head",
+    "chain_state",
     "inspect_chain",
     "next_link",
     "pulse_file_name",
@@ -50,6 +60,8 @@ FIRST_PULSE_INDEX = 1
 
 _PULSE_RE = re.compile(r"pulse-([0-9]{6,})\.json")
 _HEX64 = re.compile(r"[0-9a-f]{64}")
+#: Hidden entries of a chain folder that belong to the appenders (ignored by readers).
+_HOUSEKEEPING = (".lock", ".commit.json")
 
 
 def pulse_file_name(index: int) -> str:
@@ -59,11 +71,14 @@ def pulse_file_name(index: int) -> str:
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class ChainFinding:
-    """One problem found in a chain.
+    """One finding about a chain.
 
     ``kind`` is one of: ``unexpected-file``, ``unreadable``, ``record`` (digest/signature/format),
-    ``index-mismatch``, ``gap``, ``fork``, ``link``, ``reorder``, ``seed-reuse``, ``key-change``,
-    ``unsigned``. ``severity`` is ``error`` or ``warning``.
+    ``untrusted-key``, ``unsigned``, ``key-change``, ``index-mismatch``, ``gap``, ``fork``,
+    ``link``, ``reorder``, ``seed-reuse``, ``log-reuse``, ``protocol-change``, ``truncated``,
+    ``consistency`` (a record's numbers), and the informational ``temporary-file``,
+    ``key-rotation``, ``protocol-change`` (declared), ``head``. ``severity`` is ``error`` or
+    ``info``.
     """
 
     kind: str
@@ -92,10 +107,19 @@ class ChainReport:
     key_fingerprints : tuple of str
         Distinct signing keys seen.
     signer_trusted : bool
-        Signatures were checked against a public key the caller supplied.
+        Signatures were checked against keys the caller trusts.
     strict : bool
-        Whether warnings count as errors.
+        Kept for compatibility: every problem is an error.
     findings : tuple of ChainFinding
+    authenticated : bool
+        Trusted keys were given, every pulse is signed by a key trusted for it, no errors.
+    head_given : str or None
+        The published head digest the caller gave (``--head``).
+    head_pulse : int or None
+        The pulse whose digest equals ``head_given``.
+    result : str
+        ``VERIFIED`` (authenticated, no errors), ``INTEGRITY-ONLY`` (no errors, no trusted
+        key or unsigned pulses), or ``FAILED``.
     """
 
     chain_dir: str
@@ -108,6 +132,10 @@ class ChainReport:
     signer_trusted: bool
     strict: bool
     findings: tuple[ChainFinding, ...]
+    authenticated: bool = False
+    head_given: str | None = None
+    head_pulse: int | None = None
+    result: str = "FAILED"
 
     @property
     def errors(self) -> tuple[ChainFinding, ...]:
@@ -118,8 +146,29 @@ class ChainReport:
         return tuple(f for f in self.findings if f.severity == "warning")
 
     @property
+    def infos(self) -> tuple[ChainFinding, ...]:
+        return tuple(f for f in self.findings if f.severity == "info")
+
+    @property
     def ok(self) -> bool:
         return not self.errors
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class ChainState:
+    """What an appender needs from a verified chain: its head and the digests already used."""
+
+    head_index: int | None
+    head_sha256: str | None
+    protocol_sha256: str | None
+    seeds_used: Mapping[str, int]  # seed digest -> first pulse that names it (used or not)
+    logs_used: Mapping[str, int]  # log digest -> pulse it fed
+    report: ChainReport
+
+    def next_link(self) -> dict[str, Any]:
+        if self.head_index is None:
+            return {"pulse_index": FIRST_PULSE_INDEX, "previous_record_sha256": None}
+        return {"pulse_index": self.head_index + 1, "previous_record_sha256": self.head_sha256}
 
 
 class ChainVerificationError(VerificationError):
@@ -130,17 +179,23 @@ class ChainVerificationError(VerificationError):
         super().__init__(message, field)
 
 
-def _scan_dir(chain_dir: Path) -> tuple[list[tuple[int, Path]], list[Path]]:
+def _scan_dir(chain_dir: Path) -> tuple[list[tuple[int, Path]], list[Path], list[Path]]:
+    """(pulses in index order, unexpected entries, temporary files)."""
     pulses: list[tuple[int, Path]] = []
     unexpected: list[Path] = []
+    temporary: list[Path] = []
     for entry in sorted(os.scandir(chain_dir), key=lambda e: e.name):
         m = _PULSE_RE.fullmatch(entry.name)
         if m and entry.is_file() and entry.name == pulse_file_name(int(m.group(1))):
             pulses.append((int(m.group(1)), Path(entry.path)))
+        elif entry.name in _HOUSEKEEPING and entry.is_file():
+            continue
+        elif entry.name.startswith(".") and entry.name.endswith(".part"):
+            temporary.append(Path(entry.path))
         else:
             unexpected.append(Path(entry.path))
     pulses.sort()
-    return pulses, unexpected
+    return pulses, unexpected, temporary
 
 
 def _require_dir(chain_dir: str | os.PathLike[str]) -> Path:
@@ -153,16 +208,14 @@ def _require_dir(chain_dir: str | os.PathLike[str]) -> Path:
 
 
 def _unexpected_message(path: Path) -> str:
-    if path.name.startswith(".") and path.name.endswith(".part"):
-        return (f"{path.name}: leftover temporary file of an interrupted write; "
-                "check no append is running, then delete it")
     return f"{path.name}: unexpected entry in a chain directory (only pulse-NNNNNN.json belong)"
 
 
 def chain_head(chain_dir: str | os.PathLike[str]) -> tuple[int, str] | None:
     """Index and digest of the last pulse, or None for a missing or empty chain directory.
 
-    The head record is read strictly and its digest and signature are checked.
+    The head record is read strictly and its digest and signature are checked (against its
+    embedded key: use :func:`chain_state` to check the whole chain against trusted keys).
 
     Raises
     ------
@@ -174,7 +227,7 @@ def chain_head(chain_dir: str | os.PathLike[str]) -> tuple[int, str] | None:
     if not p.exists():
         return None
     p = _require_dir(p)
-    pulses, unexpected = _scan_dir(p)
+    pulses, unexpected, _tmp = _scan_dir(p)
     if unexpected:
         raise VerificationError(_unexpected_message(unexpected[0]), "chain")
     if not pulses:
@@ -206,7 +259,8 @@ def append_to_chain(chain_dir: str | os.PathLike[str], record: Mapping[str, Any]
 
     The record must be the next pulse: ``pulse_index`` one past the head (1 for a new chain)
     and ``previous_record_sha256`` equal to the head's digest (null for a new chain) -- use
-    :func:`next_link` when building the body.
+    :func:`next_link` when building the body. The pulse file gets mode 0644. Callers that
+    check the chain first (``certify --chain``) hold the chain's lock across check and append.
 
     Returns
     -------
@@ -220,6 +274,8 @@ def append_to_chain(chain_dir: str | os.PathLike[str], record: Mapping[str, Any]
     VerificationError
         If the record is not validly sealed or the chain head is damaged.
     """
+    from dicert._outputs import PUBLIC_DIR_MODE, fault_point, fsync_dir, write_public_file
+
     check_record(record)
     directory = Path(chain_dir)
     if directory.exists() and not directory.is_dir():
@@ -239,18 +295,19 @@ def append_to_chain(chain_dir: str | os.PathLike[str], record: Mapping[str, Any]
             f"previous_record_sha256: does not match the head of {directory} "
             f"({expected['previous_record_sha256']}); build the body with next_link()"
         )
-    directory.mkdir(parents=True, exist_ok=True)
+    if not directory.is_dir():
+        directory.mkdir(parents=True, exist_ok=True)
+        os.chmod(directory, PUBLIC_DIR_MODE)
     target = directory / pulse_file_name(index)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=directory)
+    tmp = directory / f".{target.name}.{secrets.token_hex(6)}.part"
     try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(record_bytes(record))
-            fh.flush()
-            os.fsync(fh.fileno())
+        write_public_file(tmp, record_bytes(record))
+        fault_point("during-chain-append")
         try:
             os.link(tmp, target)  # atomic and no-clobber
         except FileExistsError:
             raise ParameterError(f"{target}: already exists; refusing to overwrite") from None
+        fsync_dir(directory)
     finally:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
@@ -271,6 +328,42 @@ def _seed_used(extractor: Mapping[str, Any]) -> bool:
     return True
 
 
+def used_seed(record: Mapping[str, Any]) -> str | None:
+    """The extractor-seed digest a record consumed (None if it extracted nothing)."""
+    extractor = record.get("extractor")
+    if isinstance(extractor, Mapping):
+        seed = extractor.get("seed_sha256")
+        if isinstance(seed, str) and _seed_used(extractor):
+            return seed
+    return None
+
+
+def log_digest(record: Mapping[str, Any]) -> str | None:
+    log = record.get("log")
+    d = log.get("sha256") if isinstance(log, Mapping) else None
+    return d if isinstance(d, str) else None
+
+
+def protocol_digest(record: Mapping[str, Any]) -> str | None:
+    proto = record.get("protocol")
+    d = proto.get("sha256") if isinstance(proto, Mapping) else None
+    return d if isinstance(d, str) else None
+
+
+def protocol_change_of(record: Mapping[str, Any]) -> dict | None:
+    """The declared protocol change of a record, or None; malformed -> VerificationError."""
+    pc = record.get("protocol_change")
+    if pc is None:
+        return None
+    if not (isinstance(pc, Mapping) and set(pc) == {"previous_protocol_sha256", "reason"}
+            and isinstance(pc["previous_protocol_sha256"], str)
+            and _HEX64.fullmatch(pc["previous_protocol_sha256"])
+            and isinstance(pc["reason"], str) and pc["reason"].strip()):
+        raise VerificationError("expected {previous_protocol_sha256: 64 hex, reason: text}",
+                                "protocol_change")
+    return dict(pc)
+
+
 def _ranges(indices: list[int]) -> str:
     parts: list[str] = []
     start = prev = indices[0]
@@ -284,14 +377,25 @@ def _ranges(indices: list[int]) -> str:
     return ", ".join(parts)
 
 
-def inspect_chain(
-    chain_dir: str | os.PathLike[str], public_key: Any = None, *, strict: bool = False
-) -> ChainReport:
-    """Check a chain and return every finding without raising on them (see verify_chain)."""
+def _trust_of(public_key: Any, trusted: Any) -> Any:
+    from dicert.audit.trust import trust_from
+
+    return trust_from(public_key, trusted)
+
+
+OnRecord = Callable[[str, int, Mapping[str, Any]], None]
+
+
+def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted: Any = None,
+          head: str | None = None, on_record: OnRecord | None = None,
+          strict: bool = False) -> tuple[ChainReport, ChainState]:
+    """One pass over the pulses in index order; keeps only a few digests per pulse."""
+    from dicert.audit.trust import record_time
+
     directory = _require_dir(chain_dir)
-    pulses, unexpected = _scan_dir(directory)
+    trust = _trust_of(public_key, trusted)
+    pulses, unexpected, temporary = _scan_dir(directory)
     findings: list[ChainFinding] = []
-    soft = "error" if strict else "warning"
 
     def add(kind: str, severity: str, file: str | None, field: str | None, message: str,
             idx: tuple[int, ...] = ()) -> None:
@@ -300,128 +404,233 @@ def inspect_chain(
 
     for path in unexpected:
         add("unexpected-file", "error", path.name, None, _unexpected_message(path))
+    for path in temporary:
+        add("temporary-file", "info", path.name, None,
+            f"{path.name}: temporary file of an interrupted write, ignored (the next "
+            "certify --chain removes it)")
 
-    good: dict[str, tuple[int, dict[str, Any], str]] = {}  # file name -> (index, record, digest)
+    digest_at: dict[str, int] = {}  # digest -> file index
+    body_index_at: dict[Any, str] = {}  # claimed pulse_index -> file name
+    prev_claimed: dict[str, str] = {}  # previous digest -> file name
+    seeds: dict[str, int] = {}
+    seeds_named: dict[str, int] = {}  # every seed digest, used or not (appenders refuse any)
+    logs: dict[str, int] = {}
     fingerprints: list[str] = []
+    unsigned: list[tuple[int, str]] = []
     signed = 0
+    prev_index: int | None = None
+    prev_digest: str | None = None  # digest of the pulse with file index prev_index
+    prev_fp: str | None = None
+    proto_sha: str | None = None
+    head_index = head_digest = None
+    head_pulse = None
+    expected_next = FIRST_PULSE_INDEX
+
     for index, path in pulses:
+        name = path.name
+        if index > expected_next:
+            missing = list(range(expected_next, index))
+            add("gap", "error", None, "pulse_index", f"missing pulse(s) {_ranges(missing)}",
+                tuple(missing))
+        expected_next = index + 1
+        follows = prev_index == index - 1
+        this_prev_digest, prev_index = (prev_digest if follows else None), index
+        prev_digest = None
         try:
             record = read_record(path)
         except VerificationError as exc:
-            add("unreadable", "error", path.name, exc.field, _plain(exc), (index,))
+            add("unreadable", "error", name, exc.field, _plain(exc), (index,))
             continue
         try:
-            result = check_record(record, public_key)
+            result = check_record(record)
         except VerificationError as exc:
-            add("record", "error", path.name, exc.field, _plain(exc), (index,))
+            add("record", "error", name, exc.field, _plain(exc), (index,))
             continue
+        digest = result.record_sha256
+        prev_digest = digest
+        if head is not None and digest == head:
+            head_pulse = index
+        # Who signed it.
         if result.signed:
             signed += 1
-            if result.key_fingerprint not in fingerprints:
-                fingerprints.append(result.key_fingerprint)
-        elif public_key is None:
-            add("unsigned", soft, path.name, "signature", "pulse record is unsigned", (index,))
+            fp = result.key_fingerprint
+            if fp not in fingerprints:
+                fingerprints.append(fp)
+            if trust is not None:
+                try:
+                    tk = trust.authorise(fp, record.get("pulse_index"), record_time(record))
+                except VerificationError as exc:
+                    kind = "key-change" if prev_fp is not None and prev_fp != fp else \
+                        "untrusted-key"
+                    add(kind, "error", name, exc.field, _plain(exc), (index,))
+                else:
+                    if prev_fp is not None and prev_fp != fp:
+                        add("key-rotation", "info", name, "signature.key_fingerprint",
+                            f"signing key changes to '{tk.label}' ({fp[:16]}...), allowed by "
+                            "the trusted keys", (index,))
+            elif prev_fp is not None and prev_fp != fp:
+                add("key-change", "error", name, "signature.key_fingerprint",
+                    f"signed by key {fp[:16]}..., the previous pulse by {prev_fp[:16]}...; "
+                    "give a trusted-keys file that allows the rotation", (index,))
+            prev_fp = fp
+        else:
+            unsigned.append((index, name))
+            if trust is not None:
+                add("unsigned", "error", name, "signature", "pulse record is unsigned",
+                    (index,))
+        # Structure.
         body_index = record.get("pulse_index")
         if body_index != index or type(body_index) is not int:
-            add("index-mismatch", "error", path.name, "pulse_index",
+            add("index-mismatch", "error", name, "pulse_index",
                 f"body says pulse_index {body_index!r} but the file name says {index} "
                 "(files renamed or reordered)", (index,))
+        if body_index in body_index_at:
+            add("fork", "error", name, "pulse_index",
+                f"{body_index_at[body_index]}, {name} all claim pulse_index {body_index!r}",
+                (index,))
+        else:
+            body_index_at[body_index] = name
         prev = record.get("previous_record_sha256")
         if prev is not None and not (isinstance(prev, str) and _HEX64.fullmatch(prev)):
-            add("link", "error", path.name, "previous_record_sha256",
+            add("link", "error", name, "previous_record_sha256",
                 "expected null or 64 lower-case hex digits", (index,))
-            continue
-        good[path.name] = (index, record, result.record_sha256)
-
-    # Forks: two pulses with the same index in their bodies, or the same predecessor.
-    by_body_index: dict[Any, list[str]] = defaultdict(list)
-    by_prev: dict[str, list[str]] = defaultdict(list)
-    for name, (_, record, _) in good.items():
-        by_body_index[record.get("pulse_index")].append(name)
-        if record.get("previous_record_sha256") is not None:
-            by_prev[record["previous_record_sha256"]].append(name)
-    for claimed, names in by_body_index.items():
-        if len(names) > 1:
-            add("fork", "error", names[1], "pulse_index",
-                f"{', '.join(names)} all claim pulse_index {claimed!r}",
-                tuple(good[n][0] for n in names))
-    for prev, names in by_prev.items():
-        if len(names) > 1:
-            add("fork", "error", names[1], "previous_record_sha256",
-                f"{', '.join(names)} all claim the same predecessor {prev[:16]}...",
-                tuple(good[n][0] for n in names))
-
-    # Links, in file-index order.
-    digest_to_index = {digest: index for index, _, digest in good.values()}
-    index_to_digest = {index: digest for index, _, digest in good.values()}
-    for name, (index, record, _) in sorted(good.items(), key=lambda kv: kv[1][0]):
-        prev = record.get("previous_record_sha256")
-        if index == FIRST_PULSE_INDEX:
+        elif index == FIRST_PULSE_INDEX:
             if prev is not None:
                 add("link", "error", name, "previous_record_sha256",
                     "the first pulse must have previous_record_sha256 null", (index,))
-            continue
-        if prev is None:
+        elif prev is None:
             add("link", "error", name, "previous_record_sha256",
                 f"null, but pulse {index} must link to pulse {index - 1}", (index,))
-        elif prev in digest_to_index and digest_to_index[prev] != index - 1:
-            add("reorder", "error", name, "previous_record_sha256",
-                f"links to pulse {digest_to_index[prev]}, expected pulse {index - 1}", (index,))
-        elif index - 1 in index_to_digest and index_to_digest[index - 1] != prev:
-            add("link", "error", name, "previous_record_sha256",
-                f"does not match the digest of pulse {index - 1} "
-                f"({index_to_digest[index - 1][:16]}...)", (index,))
+        else:
+            if prev in prev_claimed:
+                add("fork", "error", name, "previous_record_sha256",
+                    f"{prev_claimed[prev]}, {name} all claim the same predecessor "
+                    f"{prev[:16]}...", (index,))
+            else:
+                prev_claimed[prev] = name
+            if prev in digest_at and digest_at[prev] != index - 1:
+                add("reorder", "error", name, "previous_record_sha256",
+                    f"links to pulse {digest_at[prev]}, expected pulse {index - 1}", (index,))
+            elif this_prev_digest is not None and this_prev_digest != prev:
+                add("link", "error", name, "previous_record_sha256",
+                    f"does not match the digest of pulse {index - 1} "
+                    f"({this_prev_digest[:16]}...)", (index,))
+        digest_at[digest] = index
+        # Reuse of inputs.
+        ext = record.get("extractor")
+        named = ext.get("seed_sha256") if isinstance(ext, Mapping) else None
+        if isinstance(named, str):
+            seeds_named.setdefault(named, index)
+        seed = used_seed(record)
+        if seed is not None:
+            if seed in seeds:
+                add("seed-reuse", "error", name, "extractor.seed_sha256",
+                    f"the same extractor seed ({seed[:16]}...) was used by pulses "
+                    f"{seeds[seed]} and {index}; use a fresh seed for every pulse",
+                    (seeds[seed], index))
+            else:
+                seeds[seed] = index
+        log = log_digest(record)
+        if log is not None:
+            if log in logs:
+                add("log-reuse", "error", name, "log.sha256",
+                    f"the same log ({log[:16]}...) feeds pulses {logs[log]} and {index}; "
+                    "every pulse needs fresh trials", (logs[log], index))
+            else:
+                logs[log] = index
+        # Protocol continuity.
+        psha = protocol_digest(record)
+        try:
+            change = protocol_change_of(record)
+        except VerificationError as exc:
+            add("protocol-change", "error", name, exc.field, _plain(exc), (index,))
+            change = None
+        if psha is not None:
+            if proto_sha is not None and psha != proto_sha:
+                if change is not None and change["previous_protocol_sha256"] == proto_sha:
+                    add("protocol-change", "info", name, "protocol_change",
+                        f"declared protocol change {proto_sha[:16]}... -> {psha[:16]}...: "
+                        f"{change['reason']}", (index,))
+                else:
+                    add("protocol-change", "error", name, "protocol.sha256",
+                        f"the protocol changes ({proto_sha[:16]}... -> {psha[:16]}...) without "
+                        "a signed declaration (certify --protocol-change)", (index,))
+            elif change is not None:
+                add("protocol-change", "error", name, "protocol_change",
+                    "declares a protocol change but the protocol "
+                    + ("is the same" if proto_sha is not None else "has no predecessor"),
+                    (index,))
+            proto_sha = psha
+        if on_record is not None:
+            try:
+                on_record(name, index, record)
+            except VerificationError as exc:
+                add("consistency", "error", name, exc.field, _plain(exc), (index,))
+        head_index, head_digest = index, digest
 
-    # Gaps in the file indices.
+    if trust is None and unsigned and signed:
+        for index, name in unsigned:
+            add("unsigned", "error", name, "signature",
+                "pulse record is unsigned while other pulses are signed", (index,))
+    if head is not None:
+        top = pulses[-1][0] if pulses else None
+        if head_pulse is None:
+            add("truncated", "error", None, "head",
+                f"the published head {head[:16]}... is not a pulse of this chain (newest "
+                "pulses removed, or another chain)", ())
+        elif head_pulse != top:
+            add("head", "info", None, "head",
+                f"the published head is pulse {head_pulse}; the chain has grown to pulse "
+                f"{top} since", (head_pulse,))
     present = [i for i, _ in pulses]
-    if present:
-        wanted = set(range(FIRST_PULSE_INDEX, present[-1] + 1))
-        missing = sorted(wanted.difference(present))
-        if missing:
-            add("gap", "error", None, "pulse_index", f"missing pulse(s) {_ranges(missing)}",
-                tuple(missing))
-
-    # Extractor seed reuse across pulses.
-    by_seed: dict[str, list[str]] = defaultdict(list)
-    for name, (_, record, _) in sorted(good.items(), key=lambda kv: kv[1][0]):
-        extractor = record.get("extractor")
-        if isinstance(extractor, Mapping):
-            seed = extractor.get("seed_sha256")
-            if isinstance(seed, str) and _seed_used(extractor):
-                by_seed[seed].append(name)
-    for seed, names in by_seed.items():
-        if len(names) > 1:
-            add("seed-reuse", soft, names[1], "extractor.seed_sha256",
-                f"the same extractor seed ({seed[:16]}...) was used by {', '.join(names)}; "
-                "use a fresh seed for every pulse", tuple(good[n][0] for n in names))
-
-    if public_key is None and len(fingerprints) > 1:
-        add("key-change", soft, None, "signature.key_fingerprint",
-            f"pulses are signed by {len(fingerprints)} different keys; "
-            "give the operator's public key to check who signed", ())
-
-    head = None
-    if good:
-        top = max(good.values(), key=lambda v: v[0])
-        head = top[2]
-    order = {name: i for i, (_, path) in enumerate(pulses) for name in [path.name]}
+    order = {path.name: i for i, (_, path) in enumerate(pulses)}
     findings.sort(key=lambda f: (f.severity != "error", order.get(f.file or "", -1)))
-    return ChainReport(
+    errors = any(f.severity == "error" for f in findings)
+    authenticated = (trust is not None and not errors and not unsigned)
+    result = "FAILED" if errors else ("VERIFIED" if authenticated else "INTEGRITY-ONLY")
+    report = ChainReport(
         chain_dir=str(directory),
         pulses=len(pulses),
         first_index=present[0] if present else None,
         last_index=present[-1] if present else None,
-        head_sha256=head,
+        head_sha256=head_digest,
         signed_pulses=signed,
         key_fingerprints=tuple(fingerprints),
-        signer_trusted=public_key is not None,
+        signer_trusted=trust is not None,
         strict=strict,
         findings=tuple(findings),
+        authenticated=authenticated,
+        head_given=head,
+        head_pulse=head_pulse,
+        result=result,
     )
+    state = ChainState(head_index=head_index, head_sha256=head_digest,
+                       protocol_sha256=proto_sha, seeds_used=seeds_named,
+                       logs_used=logs, report=report)
+    return report, state
+
+
+def inspect_chain(
+    chain_dir: str | os.PathLike[str], public_key: Any = None, *, strict: bool = False,
+    trusted: Any = None, head: str | None = None, on_record: OnRecord | None = None,
+) -> ChainReport:
+    """Check a chain and return every finding without raising on them (see verify_chain)."""
+    return _walk(chain_dir, public_key, trusted=trusted, head=head, on_record=on_record,
+                 strict=strict)[0]
+
+
+def _raise_first(report: ChainReport) -> None:
+    errors = report.errors
+    if errors:
+        first = errors[0]
+        more = f" (and {len(errors) - 1} more problem(s))" if len(errors) > 1 else ""
+        where = ":".join(x for x in (first.file, first.field) if x) or "chain"
+        raise ChainVerificationError(f"{first.kind}: {first.message}{more}", where, report)
 
 
 def verify_chain(
-    chain_dir: str | os.PathLike[str], public_key: Any = None, *, strict: bool = False
+    chain_dir: str | os.PathLike[str], public_key: Any = None, *, strict: bool = False,
+    trusted: Any = None, head: str | None = None, on_record: OnRecord | None = None,
 ) -> ChainReport:
     """Verify a beacon chain; raise on the first error, return the report otherwise.
 
@@ -429,17 +638,22 @@ def verify_chain(
     ----------
     chain_dir : path-like
         The chain directory.
-    public_key : Ed25519 public key, raw bytes or hex, optional
-        The operator's key: every pulse must be signed with it. Without it, signatures are
-        checked against each record's embedded key, unsigned pulses and key changes are
-        flagged.
+    public_key : Ed25519 public key, raw bytes, hex or path, optional
+        The operator's key: every pulse must be signed with it.
+    trusted : TrustSet or path, optional
+        A trusted-keys file (:mod:`dicert.audit.trust`): every pulse must be signed by a key
+        trusted for its pulse index (key rotation).
+    head : str, optional
+        A published head digest: a chain that does not contain it was truncated or replaced.
+    on_record : callable(name, index, record), optional
+        Extra per-record check; a VerificationError it raises becomes a ``consistency`` error.
     strict : bool
-        Treat warnings (seed reuse, unsigned pulses, key changes) as errors.
+        Kept for compatibility (every problem is an error).
 
     Returns
     -------
     ChainReport
-        With any warnings in ``findings``.
+        ``result`` is ``VERIFIED`` with trusted keys, else ``INTEGRITY-ONLY``.
 
     Raises
     ------
@@ -449,11 +663,27 @@ def verify_chain(
     ParameterError
         If ``chain_dir`` is missing or not a directory.
     """
-    report = inspect_chain(chain_dir, public_key, strict=strict)
-    errors = report.errors
-    if errors:
-        first = errors[0]
-        more = f" (and {len(errors) - 1} more problem(s))" if len(errors) > 1 else ""
-        where = ":".join(x for x in (first.file, first.field) if x) or "chain"
-        raise ChainVerificationError(f"{first.kind}: {first.message}{more}", where, report)
+    report = inspect_chain(chain_dir, public_key, strict=strict, trusted=trusted, head=head,
+                           on_record=on_record)
+    _raise_first(report)
     return report
+
+
+def chain_state(chain_dir: str | os.PathLike[str], trusted: Any) -> ChainState:
+    """Verify a chain an operator is about to extend and return its head and used digests.
+
+    Every pulse must be signed by a key in ``trusted`` (a TrustSet) valid for it; any
+    finding that :func:`verify_chain` reports as an error raises. A missing or empty folder
+    is an empty chain.
+    """
+    p = Path(chain_dir)
+    if not p.exists():
+        empty = ChainReport(chain_dir=str(p), pulses=0, first_index=None, last_index=None,
+                            head_sha256=None, signed_pulses=0, key_fingerprints=(),
+                            signer_trusted=True, strict=True, findings=(),
+                            authenticated=True, result="VERIFIED")
+        return ChainState(head_index=None, head_sha256=None, protocol_sha256=None,
+                          seeds_used={}, logs_used={}, report=empty)
+    report, state = _walk(p, trusted=trusted, strict=True)
+    _raise_first(report)
+    return state

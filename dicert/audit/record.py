@@ -1,6 +1,6 @@
 """Sealed audit records: an RFC 8785 body, its SHA-256 digest and an Ed25519 signature.
 
-Layout (format ``dicert-record/1``)
+Layout (format ``dicert-record/2``; ``/1`` records are still read)
 -----------------------------------
 A record is one JSON object. Two members are reserved for the seal; every other member is the
 *body*:
@@ -11,7 +11,7 @@ A record is one JSON object. Two members are reserved for the seal; every other 
   ``{"algorithm": "Ed25519", "public_key": <64 hex, raw key>, "key_fingerprint": <hex SHA-256 of
   the raw key>, "value": <128 hex>}`` where ``value`` signs the same canonical body bytes.
 
-The body must carry ``"format": "dicert-record/1"``. Chains add ``pulse_index`` and
+The body must carry ``"format": "dicert-record/2"`` (or ``/1`` for records written before). Chains add ``pulse_index`` and
 ``previous_record_sha256`` to the body (see :mod:`dicert.audit.chain`); a volatile section
 (``volatile``: timestamps, timings) is part of the body and so is sealed too, but it is the only
 part allowed to differ between two runs on the same inputs (:func:`stable_view`).
@@ -72,9 +72,10 @@ __all__ = [
 ]
 
 #: Format written by this version.
-RECORD_FORMAT = "dicert-record/1"
-#: Formats this version reads.
-SUPPORTED_FORMATS = ("dicert-record/1",)
+RECORD_FORMAT = "dicert-record/2"
+#: Formats this version reads. /2 added the ``design`` section (conformance checks), per-file
+#: digests in ``log.files``, the ``inputs`` section and ``output_screens``.
+SUPPORTED_FORMATS = ("dicert-record/1", "dicert-record/2")
 #: Reserved member holding the body digest.
 DIGEST_FIELD = "record_sha256"
 #: Reserved member holding the signature block (or null).
@@ -175,9 +176,10 @@ def seal_record(body: Mapping[str, Any], private_key: Any = None) -> dict[str, A
         if name in body:
             raise ParameterError(f"record body: '{name}' is reserved for the seal")
     fmt = body.get("format", RECORD_FORMAT)
-    if fmt != RECORD_FORMAT:
-        raise ParameterError(f"record body: format must be {RECORD_FORMAT!r}, got {fmt!r}")
-    canonical = canonicalize({**body, "format": RECORD_FORMAT})
+    if fmt not in SUPPORTED_FORMATS:
+        raise ParameterError(f"record body: format must be one of {SUPPORTED_FORMATS!r}, "
+                             f"got {fmt!r}")
+    canonical = canonicalize({**body, "format": fmt})
     record: dict[str, Any] = parse_json(canonical)
     record[DIGEST_FIELD] = hashlib.sha256(canonical).hexdigest()
     if private_key is None:

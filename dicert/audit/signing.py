@@ -27,7 +27,7 @@ import re
 from pathlib import Path
 from typing import Any
 
-from dicert._io import write_temp_sibling
+from dicert._io import make_parent, write_temp_sibling
 from dicert.errors import ParameterError, VerificationError
 
 __all__ = [
@@ -274,7 +274,7 @@ def write_keypair(
     public_pem = pair.public_key.public_bytes(
         serialization.Encoding.PEM, serialization.PublicFormat.SubjectPublicKeyInfo
     )
-    private_path.parent.mkdir(parents=True, exist_ok=True)
+    make_parent(private_path)  # failures name the key file
     temps: list[Path] = []
     try:
         temps.append(write_temp_sibling(private_path, private_pem, 0o600))

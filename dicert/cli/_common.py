@@ -42,6 +42,12 @@ def handle_errors(func: F) -> F:
         except FileNotFoundError as exc:
             typer.echo(f"dicert: error: {exc.filename}: no such file", err=True)
             raise typer.Exit(code=2) from None
+        except OSError as exc:
+            # Disk full, permission denied, read-only file system, a path under a regular
+            # file...: one line naming the path and the cause (outputs are written to a
+            # temporary file and renamed, so nothing is half-written).
+            typer.echo(f"dicert: error: {os_error_line(exc)}", err=True)
+            raise typer.Exit(code=2) from None
         except ModuleNotFoundError as exc:
             typer.echo(
                 f"dicert: error: the library {exc.name!r} is not installed; reinstall dicert "
@@ -51,6 +57,20 @@ def handle_errors(func: F) -> F:
             raise typer.Exit(code=2) from None
 
     return wrapper  # type: ignore[return-value]
+
+
+def os_error_line(exc: OSError) -> str:
+    """"PATH: cause (ENAME)" for an OSError, on one line."""
+    import errno
+
+    cause = " ".join(str(exc.strerror or exc).split())
+    name = errno.errorcode.get(exc.errno or 0)
+    if name:
+        cause += f" ({name})"
+    path = exc.filename if exc.filename is not None else "(unnamed file)"
+    if exc.filename2 is not None:
+        path = f"{path} -> {exc.filename2}"
+    return f"{path}: {cause}"
 
 
 def to_jsonable(obj: Any) -> Any:

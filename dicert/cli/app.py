@@ -25,6 +25,7 @@ COMMAND_MODULES = (
     "demo",
     "certify",
     "verify",
+    "publish",
     "inspect",
     "plan",
     "entropy",

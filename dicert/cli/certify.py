@@ -31,8 +31,21 @@ HELP = (
     "writer) until the target is reached, n_max, the log's trailer arrives (then it decides "
     "with what there is), or no new trial arrives for --idle-timeout seconds (then it aborts "
     "and still writes a record).\n\n"
-    "Exit codes: 0 certified; 3 aborted (record written); 2 bad input (nothing written); "
-    "1 verification failure.\n\n"
+    "Before any finite-size method the log is checked against the protocol's declared design "
+    "(test-round fraction, settings distribution, serial independence of the settings, "
+    "physical range of the CHSH estimate, declared trial count); a failed check aborts. "
+    "After extraction, NIST screens run on the output; a gross failure withholds the bits.\n\n"
+    "Outputs: DIR must be new or empty (--force replaces an earlier certification's folder, "
+    "only once the new one is complete). The files are built in a folder next to DIR and "
+    "renamed into place together; published files get mode 0644. With --chain the whole "
+    "chain is first verified against your keys (--key's public half, plus --trusted-keys for "
+    "earlier keys); a chain with foreign-signed or unsigned pulses, gaps, swapped pulses, "
+    "reuse or undeclared protocol changes is refused, as is a log or seed that already fed a "
+    "pulse; a changed protocol needs --protocol-change REASON. Runs on one chain or one DIR "
+    "wait for each other (a lock).\n\n"
+    "Exit codes: 0 certified; 3 aborted (record written); 5 output withheld (record "
+    "written, no bits file); 2 bad input (nothing written); 1 verification failure (e.g. "
+    "the chain does not verify).\n\n"
     "Assumptions stated in every record: no communication between the stations during a "
     "trial; settings independent of the devices and of any adversary; trusted classical "
     "processing; the side-information model of the method (classical for martingale and "
@@ -52,11 +65,16 @@ def certify_cmd(
     seed: Annotated[Path, typer.Option("--seed", help="Extractor seed file (uniformly random raw bytes; n + m - 1 bits are used).")],
     out: Annotated[Path, typer.Option("--out", help="Output directory for random.bits and record.json.")],
     key: Annotated[Path | None, typer.Option("--key", help="Ed25519 private key (from `dicert keygen`) that signs the record.")] = None,
-    chain: Annotated[Path | None, typer.Option("--chain", help="Beacon chain directory: link the record to the previous pulse and append it.")] = None,
+    chain: Annotated[Path | None, typer.Option("--chain", help="Beacon chain directory: verify it, link the record to the previous pulse and append it (needs --key).")] = None,
+    trusted_keys: Annotated[Path | None, typer.Option("--trusted-keys", help="With --chain: TOML file of further keys trusted for earlier pulses (key rotation).")] = None,
+    protocol_change: Annotated[str | None, typer.Option("--protocol-change", metavar="REASON", help="With --chain: declare (in the signed record) a deliberate change of protocol from the chain's previous pulse.")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace an earlier certification's --out folder (only after the new outputs are complete).")] = False,
     follow: Annotated[bool, typer.Option("--follow", help="Method pef, binary log: follow a growing log until the outcome is decided, its trailer arrives, or the idle timeout.")] = False,
     poll: Annotated[float | None, typer.Option("--poll", metavar="SECONDS", help="With --follow: pause between looks for new trials [default: 0.5].")] = None,
     scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     idle_timeout: Annotated[float | None, typer.Option("--idle-timeout", metavar="SECONDS", help="With --follow: abort after this long without new trials; 0 waits for ever [default: 300].")] = None,
+    allow_mixed_inputs: Annotated[bool, typer.Option("--allow-mixed-inputs", help="Accept a multi-file log with files of equal content, a file next to its .gz copy, or mixed formats (refused otherwise; recorded).")] = False,
+    allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed already used in the chain or equal to the log (refused otherwise; recorded). A constant seed is always refused.")] = False,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.certify import certify
@@ -73,7 +91,9 @@ def certify_cmd(
     with progress_bar() as bar:
         task = bar.add_task("following log" if follow else "reading log", total=None)
         result = certify(
-            log, protocol, seed, out, key=key, chain=chain, scheduler=scheduler or None,
+            log, protocol, seed, out, key=key, chain=chain, force=force, scheduler=scheduler or None,
+            trusted_keys=trusted_keys, protocol_change=protocol_change,
+            allow_mixed_inputs=allow_mixed_inputs, allow_seed_reuse=allow_seed_reuse,
             progress=lambda stage, done, total: bar.update(task, completed=done, total=total),
             **extra,
         )
@@ -100,7 +120,12 @@ def certify_cmd(
             "method": rec["entropy"]["finite_size"]["method"],
             "side_information": rec["entropy"]["finite_size"]["side_information"],
             "abort_reason": result.abort_reason,
+            "design_checks": (rec.get("design") or {}).get("checks"),
+            "trial_count_source": ((rec.get("design") or {}).get("trials") or {}).get("source"),
+            "output_screens": rec.get("output_screens"),
             "signed": rec.get("signature") is not None,
+            "pulse_index": rec.get("pulse_index"),
+            "protocol_change": rec.get("protocol_change"),
             "exit_code": result.exit_code,
         })
     else:
@@ -124,6 +149,19 @@ def certify_cmd(
             rows.insert(2, ("success at trial", result.success_trial_index))
         if result.chain_file:
             rows.append(("chain pulse", str(result.chain_file)))
+        if rec.get("protocol_change"):
+            rows.append(("protocol change", rec["protocol_change"]["reason"]))
+        des = rec.get("design") or {}
+        if des:
+            bad = [c["name"] for c in des.get("checks", []) if not c.get("passed")]
+            rows.append(("design checks", f"{len(des.get('checks', []))} run, "
+                         + (f"FAILED: {', '.join(bad)}" if bad else "all passed")
+                         + f" (significance {des.get('significance')})"))
+            rows.append(("trial count n", des.get("trials", {}).get("note", "")))
+        scr = rec.get("output_screens")
+        if scr:
+            rows.append(("output screens", "passed" if scr.get("passed")
+                         else f"FAILED: {scr.get('failure')}"))
         if result.abort_reason:
             rows.append(("abort reason", result.abort_reason))
         console = stdout_console()

@@ -8,6 +8,7 @@ log, a record and a bits file to show that verification fails. It writes only in
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import shutil
 from pathlib import Path
@@ -85,15 +86,52 @@ def _flip_byte(src: Path, dst: Path, offset_from_end: int = 1) -> int:
     data = bytearray(src.read_bytes())
     pos = len(data) - offset_from_end
     data[pos] ^= 0x01
-    dst.write_bytes(bytes(data))
+    from dicert._io import atomic_write_bytes
+
+    atomic_write_bytes(dst, bytes(data))
     return pos
+
+
+def _resign(path: Path) -> None:
+    """Re-seal a pulse with a freshly made (foreign) key: valid signature, wrong signer."""
+    from dicert.audit.record import read_record, record_bytes, seal_record
+    from dicert.audit.signing import generate_keypair
+
+    body = {k: v for k, v in read_record(path).items() if k not in ("record_sha256", "signature")}
+    path.write_bytes(record_bytes(seal_record(body, generate_keypair())))
+
+
+def _truncated(chain: Path, dst: Path) -> Path:
+    shutil.copytree(chain, dst)
+    sorted(dst.glob("pulse-*.json"))[-1].unlink()
+    return dst
 
 
 def run_demo(out: Path | None = None, *, scenario: dict | None = None,
              say=lambda msg: None) -> dict:
     """Run the invented scenario; returns a JSON-able summary. Raises if a check misbehaves."""
+    sc = scenario if scenario is not None else load_scenario()
+    existed = out is not None and out.exists()
+    out = _fresh_out(out)
+    try:
+        return _run_demo(out, sc, existed, say)
+    except BaseException:
+        # --out was new or empty: a failed demo (disk full, ...) leaves it as it was.
+        with contextlib.suppress(OSError):
+            for child in out.iterdir():
+                if child.is_dir() and not child.is_symlink():
+                    shutil.rmtree(child)
+                else:
+                    child.unlink()
+            if not existed:
+                out.rmdir()
+        raise
+
+
+def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     import numpy as np
 
+    from dicert._io import atomic_write_bytes
     from dicert.audit.signing import write_keypair
     from dicert.certify import certify
     from dicert.errors import DicertError, VerificationError
@@ -101,8 +139,6 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
     from dicert.protocol import load_protocol, shipped_protocol_path
     from dicert.verify import verify, verify_chain
 
-    sc = scenario if scenario is not None else load_scenario()
-    out = _fresh_out(out)
     protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
     rng_seed = int(sc["rng_seed"])
     say(f"[invented scenario] {sc['title']}")
@@ -120,14 +156,17 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         log_path = pdir / "trials.btl"
         write_log(log_path, trials)
         seed_path = pdir / "seed.bin"
-        seed_path.write_bytes(_demo_seed(rng_seed, i, (4 * int(p["trials"])) // 8 + 8))
+        atomic_write_bytes(seed_path, _demo_seed(rng_seed, i, (4 * int(p["trials"])) // 8 + 8))
         res = certify(log_path, protocol, seed_path, pdir / "certified", key=keys.private_key_file,
                       chain=chain)
         say(f"{p['label']}: {res.status.upper()}, {res.output_bits} bits "
             f"(min-entropy {res.min_entropy_bits:.1f} bits, error {res.error:.3g})")
-        rep = verify(res.record_file, log=log_path, seed=seed_path, bits=res.bits_file,
+        rep = verify(res.record_file, log=log_path, seed=seed_path,
                      public_key=keys.public_key_file)
-        say(f"  verified from the raw inputs ({rep.scope})")
+        if rep.result != "VERIFIED":  # pragma: no cover - the demo's own check
+            raise VerificationError(f"demo pulse {i} verified only as {rep.result}", "demo")
+        say(f"  {rep.result} against the operator's public key, every number re-derived "
+            f"from the raw inputs")
         pulses.append({
             "pulse": i, "label": p["label"], "model": p["model"], "trials": res.trials,
             "status": res.status, "output_bits": res.output_bits,
@@ -136,10 +175,26 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
             "log_file": str(log_path), "seed_file": str(seed_path),
             "bits_file": str(res.bits_file) if res.bits_file else None,
             "record_file": str(res.record_file), "record_sha256": res.record_sha256,
-            "verified": rep.scope,
+            "verified": rep.scope, "result": rep.result,
         })
     chain_report = verify_chain(chain, public_key=keys.public_key_file)
-    say(f"chain of {len(pulses)} pulses verified: {chain}")
+    head = chain_report.head_sha256
+    verify_chain(chain, public_key=keys.public_key_file, head=head)
+    say(f"chain of {len(pulses)} pulses: {chain_report.result} against the operator's key "
+        f"(head {head[:16]}...): {chain}")
+    # Without a trusted key a record's integrity can be checked, not who made it.
+    anon = verify(pulses[0]["record_file"])
+    say(f"the same record checked without the operator's key: {anon.result} (authenticity "
+        "not established)")
+
+    # The beacon's public face: a static site built from the chain, then re-checked.
+    from dicert.beacon import build_site, check_site
+
+    site = build_site(chain, out / "site", public_key=keys.public_key_file,
+                      title=f"{sc['title']} (invented demo)")
+    site_check = check_site(site.site_dir, keys.public_key_file)
+    say(f"beacon site built and checked ({site_check.pulses} pulses, head "
+        f"{site_check.head_sha256[:16]}...): {site.index_file}")
 
     # Tampering: each must make verification fail.
     first = pulses[0]
@@ -179,29 +234,42 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
     bad_rec = tdir / "record.json"
     text = Path(first["record_file"]).read_text(encoding="utf-8")
     old = f'"output_bits":{first["output_bits"]}'
-    bad_rec.write_text(text.replace(old, f'"output_bits":{first["output_bits"] + 1000}', 1),
-                       encoding="utf-8")
+    atomic_write_bytes(bad_rec, text.replace(
+        old, f'"output_bits":{first["output_bits"] + 1000}', 1).encode("utf-8"))
     expect_failure("record (claims 1000 more output bits)", lambda: verify(
         bad_rec, public_key=keys.public_key_file))
     bad_chain = tdir / "chain"
     shutil.copytree(chain, bad_chain)
-    victims = sorted(bad_chain.glob("*.json"))
+    victims = sorted(bad_chain.glob("pulse-*.json"))
     if len(victims) >= 2:
         victims[1].unlink()
         expect_failure("chain (a pulse removed)", lambda: verify_chain(
             bad_chain, public_key=keys.public_key_file))
+        forged_chain = tdir / "chain-resigned"
+        shutil.copytree(chain, forged_chain)
+        _resign(sorted(forged_chain.glob("pulse-*.json"))[-1])
+        expect_failure("chain (newest pulse re-signed with a foreign key)", lambda: verify_chain(
+            forged_chain, public_key=keys.public_key_file))
+        expect_failure("chain (newest pulse removed, head published)", lambda: verify_chain(
+            _truncated(chain, tdir / "chain-truncated"),
+            public_key=keys.public_key_file, head=head))
 
     from dicert.cli._common import to_jsonable
 
     return {
         "scenario": sc["title"],
         "invented": True,
+        "site": {"dir": site.site_dir, "index_file": site.index_file,
+                 "head_sha256": site.head_sha256, "checked": to_jsonable(site_check),
+                 "serve": _serve_hint(site.site_dir)},
         "out_dir": str(out),
         "protocol": {"name": protocol.name, "sha256": protocol.sha256},
         "public_key_file": keys.public_key_file,
         "key_fingerprint": keys.fingerprint,
         "pulses": pulses,
-        "chain": {"dir": str(chain), "report": to_jsonable(chain_report)},
+        "chain": {"dir": str(chain), "head_sha256": head, "result": chain_report.result,
+                  "report": to_jsonable(chain_report)},
+        "without_key": anon.result,
         "tamper_checks": checks,
         "ok": True,
         "caution": CAUTION,
@@ -228,15 +296,27 @@ def demo_cmd(
         rows.append((f"pulse {p['pulse']} ({p['model']})",
                      f"{p['status']}: {p['output_bits']} bits, CHSH {p['chsh']:.4f}"))
     for c in summary["tamper_checks"]:
-        rows.append((f"tampered {c['tampered'].split(' ')[0]}", f"detected ({c['field'] or 'error'})"))
+        rows.append((f"tampered {c['tampered']}", f"detected ({c['field'] or 'error'})"))
     rows.append(("outputs", summary["out_dir"]))
     console.print(kv_table(f"dicert demo: {summary['scenario']}", rows))
+    console.print("Open the beacon site (its pages re-check the chain in your browser):\n"
+                  f"  {summary['site']['serve']}\n  then visit http://127.0.0.1:8000/",
+                  highlight=False, soft_wrap=True, markup=False)
     first = summary["pulses"][0]
     console.print("Re-check a pulse yourself:\n"
                   f"  dicert verify {first['record_file']} --log {first['log_file']} "
                   f"--seed {first['seed_file']} --bits {first['bits_file']} "
-                  f"--pubkey {summary['public_key_file']}", highlight=False, soft_wrap=True)
+                  f"--pubkey {summary['public_key_file']}\n"
+                  f"  dicert verify --chain {summary['chain']['dir']} "
+                  f"--pubkey {summary['public_key_file']} --head {summary['chain']['head_sha256']}",
+                  highlight=False, soft_wrap=True)
     console.print(f"INVENTED scenario, simulated data. CAUTION: {CAUTION}", style="dim")
+
+
+def _serve_hint(site_dir: str) -> str:
+    import shlex
+
+    return f"python3 -m http.server 8000 --bind 127.0.0.1 --directory {shlex.quote(site_dir)}"
 
 
 def _sha256(path: Path) -> str:  # pragma: no cover - small helper kept for scripts

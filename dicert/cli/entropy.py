@@ -20,9 +20,10 @@ def entropy_cmd(
     parties: Annotated[str, typer.Option("--parties", help="Whose outcomes: A (one party) or AB (the pair).")] = "A",
     measure: Annotated[str, typer.Option("--measure", help="min (min-entropy) or vn (von Neumann entropy).")] = "min",
     level: Annotated[str, typer.Option("--level", help="NPA relaxation level: 1, 1+AB or 2.")] = "1+AB",
-    method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve) or table (precomputed certificates).")] = "auto",
+    method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve), table (precomputed certificates), radau (von Neumann: solve the Gauss-Radau quadrature SDPs) or radau-table (its precomputed lines).")] = "auto",
     tolerance: Annotated[float, typer.Option("--tolerance", help="Slack allowed on each observed correlator (with --from-log).")] = 0.0,
     fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz).")] = None,
+    protocol: Annotated[Optional[str], typer.Option("--protocol", help="With --from-log: the protocol whose declared design the log is checked against (default: every round a test round, or the observed test fraction of a log with a t column).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Lower-bound the entropy per round of the outcomes, against an adversary holding quantum
@@ -46,11 +47,29 @@ def entropy_cmd(
         from dicert.logs import summarize_log
 
         summary = summarize_log(from_log, digest=True, format=fmt)
+        from types import SimpleNamespace
+
+        from dicert.design import check_design
+        from dicert.estimate import observed_design
+
+        if protocol is not None:
+            from dicert.protocol import load_protocol
+
+            like = load_protocol(protocol)
+        else:
+            like = SimpleNamespace(design=observed_design(summary.counts), analysis=None,
+                                   method=None, conformance=None)
+        report = check_design(summary.counts, like, block_counts=summary.block_counts,
+                              pair_counts=summary.pair_counts)
+        if not report.passed:
+            raise ParameterError(f"{from_log}: refusing to bound entropy from this log: "
+                                 f"{report.abort_reason}")
         try:
             correlators = correlators_from_counts(summary.counts)
         except ParameterError as exc:
             raise ParameterError(f"{from_log}: {exc}") from None
-        log_info = {"path": from_log, "sha256": summary.sha256, "trials": summary.trials}
+        log_info = {"path": from_log, "sha256": summary.sha256, "trials": summary.trials,
+                    "design_checks": report.to_dict()}
     result = bound_entropy(
         chsh=chsh, correlators=correlators, parties=parties, measure=measure, level=level,
         method=method, tolerance=tolerance,
@@ -86,8 +105,15 @@ def entropy_cmd(
         ]
     if result.table is not None:
         rows.append(("table piece / grid S", f"{result.table['piece']} / {result.table['grid_chsh']:.6g}"))
+    if result.quadrature is not None:
+        q = result.quadrature
+        rows.append(("certified line (bits)", f"{q['offset']:.6g} + {q['slope']:.6g} w (duals at w = {q['w0']:.6g})"))
+        rows.append(("quadrature nodes / relaxation", f"{q['nodes']} / {q['relaxation']}"))
     if result.fallback_reason:
         rows.append(("fallback reason", result.fallback_reason))
     if log_info is not None:
         rows.append(("log trials", log_info["trials"]))
+        dc = log_info["design_checks"]
+        rows.append(("design checks", f"{len(dc['checks'])} run at significance "
+                     f"{dc['significance']:g}: all passed"))
     stdout_console().print(kv_table("single-round entropy bound", rows))

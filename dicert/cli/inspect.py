@@ -18,7 +18,8 @@ def register(app: typer.Typer) -> None:
 def inspect_cmd(
     log: Annotated[str, typer.Argument(help="Trial log: a file, a directory of files, or a glob pattern.")],
     error: Annotated[float, typer.Option("--error", help="Error probability eps of the lower bound on S.")] = 1e-6,
-    gamma: Annotated[float, typer.Option("--gamma", help="Test-round probability of the design (1 = uniform settings every round).")] = 1.0,
+    gamma: Annotated[Optional[float], typer.Option("--gamma", help="Test-round probability of the design (1 = uniform settings every round). Default: the protocol's, else the observed fraction of test rounds of a log with a t column (labelled), else 1.")] = None,
+    protocol: Annotated[Optional[Path], typer.Option("--protocol", help="Protocol file: use its declared design and run its design-conformance checks.")] = None,
     block_trials: Annotated[int, typer.Option("--block-trials", help="Trials per block for drift diagnostics.")] = 1 << 20,
     block_error: Annotated[float, typer.Option("--block-error", help="Error per side of each block's interval.")] = 1e-3,
     plot: Annotated[Optional[Path], typer.Option("--plot", help="Write a plot of S per block to this file (PNG/PDF/SVG).")] = None,
@@ -28,10 +29,19 @@ def inspect_cmd(
 ) -> None:
     """Read a trial log (streaming) and report counts, correlators, the CHSH value, its lower
     confidence bound valid for devices with memory, and the p-value of local realism."""
-    from dicert.estimate import SettingsDesign, block_estimates, estimate_chsh
+    from dicert.estimate import SettingsDesign, block_estimates, estimate_chsh, observed_design
+    from dicert.errors import ParameterError
+
+    proto = None
+    if protocol is not None:
+        from dicert.protocol import load_protocol
+
+        proto = load_protocol(protocol)
+        if gamma is not None and gamma != proto.gamma:
+            raise ParameterError(f"--gamma {gamma:g} disagrees with the protocol's settings.gamma "
+                                 f"= {proto.gamma:g}; give one of them")
     from dicert.logs import summarize_log
 
-    design = SettingsDesign(gamma=gamma)
     if scheduler:
         from dicert.cluster import summarize_log as summarize_on_cluster
 
@@ -44,8 +54,36 @@ def inspect_cmd(
                 log, block_trials=block_trials, digest=False, format=fmt,
                 progress=lambda done, total: bar.update(task, completed=done, total=total),
             )
+    if proto is not None:
+        design, source = proto.design, "declared in the protocol"
+    elif gamma is not None:
+        design, source = SettingsDesign(gamma=gamma), "given with --gamma"
+    elif summary.has_test_flag:
+        design, source = observed_design(summary.counts), "OBSERVED fraction of test rounds (not pre-declared: the bound is indicative only)"
+    else:
+        design, source = SettingsDesign(), "every round a test round (the log has no t column)"
+    if design.gamma < 1.0 and not summary.has_test_flag:
+        raise ParameterError(f"{log}: gamma = {design.gamma:g} < 1 needs a log with a t column "
+                             "marking test rounds; this log has none (every trial is a test round)")
+    if design.gamma >= 1.0 and int(summary.counts[0].sum()):
+        raise ParameterError(f"{log}: gamma = 1 declares every round a test round, but the log "
+                             f"marks {int(summary.counts[0].sum())} trials as generation rounds")
+    from types import SimpleNamespace
+
+    from dicert.design import check_design
+
+    like = proto if proto is not None else SimpleNamespace(
+        design=design, analysis=None, method=None, conformance=None)
+    report = check_design(summary.counts, like, block_counts=summary.block_counts,
+                          pair_counts=summary.pair_counts, eps=error)
+    settings_ok = all(c.passed for c in report.checks
+                      if c.name.startswith(("test_settings", "serial", "generation")))
     est = estimate_chsh(summary.counts, design, eps=error)
     blocks = block_estimates(summary.block_counts, summary.block_trials, design, eps=block_error)
+    lower_shown, lower_note = _clip(est.chsh_lower)
+    declared = proto is not None or gamma is not None
+    p_refused = None if settings_ok or not declared else (
+        "refused: the settings frequencies or sequence contradict the declared design")
     if plot is not None:
         from dicert.plotting import plot_chsh_blocks
 
@@ -72,12 +110,18 @@ def inspect_cmd(
                 "chsh_lower": est.chsh_lower,
                 "margin": est.margin,
                 "error": error,
-                "gamma": gamma,
+                "gamma": design.gamma,
+                "gamma_source": source,
+                "chsh_lower_shown": lower_shown,
+                "chsh_lower_note": lower_note,
+                "local_win_bound": est.local_win_bound,
+                "p_value_refused": p_refused,
+                "design_checks": report.to_dict(),
                 "bound_method": est.bound_method,
                 "win_probability": est.win_probability,
                 "wins": est.wins,
-                "p_value_local": est.p_value_local,
-                "log10_p_value_local": est.log10_p_value_local,
+                "p_value_local": None if p_refused else est.p_value_local,
+                "log10_p_value_local": None if p_refused else est.log10_p_value_local,
                 "p_value_method": est.p_value_method,
                 "blocks": [
                     {"index": b.index, "first_trial": b.first_trial, "trials": b.trials,
@@ -93,11 +137,17 @@ def inspect_cmd(
         ("trials", f"{summary.trials:,}"),
         ("test rounds", f"{est.test_trials:,}"),
         ("CHSH S (ratio estimator)", f"{est.chsh:.5f} \u00b1 {est.chsh_stderr:.5f} (i.i.d. std. error)"),
-        ("CHSH S (martingale estimator)", f"{est.chsh_martingale:.5f}"),
-        (f"lower bound on S at eps={error:g}", f"{est.chsh_lower:.5f}  (margin {est.margin:.5f}; valid with memory)"),
+        ("CHSH S (martingale estimator)", (lambda v, note: f"{v:.5f}" + (f"  ({note})" if note else ""))(*_clip(est.chsh_martingale))),
+        ("gamma (test-round probability)", f"{design.gamma:.6g} ({source})"),
+        (f"lower bound on S at eps={error:g}", f"{lower_shown:.5f}  (margin {est.margin:.5f}; valid with memory{'; ' + lower_note if lower_note else ''})"),
         ("CHSH-game win probability", f"{est.win_probability:.6f}"),
-        ("p-value of local realism", f"{est.p_value_local:.3e}" if est.p_value_local > 0 else f"10^{est.log10_p_value_local:.1f}"),
+        ("p-value of local realism", p_refused if p_refused else (
+            (f"{est.p_value_local:.3e}" if est.p_value_local > 0 else f"10^{est.log10_p_value_local:.1f}")
+            + f" (local win bound {est.local_win_bound:.4g} at the observed settings frequencies)")),
     ]
+    bad = [c for c in report.checks if not c.passed]
+    rows.append(("design checks", f"{len(report.checks)} run at significance {report.significance:g}: "
+                 + ("all passed" if not bad else "FAILED: " + "; ".join(f"{c.name}: {c.detail}" for c in bad))))
     con.print(kv_table(f"Bell test summary: {log}", rows))
     from rich.table import Table
 
@@ -110,8 +160,25 @@ def inspect_cmd(
                         f"{est.correlators[x, y]:.5f}", f"{est.correlator_stderr[x, y]:.5f}")
     con.print(tab)
     if len(blocks) > 1:
-        lo = min(b.chsh for b in blocks)
-        hi = max(b.chsh for b in blocks)
-        con.print(f"{len(blocks)} blocks of {summary.block_trials:,} trials: block S from {lo:.4f} to {hi:.4f}")
+        lo, lo_note = _clip(min(b.chsh for b in blocks))
+        hi, hi_note = _clip(max(b.chsh for b in blocks))
+        note = " (values clipped to the physical range [-4, 4])" if lo_note or hi_note else ""
+        con.print(f"{len(blocks)} blocks of {summary.block_trials:,} trials: block S from {lo:.4f} to {hi:.4f}{note}")
     if plot is not None:
         con.print(f"plot written to {plot}")
+
+
+def _clip(value: float) -> tuple[float, str]:
+    """A CHSH value clipped to the physical range [-4, 4], with a label when clipped."""
+    import math
+
+    if not math.isfinite(value):
+        return value, ""
+    if value > 4.0:
+        return 4.0, (f"CLIPPED to 4 (computed {value:.5f}, above the no-signalling maximum: "
+                     "likely a wrong gamma or settings design)")
+    if value < -4.0:
+        return -4.0, f"clipped to -4 (computed {value:.5f}; too few test rounds to say more)"
+    if value > 2.0 * math.sqrt(2.0):
+        return value, "above the quantum maximum 2 sqrt 2: impossible for quantum devices; check gamma and the design"
+    return value, ""

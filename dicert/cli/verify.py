@@ -17,14 +17,23 @@ from dicert.cli._common import (
 
 HELP = (
     "Re-check an audit record: signature and internal consistency (every derived number is "
-    "recomputed from the recorded counts and protocol); with --log and --seed every number is "
-    "re-derived from the raw inputs and the extraction re-run; with --bits the output file is "
-    "compared. Without --log and --seed only the signature and internal consistency are "
-    "checked, and the report says so.\n\n"
-    "With --chain DIR: check a beacon chain (signatures, links, gaps, reordering, forks, reuse "
-    "of an extractor seed across pulses).\n\n"
+    "recomputed from the recorded counts and protocol); the bits file the record names (next "
+    "to it) is checked by default, or the one given with --bits; with --log and --seed every "
+    "number is re-derived from the raw inputs and the extraction re-run.\n\n"
+    "Trust: a record is authenticated only when it is signed by a key you trust: --pubkey "
+    "(the operator's public key) or --trusted-keys (a TOML file of keys with optional pulse "
+    "or time ranges, for key rotation). Otherwise, or for an unsigned record, the result is "
+    "INTEGRITY-ONLY: the record is intact, but who made it is not established.\n\n"
+    "Result words: VERIFIED (authenticated, log, seed and bits all checked); "
+    "VERIFIED-PARTIAL (authenticated, something not checked: listed); INTEGRITY-ONLY (not "
+    "authenticated). --strict makes anything not established a failure.\n\n"
+    "With --chain DIR: check a beacon chain in one pass (signatures against the trusted keys, "
+    "links, gaps, reordering, forks, reuse of an extractor seed or a log, key changes the "
+    "trusted keys do not allow, protocol changes without a signed declaration; with --head, "
+    "truncation of the newest pulses). Each of these is a failure.\n\n"
     "Exit codes: 0 verified; 1 verification failure (the message names the first field that "
-    "disagrees); 2 bad input."
+    "disagrees); 2 bad input; 4 integrity checked but authenticity NOT established (no trusted "
+    "key given, or unsigned)."
 )
 
 
@@ -37,36 +46,56 @@ def verify_cmd(
     record: Annotated[Path | None, typer.Argument(help="Audit record (record.json) to check.")] = None,
     log: Annotated[str | None, typer.Option("--log", help="The trial log the record certifies (file, directory or glob).")] = None,
     seed: Annotated[Path | None, typer.Option("--seed", help="The extractor seed file.")] = None,
-    bits: Annotated[Path | None, typer.Option("--bits", help="The output bits file.")] = None,
-    pubkey: Annotated[Path | None, typer.Option("--pubkey", help="The operator's Ed25519 public key (KEYFILE.pub).")] = None,
+    bits: Annotated[Path | None, typer.Option("--bits", help="The output bits file [default: the file the record names, next to it].")] = None,
+    pubkey: Annotated[Path | None, typer.Option("--pubkey", help="The operator's Ed25519 public key (KEYFILE.pub), trusted for every record.")] = None,
+    trusted_keys: Annotated[Path | None, typer.Option("--trusted-keys", help="TOML file of trusted public keys with optional pulse/time ranges (key rotation).")] = None,
     chain: Annotated[Path | None, typer.Option("--chain", help="Check every record of this beacon chain directory.")] = None,
+    head: Annotated[str | None, typer.Option("--head", metavar="SHA256", help="With --chain: the published head digest; a chain without it was truncated.")] = None,
+    strict: Annotated[bool, typer.Option("--strict", help="Fail (exit 1) unless authenticated and every artifact was checked.")] = False,
     scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: re-run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
+    import re
+
     from dicert.errors import ParameterError, VerificationError
 
     if (record is None) == (chain is None):
         raise ParameterError("give either a RECORD file or --chain DIR (not both)")
     if chain is not None and (log or seed or bits):
         raise ParameterError("--log, --seed and --bits apply to a single RECORD, not to --chain")
+    if head is not None:
+        if chain is None:
+            raise ParameterError("--head applies only with --chain")
+        if not re.fullmatch(r"[0-9a-f]{64}", head):
+            raise ParameterError(f"--head: expected 64 lower-case hex digits, got {head!r}")
     try:
         if chain is not None:
-            _chain(chain, pubkey, as_json)
+            code = _chain(chain, pubkey, trusted_keys, head, strict, as_json)
         else:
-            _record(record, log, seed, bits, pubkey, as_json, scheduler=scheduler or None)
+            code = _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json,
+                           scheduler=scheduler or None)
     except VerificationError as exc:
         if as_json:
-            emit_json({"verified": False, "field": exc.field, "error": " ".join(str(exc).split())})
+            emit_json({"verified": False, "result": "FAILED", "authenticated": False,
+                       "field": exc.field, "error": " ".join(str(exc).split()),
+                       "exit_code": 1})
         raise
+    if code:
+        raise typer.Exit(code=code)
 
 
-def _record(record, log, seed, bits, pubkey, as_json: bool, scheduler=None) -> None:
+def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool,
+            scheduler=None) -> int:
     from dicert.verify import verify
 
-    rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey, scheduler=scheduler)
+    rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
+                 trusted_keys=trusted_keys, strict=strict, scheduler=scheduler)
     if as_json:
         emit_json({
-            "verified": True,
+            "verified": rep.authenticated,
+            "result": rep.result,
+            "authenticated": rep.authenticated,
+            "exit_code": rep.exit_code,
             "record_file": rep.record_file,
             "record_sha256": rep.record_sha256,
             "status": rep.status,
@@ -74,14 +103,17 @@ def _record(record, log, seed, bits, pubkey, as_json: bool, scheduler=None) -> N
             "signature": rep.signature,
             "key_fingerprint": rep.key_fingerprint,
             "scope": rep.scope,
+            "bits_file": rep.bits_file,
             "checked": list(rep.checked),
             "not_checked": list(rep.not_checked),
             "notes": list(rep.notes),
             "message": rep.message,
         })
-        return
+        return rep.exit_code
     rows = [
-        ("result", "VERIFIED"),
+        ("result", rep.result),
+        ("authenticity", "established (trusted key)" if rep.authenticated
+         else "NOT established"),
         ("record status", rep.status),
         ("output bits", rep.output_bits),
         ("record SHA-256", rep.record_sha256),
@@ -96,32 +128,39 @@ def _record(record, log, seed, bits, pubkey, as_json: bool, scheduler=None) -> N
     console = stdout_console()
     console.print(kv_table("dicert verify", rows))
     console.print(rep.message)
+    return rep.exit_code
 
 
-def _chain(chain, pubkey, as_json: bool) -> None:
+def _chain(chain, pubkey, trusted_keys, head, strict, as_json: bool) -> int:
     from dicert.cli._common import to_jsonable
-    from dicert.verify import verify_chain
+    from dicert.verify import EXIT_NOT_AUTHENTICATED, verify_chain
 
-    rep = verify_chain(chain, public_key=pubkey)
+    rep = verify_chain(chain, public_key=pubkey, trusted_keys=trusted_keys, head=head,
+                       strict=strict)
+    code = 0 if rep.authenticated else EXIT_NOT_AUTHENTICATED
     data = to_jsonable(rep)
     if as_json:
-        emit_json({"verified": True, "chain": str(chain), "report": data})
-        return
-    rows = [("result", "CHAIN VERIFIED"), ("chain", str(chain))]
-    findings = []
-    if isinstance(data, dict):
-        findings = data.get("findings") or []
-        for k in ("pulses", "first_index", "last_index", "head_sha256", "signed_pulses",
-                  "signer_trusted"):
-            if k in data:
-                rows.append((k.replace("_", " "), str(data[k])))
-        for fp in data.get("key_fingerprints") or []:
-            rows.append(("signing key", str(fp)))
-    for f in findings:
+        emit_json({"verified": rep.authenticated, "result": rep.result,
+                   "authenticated": rep.authenticated, "exit_code": code, "chain": str(chain),
+                   "head_sha256": rep.head_sha256, "report": data})
+        return code
+    rows = [("result", rep.result), ("chain", str(chain))]
+    for k in ("pulses", "first_index", "last_index", "head_sha256", "signed_pulses",
+              "signer_trusted"):
+        rows.append((k.replace("_", " "), str(data[k])))
+    if head is not None:
+        rows.append(("published head", f"pulse {rep.head_pulse}"))
+    for fp in data.get("key_fingerprints") or []:
+        rows.append(("signing key", str(fp)))
+    for f in data.get("findings") or []:
         rows.append((f"{f.get('severity', '')}: {f.get('kind', '')}",
                      f"{f.get('file') or ''} {f.get('message', '')}".strip()))
     console = stdout_console()
     console.print(kv_table("dicert verify --chain", rows))
-    if not (isinstance(data, dict) and data.get("signer_trusted")):
-        console.print("Signatures were checked against the keys embedded in the records; pass "
-                      "--pubkey to check that they are the operator's.")
+    if not rep.authenticated:
+        console.print("Integrity checked, authenticity NOT established: signatures were "
+                      "checked against the keys embedded in the records; pass --pubkey or "
+                      "--trusted-keys to check that they are the operator's.")
+    if head is None:
+        console.print("No --head given: removal of the newest pulses cannot be detected.")
+    return code

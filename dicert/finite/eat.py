@@ -33,6 +33,14 @@ The note flags log2(2 d^2 + 1) vs log2(1 + 2 d) and the prefactor of K_alpha as 
 this module uses the CONSERVATIVE choice it names (log2(2 d^2 + 1) = log2 33 and the full
 K_alpha) and labels the method "eat-df-conservative".
 
+Pair of outcomes (``single_round = "radau-vn-AB"``): instead of tangents of G, the min-tradeoff
+function is built from one of the shipped certified lines g(w) = a w + b (a >= 0) that bound
+H(A_i B_i | X_i Y_i T_i E) for every quantum strategy (Gauss-Radau quadrature with exactly checked
+SDP duals, Brown, Fawzi & Fawzi, Quantum 8, 1445 (2024); :mod:`dicert.entropy.vnquad`). The DF
+and ARV forms, Var(f), R and ||grad f|| depend on g only through (a, b), so both engines apply
+unchanged; the line is chosen after the data like the tangent point (:func:`quadrature_lines`
+explains why no (1 - gamma) factor is needed).
+
 Both are statements about the state conditioned on acceptance: either P(accept) < eps_EA or
 the bound holds; extraction by two-universal hashing with m <= H - 2 log2(1/eps_ext) then
 gives soundness eps_EA + 2 eps_s + eps_ext in "P(accept) x distance" form (Tomamichel et al.
@@ -136,6 +144,14 @@ def df_rate(w_t, alpha_m1, w_c: float, n: float, gamma: float, eps_s: float, eps
     ``alpha_m1`` = alpha - 1 (broadcast against ``w_t``). K_alpha is evaluated in log space.
     """
     a, b = tangent(w_t)
+    return df_rate_ab(a, b, alpha_m1, w_c, n, gamma, eps_s, eps_ea)
+
+
+def df_rate_ab(a, b, alpha_m1, w_c: float, n: float, gamma: float, eps_s: float,
+               eps_ea: float):
+    """:func:`df_rate` for a given affine single-round bound g(w) = a w + b (a >= 0)."""
+    a = np.asarray(a, dtype=float)
+    b = np.asarray(b, dtype=float)
     am1 = np.asarray(alpha_m1, dtype=float)
     alpha = 1.0 + am1
     beta = am1 / (1.0 - am1)
@@ -150,6 +166,14 @@ def df_rate(w_t, alpha_m1, w_c: float, n: float, gamma: float, eps_s: float, eps
     second = beta * (LN2 / 2.0) * v * v
     third = (g_smooth(eps_s) + alpha * math.log2(1.0 / eps_ea)) / (n * am1)
     return h - second - third - beta * beta * k_alpha
+
+
+def dfr_rate_ab(a, b, w_c: float, n: float, gamma: float, eps_s: float, eps_ea: float):
+    """:func:`dfr_rate` for a given affine single-round bound g(w) = a w + b (a >= 0)."""
+    a = np.asarray(a, dtype=float)
+    h = a * w_c + np.asarray(b, dtype=float)
+    root = math.sqrt(1.0 - 2.0 * math.log2(eps_s * eps_ea))
+    return h - 2.0 * (_LOG2_9 + np.ceil(a / gamma)) * root / math.sqrt(n)
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -264,9 +288,86 @@ def optimise_df(w_c: float, n: float, gamma: float, eps_s: float, eps_ea: float,
                    h=float(a * w_c + b))
 
 
+def quadrature_lines() -> tuple[tuple[float, float, float], ...]:
+    """The shipped certified lines (w0, offset b, slope a) bounding H(AB|X=x,Y=y,E).
+
+    Each line g(w) = a w + b lower-bounds H(A_i B_i | X_i = 0, Y_i = 0, E) for every quantum
+    strategy with CHSH win probability w (:mod:`dicert.entropy.vnquad`, Brown-Fawzi-Fawzi
+    2024). By the symmetry of the CHSH game it bounds every input pair [D]: a strategy that
+    feeds inputs (x xor x0, y xor y0) to the devices and outputs (a xor x y0 xor x0 y0,
+    b xor x0 y) wins with the same probability, and its (0, 0) outcome pair is a fixed
+    relabelling of the original (x0, y0) pair. So g(w) bounds H(A_i B_i | X_i Y_i T_i E) on
+    every round, with no (1 - gamma) factor, exactly as G does for the one-party bound.
+    """
+    from dicert.entropy.vnquad import load_vn_table
+
+    return tuple(ln for ln in load_vn_table().lines["AB"] if ln[2] > 0.0)
+
+
+def optimise_lines(variant: str, lines, w_c: float, n: float, gamma: float, eps_s: float,
+                   eps_ea: float) -> EatRate:
+    """Best rate over a finite set of certified affine bounds (w0, b, a) (and alpha for DF).
+
+    Every line is a valid single-round bound for all w, so choosing the line after the data
+    is allowed exactly like choosing the tangent point (methods note, section 4).
+    """
+    from scipy.optimize import minimize_scalar
+
+    name = "df-conservative" if variant == "df-conservative" else "dfr"
+    if w_c <= _W_LO or not lines:
+        return EatRate(variant=name, rate_per_round=0.0, w_tangent=float("nan"), alpha=None,
+                       a=0.0, b=0.0, h=0.0)
+    w0 = np.array([ln[0] for ln in lines])
+    b = np.array([ln[1] for ln in lines])
+    a = np.array([ln[2] for ln in lines])
+    if variant == "dfr":
+        r = dfr_rate_ab(a, b, w_c, n, gamma, eps_s, eps_ea)
+        k = int(np.argmax(r))
+        return EatRate(variant="dfr", rate_per_round=float(r[k]), w_tangent=float(w0[k]),
+                       alpha=None, a=float(a[k]), b=float(b[k]), h=float(a[k] * w_c + b[k]))
+    if variant != "df-conservative":
+        raise ParameterError(f"unknown EAT variant {variant!r}")
+    la = np.linspace(math.log(ALPHA_M1_MIN), math.log(ALPHA_M1_MAX), 80)
+    with np.errstate(over="ignore", invalid="ignore"):
+        r = df_rate_ab(a[:, None], b[:, None], np.exp(la)[None, :], w_c, n, gamma, eps_s,
+                       eps_ea)
+    r = np.where(np.isfinite(r), r, -np.inf)
+    best = (-np.inf, 0, 0.0)
+    coarse = r.max(axis=1)
+    for k in np.argsort(-coarse)[:4]:  # refine alpha on the four best lines
+        k = int(k)
+        j = int(np.argmax(r[k]))
+        lo, hi = la[max(j - 1, 0)], la[min(j + 1, len(la) - 1)]
+
+        def neg(x, k=k):
+            with np.errstate(over="ignore", invalid="ignore"):
+                v = float(df_rate_ab(a[k], b[k], math.exp(x), w_c, n, gamma, eps_s, eps_ea))
+            return -v if math.isfinite(v) else 1e6
+
+        res = minimize_scalar(neg, bounds=(lo, hi), method="bounded",
+                              options={"xatol": 1e-6})
+        cand = (-float(res.fun), k, float(res.x)) if -float(res.fun) > r[k, j] else \
+            (float(r[k, j]), k, float(la[j]))
+        if cand[0] > best[0]:
+            best = cand
+    _, k, lam1 = best
+    rate = float(df_rate_ab(a[k], b[k], math.exp(lam1), w_c, n, gamma, eps_s, eps_ea))
+    return EatRate(variant="df-conservative", rate_per_round=rate, w_tangent=float(w0[k]),
+                   alpha=1.0 + math.exp(lam1), a=float(a[k]), b=float(b[k]),
+                   h=float(a[k] * w_c + b[k]))
+
+
 def optimise_rate(variant: str, w_c: float, n: float, gamma: float, eps_s: float,
-                  eps_ea: float) -> EatRate:
-    """Optimised per-round rate for ``variant`` ("df-conservative" | "dfr")."""
+                  eps_ea: float, single_round: str = "analytic-vn-A") -> EatRate:
+    """Optimised per-round rate for ``variant`` ("df-conservative" | "dfr").
+
+    ``single_round`` "analytic-vn-A" (tangents of G) or "radau-vn-AB" (the shipped certified
+    quadrature lines, :func:`quadrature_lines`).
+    """
+    if single_round == "radau-vn-AB":
+        return optimise_lines(variant, quadrature_lines(), w_c, n, gamma, eps_s, eps_ea)
+    if single_round != "analytic-vn-A":
+        raise ParameterError(f"unknown single-round bound {single_round!r}")
     if variant == "df-conservative":
         return optimise_df(w_c, n, gamma, eps_s, eps_ea)
     if variant == "dfr":
@@ -288,6 +389,36 @@ class EatThreshold:
     derived: bool
 
 
+def _binomial_limit(acceptance: str, eps: float, n: int, p: float) -> int:
+    """L_max = min{l : P[Bin(n, p) > l] <= eps} ("losses") or W_min = max{w : P[Bin(n, p) < w]
+    <= eps} ("wins"), by integer bisection on scipy.stats.binom.sf / cdf.
+
+    At most ceil(log2(n + 2)) + 1 steps of closed-form tail evaluations (regularised incomplete
+    beta), so it ends for every n; scipy's own quantile search (binom.isf / ppf) can run for
+    minutes or return NaN for n near 2**53 and tiny eps. A NaN tail counts as "above eps",
+    which can only loosen the threshold and so lower the certified win rate (never optimistic).
+    """
+    from scipy.stats import binom
+
+    if acceptance == "losses":
+        lo, hi = -1, n  # sf(-1) = 1 > eps, sf(n) = 0 <= eps
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            if float(binom.sf(mid, n, p)) <= eps:
+                hi = mid
+            else:
+                lo = mid
+        return hi
+    lo, hi = 0, n + 1  # P[W < 0] = 0 <= eps, P[W < n + 1] = 1 > eps
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if float(binom.cdf(mid - 1, n, p)) <= eps:
+            lo = mid
+        else:
+            hi = mid
+    return lo
+
+
 def threshold(params: EatParams, n: int, gamma: float) -> EatThreshold:
     """Integer acceptance threshold from the pre-declared parameters and the number of rounds.
 
@@ -305,15 +436,8 @@ def threshold(params: EatParams, n: int, gamma: float) -> EatThreshold:
             limit = math.ceil(ng * (w - delta))
         derived = False
     else:
-        from scipy.stats import binom
-
-        if params.acceptance == "losses":
-            limit = int(binom.isf(params.eps_comp, n, gamma * (1.0 - w)))
-        else:
-            # P[W < w0] = P[W <= w0 - 1] = cdf(w0 - 1) <= eps_comp.
-            limit = int(binom.ppf(params.eps_comp, n, gamma * w))
-            if binom.cdf(limit - 1, n, gamma * w) > params.eps_comp:  # pragma: no cover
-                limit -= 1
+        limit = _binomial_limit(params.acceptance, params.eps_comp, n,
+                                gamma * (1.0 - w) if params.acceptance == "losses" else gamma * w)
         delta = (limit / ng - (1.0 - w)) if params.acceptance == "losses" else (w - limit / ng)
         derived = True
     limit = max(int(limit), 0)
@@ -358,7 +482,7 @@ def eat_min_entropy(params: EatParams, n: int, gamma: float) -> tuple[float, Eat
 def _eat_min_entropy_cached(params: EatParams, n: int, gamma: float):
     th = threshold(params, n, gamma)
     rate = optimise_rate(params.variant, th.certified_win_rate, n, gamma, params.eps_s,
-                         params.eps_ea)
+                         params.eps_ea, getattr(params, "single_round", "analytic-vn-A"))
     bits = max(0.0, n * rate.rate_per_round) if math.isfinite(rate.rate_per_round) else 0.0
     return float(bits), th, rate
 
@@ -428,6 +552,23 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
                                 "term (constants flagged uncertain in the methods note)")
         details["g_eps_s"] = g_smooth(params.eps_s)
         details["variance_f"] = float(df_variance(rate.a, gamma))
+    if getattr(params, "single_round", "analytic-vn-A") == "radau-vn-AB":
+        from dicert.entropy.vnquad import REFERENCE as _RADAU_REF
+        from dicert.entropy.vnquad import load_vn_table
+
+        tab = load_vn_table()
+        details["single_round"] = {
+            "method": "radau-vn-AB",
+            "bound": "H(A_i B_i | X_i Y_i T_i E) >= tangent_offset_b + tangent_slope_a * w "
+                     "for every quantum strategy (certified affine line; tangent_point is the "
+                     "win probability at which its duals were optimised)",
+            "reference": _RADAU_REF,
+            "quadrature_nodes": tab.nodes, "relaxation": tab.level,
+            "table_sha256": tab.sha256,
+        }
+    else:
+        details["single_round"] = {"method": "analytic-vn-A",
+                                   "reference": REFERENCES_DF[2]}
     if not math.isfinite(float(rate.w_tangent)):
         details["tangent_point"] = None
     if not accepted:
@@ -440,11 +581,17 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
         "sequential (entropy accumulation channel structure)",
         "settings drawn independently of the devices and of any adversary, with the known "
         f"probabilities (gamma = {gamma:g}, uniform test settings, generation settings {gen})",
+        "the round type (test or generation) and the settings of each round stay unknown to "
+        "the devices until that round",
         "number of rounds n, gamma and the acceptance threshold fixed before the run; only "
         "the tangent point and alpha are optimised after the data",
         "trusted classical post-processing and trial recording",
     )
     refs = REFERENCES_DF if params.variant == "df-conservative" else REFERENCES_DFR
+    if getattr(params, "single_round", "analytic-vn-A") == "radau-vn-AB":
+        from dicert.entropy.vnquad import REFERENCE as _RADAU_REF
+
+        refs = tuple(r for r in refs if not r.startswith("A. Acin")) + (_RADAU_REF,)
     return FiniteSizeResult(
         method=params.method_name, side_information="quantum", accepted=bool(accepted),
         min_entropy_bits=bits if accepted else 0.0,
@@ -460,6 +607,10 @@ __all__ = [
     "certify_eat",
     "chernoff_tolerance",
     "df_rate",
+    "df_rate_ab",
+    "dfr_rate_ab",
+    "optimise_lines",
+    "quadrature_lines",
     "df_variance",
     "dfr_rate",
     "eat_min_entropy",

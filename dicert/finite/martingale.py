@@ -286,6 +286,8 @@ def certify_martingale(counts: Any, params: MartingaleParams, design: Any = None
         "settings drawn independently of the devices and of any adversary, with the known "
         f"probabilities (test rounds with probability gamma = {gamma:g}, uniform test settings"
         f"{'' if gamma >= 1 else f', generation settings {gen}'})",
+        "the round type (test or generation) and the settings of each round stay unknown to "
+        "the devices until that round",
         "adversary holds classical side information only (not entangled with the devices)",
         "devices may have memory; rounds need not be independent or identically distributed",
         "number of trials n and the threshold S_th fixed before the run",

@@ -23,6 +23,10 @@ from dicert.errors import ProtocolError
 SINGLE_ROUND_BOUNDS = ("analytic-A", "npa-AB")
 #: Variants of entropy accumulation: improved second-order (conservative constants) and original.
 EAT_VARIANTS = ("df-conservative", "dfr")
+#: Single-round von Neumann bounds available to entropy accumulation: the analytic one-party
+#: bound (Acin et al. 2007; Pironio et al. 2009) or the dual-certified Gauss-Radau quadrature
+#: bound on the pair of outcomes (Brown, Fawzi & Fawzi 2024), from the shipped table.
+EAT_SINGLE_ROUND = ("analytic-vn-A", "radau-vn-AB")
 
 _TSIRELSON = 2.0 * math.sqrt(2.0)
 _W_QUANTUM = (2.0 + math.sqrt(2.0)) / 4.0
@@ -149,6 +153,11 @@ class EatParams:
         Smoothing parameter (purified distance).
     eps_ea : float
         Floor on the acceptance probability (entropy-accumulation error).
+    single_round : str
+        Single-round bound turned into the min-tradeoff function: "analytic-vn-A" (default;
+        the one-party bound G(w), tangent lines) or "radau-vn-AB" (dual-certified affine
+        bounds on H(AB|X,Y,E) from the Gauss-Radau quadrature table, Brown-Fawzi-Fawzi 2024;
+        see :mod:`dicert.entropy.vnquad`). The method name gains the suffix "+radau-vn-AB".
     """
 
     expected_win_probability: float
@@ -158,6 +167,7 @@ class EatParams:
     tolerance: float | None = None
     eps_comp: float | None = None
     rounds: int | None = None
+    single_round: str = "analytic-vn-A"
 
     def __post_init__(self) -> None:
         d = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
@@ -166,7 +176,8 @@ class EatParams:
 
     @property
     def method_name(self) -> str:
-        return f"eat-{self.variant}"
+        suffix = "" if self.single_round == "analytic-vn-A" else f"+{self.single_round}"
+        return f"eat-{self.variant}{suffix}"
 
     @property
     def acceptance(self) -> str:
@@ -177,7 +188,7 @@ class EatParams:
     def from_mapping(cls, d: Mapping[str, Any], where: str = "") -> EatParams:
         """Validate the ``[analysis]`` table of an entropy-accumulation protocol."""
         keys = ("variant", "expected_win_probability", "tolerance", "eps_comp", "rounds",
-                "eps_s", "eps_ea")
+                "eps_s", "eps_ea", "single_round")
         _no_extra(d, where, keys)
         variant = _choice(d, where, "variant", EAT_VARIANTS, "df-conservative")
         w = _number(d, where, "expected_win_probability", lo=0.75, hi=_W_QUANTUM, hi_open=False)
@@ -195,8 +206,10 @@ class EatParams:
             raise _fail(where, "rounds", f"expected a positive integer, got {rounds!r}")
         eps_s = _number(d, where, "eps_s", lo=0.0, hi=1.0)
         eps_ea = _number(d, where, "eps_ea", lo=0.0, hi=1.0)
+        single = _choice(d, where, "single_round", EAT_SINGLE_ROUND, "analytic-vn-A")
         return _build(cls, variant=variant, expected_win_probability=w, tolerance=tol,
-                      eps_comp=eps_comp, rounds=rounds, eps_s=eps_s, eps_ea=eps_ea)
+                      eps_comp=eps_comp, rounds=rounds, eps_s=eps_s, eps_ea=eps_ea,
+                      single_round=single)
 
 
-__all__ = ["EAT_VARIANTS", "SINGLE_ROUND_BOUNDS", "EatParams", "MartingaleParams"]
+__all__ = ["EAT_SINGLE_ROUND", "EAT_VARIANTS", "SINGLE_ROUND_BOUNDS", "EatParams", "MartingaleParams"]

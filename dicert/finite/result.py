@@ -16,7 +16,8 @@ class FiniteSizeResult:
     Attributes
     ----------
     method : str
-        "martingale-azuma", "eat-dfr", "eat-df-conservative", "pef", ...
+        "martingale-azuma", "eat-dfr", "eat-df-conservative" (with "+radau-vn-AB" when the pair
+        bound is used), "pef", ...
     side_information : str
         Adversary model covered: "classical" or "quantum".
     accepted : bool
