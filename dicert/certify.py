@@ -85,8 +85,9 @@ BITS_NAME = "random.bits"
 #: Name of the audit record inside ``out_dir``.
 RECORD_NAME = "record.json"
 
-#: Keep harvested raw bits in memory below this many bytes, spill to a temp file above.
-_SPILL_BYTES = 64 << 20
+#: Keep harvested raw bits in memory below this many bytes, spill to a private temp file
+#: (mode 0600, removed when done) above, so memory does not grow with the log.
+_SPILL_BYTES = 8 << 20
 #: Trials per streamed chunk.
 _CHUNK_TRIALS = 1 << 22
 
@@ -149,6 +150,9 @@ class LogScan:
     trials_in_log: int | None = None  # trials present (> trials when n was declared)
     file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
     formats: tuple = ()  # format of each file
+    # Per-block counts for the record's CHSH-per-block series (see group_blocks):
+    # (first trial of each group, (G, 32) int64 counts), or None.
+    block_series: Any = None
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -753,8 +757,54 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                    pair_counts=summary.pair_counts, trials_in_log=in_log,
                    file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
                                        "sha256": f.sha256} for f in summary.files),
-                   formats=tuple(f.format for f in summary.files))
+                   formats=tuple(f.format for f in summary.files),
+                   block_series=group_blocks(summary.block_counts, block_trials))
     return scan, sink
+
+
+#: At most this many points in a record's per-block CHSH series (consecutive blocks are
+#: merged into groups of equal size so the record stays small whatever the log's length).
+MAX_BLOCK_POINTS = 64
+
+
+def group_blocks(block_counts: Any, block_trials: int) -> tuple[tuple[int, ...], np.ndarray]:
+    """Merge consecutive blocks into at most :data:`MAX_BLOCK_POINTS` groups.
+
+    Returns the first trial (0-based) of each group and the groups' counts, shape (G, 32),
+    each row the flattened [t, x, y, a, b] table.
+    """
+    bc = np.asarray(block_counts, dtype=np.int64).reshape(-1, 32)
+    if bc.shape[0] == 0:
+        return (), bc
+    size = -(-bc.shape[0] // MAX_BLOCK_POINTS)
+    starts = list(range(0, bc.shape[0], size))
+    return tuple(k * int(block_trials) for k in starts), np.add.reduceat(bc, starts, axis=0)
+
+
+def _blocks_section(block_series: Any, protocol: Any) -> dict | None:
+    """The record's per-block CHSH series (informational, drawn by reports and beacon pages)."""
+    from dicert.estimate import azuma_margin, martingale_chsh
+
+    firsts, counts = block_series
+    if not len(firsts):
+        return None
+    eps = _estimate_eps(protocol)
+    design = protocol.design
+    blocks = []
+    for first, row in zip(firsts, np.asarray(counts, dtype=np.int64)):
+        n = int(row.sum())
+        if n == 0:
+            continue
+        value = martingale_chsh(row.reshape(2, 2, 2, 2, 2), design)
+        margin = azuma_margin(n, design.estimator_width, eps)
+        blocks.append({"first_trial": int(first), "trials": n, "counts": row.tolist(),
+                       "chsh": value, "chsh_lower": value - margin,
+                       "chsh_upper": value + margin})
+    return {"note": "martingale CHSH estimate per group of consecutive trials with its "
+                    "two-sided Azuma-Hoeffding interval at eps_per_side (each group on its "
+                    "own; informational: drift shows here, certification uses the whole log)",
+            "eps_per_side": eps, "counts_order": "[t, x, y, a, b] flattened",
+            "blocks": blocks}
 
 
 # --------------------------------------------------------------------------- analysis
@@ -1131,6 +1181,10 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "allow_seed_reuse": False, "seed_problems": []}
     if screens is not None:
         body["output_screens"] = screens
+    if scan.block_series is not None:
+        section = _blocks_section(scan.block_series, protocol)
+        if section is not None:
+            body["estimate_blocks"] = section
     return plain(body)
 
 
@@ -1185,7 +1239,8 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
             idle_timeout_s: float | None = 300.0, force: bool = False,
             trusted_keys: Any = None, protocol_change: str | None = None,
-            allow_mixed_inputs: bool = False, allow_seed_reuse: bool = False) -> CertifyResult:
+            allow_mixed_inputs: bool = False, allow_seed_reuse: bool = False,
+            scheduler: Any = None) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -1234,6 +1289,9 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         Accept a seed whose SHA-256 equals the log's (or one of its files') (refused
         otherwise); recorded in ``inputs``. A seed already used in a beacon chain is always
         refused with ``chain``, and a constant or short-period seed always.
+    scheduler : str or dask.distributed.Client, optional
+        Run the extraction's pieces on a dask cluster (:mod:`dicert.cluster`; default
+        ``$DICERT_SCHEDULER``, else this process). Same bits and record.
 
     Returns
     -------
@@ -1309,7 +1367,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             protocol_change=protocol_change, force=force, clock=clock, progress=progress,
             follow=follow, poll_s=poll_s, idle_timeout_s=idle_timeout_s, timings=timings,
             started=started, allow_mixed_inputs=allow_mixed_inputs,
-            allow_seed_reuse=allow_seed_reuse)
+            allow_seed_reuse=allow_seed_reuse, scheduler=scheduler)
 
 
 def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
@@ -1318,7 +1376,7 @@ def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
                     progress: Progress | None, follow: bool, poll_s: float,
                     idle_timeout_s: float | None, timings: dict[str, float],
                     started: str, allow_mixed_inputs: bool = False,
-                    allow_seed_reuse: bool = False) -> CertifyResult:
+                    allow_seed_reuse: bool = False, scheduler: Any = None) -> CertifyResult:
     """The run itself, with the locks held (see :func:`certify`)."""
     from dicert import _outputs as outputs
     from dicert.logs import open_log
@@ -1363,7 +1421,8 @@ def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
                 from dicert.extract import extract_toeplitz
 
                 extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
-                                              n_bits=scan.raw_bits)
+                                              n_bits=scan.raw_bits, scheduler=scheduler,
+                                              temp_dir=spill)
                 if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
                     raise DicertError("extractor returned a different output length")
             timings["extraction"] = time.perf_counter() - t3
