@@ -149,6 +149,7 @@ class LogScan:
     trials_in_log: int | None = None  # trials present (> trials when n was declared)
     file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
     formats: tuple = ()  # format of each file
+    log_spec: dict | None = None  # log read through a log spec: its content, digest, join report
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -753,7 +754,8 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                    pair_counts=summary.pair_counts, trials_in_log=in_log,
                    file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
                                        "sha256": f.sha256} for f in summary.files),
-                   formats=tuple(f.format for f in summary.files))
+                   formats=tuple(f.format for f in summary.files),
+                   log_spec=summary.log_spec)
     return scan, sink
 
 
@@ -1131,6 +1133,8 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "allow_seed_reuse": False, "seed_problems": []}
     if screens is not None:
         body["output_screens"] = screens
+    if scan.log_spec is not None:  # a log read through a log spec (dicert.logspec)
+        body["log"]["spec"] = dict(scan.log_spec)
     return plain(body)
 
 

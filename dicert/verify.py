@@ -411,6 +411,13 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
         _require(isinstance(in_log, int) and in_log >= trials, "log.trials_in_log",
                  f"expected an integer >= log.trials, got {in_log!r}")
         extra["trials_in_log"] = in_log
+    spec = _get(body, "log").get("spec") if isinstance(_get(body, "log"), Mapping) else None
+    if spec is not None:  # a log read through a log spec: its digest must match its content
+        from dicert.logspec import spec_entry_problem
+
+        problem = spec_entry_problem(spec)
+        _require(problem is None, "log.spec", str(problem))
+        extra["log_spec"] = dict(spec)
     if isinstance(files, list) and files and all(isinstance(f, Mapping) for f in files):
         extra["file_entries"] = tuple(dict(f) for f in files)
         files = [f.get("name") for f in files]
@@ -665,6 +672,8 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                     for e, r in zip(ef, rf)]
             _compare(exp, body)
             checked.append("log digest, size, trial count, counts and harvested raw bits")
+            if isinstance(body["log"].get("spec"), Mapping):
+                checked.append("log spec digest and station join re-run (same trials)")
             if seed_data is not None and status in ("certified", "withheld"):
                 from dicert.extract import extract_toeplitz
 
