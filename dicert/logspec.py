@@ -977,23 +977,30 @@ class _JoinState:
         self.first_key: int | None = None
         self.last_key: int | None = None
 
-    def missing(self, at: str, keys: np.ndarray, path_other: Path, path_here: Path) -> None:
-        """Count trials missing at station ``at``; refuse once beyond the spec's tolerance."""
-        if keys.size == 0:
+    def missing(self, miss_a: np.ndarray, miss_b: np.ndarray, pa: Path, pb: Path) -> None:
+        """Count trials missing at A (``miss_a``: keys seen only at B) and at B; refuse, naming
+        the first key in key order beyond the spec's tolerance."""
+        n = miss_a.size + miss_b.size
+        if n == 0:
             return
         allowed = self.spec.max_missing - (self.missing_a + self.missing_b)
-        if keys.size > allowed:
-            k = int(keys[max(allowed, 0)])
-            other = "B" if at == "A" else "A"
-            raise LogFormatError(path_here, f"key {k}", f"trial missing at station {at} "
-                                 f"(present at station {other}, {path_other.name}); the spec "
-                                 f"tolerates {self.spec.max_missing} missing trials "
+        if n > allowed:
+            keys = np.concatenate([miss_a, miss_b])
+            at_a = np.concatenate([np.ones(miss_a.size, bool), np.zeros(miss_b.size, bool)])
+            order = np.argsort(keys, kind="stable")
+            j = int(order[max(allowed, 0)])
+            k, at = int(keys[j]), ("A" if at_a[j] else "B")
+            here, other = (pa, pb) if at == "A" else (pb, pa)
+            raise LogFormatError(here, f"key {k}", f"trial missing at station {at} (present "
+                                 f"at station {'B' if at == 'A' else 'A'}, {other.name}); the "
+                                 f"spec tolerates {self.spec.max_missing} missing trials "
                                  "(join.max_missing); silently dropping trials can bias the "
                                  "test")
-        if at == "A":
-            self.missing_a += keys.size
-        else:
-            self.missing_b += keys.size
+        self.missing_a += miss_a.size
+        self.missing_b += miss_b.size
+
+
+_EMPTY = np.zeros(0, np.int64)
 
 
 def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> Iterator[np.ndarray]:
@@ -1020,11 +1027,11 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
         if ba is None and bb is None:
             return
         if ba is None:
-            st.missing("A", bb["key"], pb, pa)
+            st.missing(bb["key"], _EMPTY, pa, pb)
             bb = None
             continue
         if bb is None:
-            st.missing("B", ba["key"], pa, pb)
+            st.missing(_EMPTY, ba["key"], pa, pb)
             ba = None
             continue
         ka, kb = ba["key"], bb["key"]
@@ -1042,14 +1049,11 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
             ixa = np.flatnonzero(hit)
             ixb = pos[ixa]
             nm = int(ixa.size)
-            if nm < na:
-                miss = np.ones(na, bool)
-                miss[ixa] = False
-                st.missing("B", ka_[miss], pa, pb)
-            if nm < nb:
-                miss = np.ones(nb, bool)
-                miss[ixb] = False
-                st.missing("A", kb_[miss], pb, pa)
+            miss_b = np.ones(na, bool)
+            miss_b[ixa] = False
+            miss_a = np.ones(nb, bool)
+            miss_a[ixb] = False
+            st.missing(kb_[miss_a], ka_[miss_b], pa, pb)
         if nm:
             codes = ((ba["setting"][:na][ixa] << 3) | (bb["setting"][:nb][ixb] << 2)
                      | (ba["outcome"][:na][ixa] << 1) | bb["outcome"][:nb][ixb])
