@@ -55,6 +55,8 @@ _ROLES_TABLE = ("x", "y", "a", "b", "t")
 _ROLES_STATION = ("setting", "outcome", "test")
 _FORMATS_EXTRA = "formats"
 _DEFAULT_MAP = {"0": 0, "1": 1}
+#: Most rows of one station held at once by the join (memory: about 2 x 10 bytes per row).
+STATION_CHUNK_ROWS = 1 << 19
 
 
 # --------------------------------------------------------------------------------------------
@@ -355,6 +357,15 @@ class _ValueMap:
         return self.pvals[pos]
 
     def map_numbers(self, arr: np.ndarray, path: Path, row0: int) -> np.ndarray:
+        arr = np.asarray(arr)
+        if arr.dtype.kind in "biu" and arr.size:
+            out = self._map_ints(arr)
+            if out is not None:
+                bad = out == 255
+                if not bad.any():
+                    return out
+                i = int(np.argmax(bad))
+                raise LogFormatError(path, f"row {row0 + i}", self.bad_value(arr[i].item()))
         vals = np.asarray(arr, dtype=np.float64)
         if self.nkeys.size:
             pos = np.minimum(np.searchsorted(self.nkeys, vals), self.nkeys.size - 1)
@@ -367,6 +378,26 @@ class _ValueMap:
             v = arr[i].item() if hasattr(arr[i], "item") else arr[i]
             raise LogFormatError(path, f"row {row0 + i}", self.bad_value(v))
         return self.nvals[pos]
+
+    def _map_ints(self, arr: np.ndarray) -> np.ndarray | None:
+        """Bits of integer values through a lookup table (255 = not in the map), or None when
+        the values span too wide a range for a table."""
+        ints = {int(k): b for k, b in self.numeric.items() if float(k).is_integer()}
+        if arr.dtype.itemsize == 1:  # int8, uint8, bool: a 256-entry table on the raw byte
+            lut = np.full(256, 255, np.uint8)
+            signed = arr.dtype.kind == "i"
+            for k, b in ints.items():
+                if (-128 <= k <= 127) if signed else (0 <= k <= 255):
+                    lut[k & 0xFF] = b
+            return lut[arr.view(np.uint8)]
+        lo, hi = int(arr.min()), int(arr.max())
+        if hi - lo > 1 << 16:
+            return None
+        lut = np.full(hi - lo + 1, 255, np.uint8)
+        for k, b in ints.items():
+            if lo <= k <= hi:
+                lut[k - lo] = b
+        return lut[np.subtract(arr, lo, dtype=np.int64)]
 
     def map_strings(self, arr, path: Path, row0: int) -> np.ndarray:
         out = np.empty(len(arr), np.uint8)
@@ -662,7 +693,9 @@ class _ParquetFile:
         _hash_file(self.path, hasher)
         src, path = self.src, self.path
         try:
-            f = pq.ParquetFile(str(path))
+            # Buffered, not pre-buffered: column chunks are streamed, so memory stays near one
+            # batch even for files written as one huge row group.
+            f = pq.ParquetFile(str(path), buffer_size=1 << 20, pre_buffer=False)
             names = list(f.schema_arrow.names)
         except Exception as exc:  # pyarrow raises ArrowInvalid, OSError...
             raise LogFormatError(path, "", f"not a valid Parquet file ({_short(exc)})") from None
@@ -877,20 +910,71 @@ class _Source:
 
 def _check_keys(keys: np.ndarray, prev: int, path: Path, src: SourceSpec) -> int:
     """Keys must increase strictly (across chunks and files); return the last key."""
+    if int(keys[0]) > prev and bool((keys[1:] > keys[:-1]).all()):
+        return int(keys[-1])
     d = np.diff(keys, prepend=prev)
-    if (d <= 0).any():
-        i = int(np.argmax(d <= 0))
-        k = int(keys[i])
-        before = int(keys[i - 1]) if i else prev
-        if d[i] == 0:
-            raise LogFormatError(path, f"key {k}", f"duplicated trial key at {src.label} "
-                                 f"(column {src.columns['key']!r}); a trial recorded twice "
-                                 "cannot be joined (remove the duplicate, or find why it was "
-                                 "written twice)")
-        raise LogFormatError(path, f"key {k}", f"out-of-order trial key at {src.label}: {k} "
-                             f"follows {before}; the streaming join needs each station's rows "
-                             "sorted by increasing key (sort the file, e.g. sort -t, -k1,1n)")
-    return int(keys[-1])
+    i = int(np.argmax(d <= 0))
+    k = int(keys[i])
+    before = int(keys[i - 1]) if i else prev
+    if d[i] == 0:
+        raise LogFormatError(path, f"key {k}", f"duplicated trial key at {src.label} "
+                             f"(column {src.columns['key']!r}); a trial recorded twice "
+                             "cannot be joined (remove the duplicate, or find why it was "
+                             "written twice)")
+    raise LogFormatError(path, f"key {k}", f"out-of-order trial key at {src.label}: {k} "
+                         f"follows {before}; the streaming join needs each station's rows "
+                         "sorted by increasing key (sort the file, e.g. sort -t, -k1,1n)")
+
+
+def _prefetched(it: Iterator[Any], depth: int = 1) -> Iterator[Any]:
+    """Run ``it`` in a worker thread, at most ``depth`` items ahead (the readers and numpy
+    release the GIL, so the two stations are read in parallel with the merge). Exceptions are
+    re-raised in the consumer; closing the consumer stops the worker."""
+    import queue
+    import threading
+
+    q: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    end = object()
+
+    def put(item) -> bool:
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def work() -> None:
+        try:
+            for item in it:
+                if not put((None, item)):
+                    return
+            put((None, end))
+        except BaseException as exc:  # re-raised in the consumer
+            put((exc, None))
+        finally:
+            close = getattr(it, "close", None)
+            if close is not None and stop.is_set():
+                try:
+                    close()
+                except Exception:  # pragma: no cover - best effort on abandon
+                    pass
+
+    th = threading.Thread(target=work, name="dicert-station-reader", daemon=True)
+    th.start()
+    try:
+        while True:
+            exc, item = q.get()
+            if exc is not None:
+                raise exc
+            if item is end:
+                return
+            yield item
+    finally:
+        stop.set()
+        th.join()
 
 
 def _codes_table(cols: Mapping[str, np.ndarray]) -> np.ndarray:
@@ -944,6 +1028,9 @@ class SpecLog:
         self.file_infos = []
         self.join_report = None
         start = 0
+        # Station rows are read in chunks of at most STATION_CHUNK_ROWS (each row costs about
+        # 10 bytes per station in the merge buffers); the joined chunks are no larger.
+        chunk_trials = min(chunk_trials, STATION_CHUNK_ROWS)
         if self.spec.layout in ("table", "plain"):
             s = _Source(self.spec.sources[0], self.limits, hash_files)
             for _path, cols in s.chunks(chunk_trials):
@@ -955,8 +1042,8 @@ class SpecLog:
         sa = _Source(self.spec.sources[0], self.limits, hash_files)
         sb = _Source(self.spec.sources[1], self.limits, hash_files)
         state = _JoinState(self.spec)
-        for codes in _merge_join(sa.chunks(chunk_trials), sb.chunks(chunk_trials), state,
-                                 self.spec):
+        for codes in _merge_join(_prefetched(sa.chunks(chunk_trials)),
+                                 _prefetched(sb.chunks(chunk_trials)), state, self.spec):
             if codes.size:
                 yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
                 start += codes.size
