@@ -400,6 +400,21 @@ class _ValueMap:
         return lut[np.subtract(arr, lo, dtype=np.int64)]
 
     def map_strings(self, arr, path: Path, row0: int) -> np.ndarray:
+        arr = np.asarray(arr)
+        try:  # few distinct values: map each once, then index
+            uniq, inv = np.unique(arr, return_inverse=True)
+        except TypeError:  # mixed objects (e.g. None): the per-value path reports them
+            uniq = None
+        if uniq is not None and uniq.size <= 64:
+            lut = np.empty(uniq.size, np.uint8)
+            for j, v in enumerate(uniq):
+                s = v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)
+                bit = self.mapping.get(s.strip())
+                if bit is None:
+                    i = int(np.argmax(inv.ravel() == j))
+                    raise LogFormatError(path, f"row {row0 + i}", self.bad_value(s))
+                lut[j] = bit
+            return lut[inv.ravel()]
         out = np.empty(len(arr), np.uint8)
         for i, v in enumerate(arr):
             s = v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)

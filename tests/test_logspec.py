@@ -611,3 +611,24 @@ def test_errors_are_dicert_errors(tmp_path):
     p.write_text('format = "dicert-logspec/1"\n[table]\nfiles = "nope.csv"\n')
     with pytest.raises(DicertError, match="nope.csv: no such file"):
         read_trials(p)
+
+
+def test_parquet_string_values_and_bad_value_row(tmp_path):
+    pa = pytest.importorskip("pyarrow")
+    pq = pytest.importorskip("pyarrow.parquet")
+    arr = sim_trials(200, seed=4)
+    word = np.array(["none", "click"])
+    cols = {"x": arr.x, "y": arr.y, "a": word[arr.a], "b": word[arr.b]}
+    pq.write_table(pa.table(cols), tmp_path / "r.parquet", row_group_size=64)
+    (tmp_path / "s.toml").write_text('format = "dicert-logspec/1"\n[table]\nfiles = "r.parquet"\n'
+                                     '[table.values]\na = { "click" = 1, "none" = 0 }\n'
+                                     'b = { "click" = 1, "none" = 0 }\n')
+    np.testing.assert_array_equal(read_trials(tmp_path / "s.toml").codes(), arr.codes())
+    cols["b"] = cols["b"].copy()
+    cols["b"][150] = "dark"
+    pq.write_table(pa.table(cols), tmp_path / "r.parquet", row_group_size=64)
+    with pytest.raises(LogFormatError) as e:
+        read_trials(tmp_path / "s.toml")
+    assert str(e.value) == (f"{tmp_path / 'r.parquet'}, row 150: column 'b' (b) has value "
+                            "'dark', which the value map does not list (it accepts 'click', "
+                            "'none')")
