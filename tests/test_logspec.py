@@ -566,6 +566,15 @@ def test_example_certify_and_verify_rerun_join(example, tmp_path):
               "--seed", seed)
     assert ok.exit_code == 4, ok.output  # unsigned: integrity checked, authenticity not
     assert "station join re-run" in ok.output
+    alone = _cli("verify", out / "record.json")  # no log: the recorded spec's digest is checked
+    assert alone.exit_code == 4, alone.output
+    from dicert.audit.record import read_record, record_body, seal_record, write_record
+
+    body = record_body(read_record(out / "record.json"))
+    body["log"]["spec"]["content"] += "# edited\n"  # resealed: only the spec check can fail
+    write_record(tmp_path / "edited.json", seal_record(body))
+    edited = _cli("verify", tmp_path / "edited.json")
+    assert edited.exit_code == 1 and "log.spec" in edited.output
     # a changed tolerance in the spec: same trials, but not the spec certified
     (example / "run.logspec.toml").write_text(text.replace("max_missing = 3", "max_missing = 4"))
     bad = _cli("verify", out / "record.json", "--log-spec", example / "run.logspec.toml")
