@@ -755,6 +755,10 @@ class _Hdf5File:
                 grp = f[src.group] if src.group not in ("", "/") else f
             except Exception:
                 raise LogFormatError(path, f"group {src.group!r}", "no such group") from None
+            maps = {r: _ValueMap(r, src.columns[r], m) for r, m in src.values.items()}
+            if isinstance(grp, h5py.Dataset):  # one table: a 1-D compound dataset
+                yield from self._compound(grp, chunk_trials, maps)
+                return
             names = [k for k in grp.keys()]
             dsets = {}
             n = None
@@ -771,7 +775,6 @@ class _Hdf5File:
                     raise LogFormatError(path, f"dataset {name!r}", f"has {ds.shape[0]} "
                                          f"entries, dataset {src.columns[first]!r} has {n}")
                 dsets[role] = ds
-            maps = {r: _ValueMap(r, src.columns[r], m) for r, m in src.values.items()}
             row = 0
             try:
                 while row < (n or 0):
@@ -784,6 +787,27 @@ class _Hdf5File:
                 raise
             except Exception as exc:
                 raise LogFormatError(path, f"row {row}", f"cannot read ({_short(exc)})") from None
+
+
+    def _compound(self, ds, chunk_trials: int, maps) -> Iterator[dict[str, np.ndarray]]:
+        src, path = self.src, self.path
+        fields = list(ds.dtype.names or ())
+        if not fields or len(ds.shape) != 1:
+            raise LogFormatError(path, f"dataset {src.group!r}", "expected a group of column "
+                                 "datasets or a one-dimensional compound (table) dataset")
+        cols = {r: _match_name(fields, c, r, src, path) for r, c in src.columns.items()}
+        n, row = int(ds.shape[0]), 0
+        try:
+            while row < n:
+                m = min(chunk_trials, n - row)
+                block = ds[row:row + m]
+                yield {r: _convert(block[c], r, src.columns[r], maps.get(r), path, row)
+                       for r, c in cols.items()}
+                row += m
+        except LogFormatError:
+            raise
+        except Exception as exc:
+            raise LogFormatError(path, f"row {row}", f"cannot read ({_short(exc)})") from None
 
 
 def _short(exc: BaseException) -> str:

@@ -652,3 +652,27 @@ def test_parquet_string_values_and_bad_value_row(tmp_path):
     assert str(e.value) == (f"{tmp_path / 'r.parquet'}, row 150: column 'b' (b) has value "
                             "'dark', which the value map does not list (it accepts 'click', "
                             "'none')")
+
+
+def test_hdf5_compound_table(tmp_path):
+    h5py = _need("h5py")
+    arr = sim_trials(300, seed=6)
+    rec = np.zeros(len(arr), dtype=[("SetA", "i1"), ("SetB", "i1"), ("OutA", "i1"),
+                                    ("OutB", "i1")])
+    rec["SetA"], rec["SetB"] = arr.x + 1, arr.y + 1
+    rec["OutA"], rec["OutB"] = 1 - 2 * arr.a.astype(np.int8), 1 - 2 * arr.b.astype(np.int8)
+    with h5py.File(tmp_path / "r.h5", "w") as f:
+        f.create_dataset("runs/r1", data=rec, chunks=(64,))
+    (tmp_path / "s.toml").write_text('''format = "dicert-logspec/1"
+[table]
+files = "r.h5"
+group = "/runs/r1"
+columns = { x = "SetA", y = "SetB", a = "OutA", b = "OutB" }
+values.x = { 1 = 0, 2 = 1 }
+values.y = { 1 = 0, 2 = 1 }
+values.a = { "+1" = 0, "-1" = 1 }
+values.b = { "+1" = 0, "-1" = 1 }
+''')
+    s = summarize_log(tmp_path / "s.toml", chunk_trials=50)
+    np.testing.assert_array_equal(read_trials(tmp_path / "s.toml").codes(), arr.codes())
+    assert s.files[0].format == "hdf5" and s.log_spec["layout"] == "table"
