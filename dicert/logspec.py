@@ -144,6 +144,8 @@ def load_spec(path: str | os.PathLike[str]) -> LogSpec:
     for k in doc:
         if k not in known:
             raise _err(path, k, f"unknown key (known: {', '.join(sorted(known))})")
+    if not isinstance(doc.get("description", ""), str):
+        raise _err(path, "description", "expected a string")
     base = path.parent
     has_table, has_st = "table" in doc, "stations" in doc
     if has_table == has_st:
@@ -334,12 +336,9 @@ class _ValueMap:
         for tok, bit in mapping.items():
             try:
                 self.numeric[float(int(tok))] = bit
-            except ValueError:
-                try:
-                    if tok.lower() in ("true", "false"):
-                        self.numeric[1.0 if tok.lower() == "true" else 0.0] = bit
-                except AttributeError:  # pragma: no cover
-                    pass
+            except (ValueError, OverflowError):
+                if tok.lower() in ("true", "false"):
+                    self.numeric[1.0 if tok.lower() == "true" else 0.0] = bit
         nk = np.array(sorted(self.numeric), dtype=np.float64)
         self.nkeys, self.nvals = nk, np.array([self.numeric[k] for k in nk], dtype=np.uint8)
 

@@ -676,3 +676,34 @@ values.b = { "+1" = 0, "-1" = 1 }
     s = summarize_log(tmp_path / "s.toml", chunk_trials=50)
     np.testing.assert_array_equal(read_trials(tmp_path / "s.toml").codes(), arr.codes())
     assert s.files[0].format == "hdf5" and s.log_spec["layout"] == "table"
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_random_drops_and_chunkings_match_oracle(tmp_path, seed):
+    """Random missing trials at both stations, random chunk sizes, and irregular lines (a
+    comment, spaces, CR LF) that force the exact per-line parser in some blocks."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(50, 600))
+    arr, keys = _run(n, seed=seed + 20)
+    drop_a = set(int(k) for k in rng.choice(keys, int(rng.integers(0, 6)), replace=False))
+    drop_b = set(int(k) for k in rng.choice(keys, int(rng.integers(0, 6)), replace=False))
+    _write_station(tmp_path / "a.csv", keys, arr.x, arr.a, drop=drop_a)
+    _write_station(tmp_path / "b.csv", keys, arr.y, arr.b, drop=drop_b)
+    if seed % 2:
+        p = tmp_path / "b.csv"
+        lines = p.read_text().splitlines()
+        lines.insert(len(lines) // 2, "# a comment in the middle")
+        lines[-3] = lines[-3].replace(",", " , ")
+        p.write_bytes(("\r\n".join(lines) + "\r\n").encode())
+    both = drop_a & drop_b
+    missing = len(drop_a ^ drop_b)
+    spec = _spec(tmp_path / "run.toml", max_missing=missing)
+    s = summarize_log(spec, chunk_trials=int(rng.integers(1, 80)))
+    m, counts = _oracle(keys, arr, drop_a=drop_a, drop_b=drop_b)
+    assert s.trials == m == n - len(drop_a | drop_b)
+    np.testing.assert_array_equal(s.counts, counts)
+    j = s.log_spec["join"]
+    assert (j["missing_at_a"], j["missing_at_b"]) == (len(drop_a - both), len(drop_b - both))
+    if missing:
+        with pytest.raises(LogFormatError, match="trial missing at station"):
+            summarize_log(_spec(tmp_path / "tight.toml", max_missing=missing - 1))
