@@ -632,7 +632,8 @@ def open_log(source, format: str | None = None, *, limits: ReadLimits | None = N
     if _spec_like(source, format):
         from dicert.logspec import open_spec_log
 
-        return open_spec_log(source, limits=limits)  # type: ignore[return-value]
+        return open_spec_log(source, limits=limits,  # type: ignore[return-value]
+                             format=format if format and format.lower() != "logspec" else None)
     return TrialLog(source, format=format, limits=limits)
 
 

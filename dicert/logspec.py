@@ -290,10 +290,10 @@ def _format_from_ext(p: Path) -> str | None:
     return None
 
 
-def implicit_spec(path: str | os.PathLike[str]) -> LogSpec:
+def implicit_spec(path: str | os.PathLike[str], fmt: str | None = None) -> LogSpec:
     """The spec of a plain Parquet or HDF5 log holding columns ``x, y, a, b[, t]`` (0/1)."""
     path = Path(path)
-    fmt = _format_from_ext(path)
+    fmt = fmt or _format_from_ext(path)
     names = _column_names(path, fmt, "/")
     columns = {r: r for r in ("x", "y", "a", "b")}
     if "t" in names:
@@ -1205,11 +1205,14 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
         bb = {k: v[nb:] for k, v in bb.items()} if nb < kb.size else None
 
 
-def open_spec_log(source: Any, *, limits=None) -> SpecLog:
-    """Open the log a spec file describes (or a plain Parquet/HDF5 log) for streaming."""
+def open_spec_log(source: Any, *, limits=None, format: str | None = None) -> SpecLog:
+    """Open the log a spec file describes (or a plain Parquet/HDF5 log, by its extension or
+    an explicit ``format``) for streaming."""
     p = Path(source)
-    if _format_from_ext(p) in ("parquet", "hdf5") and not is_spec_file(p):
-        return SpecLog(implicit_spec(p), limits=limits)
+    fmt = format.lower() if format is not None else None
+    if fmt in ("parquet", "hdf5") or (fmt is None and _format_from_ext(p) in ("parquet", "hdf5")
+                                      and not is_spec_file(p)):
+        return SpecLog(implicit_spec(p, fmt), limits=limits)
     return SpecLog(load_spec(p), limits=limits)
 
 

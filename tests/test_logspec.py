@@ -707,3 +707,12 @@ def test_random_drops_and_chunkings_match_oracle(tmp_path, seed):
     if missing:
         with pytest.raises(LogFormatError, match="trial missing at station"):
             summarize_log(_spec(tmp_path / "tight.toml", max_missing=missing - 1))
+
+
+def test_explicit_format_reads_parquet_with_other_extension(tmp_path):
+    pa = _need("pyarrow")
+    pq = _need("pyarrow.parquet")
+    arr = sim_trials(100, seed=8)
+    pq.write_table(pa.table({k: getattr(arr, k) for k in "xyab"}), tmp_path / "l.dat")
+    np.testing.assert_array_equal(read_trials(tmp_path / "l.dat", format="parquet").codes(),
+                                  arr.codes())
