@@ -756,6 +756,7 @@ class _Hdf5File:
                 raise LogFormatError(path, f"group {src.group!r}", "no such group") from None
             maps = {r: _ValueMap(r, src.columns[r], m) for r, m in src.values.items()}
             if isinstance(grp, h5py.Dataset):  # one table: a 1-D compound dataset
+                _check_local(f, src.group, path, h5py)
                 yield from self._compound(grp, chunk_trials, maps)
                 return
             names = [k for k in grp.keys()]
@@ -763,6 +764,7 @@ class _Hdf5File:
             n = None
             for role, c in src.columns.items():
                 name = _match_name(names, c, role, src, path)
+                _check_local(grp, name, path, h5py)
                 ds = grp[name]
                 if not hasattr(ds, "shape") or len(ds.shape) != 1:
                     raise LogFormatError(path, f"dataset {name!r}", "must be a one-dimensional "
@@ -807,6 +809,26 @@ class _Hdf5File:
             raise
         except Exception as exc:
             raise LogFormatError(path, f"row {row}", f"cannot read ({_short(exc)})") from None
+
+
+def _check_local(grp, name: str, path: Path, h5py) -> None:
+    """Refuse HDF5 data stored outside the file (external links, external raw storage,
+    virtual datasets): the record's digest covers this file's bytes only."""
+    try:
+        link = grp.get(name, getlink=True)
+        if isinstance(link, h5py.ExternalLink):
+            raise LogFormatError(path, f"dataset {name!r}", "is an external link to "
+                                 f"{link.filename!r}; data outside this file are not covered "
+                                 "by its digest (copy them into the file)")
+        ds = grp[name]
+    except LogFormatError:
+        raise
+    except Exception as exc:
+        raise LogFormatError(path, f"dataset {name!r}", f"cannot open ({_short(exc)})") from None
+    if isinstance(ds, h5py.Dataset) and (ds.external or ds.is_virtual):
+        raise LogFormatError(path, f"dataset {name!r}", "stores its data outside this file "
+                             "(external or virtual dataset); data outside the file are not "
+                             "covered by its digest (copy them into the file)")
 
 
 def _short(exc: BaseException) -> str:

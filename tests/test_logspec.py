@@ -716,3 +716,29 @@ def test_explicit_format_reads_parquet_with_other_extension(tmp_path):
     pq.write_table(pa.table({k: getattr(arr, k) for k in "xyab"}), tmp_path / "l.dat")
     np.testing.assert_array_equal(read_trials(tmp_path / "l.dat", format="parquet").codes(),
                                   arr.codes())
+
+
+def test_hdf5_data_outside_the_file_refused(tmp_path):
+    """The digest covers the file's bytes only, so data held elsewhere are refused."""
+    h5py = _need("h5py")
+    arr = sim_trials(50, seed=9)
+    with h5py.File(tmp_path / "other.h5", "w") as f:
+        f["a"] = arr.a
+    with h5py.File(tmp_path / "l.h5", "w") as f:
+        for k in "xyb":
+            f[k] = getattr(arr, k)
+        f["a"] = h5py.ExternalLink("other.h5", "/a")
+    with pytest.raises(LogFormatError) as e:
+        read_trials(tmp_path / "l.h5")
+    assert str(e.value) == (f"{tmp_path / 'l.h5'}, dataset 'a': is an external link to "
+                            "'other.h5'; data outside this file are not covered by its digest "
+                            "(copy them into the file)")
+    raw = tmp_path / "raw.bin"
+    raw.write_bytes(arr.a.astype(np.uint8).tobytes())
+    with h5py.File(tmp_path / "m.h5", "w") as f:
+        for k in "xyb":
+            f[k] = getattr(arr, k)
+        f.create_dataset("a", shape=(50,), dtype="u1", external=[(str(raw), 0, 50)])
+    with pytest.raises(LogFormatError, match=r"m\.h5, dataset 'a': stores its data outside "
+                       "this file"):
+        read_trials(tmp_path / "m.h5")
