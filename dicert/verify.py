@@ -672,6 +672,9 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                     {**e, "name": r["name"]} if isinstance(e, Mapping) and isinstance(r, Mapping)
                     and "name" in r else (r if not isinstance(e, Mapping) else e)
                     for e, r in zip(ef, rf)]
+            es, rs = exp["log"].get("spec"), body["log"].get("spec")
+            if isinstance(es, dict) and isinstance(rs, Mapping) and "name" in rs:
+                es["name"] = rs["name"]  # the spec file may be renamed; its content counts
             _compare(exp, body)
             checked.append("log digest, size, trial count, counts and harvested raw bits")
             if isinstance(body["log"].get("spec"), Mapping):

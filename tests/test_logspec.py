@@ -575,6 +575,10 @@ def test_example_certify_and_verify_rerun_join(example, tmp_path):
     write_record(tmp_path / "edited.json", seal_record(body))
     edited = _cli("verify", tmp_path / "edited.json")
     assert edited.exit_code == 1 and "log.spec" in edited.output
+    renamed = example / "renamed.toml"
+    shutil.copy(example / "run.logspec.toml", renamed)
+    ok2 = _cli("verify", out / "record.json", "--log-spec", renamed)
+    assert ok2.exit_code == 4, ok2.output  # a renamed spec with the same content verifies
     # a changed tolerance in the spec: same trials, but not the spec certified
     (example / "run.logspec.toml").write_text(text.replace("max_missing = 3", "max_missing = 4"))
     bad = _cli("verify", out / "record.json", "--log-spec", example / "run.logspec.toml")
