@@ -1150,6 +1150,42 @@ class _JoinState:
 _EMPTY = np.zeros(0, np.int64)
 
 
+def _match_sorted(ka: np.ndarray, kb: np.ndarray, max_steps: int = 16) -> tuple[np.ndarray,
+                                                                              np.ndarray]:
+    """Positions of the keys common to two strictly increasing arrays (``ka[ixa] ==
+    kb[ixb]``). A few missing keys are stepped over with vectorised comparisons of the
+    aligned remainders; beyond ``max_steps`` the rest is matched by binary search."""
+    pa: list[np.ndarray] = []
+    pb: list[np.ndarray] = []
+    i = j = 0
+    for _ in range(max_steps):
+        m = min(ka.size - i, kb.size - j)
+        if m == 0:
+            break
+        diff = ka[i:i + m] != kb[j:j + m]
+        d = int(np.argmax(diff)) if diff.any() else m
+        pa.append(np.arange(i, i + d))
+        pb.append(np.arange(j, j + d))
+        i, j = i + d, j + d
+        if d == m:
+            break  # what is left of the longer array lies beyond the other's last key
+        if ka[i] < kb[j]:
+            i += 1  # ka[i] is in no later position of kb (all larger): missing at B
+        else:
+            j += 1
+    else:
+        ra, rb = ka[i:], kb[j:]
+        pos = np.searchsorted(rb, ra)
+        posc = np.minimum(pos, max(rb.size - 1, 0))
+        hit = (pos < rb.size) & (rb[posc] == ra) if rb.size else np.zeros(ra.size, bool)
+        h = np.flatnonzero(hit)
+        pa.append(h + i)
+        pb.append(pos[h] + j)
+    if not pa:
+        return _EMPTY, _EMPTY
+    return np.concatenate(pa), np.concatenate(pb)
+
+
 def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> Iterator[np.ndarray]:
     """Merge join of two key-sorted chunk streams; each round consumes one buffer entirely,
     so each holds at most one chunk (memory is flat)."""
@@ -1190,11 +1226,7 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
             ixa = ixb = slice(0, na)
             nm = na
         else:
-            pos = np.searchsorted(kb_, ka_)
-            posc = np.minimum(pos, max(nb - 1, 0))
-            hit = (pos < nb) & (kb_[posc] == ka_) if nb else np.zeros(na, bool)
-            ixa = np.flatnonzero(hit)
-            ixb = pos[ixa]
+            ixa, ixb = _match_sorted(ka_, kb_)
             nm = int(ixa.size)
             miss_b = np.ones(na, bool)
             miss_b[ixa] = False

@@ -746,3 +746,18 @@ def test_hdf5_data_outside_the_file_refused(tmp_path):
     with pytest.raises(LogFormatError, match=r"m\.h5, dataset 'a': stores its data outside "
                        "this file"):
         read_trials(tmp_path / "m.h5")
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_match_sorted_against_set_intersection(seed):
+    """The key matcher of the merge against Python's set intersection (common practice)."""
+    from dicert.logspec import _match_sorted
+
+    rng = np.random.default_rng(seed)
+    for _ in range(30):
+        universe = np.unique(rng.integers(0, 400, int(rng.integers(0, 300))))
+        ka = universe[rng.random(universe.size) < rng.uniform(0.5, 1.0)]
+        kb = universe[rng.random(universe.size) < rng.uniform(0.5, 1.0)]
+        for steps in (0, 2, 16):
+            ia, ib = _match_sorted(ka, kb, max_steps=steps)
+            assert ka[ia].tolist() == kb[ib].tolist() == sorted(set(ka.tolist()) & set(kb.tolist()))
