@@ -18,7 +18,7 @@ def convert_cmd(
     src: Annotated[Optional[str], typer.Argument(help="Input log: file, directory, glob pattern or log spec (TOML). Omit it with --log-spec.")] = None,
     dest: Annotated[Optional[str], typer.Argument(help="Output file (.csv, .csv.gz, .btl, .npz).")] = None,
     fmt: Annotated[Optional[str], typer.Option("--format", help="Output format (csv, csv.gz, binary, npz); default from the extension.")] = None,
-    in_fmt: Annotated[Optional[str], typer.Option("--in-format", help="Force the input format.")] = None,
+    in_fmt: Annotated[Optional[str], typer.Option("--in-format", help="Force the input format (csv, binary, npz, parquet, hdf5).")] = None,
     log_spec: Annotated[Optional[str], typer.Option("--log-spec", help="Log spec (TOML) describing the run (station files joined by trial key, columns, value maps); the joined log is written to DEST.")] = None,
     as_json: JsonFlag = False,
 ) -> None:

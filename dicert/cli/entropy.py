@@ -23,7 +23,7 @@ def entropy_cmd(
     level: Annotated[str, typer.Option("--level", help="NPA relaxation level: 1, 1+AB or 2.")] = "1+AB",
     method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve), table (precomputed certificates), radau (von Neumann: solve the Gauss-Radau quadrature SDPs) or radau-table (its precomputed lines).")] = "auto",
     tolerance: Annotated[float, typer.Option("--tolerance", help="Slack allowed on each observed correlator (with --from-log).")] = 0.0,
-    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz).")] = None,
+    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz, parquet, hdf5).")] = None,
     protocol: Annotated[Optional[str], typer.Option("--protocol", help="With --from-log: the protocol whose declared design the log is checked against (default: every round a test round, or the observed test fraction of a log with a t column).")] = None,
     log_spec: Annotated[Optional[Path], typer.Option("--log-spec", help="Log spec (TOML) describing the run: station files, join key, columns, value maps (instead of --from-log).")] = None,
     as_json: JsonFlag = False,

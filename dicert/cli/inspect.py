@@ -23,7 +23,7 @@ def inspect_cmd(
     block_trials: Annotated[int, typer.Option("--block-trials", help="Trials per block for drift diagnostics.")] = 1 << 20,
     block_error: Annotated[float, typer.Option("--block-error", help="Error per side of each block's interval.")] = 1e-3,
     plot: Annotated[Optional[Path], typer.Option("--plot", help="Write a plot of S per block to this file (PNG/PDF/SVG).")] = None,
-    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the input format (csv, binary, npz).")] = None,
+    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the input format (csv, binary, npz, parquet, hdf5).")] = None,
     log_spec: Annotated[Optional[Path], typer.Option("--log-spec", help="Log spec (TOML) describing the run: station files, join key, columns, value maps (instead of LOG).")] = None,
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: count and hash the log's files on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
