@@ -150,6 +150,7 @@ class LogScan:
     trials_in_log: int | None = None  # trials present (> trials when n was declared)
     file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
     formats: tuple = ()  # format of each file
+    log_spec: dict | None = None  # log read through a log spec: its content, digest, join report
     # Per-block counts for the record's CHSH-per-block series (see group_blocks):
     # (first trial of each group, (G, 32) int64 counts), or None.
     block_series: Any = None
@@ -758,6 +759,7 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                    file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
                                        "sha256": f.sha256} for f in summary.files),
                    formats=tuple(f.format for f in summary.files),
+                   log_spec=summary.log_spec,
                    block_series=group_blocks(summary.block_counts, block_trials))
     return scan, sink
 
@@ -1181,6 +1183,8 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "allow_seed_reuse": False, "seed_problems": []}
     if screens is not None:
         body["output_screens"] = screens
+    if scan.log_spec is not None:  # a log read through a log spec (dicert.logspec)
+        body["log"]["spec"] = dict(scan.log_spec)
     if scan.block_series is not None:
         section = _blocks_section(scan.block_series, protocol)
         if section is not None:

@@ -411,6 +411,13 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
         _require(isinstance(in_log, int) and in_log >= trials, "log.trials_in_log",
                  f"expected an integer >= log.trials, got {in_log!r}")
         extra["trials_in_log"] = in_log
+    spec = _get(body, "log").get("spec") if isinstance(_get(body, "log"), Mapping) else None
+    if spec is not None:  # a log read through a log spec: its digest must match its content
+        from dicert.logspec import spec_entry_problem
+
+        problem = spec_entry_problem(spec)
+        _require(problem is None, "log.spec", str(problem))
+        extra["log_spec"] = dict(spec)
     series = body.get("estimate_blocks")
     if isinstance(series, Mapping):
         extra["block_series"] = _recorded_block_series(series, counts)
@@ -687,8 +694,13 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                     {**e, "name": r["name"]} if isinstance(e, Mapping) and isinstance(r, Mapping)
                     and "name" in r else (r if not isinstance(e, Mapping) else e)
                     for e, r in zip(ef, rf)]
+            es, rs = exp["log"].get("spec"), body["log"].get("spec")
+            if isinstance(es, dict) and isinstance(rs, Mapping) and "name" in rs:
+                es["name"] = rs["name"]  # the spec file may be renamed; its content counts
             _compare(exp, body)
             checked.append("log digest, size, trial count, counts and harvested raw bits")
+            if isinstance(body["log"].get("spec"), Mapping):
+                checked.append("log spec digest and station join re-run (same trials)")
             if seed_data is not None and status in ("certified", "withheld"):
                 from dicert.extract import extract_toeplitz
 
