@@ -764,6 +764,14 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
     return scan, sink
 
 
+def _dropped_trials(scan: LogScan) -> int:
+    """Trials the station join dropped (missing at one station) under the spec's tolerance."""
+    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
+    if not isinstance(join, Mapping):
+        return 0
+    return int(join.get("missing_at_a") or 0) + int(join.get("missing_at_b") or 0)
+
+
 #: At most this many points in a record's per-block CHSH series (consecutive blocks are
 #: merged into groups of equal size so the record stays small whatever the log's length).
 MAX_BLOCK_POINTS = 64
@@ -1098,6 +1106,13 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
     for a in fin.assumptions:
         if a not in assumptions:
             assumptions.append(str(a))
+    dropped = _dropped_trials(scan)
+    if dropped:
+        assumptions.append(
+            f"Trials dropped by the station join ({dropped}, tolerated by the log spec's "
+            "join.max_missing) went missing independently of the settings and outcomes: "
+            "NOT checked, and nothing is charged for them; if the devices or the stations' "
+            "electronics can cause a trial to go missing, the certificate does not hold.")
     references = [str(r) for r in fin.references]
     body: dict[str, Any] = {
         "format": RECORD_FORMAT,
