@@ -1288,6 +1288,51 @@ def _read_npy_chunk(m, dtype: np.dtype, count: int, path, key: str, offset: int)
 # --------------------------------------------------------------------------------------------
 
 
+
+class BlockTally:
+    """Counts per block of ``block_trials`` consecutive trials over a stream of trial codes.
+
+    ``offset`` is the global index of the first trial fed, so a stream that starts inside a
+    block (one file of a multi-file log) fills that block's remainder first. :meth:`result`
+    gives the raw counts (t as coded) of every block touched, the last one possibly partial,
+    shape (nblocks, 2, 2, 2, 2, 2).
+    """
+
+    def __init__(self, block_trials: int, offset: int = 0) -> None:
+        self.block_trials = int(block_trials)
+        self.first_block = int(offset) // self.block_trials
+        self._blocks: list[np.ndarray] = []
+        self._partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
+        self._fill = int(offset) % self.block_trials
+
+    def add(self, codes: np.ndarray) -> None:
+        from dicert._kernels import count_blocks
+
+        bt, pos = self.block_trials, 0
+        if self._fill:
+            take = min(bt - self._fill, codes.size)
+            c, _ = count_blocks(codes[:take], max(take, 1))
+            self._partial += c.sum(axis=0)
+            self._fill += take
+            pos = take
+            if self._fill == bt:
+                self._blocks.append(self._partial.copy())
+                self._partial[:] = 0
+                self._fill = 0
+        rest = codes[pos:]
+        if rest.size:
+            c, _ = count_blocks(rest, bt)
+            full = rest.size // bt
+            if full:
+                self._blocks.extend(c[:full])
+            if rest.size % bt:
+                self._partial += c[-1]
+                self._fill = rest.size % bt
+
+    def result(self) -> np.ndarray:
+        blocks = self._blocks + ([self._partial.copy()] if self._fill else [])
+        return np.array(blocks, dtype=np.int64).reshape(-1, 2, 2, 2, 2, 2)
+
 def summarize_log(
     source,
     *,
@@ -1317,15 +1362,13 @@ def summarize_log(
         Count (and pass to ``on_chunk``) only the first ``max_trials`` trials; the rest of
         the log is still read, validated and hashed, and counted in ``trials_in_log``.
     """
-    from dicert._kernels import count_blocks, count_pairs
+    from dicert._kernels import count_pairs
 
     if block_trials <= 0:
         raise ParameterError("block_trials must be positive")
     log = open_log(source, format=format)
     total_bytes = sum(f.stat().st_size for f in log.files)
-    blocks: list[np.ndarray] = []
-    partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
-    in_partial = 0
+    tally = BlockTally(block_trials)
     trials = 0
     in_log = 0
     pairs = np.zeros(64, dtype=np.int64)
@@ -1352,26 +1395,7 @@ def summarize_log(
         if fut is None:
             pc, prev = count_pairs(codes, prev)
             pairs += pc
-        pos = 0
-        if in_partial:
-            take = min(block_trials - in_partial, codes.size)
-            c, _ = count_blocks(codes[:take], max(take, 1))
-            partial += c.sum(axis=0)
-            in_partial += take
-            pos = take
-            if in_partial == block_trials:
-                blocks.append(partial.copy())
-                partial[:] = 0
-                in_partial = 0
-        rest = codes[pos:]
-        if rest.size:
-            c, _ = count_blocks(rest, block_trials)
-            full = rest.size // block_trials
-            if full:
-                blocks.extend(c[:full])
-            if rest.size % block_trials:
-                partial += c[-1]
-                in_partial = rest.size % block_trials
+        tally.add(codes)
         if fut is not None:
             pc, prev = fut.result()
             pairs += pc
@@ -1380,9 +1404,7 @@ def summarize_log(
             on_chunk(chunk)
         if progress is not None:
             progress(min(total_bytes, _bytes_done(log, trials, total_bytes)), total_bytes)
-    if in_partial:
-        blocks.append(partial.copy())
-    block_counts = np.array(blocks, dtype=np.int64).reshape(-1, 2, 2, 2, 2, 2)
+    block_counts = tally.result()
     if not log.has_test_flag:
         block_counts = np.stack([np.zeros_like(block_counts[:, 0]), block_counts.sum(axis=1)], axis=1)
     counts = block_counts.sum(axis=0) if block_counts.size else np.zeros((2,) * 5, dtype=np.int64)
@@ -1588,6 +1610,7 @@ def convert_log(source, dest, *, format: str | None = None, in_format: str | Non
 __all__ = [
     "BINARY_MAGIC",
     "BinaryLogWriter",
+    "BlockTally",
     "FileInfo",
     "LogChunk",
     "LogSummary",
