@@ -38,6 +38,7 @@ from typing import Any
 import numpy as np
 
 from dicert import __version__
+from dicert._display import displayed
 from dicert.errors import DicertError, VerificationError
 
 #: Record members outside the body (added by sealing).
@@ -52,6 +53,7 @@ RESULT_INTEGRITY_ONLY = "INTEGRITY-ONLY"
 _ABS_TOL = 1e-15
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class VerifyReport:
     """What :func:`verify` established (it raises instead of reporting a failure).
@@ -74,6 +76,16 @@ class VerifyReport:
     result: str = RESULT_INTEGRITY_ONLY
     authenticated: bool = False
     bits_file: str | None = None
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("result", self.result), ("authenticated", self.authenticated),
+                ("scope", self.scope), ("status", self.status), ("output_bits", self.output_bits)]
+        if full:
+            rows += [("signature", self.signature), ("key_fingerprint", self.key_fingerprint),
+                     ("checked", ", ".join(self.checked)),
+                     ("not_checked", ", ".join(self.not_checked) or "-"),
+                     ("record_file", self.record_file), ("message", self.message)]
+        return rows
 
     @property
     def exit_code(self) -> int:
@@ -241,7 +253,7 @@ def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None
 def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.certify import analyse_counts, build_body, design_report, log_end_note, withhold
+    from dicert.certification import analyse_counts, build_body, design_report, log_end_note, withhold
     from dicert.extract import seed_bits_required
 
     legacy = body.get("format") == "dicert-record/1"
@@ -300,7 +312,7 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
     exp["tool"] = body.get("tool", exp["tool"])
     exp["volatile"] = body.get("volatile")
     if "bits_file" in body:  # the record names its bits file (older records do not)
-        from dicert.certify import BITS_NAME
+        from dicert.certification import BITS_NAME
 
         exp["bits_file"] = BITS_NAME if exp.get("status") == "certified" else None
     if "protocol_change" in body:  # a signed declaration, checked along the chain
@@ -364,7 +376,7 @@ def _scope_of(body: Mapping[str, Any], trials: int, size_bytes: Any) -> dict:
 
 
 def _scan_from_record(body: Mapping[str, Any], protocol: Any):
-    from dicert.certify import LogScan, expected_raw_bits
+    from dicert.certification import LogScan, expected_raw_bits
 
     counts = _recorded_counts(body)
     trials = _get(body, "log.trials")
@@ -491,7 +503,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     Parameters
     ----------
     record_path : path
-        The record (JSON) written by :func:`dicert.certify.certify`.
+        The record (JSON) written by :func:`dicert.certification.certify`.
     log : path, directory or glob, optional
         The trial log the record claims; read again and compared.
     seed : bytes or path, optional
@@ -598,7 +610,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
 
     seed_data = None
     if seed is not None:
-        from dicert.certify import read_seed
+        from dicert.certification import read_seed
 
         seed_data, _label = read_seed(seed)
         _require(hashlib.sha256(seed_data).hexdigest() == seed_sha, "extractor.seed_sha256",
@@ -613,7 +625,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     if log is not None:
         import tempfile
 
-        from dicert.certify import _scan_whole, _single_binary, scan_log
+        from dicert.certification import _scan_whole, _single_binary, scan_log
         from dicert.errors import LogFormatError
         from dicert.logs import resolve_sources
 
@@ -647,7 +659,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
             # A /1 record digested the concatenation of the files' bytes.
             scan = dataclasses.replace(scan, sha256=_concatenated_digest(resolve_sources(log)))
         elif isinstance(body.get("inputs"), Mapping):
-            from dicert.certify import input_problems_of
+            from dicert.certification import input_problems_of
 
             _require(input_problems_of(scan) == list(body["inputs"].get("input_problems", [])),
                      "inputs.input_problems", "the input identity problems of the given log "
@@ -749,7 +761,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
 def _named_bits(body: Mapping[str, Any], record_path: Path, status: str,
                 notes: list[str]) -> Path | None:
     """The bits file the record names, next to it, if present (None otherwise)."""
-    from dicert.certify import BITS_NAME
+    from dicert.certification import BITS_NAME
 
     if "bits_file" in body:
         name = body["bits_file"]

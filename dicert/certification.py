@@ -46,7 +46,7 @@ decided at trial ``stop_trial_index = trials_read - 1`` (``stopped_early``, ``en
 "decision"``: the success trial, the last of n_max analysis trials, or the end of the feeding
 trial outside the settings model) or when ``--follow`` timed out waiting
 (``ended_by = "idle-timeout"``, an abort). Bytes after the prefix, if any, were not read and
-are not certified; :func:`dicert.verify.verify` hashes only the prefix. Text, npz and
+are not certified; :func:`dicert.verification.verify` hashes only the prefix. Text, npz and
 multi-file logs are always read to the end (``scope = "whole"``, ``stopped_early = false``
 even when the PEF run was decided earlier; the success trial is in the finite-size details).
 Every reader stops at the same trial however the bytes arrive (a trial outside the settings
@@ -72,6 +72,7 @@ from typing import Any
 import numpy as np
 
 from dicert import __version__
+from dicert._display import displayed
 from dicert._io import read_user_file
 from dicert._plain import plain
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
@@ -166,6 +167,7 @@ class Analysis:
     design: Any = None  # dicert.design.DesignReport
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class CertifyResult:
     """Outcome of :func:`certify`.
@@ -191,6 +193,17 @@ class CertifyResult:
     stop_trial_index: int | None = None
     success_trial_index: int | None = None
     ended_by: str = "end-of-log"
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("status", self.status), ("output_bits", self.output_bits),
+                ("min_entropy_bits", self.min_entropy_bits), ("error", self.error),
+                ("trials", self.trials)]
+        if full:
+            rows += [("raw_bits", self.raw_bits), ("log_scope", self.log_scope),
+                     ("ended_by", self.ended_by), ("abort_reason", self.abort_reason),
+                     ("bits_file", self.bits_file), ("record_file", self.record_file),
+                     ("chain_file", self.chain_file), ("record_sha256", self.record_sha256)]
+        return rows
 
     @property
     def certified(self) -> bool:
@@ -887,7 +900,7 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
                    design: Any = None) -> Analysis:
     """Design checks, estimate, finite-size bound, accept/abort and output length.
 
-    Deterministic in its inputs, so :func:`dicert.verify.verify` re-derives it from a record.
+    Deterministic in its inputs, so :func:`dicert.verification.verify` re-derives it from a record.
     ``finite`` supplies the result of a streaming method (pef), which depends on the trial
     order and not only on the counts. ``log_end`` (see :func:`log_end_note`) is appended to the
     abort reason. ``design`` is the :class:`dicert.design.DesignReport` of the log (default:

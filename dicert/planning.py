@@ -69,11 +69,14 @@ from __future__ import annotations
 import dataclasses
 import functools
 import math
+import os
 import types
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
+from dicert._display import displayed
 from dicert.entropy.analytic import TSIRELSON, W_QUANTUM, binary_entropy
 from dicert.errors import ParameterError
 from dicert.finite.params import EatParams, MartingaleParams
@@ -171,6 +174,7 @@ class PefPlanDetails:
     anticipated_box: tuple[tuple[float, ...], ...]
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class PlanMethod:
     """One method's plan at the given number of trials and gamma.
@@ -197,7 +201,20 @@ class PlanMethod:
     curve_certified_bits: tuple[float, ...]
     pef: PefPlanDetails | None = None
 
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("name", self.name), ("certified_bits", self.certified_bits),
+                ("net_bits", self.net_bits), ("abort_probability", self.abort_probability)]
+        if full:
+            rows += [("side_information", self.side_information),
+                     ("min_entropy_bits", self.min_entropy_bits),
+                     ("rate_per_trial", self.rate_per_trial), ("seed_bits", self.seed_bits),
+                     ("min_trials_positive", self.min_trials_positive),
+                     ("min_trials_net_positive", self.min_trials_net_positive),
+                     ("best_gamma", self.best_gamma)]
+        return rows
 
+
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class PlanResult:
     """What :func:`plan` reports. JSON keys follow the field names."""
@@ -216,6 +233,20 @@ class PlanResult:
     min_trials_net_positive: dict[str, int | None]
     best_gamma: dict[str, float | None]
     notes: tuple[str, ...]
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("protocol", self.protocol), ("trials", self.trials), ("gamma", self.gamma),
+                ("chsh", self.chsh),
+                ("certified_bits", {m.name: m.certified_bits for m in self.methods})]
+        if full:
+            rows[-1:] = [("device", self.device), ("trials_source", self.trials_source),
+                         ("eps_ext", self.eps_ext)]
+            for m in self.methods:
+                rows += [(f"{m.name}: certified bits", m.certified_bits),
+                         (f"{m.name}: net bits (after seed)", m.net_bits),
+                         (f"{m.name}: abort probability", m.abort_probability),
+                         (f"{m.name}: min trials, net positive", m.min_trials_net_positive)]
+        return rows
 
 
 # --------------------------------------------------------------------------- helpers
@@ -703,6 +734,10 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
     """
     from dicert.finite.pef import box_from_chsh
 
+    if isinstance(protocol, (str, os.PathLike, Mapping)):  # a file or the tables, as certify
+        from dicert.protocol import load_protocol
+
+        protocol = load_protocol(protocol)
     analysis = getattr(protocol, "analysis", None)
     is_pef = getattr(protocol, "method", None) == "pef"
     default_win = None
