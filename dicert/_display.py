@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import html
 import math
+import os
 from typing import Any, TypeVar
 
 T = TypeVar("T", bound=type)
@@ -46,9 +47,9 @@ def _fmt(v: Any) -> str:
 
 
 def _text(v: Any) -> str:
-    """One value for a table cell or summary line (strings unquoted)."""
-    if isinstance(v, str):
-        return v
+    """One value for a table cell or summary line (strings and paths unquoted, uncut)."""
+    if isinstance(v, (str, os.PathLike)):
+        return os.fspath(v)
     return _fmt(v)
 
 
