@@ -86,8 +86,9 @@ BITS_NAME = "random.bits"
 #: Name of the audit record inside ``out_dir``.
 RECORD_NAME = "record.json"
 
-#: Keep harvested raw bits in memory below this many bytes, spill to a temp file above.
-_SPILL_BYTES = 64 << 20
+#: Keep harvested raw bits in memory below this many bytes, spill to a private temp file
+#: (mode 0600, removed when done) above, so memory does not grow with the log.
+_SPILL_BYTES = 8 << 20
 #: Trials per streamed chunk.
 _CHUNK_TRIALS = 1 << 22
 
@@ -1198,7 +1199,8 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,
             idle_timeout_s: float | None = 300.0, force: bool = False,
             trusted_keys: Any = None, protocol_change: str | None = None,
-            allow_mixed_inputs: bool = False, allow_seed_reuse: bool = False) -> CertifyResult:
+            allow_mixed_inputs: bool = False, allow_seed_reuse: bool = False,
+            scheduler: Any = None) -> CertifyResult:
     """Certify the randomness of a trial log and write the bits and a signed audit record.
 
     Parameters
@@ -1247,6 +1249,9 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
         Accept a seed whose SHA-256 equals the log's (or one of its files') (refused
         otherwise); recorded in ``inputs``. A seed already used in a beacon chain is always
         refused with ``chain``, and a constant or short-period seed always.
+    scheduler : str or dask.distributed.Client, optional
+        Run the extraction's pieces on a dask cluster (:mod:`dicert.cluster`; default
+        ``$DICERT_SCHEDULER``, else this process). Same bits and record.
 
     Returns
     -------
@@ -1322,7 +1327,7 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             protocol_change=protocol_change, force=force, clock=clock, progress=progress,
             follow=follow, poll_s=poll_s, idle_timeout_s=idle_timeout_s, timings=timings,
             started=started, allow_mixed_inputs=allow_mixed_inputs,
-            allow_seed_reuse=allow_seed_reuse)
+            allow_seed_reuse=allow_seed_reuse, scheduler=scheduler)
 
 
 def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
@@ -1331,7 +1336,7 @@ def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
                     progress: Progress | None, follow: bool, poll_s: float,
                     idle_timeout_s: float | None, timings: dict[str, float],
                     started: str, allow_mixed_inputs: bool = False,
-                    allow_seed_reuse: bool = False) -> CertifyResult:
+                    allow_seed_reuse: bool = False, scheduler: Any = None) -> CertifyResult:
     """The run itself, with the locks held (see :func:`certify`)."""
     from dicert import _outputs as outputs
     from dicert.logs import open_log
@@ -1376,7 +1381,8 @@ def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
                 from dicert.extract import extract_toeplitz
 
                 extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
-                                              n_bits=scan.raw_bits)
+                                              n_bits=scan.raw_bits, scheduler=scheduler,
+                                              temp_dir=spill)
                 if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
                     raise DicertError("extractor returned a different output length")
             timings["extraction"] = time.perf_counter() - t3

@@ -681,12 +681,13 @@ CONSTANT_MIN_BITS = 64
 
 
 def longest_symbol_run(raw: Any, raw_bits: int, bits_per_symbol: int,
-                       chunk_bytes: int = 1 << 22) -> tuple[int, int]:
+                       chunk_bytes: int = 1 << 19) -> tuple[int, int]:
     """(longest run of identical symbols, number of symbols) of packed raw bits.
 
     ``raw`` holds the bits packed big-endian (bytes, or a path to a file of them); a symbol is
     ``bits_per_symbol`` consecutive bits (one trial's harvested outcomes). Streams in chunks
-    with the run carried across chunk boundaries.
+    with the run carried across chunk boundaries; chunks are small and symbols uint8 so the
+    peak stays a few tens of MB whatever the input size.
     """
     from pathlib import Path as _P
 
@@ -710,7 +711,7 @@ def longest_symbol_run(raw: Any, raw_bits: int, bits_per_symbol: int,
             bits = np.unpackbits(np.frombuffer(data, dtype=np.uint8))
             take = min(bits.size // k, n_sym - done)
             bits = bits[:take * k].reshape(take, k)
-            sym = (bits[:, 0] if k == 1 else bits[:, 0] * 2 + bits[:, 1]).astype(np.int64)
+            sym = bits[:, 0] if k == 1 else (bits[:, 0] << 1) | bits[:, 1]  # uint8
             done += take
             if sym.size == 0:
                 continue

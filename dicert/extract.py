@@ -20,25 +20,39 @@ convolution of any length >= n + m - 1, which is how they are computed here.
 
 Computation
 -----------
-The m x n matrix is cut into tiles of M output rows and B input columns. Each tile is
-itself a Toeplitz matrix (with a contiguous stretch of M + B - 1 seed bits), evaluated by
-one cyclic convolution of length F >= M + B - 1 with real FFTs in float64. The spectra of the
-tiles in an output block are summed (linearity) and transformed back once; every value is
-rounded to the nearest integer and reduced mod 2. Small problems use a single tile (one
-cyclic convolution of length n + m - 1); large ones use square tiles with F = 2**22 (growing
-to 2**24 for inputs beyond 2**24 bits), which bounds memory and floating-point error and lets
-two transforms run on two cores at once. Input blocks are processed in order and their
-spectra discarded, so memory is about 32 m + 80 B bytes plus the packed inputs.
+Three strategies give the same bits:
 
-Exactness: the convolution values are integers in [0, min(M, B)]. By the standard error
+* n + m - 1 <= 2**22 (default): one in-memory cyclic convolution of length >= n + m - 1 with
+  real FFTs in float64.
+* Larger inputs (default): ONE cyclic convolution of length L >= n + m - 1 by the four-step
+  FFT of :mod:`dicert._fourstep` (Bailey 1990): the seed and the input ride in one complex
+  vector, the transform runs through blocks of rows and columns of 32 MB, and the rest of
+  the work array sits in private temporary files. Time grows like (n + m) log(n + m); memory
+  stays within ``memory_budget`` (default :data:`MEMORY_BUDGET`, whatever n is). The pieces
+  of each pass are independent, so they can also run as tasks on a dask cluster
+  (:mod:`dicert.cluster`).
+* Tiles (``block_bits`` given, and the recomputation after a failed guard): the m x n matrix
+  is cut into tiles of M output rows and B input columns. Each tile is itself a Toeplitz
+  matrix (with a contiguous stretch of M + B - 1 seed bits), evaluated by one cyclic
+  convolution of length F >= M + B - 1; the spectra of the tiles in an output block are
+  summed (linearity) and transformed back once. Cost ~ n m / B; the input is read in several
+  passes when the output blocks do not fit the budget.
+
+Every value is rounded to the nearest integer and reduced mod 2.
+
+Exactness: the convolution values are integers in [0, min(n, m)] ([0, min(M, B)] per
+tile). By the standard error
 analysis of the FFT (Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed.,
 SIAM 2002, sec. 24.1) the computed cyclic convolution of 0/1 vectors of length <= F differs
 from the exact one by at most about 5 * log2(F) * eta * B**1.5 in the 2-norm, with eta a small
-multiple of the unit roundoff 1.1e-16; for the largest tiles used (B = 2**23, F = 2**24) this is
-~1e-3, far below 1/2. As a run-time
-guard, every output block whose values stray more than ``rounding_threshold`` (0.25) from an
-integer is recomputed with exact integer arithmetic, and ``method`` says so. Bits are never
-emitted from a block that failed the guard.
+multiple of the unit roundoff 1.1e-16; that bound is a worst case (for one transform of length
+2**31 it exceeds 1/2), and the observed errors are far smaller (1.5e-8 at n = 2**28 and
+6e-8 at n = 2**30, m = n / 2, in
+the benchmarks). Exactness therefore rests on the run-time guard, not on the bound: every
+value is checked, and if any strays more than ``rounding_threshold`` (0.25) from an integer,
+the four-step result is discarded and the bits recomputed by tiles, whose blocks that fail
+their own guard are recomputed with exact integer arithmetic; ``method`` says so. Bits are
+never emitted from a computation that failed the guard.
 
 References
 ----------
@@ -80,9 +94,13 @@ MAX_FFT_LENGTH = 1 << 22
 MAX_FFT_LENGTH_LARGE = 1 << 24
 #: Default rounding guard: any value further than this from an integer triggers the exact path.
 ROUNDING_THRESHOLD = 0.25
-#: Default memory budget for the spectra held at once: max(1 GiB, 20 bytes per input bit).
-MEMORY_BUDGET = 1 << 30
-_MEMORY_PER_INPUT_BIT = 20
+#: Default memory budget (bytes) for the extractor's working arrays, whatever the input size.
+MEMORY_BUDGET = 1 << 29
+#: Largest n + m - 1 computed by a single in-memory cyclic convolution; beyond it (unless tiles
+#: are asked for) the four-step transform of :mod:`dicert._fourstep` is used.
+SINGLE_LIMIT = MAX_FFT_LENGTH
+#: Strategies accepted by :func:`extract_toeplitz`.
+STRATEGIES = ("auto", "tiled", "four-step")
 #: Tile width used by the exact integer fallback (direct convolution, O(width^2) per tile).
 _EXACT_TILE = 1 << 12
 
@@ -435,6 +453,9 @@ def extract_toeplitz(
     rounding_threshold: float = ROUNDING_THRESHOLD,
     workers: int | None = None,
     memory_budget: int | None = None,
+    strategy: str = "auto",
+    temp_dir: Any = None,
+    scheduler: Any = None,
 ) -> ExtractionResult:
     """Hash n input bits to m output bits with a seeded Toeplitz matrix over GF(2).
 
@@ -461,8 +482,20 @@ def extract_toeplitz(
     workers : int, optional
         Threads for FFTs (default: 2 if the machine has more than one core).
     memory_budget : int, optional
-        Bytes allowed for the spectra held at once (default max(1 GiB, 20 bytes per input
-        bit)); when the output blocks do not fit, the input is read in several passes.
+        Bytes allowed for the working arrays held at once (default :data:`MEMORY_BUDGET`,
+        512 MiB, independent of the input size). The four-step method keeps a larger working
+        array in a private temporary file (``temp_dir``); the tiled method reads the input in
+        several passes when its output blocks do not fit.
+    strategy : {"auto", "tiled", "four-step"}, optional
+        "auto" (default): one in-memory cyclic convolution when n + m - 1 <= 2**22, tiles when
+        ``block_bits`` is given, else the four-step transform. The bits never depend on it.
+    temp_dir : path, optional
+        Directory for the four-step method's work file (default: the system temporary
+        directory). The file is private (mode 0600) and removed when done.
+    scheduler : str or dask.distributed.Client, optional
+        Run the four-step method's pieces as tasks on a dask.distributed cluster (optional
+        extra ``dicert[cluster]``); ``temp_dir`` must then be a directory every worker sees.
+        Default: the ``DICERT_SCHEDULER`` environment variable, else this process only.
 
     Returns
     -------
@@ -508,11 +541,24 @@ def extract_toeplitz(
         thr = float(rounding_threshold)
         if not thr < 0.5:
             raise ParameterError(f"rounding_threshold must be < 0.5, got {thr!r}")
-        budget = (max(MEMORY_BUDGET, _MEMORY_PER_INPUT_BIT * n) if memory_budget is None
-                  else int(memory_budget))
-        plan = _plan(n, m, block_bits, budget)
+        budget = MEMORY_BUDGET if memory_budget is None else _positive_int(
+            memory_budget, "memory_budget")
+        if strategy not in STRATEGIES:
+            raise ParameterError(f"strategy must be one of {', '.join(STRATEGIES)}, "
+                                 f"got {strategy!r}")
         if workers is None:
             workers = 2 if (os.cpu_count() or 1) > 1 else 1
+        four = strategy == "four-step" or (
+            strategy == "auto" and block_bits is None and need_bits > SINGLE_LIMIT)
+        if four:
+            res = _four_step(x, s, n, m, budget, thr, int(workers), temp_dir, progress,
+                             data, seed, scheduler)
+            if res is not None:
+                return res
+            # The rounding guard failed somewhere (never observed): recompute by tiles, whose
+            # own guard falls back to exact integer arithmetic block by block.
+            block_bits = block_bits or 1 << 20
+        plan = _plan(n, m, block_bits, budget)
         z, max_dev, fallback, tiles = _run(plan, x, s, need_bits, thr, int(workers), progress)
         output = np.packbits(z).tobytes()
         input_sha = x.sha256(-(-n // 8))
@@ -521,6 +567,8 @@ def extract_toeplitz(
         x.close()
         s.close()
     method = "fft-cyclic" if plan.nb * plan.mo == 1 else "fft-cyclic-tiled"
+    if four:
+        method = "fft-four-step failed the rounding guard; recomputed by " + method
     if fallback:
         method += f" + exact-integer fallback ({fallback} of {plan.mo} output blocks)"
     return ExtractionResult(
@@ -541,6 +589,48 @@ def extract_toeplitz(
         max_rounding_error=float(max_dev),
         rounding_threshold=thr,
         fallback_blocks=fallback,
+    )
+
+
+def _four_step(x: _Bits, s: _Bits, n: int, m: int, budget: int, thr: float, workers: int,
+               temp_dir: Any, progress: Callable[[int, int], None] | None, data: Any,
+               seed: Any, scheduler: Any) -> ExtractionResult | None:
+    """One long cyclic convolution by the four-step FFT; None if the rounding guard failed."""
+    from dicert import _fourstep
+
+    if temp_dir is not None and not Path(temp_dir).is_dir():
+        raise ParameterError(f"{temp_dir}: not a directory (temp_dir for the work files)")
+    fplan = _fourstep.plan_four_step(n, m, budget)
+    from dicert import cluster
+
+    scheduler = cluster.scheduler_from_env(scheduler)
+    if scheduler is not None:
+
+        output, max_dev, pieces = cluster.four_step(fplan, data, seed, scheduler=scheduler,
+                                                    temp_dir=temp_dir, progress=progress)
+    else:
+        output, max_dev, pieces = _fourstep.run_local(fplan, x, s, workers=workers,
+                                                      temp_dir=temp_dir, progress=progress)
+    if not max_dev <= thr:  # (a NaN fails this test too)
+        return None
+    return ExtractionResult(
+        output=output,
+        m_bits=m,
+        n_bits=n,
+        seed_bits_used=n + m - 1,
+        seed_bytes=s.size,
+        seed_sha256=s.sha256(),
+        input_sha256=x.sha256(-(-n // 8)),
+        output_sha256=hashlib.sha256(output).hexdigest(),
+        method="fft-four-step",
+        blocks=pieces,
+        input_block_bits=fplan.N1,
+        output_block_bits=fplan.N2,
+        fft_length=fplan.L,
+        passes=1,
+        max_rounding_error=float(max_dev),
+        rounding_threshold=thr,
+        fallback_blocks=0,
     )
 
 

@@ -497,7 +497,7 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
            seed: bytes | str | os.PathLike[str] | None = None,
            bits: str | os.PathLike[str] | None = None, public_key: Any = None,
            trusted_keys: Any = None, strict: bool = False,
-           find_bits: bool = True) -> VerifyReport:
+           find_bits: bool = True, scheduler: Any = None) -> VerifyReport:
     """Re-check an audit record; with the log and seed, re-derive every number.
 
     Parameters
@@ -519,6 +519,8 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
         Raise unless the record is authenticated and log, seed and bits were all checked.
     find_bits : bool
         Without ``bits``, check the bits file the record names (next to the record) if present.
+    scheduler : str or dask.distributed.Client, optional
+        Re-run the extraction's pieces on a dask cluster (:mod:`dicert.cluster`).
 
     Returns
     -------
@@ -680,7 +682,8 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
             if seed_data is not None and status in ("certified", "withheld"):
                 from dicert.extract import extract_toeplitz
 
-                res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits)
+                res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits,
+                                       scheduler=scheduler)
                 _require(res.output_sha256 == output_sha, "extractor.output_sha256",
                          "re-running the extractor on the log and seed gives other bits")
                 recomputed_output = bytes(res.output)

@@ -71,6 +71,7 @@ def certify_cmd(
     force: Annotated[bool, typer.Option("--force", help="Replace an earlier certification's --out folder (only after the new outputs are complete).")] = False,
     follow: Annotated[bool, typer.Option("--follow", help="Method pef, binary log: follow a growing log until the outcome is decided, its trailer arrives, or the idle timeout.")] = False,
     poll: Annotated[float | None, typer.Option("--poll", metavar="SECONDS", help="With --follow: pause between looks for new trials [default: 0.5].")] = None,
+    scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     idle_timeout: Annotated[float | None, typer.Option("--idle-timeout", metavar="SECONDS", help="With --follow: abort after this long without new trials; 0 waits for ever [default: 300].")] = None,
     allow_mixed_inputs: Annotated[bool, typer.Option("--allow-mixed-inputs", help="Accept a multi-file log with files of equal content, a file next to its .gz copy, or mixed formats (refused otherwise; recorded).")] = False,
     allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed already used in the chain or equal to the log (refused otherwise; recorded). A constant seed is always refused.")] = False,
@@ -90,7 +91,7 @@ def certify_cmd(
     with progress_bar() as bar:
         task = bar.add_task("following log" if follow else "reading log", total=None)
         result = certify(
-            log, protocol, seed, out, key=key, chain=chain, force=force,
+            log, protocol, seed, out, key=key, chain=chain, force=force, scheduler=scheduler or None,
             trusted_keys=trusted_keys, protocol_change=protocol_change,
             allow_mixed_inputs=allow_mixed_inputs, allow_seed_reuse=allow_seed_reuse,
             progress=lambda stage, done, total: bar.update(task, completed=done, total=total),

@@ -28,6 +28,9 @@ def extract_cmd(
     m_bits: Annotated[int, typer.Option("--bits", help="Output length m in bits.")],
     out: Annotated[Path, typer.Option("--out", help="Output file (ceil(m/8) bytes, zero-padded), written atomically.")],
     n_bits: Annotated[int | None, typer.Option("--input-bits", help="Use only the first N input bits (default: 8 x file size).")] = None,
+    memory_mib: Annotated[int | None, typer.Option("--memory-mib", help="Memory budget for the working arrays in MiB (default 512, whatever the input size).")] = None,
+    work_dir: Annotated[Path | None, typer.Option("--work-dir", help="Directory for the private temporary work files of large extractions (default: the system temporary directory; a RAM-backed tmpfs is fastest).")] = None,
+    scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the pieces of a large extraction on its workers (needs dicert[cluster]; --work-dir must be shared by all workers).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Hash N raw bits to M bits with the Toeplitz matrix T[i][j] = s[i - j + N - 1] over GF(2).
@@ -43,6 +46,10 @@ def extract_cmd(
         raise ParameterError(f"--bits must be a positive integer, got {m_bits}")
     if n_bits is not None and n_bits < 1:
         raise ParameterError(f"--input-bits must be a positive integer, got {n_bits}")
+    if memory_mib is not None and memory_mib < 1:
+        raise ParameterError(f"--memory-mib must be a positive integer, got {memory_mib}")
+    if work_dir is not None and not work_dir.is_dir():
+        raise ParameterError(f"{work_dir}: not a directory (--work-dir)")
     for p, opt in ((input_path, "--input"), (seed_path, "--seed")):
         if not p.exists():
             raise ParameterError(f"{p}: no such file ({opt})")
@@ -59,7 +66,9 @@ def extract_cmd(
     with progress_bar() as bar:
         task = bar.add_task("extracting", total=None)
         res = extract_toeplitz(input_path, seed_path, m_bits, n_bits=n_bits,
-                               progress=lambda d, t: bar.update(task, completed=d, total=t))
+                               progress=lambda d, t: bar.update(task, completed=d, total=t),
+                               memory_budget=None if memory_mib is None else memory_mib << 20,
+                               temp_dir=work_dir, scheduler=scheduler or None)
     elapsed = time.perf_counter() - t0
     atomic_write_bytes(out, res.output)
     summary = res.summary()

@@ -24,6 +24,7 @@ def inspect_cmd(
     block_error: Annotated[float, typer.Option("--block-error", help="Error per side of each block's interval.")] = 1e-3,
     plot: Annotated[Optional[Path], typer.Option("--plot", help="Write a plot of S per block to this file (PNG/PDF/SVG).")] = None,
     fmt: Annotated[Optional[str], typer.Option("--format", help="Force the input format (csv, binary, npz).")] = None,
+    scheduler: Annotated[Optional[str], typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: count and hash the log's files on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Read a trial log (streaming) and report counts, correlators, the CHSH value, its lower
@@ -41,12 +42,18 @@ def inspect_cmd(
                                  f"= {proto.gamma:g}; give one of them")
     from dicert.logs import summarize_log
 
-    with progress_bar() as bar:
-        task = bar.add_task("reading log", total=None)
-        summary = summarize_log(
-            log, block_trials=block_trials, digest=False, format=fmt,
-            progress=lambda done, total: bar.update(task, completed=done, total=total),
-        )
+    if scheduler:
+        from dicert.cluster import summarize_log as summarize_on_cluster
+
+        summary = summarize_on_cluster(log, scheduler=scheduler, block_trials=block_trials,
+                                       format=fmt)
+    else:
+        with progress_bar() as bar:
+            task = bar.add_task("reading log", total=None)
+            summary = summarize_log(
+                log, block_trials=block_trials, digest=False, format=fmt,
+                progress=lambda done, total: bar.update(task, completed=done, total=total),
+            )
     if proto is not None:
         design, source = proto.design, "declared in the protocol"
     elif gamma is not None:

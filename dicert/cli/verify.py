@@ -52,6 +52,7 @@ def verify_cmd(
     chain: Annotated[Path | None, typer.Option("--chain", help="Check every record of this beacon chain directory.")] = None,
     head: Annotated[str | None, typer.Option("--head", metavar="SHA256", help="With --chain: the published head digest; a chain without it was truncated.")] = None,
     strict: Annotated[bool, typer.Option("--strict", help="Fail (exit 1) unless authenticated and every artifact was checked.")] = False,
+    scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: re-run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     import re
@@ -71,7 +72,8 @@ def verify_cmd(
         if chain is not None:
             code = _chain(chain, pubkey, trusted_keys, head, strict, as_json)
         else:
-            code = _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json)
+            code = _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json,
+                           scheduler=scheduler or None)
     except VerificationError as exc:
         if as_json:
             emit_json({"verified": False, "result": "FAILED", "authenticated": False,
@@ -82,11 +84,12 @@ def verify_cmd(
         raise typer.Exit(code=code)
 
 
-def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool) -> int:
+def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool,
+            scheduler=None) -> int:
     from dicert.verify import verify
 
     rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
-                 trusted_keys=trusted_keys, strict=strict)
+                 trusted_keys=trusted_keys, strict=strict, scheduler=scheduler)
     if as_json:
         emit_json({
             "verified": rep.authenticated,

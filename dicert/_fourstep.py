@@ -1,0 +1,534 @@
+"""Toeplitz middle product by one long cyclic convolution, computed by the four-step FFT.
+
+Used by :mod:`dicert.extract` for large inputs. The whole convolution is ONE complex FFT of
+length L = N1 * N2 >= n + m - 1, so the cost grows like (n + m) log(n + m), and it is computed
+through blocks of bounded size:
+
+* The data is an N2 x N1 array (row j2 holds positions j2*N1 .. j2*N1 + N1 - 1), held in memory
+  when small and otherwise in a private temporary file (mode 0600, unlinked or removed when
+  done); only one block of rows or of columns is in memory at a time.
+* Forward transform (Bailey, "FFTs in external or hierarchical memory", J. Supercomputing 4,
+  23-35, 1990): FFTs of length N2 down each column, multiplication by the twiddle factors
+  w**(j1*k2) with w = exp(-2 pi i / L), FFTs of length N1 along each row. Row k2, column k1
+  then holds the spectrum at frequency k2 + N2*k1 (a permuted order, which is all a
+  convolution needs).
+* Both real sequences ride in one complex vector z = s' + i x (s' the seed placed so that the
+  wanted outputs land at positions 0 .. m-1, see :func:`_window`); with Z its transform, the
+  product of the two real spectra is P(k) = (Z(k)^2 - conj(Z(-k))^2) / (4i) (common practice:
+  the "two real FFTs for the price of one complex FFT" identity). Frequency -k sits in row
+  (N2 - k2) mod N2, so rows are processed in pairs.
+* The inverse runs the same steps backwards with conjugate twiddles.
+
+Every piece (a block of rows or columns) is independent within its pass, which is what lets
+the passes run as tasks on a cluster (:mod:`dicert.cluster`) with the array in a file all
+workers see.
+
+Exactness: the values are integers in [0, min(n, m)]; each is rounded and the largest distance
+from an integer is returned, so the caller can apply its rounding guard.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import math
+import mmap
+import os
+import tempfile
+from typing import Any
+
+import numpy as np
+
+#: Bytes per complex value of the working array.
+_C = 16
+#: Target size in bytes of one block of rows or columns (a pass holds about six at once).
+_PIECE = 32 << 20
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class FourStepPlan:
+    n: int
+    m: int
+    N1: int  # row length (power of two >= 8)
+    N2: int  # column length (5-smooth)
+    slab: int  # columns per column block (power of two >= 8 dividing N1)
+    rows: int  # row pairs per row block
+    fill: int  # rows per block when filling
+    in_memory: bool
+
+    @property
+    def H(self) -> int:
+        """Rows 0 .. H of the product are stored; the others follow by symmetry."""
+        return self.N2 // 2
+
+    @property
+    def L(self) -> int:
+        return self.N1 * self.N2
+
+
+def plan_four_step(n: int, m: int, budget: int, row_length: int | None = None) -> FourStepPlan:
+    """Shape of the computation for input n, output m and a memory budget in bytes."""
+    from dicert.extract import _fast_length
+
+    total = n + m - 1
+    if row_length is None:
+        N1 = 1 << max(9, min(17, math.ceil(math.log2(math.sqrt(8 * total)))))
+    else:
+        N1 = int(row_length)
+        if N1 < 8 or N1 & (N1 - 1):
+            raise ValueError("row_length must be a power of two >= 8")
+    N2 = _fast_length(-(-total // N1))
+    # Blocks of a fixed size (not growing with n, so memory stays flat), within the budget:
+    # a pass holds about six blocks at once.
+    piece = max(1, min(_PIECE, budget // 12))
+    slab = 1 << max(3, min(N1.bit_length() - 1, (piece // (_C * N2)).bit_length() - 1))
+    rows = max(1, piece // (_C * N1))
+    fill = max(1, min(N2, piece // (4 * N1)))
+    in_memory = _C * N1 * N2 <= budget // 4
+    return FourStepPlan(n=n, m=m, N1=N1, N2=N2, slab=slab, rows=rows, fill=fill,
+                        in_memory=in_memory)
+
+
+# --------------------------------------------------------------------------- storage
+
+
+class ArrayStore:
+    """The N2 x N1 complex array in memory."""
+
+    def __init__(self, N2: int, N1: int) -> None:
+        self.a = np.zeros((N2, N1), dtype=np.complex128)
+
+    def rows(self, r0: int, r1: int) -> np.ndarray:
+        return self.a[r0:r1].copy()
+
+    def put_rows(self, r0: int, v: np.ndarray) -> None:
+        self.a[r0:r0 + v.shape[0]] = v
+
+    def cols(self, c0: int, c1: int, nrows: int | None = None) -> np.ndarray:
+        return self.a[:nrows, c0:c1].copy()
+
+    def put_cols(self, c0: int, v: np.ndarray) -> None:
+        self.a[:, c0:c0 + v.shape[1]] = v
+
+    def close(self) -> None:
+        pass
+
+
+class FileStore:
+    """The N2 x N1 complex array in a file, stored as N1 / w column blocks ("slabs") of w
+    columns, each an N2 x w row-major array. A slab is one contiguous read or write; a block
+    of rows is one contiguous piece per slab. Only explicit reads and writes (no mapping), so
+    the file's pages never count as this process's memory."""
+
+    def __init__(self, N2: int, N1: int, w: int, *, path: str | None = None,
+                 fd: int | None = None, create: bool = False) -> None:
+        self.N2, self.N1, self.w, self.path = N2, N1, w, path
+        self.size = _C * N1 * N2
+        self._own = fd is None
+        self._fd = fd
+        if create:
+            # Reserve the space now: a full disk is then an error before any work is done.
+            os.posix_fallocate(self.fd, 0, self.size)
+
+    @property
+    def fd(self) -> int:
+        if self._fd is None:  # opened on first use (a copy sent to a worker opens its own)
+            self._fd = os.open(self.path, os.O_RDWR)
+        return self._fd
+
+    def __getstate__(self) -> dict:
+        if self.path is None:
+            raise TypeError("an anonymous temporary file cannot be shared with other processes")
+        return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
+
+    def __setstate__(self, st: dict) -> None:
+        self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
+        self.size = _C * self.N1 * self.N2
+        self._own, self._fd = True, None
+
+    def _read(self, buf: np.ndarray, off: int) -> None:
+        _pread_all(self.fd, buf, off)
+
+    def _write(self, buf: np.ndarray, off: int) -> None:
+        _pwrite_all(self.fd, buf, off)
+
+    def _slab_offset(self, q: int) -> int:
+        return q * self.N2 * self.w * _C
+
+    def rows(self, r0: int, r1: int) -> np.ndarray:
+        S, w = self.N1 // self.w, self.w
+        buf = np.empty((S, r1 - r0, w), dtype=np.complex128)
+        for q in range(S):
+            self._read(buf[q], self._slab_offset(q) + r0 * w * _C)
+        return np.ascontiguousarray(buf.transpose(1, 0, 2)).reshape(r1 - r0, self.N1)
+
+    def put_rows(self, r0: int, v: np.ndarray) -> None:
+        w = self.w
+        for q in range(self.N1 // w):
+            self._write(v[:, q * w:(q + 1) * w], self._slab_offset(q) + r0 * w * _C)
+
+    def cols(self, c0: int, c1: int, nrows: int | None = None) -> np.ndarray:
+        """Columns [c0, c1) (one whole slab), rows 0 .. nrows - 1 (default all)."""
+        if c0 % self.w or c1 - c0 != self.w:
+            raise ValueError("column blocks must be whole slabs")
+        out = np.empty((self.N2 if nrows is None else nrows, self.w), dtype=np.complex128)
+        self._read(out, self._slab_offset(c0 // self.w))
+        return out
+
+    def put_cols(self, c0: int, v: np.ndarray) -> None:
+        self._write(v, self._slab_offset(c0 // self.w))
+
+    def close(self) -> None:
+        if self._fd is not None and self._own:
+            with contextlib.suppress(OSError):
+                os.close(self._fd)
+        self._fd = None
+
+
+def _anonymous_fd(temp_dir: Any) -> int:
+    """An open private temporary file with no name (nothing is left behind, even if the
+    process dies)."""
+    fh = tempfile.TemporaryFile(prefix=".dicert-extract-", dir=temp_dir)
+    try:
+        fd = os.dup(fh.fileno())
+    finally:
+        fh.close()
+    os.fchmod(fd, 0o600)
+    return fd
+
+
+def open_store(plan: FourStepPlan, rows: int, temp_dir: Any = None) -> ArrayStore | FileStore:
+    """A fresh zeroed store of ``rows`` x N1: in memory if the whole array fits a quarter of
+    the budget, else an anonymous temporary file."""
+    if plan.in_memory:
+        return ArrayStore(rows, plan.N1)
+    store = FileStore(rows, plan.N1, plan.slab, fd=_anonymous_fd(temp_dir), create=True)
+    store._own = True
+    return store
+
+
+def named_store(plan: FourStepPlan, rows: int, temp_dir: Any) -> FileStore:
+    """A fresh zeroed store in a named private file (for workers that open it by path)."""
+    fd, path = tempfile.mkstemp(prefix=".dicert-extract-", suffix=".part", dir=temp_dir)
+    os.close(fd)
+    return FileStore(rows, plan.N1, plan.slab, path=path, create=True)
+
+
+class PackedStore:
+    """s' and x packed 8 positions per byte, in the slab layout of :class:`FileStore`
+    (slab q, row j2: w / 8 bytes), so a column block is one contiguous read: L / 4 bytes in
+    all, in memory or in a private file."""
+
+    def __init__(self, plan: FourStepPlan, *, path: str | None = None, fd: int | None = None,
+                 memory: bool = False) -> None:
+        self.N2, self.N1, self.w, self.path = plan.N2, plan.N1, plan.slab, path
+        self.S = self.N1 // self.w
+        self.part = self.N2 * self.w // 8  # bytes of one slab of one source
+        self.mem = np.zeros(2 * self.S * self.part, dtype=np.uint8) if memory else None
+        self._fd = fd
+        self._own = True
+
+    @property
+    def fd(self) -> int:
+        if self._fd is None:
+            self._fd = os.open(self.path, os.O_RDWR)
+        return self._fd
+
+    def __getstate__(self) -> dict:
+        if self.path is None:
+            raise TypeError("an anonymous temporary file cannot be shared with other processes")
+        return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
+
+    def __setstate__(self, st: dict) -> None:
+        self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
+        self.S, self.part = self.N1 // self.w, self.N2 * self.w // 8
+        self.mem, self._fd, self._own = None, None, True
+
+    def put_rows(self, r0: int, sp: np.ndarray, xp: np.ndarray) -> None:
+        """Rows r0 .. r0 + len - 1, each given as N1 / 8 packed bytes per source."""
+        wb = self.w // 8
+        for k, rows in enumerate((sp, xp)):
+            for q in range(self.S):
+                off = (k * self.S + q) * self.part + r0 * wb
+                chunk = np.ascontiguousarray(rows[:, q * wb:(q + 1) * wb]).reshape(-1)
+                if self.mem is not None:
+                    self.mem[off: off + chunk.size] = chunk
+                else:
+                    _pwrite_all(self.fd, chunk, off)
+
+    def slab(self, q: int) -> tuple[np.ndarray, np.ndarray]:
+        """The packed s' and x of slab q, each N2 x w / 8 bytes."""
+        out = []
+        for k in (0, 1):
+            off = (k * self.S + q) * self.part
+            if self.mem is not None:
+                a = self.mem[off: off + self.part]
+            else:
+                a = np.empty(self.part, dtype=np.uint8)
+                _pread_all(self.fd, a, off)
+            out.append(a.reshape(self.N2, self.w // 8))
+        return out[0], out[1]
+
+    def close(self) -> None:
+        if self._fd is not None and self._own:
+            with contextlib.suppress(OSError):
+                os.close(self._fd)
+        self._fd = None
+
+
+def _pread_all(fd: int, buf: np.ndarray, off: int) -> None:
+    view = memoryview(buf).cast("B")
+    pos = 0
+    while pos < len(view):
+        got = os.preadv(fd, [view[pos:]], off + pos)
+        if got <= 0:
+            raise OSError("short read from the extractor's work file")
+        pos += got
+
+
+def _pwrite_all(fd: int, buf: np.ndarray, off: int) -> None:
+    view = memoryview(np.ascontiguousarray(buf)).cast("B")
+    pos = 0
+    while pos < len(view):
+        pos += os.pwrite(fd, view[pos:], off + pos)
+
+
+def pack_sources(plan: FourStepPlan, x: Any, s: Any, dst: PackedStore, r0: int,
+                 r1: int) -> None:
+    """Rows [r0, r1) of s' and x (see :func:`_window`) into the packed store."""
+    N1 = plan.N1
+    re, im = _window(plan, x, s, r0 * N1, (r1 - r0) * N1)
+    dst.put_rows(r0, np.packbits(re).reshape(r1 - r0, N1 // 8),
+                 np.packbits(im).reshape(r1 - r0, N1 // 8))
+
+
+def open_packed(plan: FourStepPlan, temp_dir: Any = None, *, named: bool = False) -> PackedStore:
+    if plan.in_memory and not named:
+        return PackedStore(plan, memory=True)
+    if named:
+        fd, path = tempfile.mkstemp(prefix=".dicert-extract-", suffix=".part", dir=temp_dir)
+        os.posix_fallocate(fd, 0, plan.L // 4)
+        os.close(fd)
+        return PackedStore(plan, path=path)
+    fd = _anonymous_fd(temp_dir)
+    os.posix_fallocate(fd, 0, plan.L // 4)
+    return PackedStore(plan, fd=fd)
+
+
+# --------------------------------------------------------------------------- twiddles
+
+
+def _twiddle(t: np.ndarray, c0: int, L: int, sign: int) -> None:
+    """t[k2, j1 - c0] *= exp(sign * 2 pi i * (j1 * k2 mod L) / L), in place.
+
+    With k2 = h * S + l the factor is the product of exp(.. (j1 * h * S mod L) ..) and
+    exp(.. (j1 * l mod L) ..), each from an exactly reduced integer angle (error ~2 ulp).
+    """
+    N2, w = t.shape
+    S = min(64, N2 & -N2)  # a power of two dividing N2
+    j = np.arange(c0, c0 + w, dtype=np.int64)[None, :]
+    hi = np.arange(N2 // S, dtype=np.int64)[:, None] * S
+    lo = np.arange(S, dtype=np.int64)[:, None]
+    v = t.reshape(N2 // S, S, w)
+    v *= np.exp((sign * 2j * np.pi / L) * ((j * hi) % L))[:, None, :]
+    v *= np.exp((sign * 2j * np.pi / L) * ((j * lo) % L))[None, :, :]
+
+
+# --------------------------------------------------------------------------- passes
+
+
+def _window(plan: FourStepPlan, x: Any, s: Any, P0: int, cnt: int) -> tuple[np.ndarray, np.ndarray]:
+    """Positions [P0, P0 + cnt) of s' and of x as 0/1 uint8 arrays.
+
+    x[p] for p < n; the seed is rotated by n - 1 places so that position p holds
+    s[(p + n - 1) mod L] where that index is below n + m - 1 (else 0). Then the cyclic
+    convolution c'(p) = sum_j x[j] s'((p - j) mod L) equals sum_j s[p - j + n - 1] x[j] for
+    0 <= p < m with no wrap-around, i.e. the wanted output y[p].
+    """
+    n, m, L = plan.n, plan.m, plan.L
+    re = np.zeros(cnt, dtype=np.uint8)
+    im = np.zeros(cnt, dtype=np.uint8)
+    # (source, destination, first position, last position + 1, source index minus position)
+    for src, part, lo, hi, shift in ((s, re, 0, m, n - 1), (s, re, L - n + 1, L, n - 1 - L),
+                                     (x, im, 0, n, 0)):
+        a, b = max(lo, P0), min(hi, P0 + cnt)
+        if a < b:
+            i0, i1 = a + shift, b + shift
+            raw = src.read_bytes(i0 // 8, -(-i1 // 8))
+            part[a - P0: b - P0] = np.unpackbits(raw)[i0 % 8: i0 % 8 + (b - a)]
+    return re, im
+
+
+def columns_first(plan: FourStepPlan, packed: PackedStore, dst: Any, c0: int, c1: int,
+                  workers: int = 1) -> None:
+    """Columns [c0, c1) (one slab) of z = s' + i x from the packed bits: length-N2 FFTs down
+    each column, times the twiddles w**(j1*k2)."""
+    import scipy.fft as sfft
+
+    sp, xp = packed.slab(c0 // plan.slab)
+    t = np.empty((plan.N2, c1 - c0), dtype=np.complex128)
+    t.real = np.unpackbits(sp, axis=1)
+    t.imag = np.unpackbits(xp, axis=1)
+    t = sfft.fft(t, axis=0, overwrite_x=True, workers=workers)
+    _twiddle(t, c0, plan.L, -1)
+    dst.put_cols(c0, t)
+
+
+def _product(Z: np.ndarray, partner: np.ndarray) -> np.ndarray:
+    """Z^2 - conj(partner)^2: 4i times the spectrum of s' * x from that of s' + i x (the
+    factor is removed at the end, where the output is 0.25 * the imaginary part)."""
+    out = np.conj(partner)
+    d = Z - out
+    out += Z
+    out *= d
+    return out
+
+
+def rows_middle(plan: FourStepPlan, src: Any, dst: Any, r0: int, r1: int,
+                workers: int = 1) -> None:
+    """Row FFTs, spectrum product, inverse row FFTs, for lead rows [r0, r1).
+
+    Lead rows are 0 .. N2 // 2; row r pairs with row (N2 - r) mod N2, which holds the
+    frequencies -k of row r (reversed; row 0 and, for even N2, row N2/2 pair with themselves).
+    """
+    import scipy.fft as sfft
+
+    N2 = plan.N2
+    for r in ((0, N2 // 2) if N2 % 2 == 0 and N2 > 1 else (0,)):
+        if r0 <= r < r1:
+            Z = sfft.fft(src.rows(r, r + 1)[0], workers=workers)
+            partner = np.roll(Z[::-1], 1) if r == 0 else Z[::-1]
+            dst.put_rows(r, sfft.ifft(_product(Z, partner), workers=workers)[None, :])
+    lo = max(r0, 1)
+    hi = min(r1, (N2 + 1) // 2)  # lead rows with a distinct partner: 1 .. ceil(N2/2) - 1
+    if hi <= lo:
+        return
+    X = sfft.fft(src.rows(lo, hi), axis=1, overwrite_x=True, workers=workers)
+    Y = sfft.fft(src.rows(N2 - hi + 1, N2 - lo + 1)[::-1], axis=1, overwrite_x=True,
+                 workers=workers)
+    # Only the lead rows are kept: the product spectrum is that of a real sequence, so the
+    # partner rows follow from them (see :func:`columns_inverse`).
+    PX = _product(X, Y[:, ::-1])
+    del X, Y
+    dst.put_rows(lo, sfft.ifft(PX, axis=1, overwrite_x=True, workers=workers))
+
+
+def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
+                    workers: int = 1) -> tuple[np.ndarray, float]:
+    """Conjugate twiddles and inverse column FFTs of columns [c0, c1); returns the packed
+    output bits of those columns for rows 0 .. J-1 (J = ceil(m / N1)), shape (J, (c1-c0)/8),
+    and the largest distance of a wanted value from an integer."""
+    import scipy.fft as sfft
+
+    N1, m = plan.N1, plan.m
+    J = -(-m // N1)
+    N2, H = plan.N2, plan.H
+    t = np.empty((N2, c1 - c0), dtype=np.complex128)
+    t[:H + 1] = src.cols(c0, c1, H + 1)
+    # Q(-k) = -conj(Q(k)) for the stored Q = 4i x (spectrum of a real sequence), hence for the
+    # row inverse transforms E: E[N2 - k2, j1] = -exp(-2 pi i j1 / N1) conj(E[k2, j1]).
+    if N2 - 1 > H:
+        f = -np.exp((-2j * np.pi / N1) * np.arange(c0, c1))
+        t[H + 1:] = f[None, :] * np.conj(t[1: N2 - H][::-1])
+    _twiddle(t, c0, plan.L, +1)
+    t = sfft.ifft(t, axis=0, overwrite_x=True, workers=workers)
+    vals = 0.25 * t.imag[:J]  # (J, w): position j2*N1 + c0 + col
+    del t
+    pos = (np.arange(J, dtype=np.int64) * N1)[:, None] + np.arange(c0, c1)[None, :]
+    wanted = pos < m
+    r = np.rint(vals)
+    dev = np.abs(vals - r)
+    dev = float(dev[wanted].max()) if wanted.any() else 0.0
+    if not math.isfinite(dev):
+        dev = math.inf
+    bits = (r.astype(np.int64) & 1).astype(np.uint8)
+    bits[~wanted] = 0
+    return np.packbits(bits, axis=1), dev
+
+
+# --------------------------------------------------------------------------- local driver
+
+
+def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir: Any = None,
+              progress: Any = None) -> tuple[bytes, float, int]:
+    """The whole computation in this process; returns (output bytes, max deviation, pieces).
+
+    With ``workers`` > 1, two pieces of a pass run at once on two threads (numpy, the FFTs and
+    the file reads and writes release the GIL), so one piece's reads and writes overlap the
+    other's arithmetic.
+    """
+    import threading
+    from concurrent.futures import ThreadPoolExecutor
+
+    pieces = plan_pieces(plan)
+    total = sum(len(v) for v in pieces.values())
+    done = 0
+    lock = threading.Lock()
+
+    def tick() -> None:
+        nonlocal done
+        with lock:
+            done += 1
+            if progress is not None:
+                progress(done, total)
+
+    threads = 2 if workers > 1 else 1
+    fft_workers = 1 if threads > 1 else workers
+    pool = ThreadPoolExecutor(max_workers=threads)
+
+    def each(fn: Any, jobs: list[tuple[int, int]]) -> list[Any]:
+        def run(job: tuple[int, int]) -> Any:
+            res = fn(*job)
+            tick()
+            return res
+        return list(pool.map(run, jobs))
+
+    # One work array: the middle pass writes its rows in place (each row is read once, before
+    # it is overwritten, and the threads' row blocks are disjoint).
+    opened: list[Any] = []
+    try:
+        x.read_bytes(0, 1)  # open the sources here, not in two threads at once
+        s.read_bytes(0, 1)
+        packed = open_packed(plan, temp_dir)
+        opened.append(packed)
+        each(lambda r0, r1: pack_sources(plan, x, s, packed, r0, r1), pieces["pack"])
+        a = open_store(plan, plan.N2, temp_dir)
+        opened.append(a)
+        each(lambda c0, c1: columns_first(plan, packed, a, c0, c1, fft_workers),
+             pieces["first"])
+        packed.close()
+        each(lambda r0, r1: rows_middle(plan, a, a, r0, r1, fft_workers), pieces["middle"])
+        got = each(lambda c0, c1: columns_inverse(plan, a, c0, c1, fft_workers),
+                   pieces["inverse"])
+        out, dev = assemble(plan, got, pieces["inverse"])
+    finally:
+        pool.shutdown()
+        for st in opened:
+            st.close()
+    return out, dev, total
+
+
+def plan_pieces(plan: FourStepPlan) -> dict[str, list[tuple[int, int]]]:
+    """The independent pieces of each pass, in order."""
+    N1, N2 = plan.N1, plan.N2
+    slabs = [(c, c + plan.slab) for c in range(0, N1, plan.slab)]
+    leads = plan.H + 1
+    return {
+        "pack": [(r, min(r + plan.fill, N2)) for r in range(0, N2, plan.fill)],
+        "first": slabs,
+        "middle": [(r, min(r + plan.rows, leads)) for r in range(0, leads, plan.rows)],
+        "inverse": slabs,
+    }
+
+
+def assemble(plan: FourStepPlan, pieces: Any, slabs: list[tuple[int, int]],
+             tick: Any = None) -> tuple[bytes, float]:
+    J = -(-plan.m // plan.N1)
+    out = np.zeros((J, plan.N1 // 8), dtype=np.uint8)
+    dev = 0.0
+    for (c0, c1), (packed, d) in zip(slabs, pieces, strict=True):
+        out[:, c0 // 8: c1 // 8] = packed
+        dev = max(dev, d)
+        if tick is not None:
+            tick()
+    return out.reshape(-1)[: -(-plan.m // 8)].tobytes(), dev

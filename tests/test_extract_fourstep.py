@@ -1,0 +1,170 @@
+"""The four-step (bounded-memory) path of dicert.extract against the dense definition.
+
+The reference is the dense GF(2) product with scipy.linalg.toeplitz (the oracle of
+test_extract.py; common practice), the tiled path, and the pinned digests of fixed-seed runs.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from dicert import _fourstep
+from dicert.errors import ParameterError
+from dicert.extract import MEMORY_BUDGET, extract_toeplitz
+
+from test_extract import oracle, random_case
+
+
+@pytest.mark.parametrize(
+    ("n", "m", "budget"),
+    [
+        (1, 1, 1),  # one row (N2 = 1)
+        (8, 1, 1),
+        (13, 40, 1),  # m > n, n not a multiple of 8
+        (999, 333, 1),  # N2 = 3 (odd: every row but 0 has a distinct partner)
+        (70, 4500, 1),  # N2 = 9, m >> n
+        (5000, 3000, 1),  # N2 = 16 (even: row N2/2 pairs with itself)
+        (5000, 3000, 1 << 29),  # whole array in memory
+        (36764, 200, 1),  # N2 = 40, most rows hold no wanted output
+        (12000, 2500, 500_000),  # larger blocks, work array in files
+    ],
+)
+def test_four_step_matches_dense_oracle(n, m, budget, rng, tmp_path):
+    x, s = random_case(rng, n, m, 1)
+    res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=budget,
+                           temp_dir=tmp_path)
+    assert res.method == "fft-four-step"
+    assert res.output == oracle(x, s, n, m)
+    assert res.fft_length >= n + m - 1 and res.max_rounding_error <= 0.25
+    # The work files are anonymous: nothing is left in (or ever named in) the directory.
+    assert os.listdir(tmp_path) == []
+
+
+def test_four_step_reproduces_pinned_digests():
+    # Same fixed-seed runs and digests as test_known_answers_pinned_by_sha256 (test_extract.py).
+    rng = np.random.default_rng(20240401)
+    x = rng.integers(0, 256, 512, dtype=np.uint8).tobytes()
+    s = rng.integers(0, 256, 640, dtype=np.uint8).tobytes()
+    for budget in (1, None):
+        res = extract_toeplitz(x, s, 1000, strategy="four-step", memory_budget=budget)
+        assert res.output_sha256 == (
+            "355621787c0664178d9f51f8847276ac03f697abde491001d50028b1f17967ea")
+    rng = np.random.default_rng(7)
+    x = rng.integers(0, 256, 8193, dtype=np.uint8).tobytes()
+    s = rng.integers(0, 256, 9000, dtype=np.uint8).tobytes()
+    res = extract_toeplitz(x, s, 777, n_bits=65539, strategy="four-step", memory_budget=1)
+    assert res.output_sha256 == "c23dc0a4cd0b7bfdff3e2e43a261ebc132a15dd940f21cedb9712a3fa7000e5d"
+
+
+@settings(max_examples=25, deadline=None)
+@given(n=st.integers(1, 3000), m=st.integers(1, 3000), budget=st.sampled_from([1, 1 << 20]),
+       data=st.data())
+def test_four_step_equals_tiled(n, m, budget, data):
+    # Two independent computations of the same dense definition must agree bit for bit.
+    x = data.draw(st.binary(min_size=-(-n // 8), max_size=-(-n // 8)))
+    s = data.draw(st.binary(min_size=-(-(n + m - 1) // 8), max_size=-(-(n + m - 1) // 8)))
+    four = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=budget)
+    tiled = extract_toeplitz(x, s, m, n_bits=n, block_bits=97)
+    assert four.output == tiled.output
+
+
+def test_auto_uses_four_step_above_the_single_limit(monkeypatch, rng):
+    import dicert.extract as ex
+
+    monkeypatch.setattr(ex, "SINGLE_LIMIT", 1000)
+    x, s = random_case(rng, 2000, 700)
+    res = extract_toeplitz(x, s, 700)
+    assert res.method == "fft-four-step"
+    assert res.output == oracle(x, s, 2000, 700)
+
+
+def test_guard_failure_recomputes_exactly(rng):
+    # A negative threshold fails every guard: the tiled recomputation and its exact-integer
+    # fallback must still give the dense result, and the method must say so.
+    n, m = 1500, 700
+    x, s = random_case(rng, n, m)
+    res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", rounding_threshold=-1.0)
+    assert res.method.startswith("fft-four-step failed the rounding guard")
+    assert "exact-integer fallback" in res.method
+    assert res.output == oracle(x, s, n, m)
+
+
+def test_default_budget_does_not_grow_with_the_input():
+    # Plans for 2^24 ... 2^34 input bits all keep their blocks within fixed sizes.
+    piece = _fourstep._PIECE
+    for k in (24, 28, 30, 32, 34):
+        n = 1 << k
+        plan = _fourstep.plan_four_step(n, n // 2, MEMORY_BUDGET)
+        assert plan.L >= n + n // 2 - 1
+        assert 16 * plan.N2 * plan.slab <= piece or plan.slab == 8
+        assert 16 * plan.N1 * plan.rows <= piece or plan.rows == 1
+        assert 4 * plan.N1 * plan.fill <= piece
+        assert 12 * piece <= MEMORY_BUDGET
+        assert not plan.in_memory
+
+
+def test_named_work_file_is_private(tmp_path):
+    # The named files used with a cluster: private, and their space reserved up front.
+    plan = _fourstep.plan_four_step(5000, 3000, 1)
+    stores = [_fourstep.named_store(plan, plan.N2, tmp_path),
+              _fourstep.open_packed(plan, tmp_path, named=True)]
+    try:
+        for st, size in zip(stores, (16 * plan.L, plan.L // 4), strict=True):
+            assert os.stat(st.path).st_mode & 0o777 == 0o600
+            assert os.path.getsize(st.path) == size
+    finally:
+        for st in stores:
+            st.close()
+            os.unlink(st.path)
+
+
+def test_bad_strategy():
+    with pytest.raises(ParameterError, match="strategy must be one of"):
+        extract_toeplitz(b"\x01", b"\x01", 1, strategy="magic")
+    with pytest.raises(ParameterError, match="memory_budget"):
+        extract_toeplitz(b"\x01", b"\x01", 1, memory_budget=0)
+    with pytest.raises(ParameterError, match="not a directory"):
+        extract_toeplitz(b"\x01", b"\x01", 1, strategy="four-step", temp_dir="/nonexistent/x")
+
+
+def test_progress_counts_every_piece(rng):
+    x, s = random_case(rng, 3000, 1000)
+    calls = []
+    res = extract_toeplitz(x, s, 1000, strategy="four-step", memory_budget=1,
+                           progress=lambda d, t: calls.append((d, t)))
+    assert calls[-1] == (res.blocks, res.blocks)
+    assert [d for d, _ in calls] == list(range(1, res.blocks + 1))
+    assert math.prod((res.input_block_bits, res.output_block_bits)) == res.fft_length
+
+
+def test_certify_with_spilled_bits_and_four_step_leaves_only_outputs(tmp_path, monkeypatch):
+    # The raw bits spill to a private file and the extraction uses its anonymous work files in
+    # the output directory; afterwards only the two outputs remain, and the bits equal a run
+    # with neither (the in-memory single convolution).
+    from helpers import sim_trials, uniform_protocol
+
+    import dicert.certify as certify_mod
+    import dicert.extract as ex
+    from dicert.certify import BITS_NAME, RECORD_NAME, certify
+    from dicert.logs import write_log
+
+    log = tmp_path / "log.btl"
+    write_log(log, sim_trials(20_000, seed=11))
+    seed = np.random.default_rng(5).bytes(20_000 * 4 // 8 + 64)
+    plain = certify(log, uniform_protocol(), seed, tmp_path / "plain")
+    assert plain.status == "certified" and plain.record["extractor"]["method"] == "fft-cyclic"
+    monkeypatch.setattr(certify_mod, "_SPILL_BYTES", 100)
+    monkeypatch.setattr(ex, "SINGLE_LIMIT", 1000)
+    monkeypatch.setattr(ex, "MEMORY_BUDGET", 1 << 16)  # work array in files, not in memory
+    out = tmp_path / "spill"
+    out.mkdir()
+    res = certify(log, uniform_protocol(), seed, out)
+    assert res.record["extractor"]["method"] == "fft-four-step"
+    assert (out / BITS_NAME).read_bytes() == (tmp_path / "plain" / BITS_NAME).read_bytes()
+    assert sorted(p.name for p in out.iterdir()) == sorted([BITS_NAME, RECORD_NAME])
