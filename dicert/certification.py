@@ -64,7 +64,7 @@ import os
 import time
 from collections.abc import Iterator, Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from dicert._display import displayed
 from dicert.errors import DicertError, LogFormatError, ParameterError
@@ -118,6 +118,9 @@ from dicert.stages.chaining import (  # noqa: F401 (also re-exported: the old im
     _operator_trust,
     pulse_name,
 )
+
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 #: Exit code of ``dicert certify`` when the protocol aborts (a normal, recorded outcome).
 EXIT_ABORTED = 3
@@ -283,6 +286,41 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
     timings: dict[str, float] = {}
     started = _now(clock)
     t0 = time.perf_counter()
+    run = read_inputs(protocol, seed, out_dir, key=key, chain=chain, trusted_keys=trusted_keys,
+                      protocol_change=protocol_change)
+    timings["setup"] = time.perf_counter() - t0
+    with contextlib.ExitStack() as held:
+        state = lock_outputs(held, run, force=force, protocol_change=protocol_change)
+        return _certify_locked(
+            log=log, run=run, state=state, protocol_change=protocol_change, force=force,
+            clock=clock, progress=progress, follow=follow, poll_s=poll_s,
+            idle_timeout_s=idle_timeout_s, timings=timings, started=started,
+            allow_mixed_inputs=allow_mixed_inputs, allow_seed_reuse=allow_seed_reuse,
+            scheduler=scheduler)
+
+
+# --------------------------------------------------------------------------- stages of certify
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class RunInputs:
+    """What certify has read and checked before it takes any lock."""
+
+    proto: Protocol
+    seed_bytes: bytes
+    seed_label: str
+    seed_sha: str
+    signer: Any  # Ed25519 private key or None
+    out: Path
+    chain_dir: Path | None
+    trust: Any  # dicert.audit.trust.TrustSet (with a chain) or None
+
+
+def read_inputs(protocol: Protocol | str | os.PathLike[str], seed: bytes | str | os.PathLike[str],
+                out_dir: str | os.PathLike[str], *, key: Any = None,
+                chain: str | os.PathLike[str] | None = None, trusted_keys: Any = None,
+                protocol_change: str | None = None) -> RunInputs:
+    """Stage 0: load the protocol, seed and key, and check the output and chain paths."""
     proto = _load(protocol)
     seed_bytes, seed_label = read_seed(seed)
     seed_sha = hashlib.sha256(seed_bytes).hexdigest()
@@ -299,54 +337,164 @@ def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
             raise ParameterError(f"{out}: --out and --chain must be separate folders (neither "
                                  "inside the other)")
     trust = _operator_trust(signer, trusted_keys, chain_dir, protocol_change)
-    timings["setup"] = time.perf_counter() - t0
+    return RunInputs(proto=proto, seed_bytes=seed_bytes, seed_label=seed_label,
+                     seed_sha=seed_sha, signer=signer, out=out, chain_dir=chain_dir,
+                     trust=trust)
 
+
+def lock_outputs(held: contextlib.ExitStack, run: RunInputs, *, force: bool,
+                 protocol_change: str | None) -> Any:
+    """Take the locks for the whole run (chain first), clean up, check the chain and --out.
+
+    Returns the chain's state (:func:`dicert.audit.chain.chain_state`) or None.
+    """
     from dicert import _outputs as outputs
 
-    with contextlib.ExitStack() as held:
-        # Locks for the whole run, chain first: a holder knows no other run is active.
-        state = None
-        if chain_dir is not None:
-            outputs.make_public_dir(chain_dir)
-            held.enter_context(outputs.held_lock(chain_dir / outputs.CHAIN_LOCK_NAME))
-            outputs.recover_chain(chain_dir)
-            state = _check_chain(chain_dir, trust, signer, seed_sha, seed_label, proto,
-                                 protocol_change)
-        try:
-            out.parent.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise outputs.output_error(out.parent, exc) from None
-        held.enter_context(outputs.held_lock(outputs.out_lock_path(out)))
-        outputs.clean_stale(out)
-        outputs.sweep_siblings(out)
-        _check_out(out, force)
-        return _certify_locked(
-            log=log, proto=proto, seed_bytes=seed_bytes, seed_label=seed_label,
-            seed_sha=seed_sha, signer=signer, out=out, chain_dir=chain_dir, state=state,
-            protocol_change=protocol_change, force=force, clock=clock, progress=progress,
-            follow=follow, poll_s=poll_s, idle_timeout_s=idle_timeout_s, timings=timings,
-            started=started, allow_mixed_inputs=allow_mixed_inputs,
-            allow_seed_reuse=allow_seed_reuse, scheduler=scheduler)
+    state = None
+    out, chain_dir = run.out, run.chain_dir
+    if chain_dir is not None:
+        outputs.make_public_dir(chain_dir)
+        held.enter_context(outputs.held_lock(chain_dir / outputs.CHAIN_LOCK_NAME))
+        outputs.recover_chain(chain_dir)
+        state = _check_chain(chain_dir, run.trust, run.signer, run.seed_sha, run.seed_label,
+                             run.proto, protocol_change)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise outputs.output_error(out.parent, exc) from None
+    held.enter_context(outputs.held_lock(outputs.out_lock_path(out)))
+    outputs.clean_stale(out)
+    outputs.sweep_siblings(out)
+    _check_out(out, force)
+    return state
 
 
-def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
-                    seed_sha: str, signer: Any, out: Path, chain_dir: Path | None, state: Any,
-                    protocol_change: str | None, force: bool, clock: Clock | None,
-                    progress: Progress | None, follow: bool, poll_s: float,
-                    idle_timeout_s: float | None, timings: dict[str, float],
+def check_scan(scan: LogScan, proto: Protocol, log: Any, state: Any,
+               chain_dir: Path | None) -> None:
+    """Refuse a scan with no trials, generation rounds under gamma = 1, or a reused log."""
+    if scan.trials == 0:
+        raise LogFormatError(log, "", "no trial arrived before the idle timeout; "
+                             "nothing to certify" if scan.follow else "contains no trials")
+    generation_rounds = int(scan.counts[0].sum())
+    if proto.design.gamma >= 1.0 and generation_rounds:
+        raise LogFormatError(log, "", f"the protocol declares every round a test round "
+                             f"(settings.gamma = 1) but the log marks "
+                             f"{generation_rounds} trials as generation rounds (t = 0)")
+    if state is not None and scan.sha256 in state.logs_used:
+        raise ParameterError(
+            f"{log}: this log (SHA-256 {scan.sha256[:16]}...) already fed pulse "
+            f"{state.logs_used[scan.sha256]} of {chain_dir}; every pulse needs fresh "
+            "trials")
+
+
+def extract_stage(analysis: Analysis, scan: LogScan, sink: _BitSink, run: RunInputs, *,
+                  scheduler: Any, temp_dir: Path) -> Any:
+    """Stage 4: Toeplitz extraction of a certified run (None otherwise)."""
+    if analysis.status != "certified":
+        return None
+    check_seed_length(run.seed_bytes, run.seed_label, scan.raw_bits, analysis.output_bits)
+    from dicert.extract import extract_toeplitz
+
+    extraction = extract_toeplitz(sink.data(), run.seed_bytes, analysis.output_bits,
+                                  n_bits=scan.raw_bits, scheduler=scheduler,
+                                  temp_dir=temp_dir)
+    if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
+        raise DicertError("extractor returned a different output length")
+    return extraction
+
+
+def seal_stage(*, run: RunInputs, scan: LogScan, analysis: Analysis, extraction: Any,
+               state: Any, inputs: Any, screens: Any, protocol_change: str | None,
+               volatile: dict) -> tuple[dict, bytes, str]:
+    """Stage 5: the record body, signed; returns (record, its bytes, its SHA-256)."""
+    publish = extraction is not None and analysis.status == "certified"
+    chain_info = None
+    if state is not None:
+        link = state.next_link()
+        chain_info = (int(link["pulse_index"]), link["previous_record_sha256"])
+    body = build_body(protocol=run.proto, scan=scan, analysis=analysis,
+                      seed_sha256=run.seed_sha, seed_bytes=len(run.seed_bytes),
+                      extraction=extraction, chain_info=chain_info, volatile=volatile,
+                      inputs=inputs, screens=screens)
+    # The record names its bits file (next to it); verify checks it by default.
+    body["bits_file"] = BITS_NAME if publish else None
+    if protocol_change is not None:
+        body["protocol_change"] = {"previous_protocol_sha256": state.protocol_sha256,
+                                   "reason": protocol_change.strip()}
+    from dicert.audit.record import record_bytes, record_digest, seal_record
+
+    record = seal_record(body, run.signer)
+    return record, record_bytes(record), record_digest(record)
+
+
+def write_stage(out: Path, bits: bytes | None, rec_bytes: bytes) -> Path:
+    """Write the bits (if any) and the record into a fresh folder next to ``out``."""
+    from dicert import _outputs as outputs
+
+    stage = outputs.new_stage(out)
+    try:
+        if bits is not None:
+            outputs.write_public_file(stage / BITS_NAME, bits)
+        outputs.write_public_file(stage / RECORD_NAME, rec_bytes)
+        outputs.fsync_dir(stage)
+    except OSError as exc:
+        outputs.remove_tree(stage)
+        raise outputs.output_error(exc.filename or stage, exc) from None
+    except BaseException:
+        outputs.remove_tree(stage)
+        raise
+    return stage
+
+
+def commit_stage(stage: Path, out: Path, *, chain_dir: Path | None, record: dict,
+                 rec_sha: str, force: bool) -> Path | None:
+    """Stage 6: put the written folder in place; with a chain, link the pulse first (the
+    commit point). Returns the pulse file in the chain, or None. Removes ``stage`` on a
+    failure before the commit point."""
+    from dicert import _outputs as outputs
+
+    try:
+        outputs.fault_point("after-stage-write")
+        if chain_dir is None:
+            outputs.publish_stage(stage, out, replace=force)
+            return None
+        pulse = pulse_name(int(record["pulse_index"]))
+        stage = outputs.hand_to_journal(stage, out)
+        journal = outputs.write_journal(chain_dir, stage=stage, out=out, pulse=pulse,
+                                        record_sha256=rec_sha, replace=force)
+        chain_file = _append_pulse(chain_dir, record, journal)
+    except BaseException:
+        outputs.remove_tree(stage)
+        raise
+    # Committed: from here the journal owns the staging folder; should anything fail
+    # now, the next certify --chain on this chain puts it in place.
+    outputs.fault_point("after-chain-append")
+    try:
+        outputs.publish_stage(stage, out, replace=force)
+    except DicertError as exc:
+        raise DicertError(f"{exc} (pulse {pulse} is in the chain; the next certify "
+                          f"--chain on {chain_dir} completes {out})") from None
+    os.unlink(journal)
+    outputs.fsync_dir(chain_dir)
+    return chain_file
+
+
+def _certify_locked(*, log: Any, run: RunInputs, state: Any, protocol_change: str | None,
+                    force: bool, clock: Clock | None, progress: Progress | None, follow: bool,
+                    poll_s: float, idle_timeout_s: float | None, timings: dict[str, float],
                     started: str, allow_mixed_inputs: bool = False,
                     allow_seed_reuse: bool = False, scheduler: Any = None) -> CertifyResult:
-    """The run itself, with the locks held (see :func:`certify`)."""
+    """The run itself, with the locks held: the stages in order (see :func:`certify`)."""
     from dicert import _outputs as outputs
     from dicert.logs import open_log
 
+    proto, out = run.proto, run.out
     spec = FollowSpec(poll_s=poll_s, idle_timeout_s=idle_timeout_s) if follow else None
     if spec is None and not (proto.method == "pef" and _single_binary(log) is not None):
         # (the binary PEF reader checks this from the header it reads)
         _check_design_flag(proto, open_log(log).has_test_flag, log)
     t1 = time.perf_counter()
     spill = outputs.new_spill_dir(out)  # private (0700): raw bits never sit in --out
-    stage: Path | None = None
     try:
         scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds,
                               spill_dir=spill, progress=progress, protocol=proto, follow=spec)
@@ -354,104 +502,37 @@ def _certify_locked(*, log: Any, proto: Any, seed_bytes: bytes, seed_label: str,
         outputs.fault_point("after-scan")
         try:
             t2 = time.perf_counter()
-            if scan.trials == 0:
-                raise LogFormatError(log, "", "no trial arrived before the idle timeout; "
-                                     "nothing to certify" if scan.follow else "contains no trials")
-            generation_rounds = int(scan.counts[0].sum())
-            if proto.design.gamma >= 1.0 and generation_rounds:
-                raise LogFormatError(log, "", f"the protocol declares every round a test round "
-                                     f"(settings.gamma = 1) but the log marks "
-                                     f"{generation_rounds} trials as generation rounds (t = 0)")
-            if state is not None and scan.sha256 in state.logs_used:
-                raise ParameterError(
-                    f"{log}: this log (SHA-256 {scan.sha256[:16]}...) already fed pulse "
-                    f"{state.logs_used[scan.sha256]} of {chain_dir}; every pulse needs fresh "
-                    "trials")
+            check_scan(scan, proto, log, state, run.chain_dir)
             analysis, inputs = checked_analysis(
-                scan, proto, log=log, seed_bytes=seed_bytes, seed_label=seed_label,
-                chain_dir=chain_dir, allow_mixed_inputs=allow_mixed_inputs,
+                scan, proto, log=log, seed_bytes=run.seed_bytes, seed_label=run.seed_label,
+                chain_dir=run.chain_dir, allow_mixed_inputs=allow_mixed_inputs,
                 allow_seed_reuse=allow_seed_reuse)
             timings["analysis"] = time.perf_counter() - t2
-
-            extraction = None
             t3 = time.perf_counter()
-            if analysis.status == "certified":
-                check_seed_length(seed_bytes, seed_label, scan.raw_bits, analysis.output_bits)
-                from dicert.extract import extract_toeplitz
-
-                extraction = extract_toeplitz(sink.data(), seed_bytes, analysis.output_bits,
-                                              n_bits=scan.raw_bits, scheduler=scheduler,
-                                              temp_dir=spill)
-                if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
-                    raise DicertError("extractor returned a different output length")
+            extraction = extract_stage(analysis, scan, sink, run, scheduler=scheduler,
+                                       temp_dir=spill)
             timings["extraction"] = time.perf_counter() - t3
             analysis, screens = screened(extraction, analysis, proto, scan, sink.data())
             outputs.fault_point("after-extract")
         finally:
             sink.discard()
-
         t4 = time.perf_counter()
         publish = extraction is not None and analysis.status == "certified"
-        chain_info = None
-        if state is not None:
-            link = state.next_link()
-            chain_info = (int(link["pulse_index"]), link["previous_record_sha256"])
         volatile = {"timestamps": {"started": started, "finished": _now(clock)},
                     "timings_s": {k: round(v, 6) for k, v in timings.items()}}
-        body = build_body(protocol=proto, scan=scan, analysis=analysis, seed_sha256=seed_sha,
-                          seed_bytes=len(seed_bytes), extraction=extraction,
-                          chain_info=chain_info, volatile=volatile, inputs=inputs,
-                          screens=screens)
-        # The record names its bits file (next to it); verify checks it by default.
-        body["bits_file"] = BITS_NAME if publish else None
-        if protocol_change is not None:
-            body["protocol_change"] = {"previous_protocol_sha256": state.protocol_sha256,
-                                       "reason": protocol_change.strip()}
-        from dicert.audit.record import record_bytes, record_digest, seal_record
-
-        record = seal_record(body, signer)
-        rec_bytes = record_bytes(record)
-        rec_sha = record_digest(record)
+        record, rec_bytes, rec_sha = seal_stage(
+            run=run, scan=scan, analysis=analysis, extraction=extraction, state=state,
+            inputs=inputs, screens=screens, protocol_change=protocol_change, volatile=volatile)
         # Build the complete output folder next to --out, then commit it in one step.
-        stage = outputs.new_stage(out)
-        try:
-            if publish:
-                outputs.write_public_file(stage / BITS_NAME, bytes(extraction.output))
-            outputs.write_public_file(stage / RECORD_NAME, rec_bytes)
-            outputs.fsync_dir(stage)
-        except OSError as exc:
-            raise outputs.output_error(exc.filename or stage, exc) from None
+        stage = write_stage(out, bytes(extraction.output) if publish else None, rec_bytes)
         timings["write"] = time.perf_counter() - t4
-        outputs.fault_point("after-stage-write")
-        chain_file = None
-        if chain_dir is not None:
-            pulse = pulse_name(int(record["pulse_index"]))
-            stage = outputs.hand_to_journal(stage, out)
-            journal = outputs.write_journal(chain_dir, stage=stage, out=out, pulse=pulse,
-                                            record_sha256=rec_sha, replace=force)
-            chain_file = _append_pulse(chain_dir, record, journal)
-            # Committed: from here the journal owns the staging folder; should anything fail
-            # now, the next certify --chain on this chain puts it in place.
-            committed, stage = stage, None
-            outputs.fault_point("after-chain-append")
-            try:
-                outputs.publish_stage(committed, out, replace=force)
-            except DicertError as exc:
-                raise DicertError(f"{exc} (pulse {pulse} is in the chain; the next certify "
-                                  f"--chain on {chain_dir} completes {out})") from None
-            os.unlink(journal)
-            outputs.fsync_dir(chain_dir)
-        else:
-            outputs.publish_stage(stage, out, replace=force)
-        stage = None
+        chain_file = commit_stage(stage, out, chain_dir=run.chain_dir, record=record,
+                                  rec_sha=rec_sha, force=force)
     finally:
-        if stage is not None:
-            outputs.remove_tree(stage)
         outputs.remove_tree(spill)
-    bits_path = out / BITS_NAME
     return CertifyResult(
         status=analysis.status, output_bits=analysis.output_bits,
-        bits_file=bits_path if publish else None,
+        bits_file=out / BITS_NAME if publish else None,
         record_file=out / RECORD_NAME,
         chain_file=chain_file, min_entropy_bits=analysis.min_entropy_bits,
         error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
