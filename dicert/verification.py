@@ -33,13 +33,16 @@ import math
 import os
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from dicert import __version__
 from dicert._display import displayed
 from dicert.errors import DicertError, VerificationError
+
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 #: Record members outside the body (added by sealing).
 _SEAL_KEYS = ("record_sha256", "signature")
@@ -253,7 +256,8 @@ def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None
 def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.certification import analyse_counts, build_body, design_report, log_end_note, withhold
+    from dicert.stages.analysis import analyse_counts, design_report, log_end_note, withhold
+    from dicert.stages.record import build_body
     from dicert.extract import seed_bits_required
 
     legacy = body.get("format") == "dicert-record/1"
@@ -376,7 +380,7 @@ def _scope_of(body: Mapping[str, Any], trials: int, size_bytes: Any) -> dict:
 
 
 def _scan_from_record(body: Mapping[str, Any], protocol: Any):
-    from dicert.certification import LogScan, expected_raw_bits
+    from dicert.stages.scan import LogScan, expected_raw_bits
 
     counts = _recorded_counts(body)
     trials = _get(body, "log.trials")
@@ -531,25 +535,76 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     VerificationError
         Naming the first field that disagrees.
     """
-    from dicert.audit.record import read_record, record_digest
-
     path = Path(record_path)
+    record, found = read_and_authenticate(path, public_key, trusted_keys)
+    facts = recheck_record(_body_of(record), found, log_given=log is not None)
+    seed_data = recheck_seed(seed, facts, found)
+    recomputed_output = None
+    if log is not None:
+        recomputed_output = recheck_log(log, facts, found, seed_data, scheduler=scheduler)
+    else:
+        found.not_checked.append("log")
+    if bits is None and find_bits:
+        bits = _named_bits(facts.body, path, facts.status, found.notes)
+    recheck_bits(bits, facts, found, recomputed_output)
+    return conclude(path, record, facts, found, bits=bits, strict=strict)
+
+
+# --------------------------------------------------------------------------- stages of verify
+
+
+@dataclasses.dataclass(slots=True, kw_only=True)
+class Findings:
+    """What verify has established so far (appended to by each stage)."""
+
+    signature: str
+    key_fingerprint: str | None
+    authenticated: bool
+    checked: list[str] = dataclasses.field(default_factory=list)
+    not_checked: list[str] = dataclasses.field(default_factory=list)
+    notes: list[str] = dataclasses.field(default_factory=list)
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class RecordFacts:
+    """The recorded numbers every later stage compares against."""
+
+    body: Mapping[str, Any]
+    protocol: Protocol
+    scan: Any  # LogScan rebuilt from the record
+    seed_sha256: str
+    seed_bytes: int
+    output_sha256: str | None
+    status: str
+    output_bits: int
+
+
+def read_and_authenticate(path: Path, public_key: Any,
+                          trusted_keys: Any) -> tuple[Mapping[str, Any], Findings]:
+    """Read the record and check its format, digest, signature and the signer's trust."""
+    from dicert.audit.record import read_record
+    from dicert.audit.trust import trust_from
+
     record = read_record(path)
     if not isinstance(record, Mapping):
         raise VerificationError("expected a JSON object", "record")
-    from dicert.audit.trust import trust_from
-
     trust = trust_from(_load_public_key(public_key), trusted_keys)
     signature, fp, authenticated = authenticate(record, trust)
-    body = _body_of(record)
-    checked = ["format", "record digest", "signature" if fp else "digest (unsigned record)"]
+    found = Findings(signature=signature, key_fingerprint=fp, authenticated=authenticated)
+    found.checked += ["format", "record digest",
+                      "signature" if fp else "digest (unsigned record)"]
     if authenticated:
-        checked.append("signer is a trusted key")
-    notes: list[str] = []
+        found.checked.append("signer is a trusted key")
+    return record, found
+
+
+def recheck_record(body: Mapping[str, Any], found: Findings, *, log_given: bool) -> RecordFacts:
+    """Re-derive the analysis from the recorded counts and compare (analysis and design
+    stages again, without the log)."""
+    notes, checked = found.notes, found.checked
     if body.get("tool", {}).get("version") != __version__:
         notes.append(f"record written by dicert {body.get('tool', {}).get('version')}, "
                      f"re-checked with {__version__}")
-
     protocol = _protocol_of(body)
     _require(body.get("protocol", {}).get("name") == protocol.name, "protocol.name",
              "does not match the name in protocol.content")
@@ -574,26 +629,10 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                      + " (not checked when it was written)" + _legacy_design_note(rec_scan,
                                                                                    protocol))
     else:
-        des = _get(body, "design")
-        failed = [c.get("name") for c in des.get("checks", []) if isinstance(c, Mapping)
-                  and not c.get("passed")]
-        n_checks = len(des.get("checks", []))
-        checked.append(f"design conformance re-run ({n_checks} checks"
-                       + (f"; failed: {', '.join(map(str, failed))})" if failed
-                          else ", all passed)"))
-        inp = body.get("inputs") if isinstance(body.get("inputs"), Mapping) else {}
-        if inp.get("allow_mixed_inputs") and inp.get("input_problems"):
-            notes.append("the operator allowed a log with input identity problems: "
-                         + "; ".join(map(str, inp["input_problems"])))
-        if inp.get("allow_seed_reuse") and inp.get("seed_problems"):
-            notes.append("the operator allowed a seed problem: "
-                         + "; ".join(map(str, inp["seed_problems"])))
-        if status == "withheld":
-            notes.append("the output was withheld: its screens failed grossly ("
-                         + str((body.get("output_screens") or {}).get("failure")) + ")")
+        _design_findings(body, status, found)
     checked.append("internal consistency (protocol digest, counts, estimate, finite-size "
                    "bound, acceptance, eps terms, output length, seed bits)")
-    if protocol.method == "pef" and log is None:
+    if protocol.method == "pef" and not log_given:
         notes.append("method pef: the probability-estimation result depends on the trial order "
                      "and is re-derived only with --log")
     if rec_scan.scope == "prefix":
@@ -603,130 +642,188 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                      f"(header and trials 0..{rec_scan.trials - 1}; {how}); bytes after them "
                      "are not certified and not checked")
     output_bits = int(_get(body, "extractor.output_bits"))
-    not_checked: list[str] = []
     if body.get("protocol_change") is not None:
         pc = body["protocol_change"]
         notes.append(f"the record declares a protocol change (previous protocol "
                      f"{pc['previous_protocol_sha256'][:16]}...): {pc['reason']}; check it "
                      "along the chain with verify --chain")
+    return RecordFacts(body=body, protocol=protocol, scan=rec_scan, seed_sha256=seed_sha,
+                       seed_bytes=seed_bytes_n, output_sha256=output_sha, status=status,
+                       output_bits=output_bits)
 
-    seed_data = None
-    if seed is not None:
-        from dicert.certification import read_seed
 
-        seed_data, _label = read_seed(seed)
-        _require(hashlib.sha256(seed_data).hexdigest() == seed_sha, "extractor.seed_sha256",
-                 "the given seed is not the one recorded")
-        _require(len(seed_data) == seed_bytes_n, "extractor.seed_bytes",
-                 f"the given seed has {len(seed_data)} bytes")
-        checked.append("seed digest")
-    else:
-        not_checked.append("seed")
+def _design_findings(body: Mapping[str, Any], status: str, found: Findings) -> None:
+    """Notes on the re-run design checks and on what the operator allowed (records /2)."""
+    des = _get(body, "design")
+    failed = [c.get("name") for c in des.get("checks", []) if isinstance(c, Mapping)
+              and not c.get("passed")]
+    n_checks = len(des.get("checks", []))
+    found.checked.append(f"design conformance re-run ({n_checks} checks"
+                         + (f"; failed: {', '.join(map(str, failed))})" if failed
+                            else ", all passed)"))
+    inp = body.get("inputs") if isinstance(body.get("inputs"), Mapping) else {}
+    if inp.get("allow_mixed_inputs") and inp.get("input_problems"):
+        found.notes.append("the operator allowed a log with input identity problems: "
+                           + "; ".join(map(str, inp["input_problems"])))
+    if inp.get("allow_seed_reuse") and inp.get("seed_problems"):
+        found.notes.append("the operator allowed a seed problem: "
+                           + "; ".join(map(str, inp["seed_problems"])))
+    if status == "withheld":
+        found.notes.append("the output was withheld: its screens failed grossly ("
+                           + str((body.get("output_screens") or {}).get("failure")) + ")")
 
-    recomputed_output: bytes | None = None
-    if log is not None:
-        import tempfile
 
-        from dicert.certification import _scan_whole, _single_binary, scan_log
-        from dicert.errors import LogFormatError
-        from dicert.logs import resolve_sources
+def recheck_seed(seed: bytes | str | os.PathLike[str] | None, facts: RecordFacts,
+                 found: Findings) -> bytes | None:
+    """Compare the given seed's digest and length with the record's."""
+    if seed is None:
+        found.not_checked.append("seed")
+        return None
+    from dicert.stages.scan import read_seed
 
-        resolve_sources(log)  # a missing log is bad input (exit 2), not a mismatch
-        parties, rounds = protocol.harvest.parties, protocol.harvest.rounds
-        spill = Path(tempfile.gettempdir())
-        try:
-            if rec_scan.scope == "prefix" and rec_scan.ended_by != "declared-trials":
-                # Only the recorded prefix is read: the file may have grown since, or still
-                # lack its trailer; nothing after the prefix is looked at.
-                _require(_single_binary(log) is not None, "log.scope",
-                         "a prefix record needs the single binary (.btl) log file it covers")
-                scan, sink = scan_log(log, parties, rounds, spill_dir=spill,
-                                      protocol=protocol, prefix_trials=rec_scan.trials_read)
-            elif "scope" not in body["log"]:
-                scan, sink = _scan_whole(log, parties, rounds, spill_dir=spill, progress=None,
-                                         protocol=protocol)
-            else:
-                scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol)
-        except LogFormatError as exc:
-            # A log that no longer reads is not the log that was certified.
-            raise VerificationError(f"the given log does not read as a trial log ({exc})",
-                                    "log.sha256") from None
-        # Follow-mode settings are facts of the run, not of the log; an idle timeout is
-        # confirmed by re-reading exactly the recorded trials without reaching a decision.
-        ended = scan.ended_by
-        if ended == "limit" and rec_scan.ended_by == "idle-timeout":
-            ended = "idle-timeout"
-        scan = dataclasses.replace(scan, follow=rec_scan.follow, ended_by=ended)
-        if body.get("format") == "dicert-record/1" and len(scan.file_entries) > 1:
-            # A /1 record digested the concatenation of the files' bytes.
-            scan = dataclasses.replace(scan, sha256=_concatenated_digest(resolve_sources(log)))
-        elif isinstance(body.get("inputs"), Mapping):
-            from dicert.certification import input_problems_of
+    seed_data, _label = read_seed(seed)
+    _require(hashlib.sha256(seed_data).hexdigest() == facts.seed_sha256,
+             "extractor.seed_sha256", "the given seed is not the one recorded")
+    _require(len(seed_data) == facts.seed_bytes, "extractor.seed_bytes",
+             f"the given seed has {len(seed_data)} bytes")
+    found.checked.append("seed digest")
+    return seed_data
+
+
+def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
+    """The read-and-scan stage again, over exactly what the record covers."""
+    import tempfile
+
+    from dicert.errors import LogFormatError
+    from dicert.logs import resolve_sources
+    from dicert.stages.scan import _scan_whole, _single_binary, scan_log
+
+    body, protocol, rec_scan = facts.body, facts.protocol, facts.scan
+    resolve_sources(log)  # a missing log is bad input (exit 2), not a mismatch
+    parties, rounds = protocol.harvest.parties, protocol.harvest.rounds
+    spill = Path(tempfile.gettempdir())
+    try:
+        if rec_scan.scope == "prefix" and rec_scan.ended_by != "declared-trials":
+            # Only the recorded prefix is read: the file may have grown since, or still
+            # lack its trailer; nothing after the prefix is looked at.
+            _require(_single_binary(log) is not None, "log.scope",
+                     "a prefix record needs the single binary (.btl) log file it covers")
+            scan, sink = scan_log(log, parties, rounds, spill_dir=spill,
+                                  protocol=protocol, prefix_trials=rec_scan.trials_read)
+        elif "scope" not in body["log"]:
+            scan, sink = _scan_whole(log, parties, rounds, spill_dir=spill, progress=None,
+                                     protocol=protocol)
+        else:
+            scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol)
+    except LogFormatError as exc:
+        # A log that no longer reads is not the log that was certified.
+        raise VerificationError(f"the given log does not read as a trial log ({exc})",
+                                "log.sha256") from None
+    # Follow-mode settings are facts of the run, not of the log; an idle timeout is
+    # confirmed by re-reading exactly the recorded trials without reaching a decision.
+    ended = scan.ended_by
+    if ended == "limit" and rec_scan.ended_by == "idle-timeout":
+        ended = "idle-timeout"
+    scan = dataclasses.replace(scan, follow=rec_scan.follow, ended_by=ended)
+    if body.get("format") == "dicert-record/1" and len(scan.file_entries) > 1:
+        # A /1 record digested the concatenation of the files' bytes.
+        scan = dataclasses.replace(scan, sha256=_concatenated_digest(resolve_sources(log)))
+    return scan, sink
+
+
+def recheck_log(log: Any, facts: RecordFacts, found: Findings, seed_data: bytes | None, *,
+                scheduler: Any = None) -> bytes | None:
+    """Re-read the log, re-derive the body from it, and with the seed re-run the extraction
+    and the output screens. Returns the recomputed output (or None)."""
+    body, protocol = facts.body, facts.protocol
+    scan, sink = rescan_log(log, facts)
+    try:
+        if not (body.get("format") == "dicert-record/1" and len(scan.file_entries) > 1) \
+                and isinstance(body.get("inputs"), Mapping):
+            from dicert.stages.analysis import input_problems_of
 
             _require(input_problems_of(scan) == list(body["inputs"].get("input_problems", [])),
                      "inputs.input_problems", "the input identity problems of the given log "
                      "differ from the recorded ones")
-        try:
-            exp = expected_body(body, protocol, scan, seed_sha256=seed_sha,
-                                seed_bytes=seed_bytes_n, output_sha256=output_sha)
-            # The log may have been moved or renamed; its bytes are what is certified (a
-            # multi-file digest covers the names, so only a single file may be renamed).
-            rf, ef = body["log"]["files"], exp["log"]["files"]
-            if isinstance(rf, list) and len(rf) == len(ef):
-                exp["log"]["files"] = [
-                    {**e, "name": r["name"]} if isinstance(e, Mapping) and isinstance(r, Mapping)
-                    and "name" in r else (r if not isinstance(e, Mapping) else e)
-                    for e, r in zip(ef, rf)]
-            _compare(exp, body)
-            checked.append("log digest, size, trial count, counts and harvested raw bits")
-            if seed_data is not None and status in ("certified", "withheld"):
-                from dicert.extract import extract_toeplitz
+        exp = expected_body(body, protocol, scan, seed_sha256=facts.seed_sha256,
+                            seed_bytes=facts.seed_bytes, output_sha256=facts.output_sha256)
+        # The log may have been moved or renamed; its bytes are what is certified (a
+        # multi-file digest covers the names, so only a single file may be renamed).
+        rf, ef = body["log"]["files"], exp["log"]["files"]
+        if isinstance(rf, list) and len(rf) == len(ef):
+            exp["log"]["files"] = [
+                {**e, "name": r["name"]} if isinstance(e, Mapping) and isinstance(r, Mapping)
+                and "name" in r else (r if not isinstance(e, Mapping) else e)
+                for e, r in zip(ef, rf)]
+        _compare(exp, body)
+        found.checked.append("log digest, size, trial count, counts and harvested raw bits")
+        if seed_data is None or facts.status not in ("certified", "withheld"):
+            return None
+        return _rerun_extraction(scan, sink, facts, found, seed_data, scheduler=scheduler)
+    finally:
+        sink.discard()
 
-                res = extract_toeplitz(sink.data(), seed_data, output_bits, n_bits=scan.raw_bits,
-                                       scheduler=scheduler)
-                _require(res.output_sha256 == output_sha, "extractor.output_sha256",
-                         "re-running the extractor on the log and seed gives other bits")
-                recomputed_output = bytes(res.output)
-                checked.append("extraction re-run from log and seed")
-                if "output_screens" in body:
-                    from dicert.design import output_screens, spec_of
 
-                    scr = output_screens(
-                        recomputed_output, output_bits, spec_of(protocol).significance,
-                        raw=sink.data(), raw_bits=scan.raw_bits,
-                        bits_per_symbol=protocol.harvest.bits_per_trial,
-                        min_entropy_bits=float(_get(body, "certified_min_entropy_bits"))
-                        if status == "certified" else float(
-                            _get(body, "entropy.finite_size.min_entropy_bits")))
-                    _compare({"output_screens": scr}, {"output_screens": body["output_screens"]})
-                    checked.append("output screens re-run on the recomputed output")
-        finally:
-            sink.discard()
+def _rerun_extraction(scan: Any, sink: Any, facts: RecordFacts, found: Findings,
+                      seed_data: bytes, *, scheduler: Any) -> bytes:
+    """The extraction stage again, and the output screens on its result."""
+    from dicert.extract import extract_toeplitz
+
+    body, protocol, status = facts.body, facts.protocol, facts.status
+    res = extract_toeplitz(sink.data(), seed_data, facts.output_bits, n_bits=scan.raw_bits,
+                           scheduler=scheduler)
+    _require(res.output_sha256 == facts.output_sha256, "extractor.output_sha256",
+             "re-running the extractor on the log and seed gives other bits")
+    recomputed_output = bytes(res.output)
+    found.checked.append("extraction re-run from log and seed")
+    if "output_screens" in body:
+        from dicert.design import output_screens, spec_of
+
+        scr = output_screens(
+            recomputed_output, facts.output_bits, spec_of(protocol).significance,
+            raw=sink.data(), raw_bits=scan.raw_bits,
+            bits_per_symbol=protocol.harvest.bits_per_trial,
+            min_entropy_bits=float(_get(body, "certified_min_entropy_bits"))
+            if status == "certified" else float(
+                _get(body, "entropy.finite_size.min_entropy_bits")))
+        _compare({"output_screens": scr}, {"output_screens": body["output_screens"]})
+        found.checked.append("output screens re-run on the recomputed output")
+    return recomputed_output
+
+
+def recheck_bits(bits: str | os.PathLike[str] | None, facts: RecordFacts, found: Findings,
+                 recomputed_output: bytes | None) -> None:
+    """Compare the bits file's length and digest (and bytes, if recomputed) with the record."""
+    status, output_bits = facts.status, facts.output_bits
+    if bits is None:
+        if status == "certified":
+            found.not_checked.append("bits")
+        return
+    bpath = Path(bits)
+    try:
+        data = bpath.read_bytes()
+    except FileNotFoundError:
+        raise VerificationError(f"{bpath}: no such file", "bits") from None
+    if status != "certified":
+        _require(len(data) == 0, "bits", "the record is an abort but the bits file is not empty")
     else:
-        not_checked.append("log")
+        _require(len(data) == (output_bits + 7) // 8, "bits",
+                 f"{bpath}: {len(data)} bytes, the record claims {output_bits} bits "
+                 f"({(output_bits + 7) // 8} bytes)")
+        _require(hashlib.sha256(data).hexdigest() == facts.output_sha256, "bits",
+                 f"{bpath}: SHA-256 does not match extractor.output_sha256")
+        if recomputed_output is not None:
+            _require(data == recomputed_output, "bits", "differs from the recomputed output")
+    found.checked.append("bits file length and digest")
 
-    if bits is None and find_bits:
-        bits = _named_bits(body, path, status, notes)
-    if bits is not None:
-        bpath = Path(bits)
-        try:
-            data = bpath.read_bytes()
-        except FileNotFoundError:
-            raise VerificationError(f"{bpath}: no such file", "bits") from None
-        if status != "certified":
-            _require(len(data) == 0, "bits", "the record is an abort but the bits file is not empty")
-        else:
-            _require(len(data) == (output_bits + 7) // 8, "bits",
-                     f"{bpath}: {len(data)} bytes, the record claims {output_bits} bits "
-                     f"({(output_bits + 7) // 8} bytes)")
-            _require(hashlib.sha256(data).hexdigest() == output_sha, "bits",
-                     f"{bpath}: SHA-256 does not match extractor.output_sha256")
-            if recomputed_output is not None:
-                _require(data == recomputed_output, "bits", "differs from the recomputed output")
-        checked.append("bits file length and digest")
-    elif status == "certified":
-        not_checked.append("bits")
 
+def conclude(path: Path, record: Mapping[str, Any], facts: RecordFacts, found: Findings, *,
+             bits: Any, strict: bool) -> VerifyReport:
+    """The scope of what was checked, the message, and the strict refusal."""
+    from dicert.audit.record import record_digest
+
+    not_checked, authenticated, fp = found.not_checked, found.authenticated, found.key_fingerprint
+    status = facts.status
     if not not_checked:
         scope = "full"
     elif "log" in not_checked and "seed" in not_checked:
@@ -754,10 +851,11 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     result = (RESULT_INTEGRITY_ONLY if not authenticated
               else RESULT_VERIFIED if scope == "full" else RESULT_PARTIAL)
     return VerifyReport(record_file=str(path), record_sha256=record_digest(record),
-                        status=status, output_bits=output_bits, signature=signature,
-                        key_fingerprint=fp, scope=scope, checked=tuple(checked),
-                        not_checked=tuple(not_checked), notes=tuple(notes), message=message,
-                        result=result, authenticated=authenticated,
+                        status=status, output_bits=facts.output_bits,
+                        signature=found.signature, key_fingerprint=fp, scope=scope,
+                        checked=tuple(found.checked), not_checked=tuple(not_checked),
+                        notes=tuple(found.notes), message=message, result=result,
+                        authenticated=authenticated,
                         bits_file=str(bits) if bits is not None else None)
 
 
