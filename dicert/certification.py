@@ -187,7 +187,7 @@ class CertifyResult:
 # --------------------------------------------------------------------------- recipe
 
 
-def _load(protocol: Any):
+def _load(protocol: Protocol | str | os.PathLike[str] | Mapping[str, Any]) -> Protocol:
     from dicert.protocol import Protocol, load_protocol
 
     if isinstance(protocol, Protocol):
@@ -195,7 +195,7 @@ def _load(protocol: Any):
     return load_protocol(protocol)
 
 
-def certify(log: Any, protocol: Any, seed: bytes | str | os.PathLike[str],
+def certify(log: Any, protocol: Protocol | str | os.PathLike[str], seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,
             progress: Progress | None = None, follow: bool = False, poll_s: float = 0.5,

@@ -48,10 +48,16 @@ import math
 import os
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from dicert._display import displayed
 from dicert.errors import ProtocolError
+
+if TYPE_CHECKING:
+    from dicert.design import DesignSpec
+    from dicert.estimate import SettingsDesign
+    from dicert.finite.params import EatParams, MartingaleParams
+    from dicert.finite.pef import PefParams
 
 PROTOCOL_FORMAT = "dicert-protocol/1"
 
@@ -120,13 +126,13 @@ class Protocol:
     sha256: str
     text: str
     bell: BellTest
-    design: Any  # dicert.estimate.SettingsDesign
+    design: SettingsDesign
     harvest: Harvest
     method: str
-    analysis: Any  # MartingaleParams | EatParams | PefParams
+    analysis: MartingaleParams | EatParams | PefParams  # the method's parameters
     extractor: ExtractorSpec
     description: str = ""
-    conformance: Any = None  # dicert.design.DesignSpec (the optional [design] table)
+    conformance: DesignSpec | None = None  # the optional [design] table
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("name", self.name), ("method", self.method), ("gamma", self.gamma),

@@ -12,12 +12,15 @@ import dataclasses
 import math
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 from dicert.stages.scan import LogScan
+
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -48,7 +51,7 @@ def log_end_note(scan: LogScan) -> str | None:
             f"covers the {scan.trials} trials read")
 
 
-def design_report(scan: LogScan, protocol: Any) -> Any:
+def design_report(scan: LogScan, protocol: Protocol) -> Any:
     """The design-conformance report of a scan (:func:`dicert.design.check_design`)."""
     from dicert.design import check_design
 
@@ -57,7 +60,7 @@ def design_report(scan: LogScan, protocol: Any) -> Any:
                         decided_early=scan.ended_by == "decision", eps=_estimate_eps(protocol))
 
 
-def checked_analysis(scan: LogScan, proto: Any, *, log: Any, seed_bytes: bytes,
+def checked_analysis(scan: LogScan, proto: Protocol, *, log: Any, seed_bytes: bytes,
                      seed_label: str, chain_dir: Path | None, allow_mixed_inputs: bool,
                      allow_seed_reuse: bool) -> tuple[Analysis, dict]:
     """Certify's stages between the scan and the extraction, with the record's ``inputs``.
@@ -94,7 +97,7 @@ def checked_analysis(scan: LogScan, proto: Any, *, log: Any, seed_bytes: bytes,
     return analysis, inputs
 
 
-def screened(extraction: Any, analysis: Analysis, proto: Any, scan: LogScan,
+def screened(extraction: Any, analysis: Analysis, proto: Protocol, scan: LogScan,
              raw: Any) -> tuple[Analysis, dict | None]:
     """Output screens after extraction (:func:`dicert.design.output_screens`); a gross
     failure turns the analysis into status "withheld"."""
@@ -149,7 +152,7 @@ def withhold(analysis: Analysis, screens: Mapping[str, Any] | None) -> Analysis:
                      f"({screens.get('failure')})")
 
 
-def _not_run(protocol: Any, reason: str) -> Any:
+def _not_run(protocol: Protocol, reason: str) -> Any:
     """A finite-size result standing for a method that was not run (design check failed)."""
     from dicert.finite.result import FiniteSizeResult
 
@@ -160,7 +163,7 @@ def _not_run(protocol: Any, reason: str) -> Any:
                             details={"not_run": reason})
 
 
-def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
+def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
                    finite: Any = None, log_end: str | None = None,
                    design: Any = None) -> Analysis:
     """Design checks, estimate, finite-size bound, accept/abort and output length.
@@ -228,7 +231,7 @@ def analyse_counts(counts: np.ndarray, protocol: Any, raw_bits: int, *,
                     total_error=total_error, design=design)
 
 
-def _certify_counts(counts: np.ndarray, protocol: Any) -> Any:
+def _certify_counts(counts: np.ndarray, protocol: Protocol) -> Any:
     """The finite-size method of the protocol (dicert.finite's dispatcher)."""
     from dicert import finite
 
@@ -240,7 +243,7 @@ def _certify_counts(counts: np.ndarray, protocol: Any) -> Any:
         raise ParameterError(f"finite-size analysis: {' '.join(str(exc).split())}") from None
 
 
-def _estimate_eps(protocol: Any) -> float:
+def _estimate_eps(protocol: Protocol) -> float:
     for name in ("eps_est", "eps_EA", "eps_ea", "eps_PE", "eps_pe"):
         v = getattr(protocol.analysis, name, None)
         if isinstance(v, (int, float)) and 0 < v < 1:

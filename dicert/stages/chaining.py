@@ -10,10 +10,13 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from dicert.errors import ParameterError, SeedError
 from dicert.stages.record import _now
+
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 
 def _operator_trust(signer: Any, trusted_keys: Any, chain_dir: Path | None,
@@ -42,7 +45,7 @@ def _operator_trust(signer: Any, trusted_keys: Any, chain_dir: Path | None,
 
 
 def _check_chain(chain_dir: Path, trust: Any, signer: Any, seed_sha: str, seed_label: str,
-                 proto: Any, protocol_change: str | None) -> Any:
+                 proto: Protocol, protocol_change: str | None) -> Any:
     """Verify the whole chain against the operator's trusted keys; refuse what cannot extend it."""
     from dicert.audit.chain import ChainVerificationError, chain_state
     from dicert.audit.signing import fingerprint

@@ -9,15 +9,17 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from dicert import __version__
 from dicert._plain import plain
-from dicert.stages.scan import Clock, LogScan
 from dicert.stages.analysis import Analysis
+from dicert.stages.scan import Clock, LogScan
 
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 ASSUMPTIONS = (
     ("No communication between the two stations during a trial (locality / no signalling "
@@ -77,7 +79,7 @@ def _split_timing(details: Any) -> tuple[Any, float | None]:
     return details, None
 
 
-def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256: str,
+def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sha256: str,
                seed_bytes: int, extraction: Any | None, chain_info: tuple[int, str | None] | None,
                volatile: dict, inputs: dict | None = None, screens: dict | None = None) -> dict:
     """The record body (everything the audit layer then digests and signs)."""

@@ -13,11 +13,14 @@ import math
 import os
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from dicert.errors import DicertError, VerificationError
+
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 #: Record members outside the body (added by sealing).
 _SEAL_KEYS = ("record_sha256", "signature")
@@ -183,7 +186,7 @@ def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None
     return f"valid, made by trusted key '{key.label}' (fingerprint {fp})", fp, True
 
 
-def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha256: str,
+def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
     from dicert.stages.analysis import analyse_counts, design_report, log_end_note, withhold
@@ -309,7 +312,7 @@ def _scope_of(body: Mapping[str, Any], trials: int, size_bytes: Any) -> dict:
     return vals
 
 
-def _scan_from_record(body: Mapping[str, Any], protocol: Any):
+def _scan_from_record(body: Mapping[str, Any], protocol: Protocol):
     from dicert.stages.scan import LogScan, expected_raw_bits
 
     counts = _recorded_counts(body)
@@ -378,7 +381,7 @@ def _concatenated_digest(files: list[Path]) -> str:
     return h.hexdigest()
 
 
-def _legacy_design_note(scan: Any, protocol: Any) -> str:
+def _legacy_design_note(scan: Any, protocol: Protocol) -> str:
     """What the design checks the counts allow say about a /1 record (informational)."""
     from dicert.design import check_design
 

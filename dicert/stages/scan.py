@@ -17,12 +17,15 @@ import os
 import tempfile
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from dicert._io import read_user_file
 from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
+
+if TYPE_CHECKING:
+    from dicert.protocol import Protocol
 
 
 #: Keep harvested raw bits in memory below this many bytes, spill to a private temp file
@@ -202,7 +205,7 @@ class _PefFeed:
     fed separately from analysis trials for the same reason.
     """
 
-    def __init__(self, protocol: Any, sink: _BitSink, *, has_test_flag: bool,
+    def __init__(self, protocol: Protocol, sink: _BitSink, *, has_test_flag: bool,
                  hasher: Any = None, log_path: Any = None, offset0: int = 0) -> None:
         from dicert.finite.pef import PefAccumulator
 
@@ -337,7 +340,7 @@ def _single_binary(log: Any) -> Path | None:
         return None
 
 
-def _check_design_flag(protocol: Any, has_t: bool, path: Any) -> None:
+def _check_design_flag(protocol: Protocol, has_t: bool, path: Any) -> None:
     if protocol.design.gamma < 1.0 and not has_t:
         raise LogFormatError(path, "", "the protocol uses spot-checking (settings.gamma < 1) "
                              "but the log has no t column marking test rounds")
@@ -350,7 +353,7 @@ def _open_log_file(path: Path):
         raise LogFormatError(path, "", f"cannot open ({exc.strerror})") from None
 
 
-def _scan_binary_pef(path: Path, protocol: Any, sink: _BitSink, *,
+def _scan_binary_pef(path: Path, protocol: Protocol, sink: _BitSink, *,
                      follow: FollowSpec | None = None, prefix_trials: int | None = None,
                      progress: Progress | None = None) -> LogScan:
     """One pass over a single binary log for method "pef", stopping at the decision.
@@ -493,7 +496,7 @@ def _scan_binary_pef(path: Path, protocol: Any, sink: _BitSink, *,
 
 
 def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = None,
-             progress: Progress | None = None, protocol: Any = None,
+             progress: Progress | None = None, protocol: Protocol | None = None,
              follow: FollowSpec | None = None,
              prefix_trials: int | None = None) -> tuple[LogScan, _BitSink]:
     """Read a log once: counts, log digest, and the harvested raw bits.
@@ -557,7 +560,7 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
 
 
 def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
-                progress: Progress | None, protocol: Any) -> tuple[LogScan, _BitSink]:
+                progress: Progress | None, protocol: Protocol) -> tuple[LogScan, _BitSink]:
     from dicert.design import declared_trials, settings_symbol_counts, spec_of
     from dicert.logs import summarize_log
 
