@@ -77,7 +77,7 @@ def certify_cmd(
     allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed already used in the chain or equal to the log (refused otherwise; recorded). A constant seed is always refused.")] = False,
     as_json: JsonFlag = False,
 ) -> None:
-    from dicert.certify import certify
+    from dicert.certification import certify
     from dicert.errors import ParameterError
 
     if not follow and (poll is not None or idle_timeout is not None):
