@@ -94,44 +94,63 @@ def inspect_log(log: str | os.PathLike[str] | Iterable[Any], *, protocol: Any = 
     LogFormatError, ProtocolError
         Unreadable log or protocol (the message names the file and line or key).
     """
+    from dicert.logs import summarize_log
+
+    proto = _protocol_for(protocol, gamma)
+    summary = summarize_log(log, block_trials=block_trials, format=format, progress=progress)
+    return inspect_summary(summary, protocol=proto, gamma=gamma, eps=eps, source=log)
+
+
+def _protocol_for(protocol: Any, gamma: float | None) -> Any:
+    """The protocol (loaded), refusing a ``gamma`` that disagrees with it."""
+    if protocol is None:
+        return None
+    from dicert.errors import ParameterError
+    from dicert.protocol import load_protocol
+
+    proto = load_protocol(protocol)
+    if gamma is not None and gamma != proto.gamma:
+        raise ParameterError(f"--gamma {gamma:g} disagrees with the protocol's settings.gamma "
+                             f"= {proto.gamma:g}; give one of them")
+    return proto
+
+
+def inspect_summary(summary: Any, *, protocol: Any = None, gamma: float | None = None,
+                    eps: float = 1e-6, source: Any = "log") -> LogInspection:
+    """The analysis half of :func:`inspect_log`, on a :class:`~dicert.logs.LogSummary`
+    already read (``dicert inspect`` reads it with a progress bar or on a cluster).
+    ``source`` names the log in error messages."""
     from types import SimpleNamespace
 
     from dicert.design import check_design
     from dicert.errors import ParameterError
     from dicert.estimate import SettingsDesign, estimate_chsh, observed_design
-    from dicert.logs import summarize_log
 
-    proto = None
-    if protocol is not None:
-        from dicert.protocol import load_protocol
-
-        proto = load_protocol(protocol)
-        if gamma is not None and gamma != proto.gamma:
-            raise ParameterError(f"--gamma {gamma:g} disagrees with the protocol's settings.gamma "
-                                 f"= {proto.gamma:g}; give one of them")
-    summary = summarize_log(log, block_trials=block_trials, format=format, progress=progress)
+    proto = _protocol_for(protocol, gamma)
     if proto is not None:
-        design, source = proto.design, "declared in the protocol"
+        design, how = proto.design, "declared in the protocol"
     elif gamma is not None:
-        design, source = SettingsDesign(gamma=gamma), "given with --gamma"
+        design, how = SettingsDesign(gamma=gamma), "given with --gamma"
     elif summary.has_test_flag:
-        design, source = observed_design(summary.counts), (
+        design, how = observed_design(summary.counts), (
             "OBSERVED fraction of test rounds (not pre-declared: the bound is indicative only)")
     else:
-        design, source = SettingsDesign(), "every round a test round (the log has no t column)"
+        design, how = SettingsDesign(), "every round a test round (the log has no t column)"
     if design.gamma < 1.0 and not summary.has_test_flag:
-        raise ParameterError(f"{log}: gamma = {design.gamma:g} < 1 needs a log with a t column "
-                             "marking test rounds; this log has none (every trial is a test round)")
+        raise ParameterError(f"{source}: gamma = {design.gamma:g} < 1 needs a log with a t "
+                             "column marking test rounds; this log has none (every trial is a "
+                             "test round)")
     if design.gamma >= 1.0 and int(summary.counts[0].sum()):
-        raise ParameterError(f"{log}: gamma = 1 declares every round a test round, but the log "
-                             f"marks {int(summary.counts[0].sum())} trials as generation rounds")
+        raise ParameterError(f"{source}: gamma = 1 declares every round a test round, but the "
+                             f"log marks {int(summary.counts[0].sum())} trials as generation "
+                             "rounds")
     like = proto if proto is not None else SimpleNamespace(
         design=design, analysis=None, method=None, conformance=None)
     report = check_design(summary.counts, like, block_counts=summary.block_counts,
                           pair_counts=summary.pair_counts, eps=eps)
     est = estimate_chsh(summary.counts, design, eps=eps)
-    return LogInspection(log=summary, estimate=est, design=design, design_source=source,
+    return LogInspection(log=summary, estimate=est, design=design, design_source=how,
                          design_report=report)
 
 
-__all__ = ["LogInspection", "inspect_log"]
+__all__ = ["LogInspection", "inspect_log", "inspect_summary"]

@@ -229,3 +229,22 @@ def test_the_library_quickstart_example_runs(tmp_path, capsys):
     assert "INVENTED" in out and "CertifyResult(status='certified'" in out
     assert "VerifyReport(result=" in out
     assert sorted(p.name for p in (tmp_path / "certified").iterdir()) == ["random.bits", "record.json"]
+
+
+def test_inspect_log_agrees_with_the_command_line(run):
+    from typer.testing import CliRunner
+
+    from dicert.cli.app import app
+
+    _d, log, _seed, _proto, _res, _rep = run
+    look = dicert.inspect_log(log, eps=1e-6)
+    r = CliRunner().invoke(app, ["inspect", str(log), "--json"])
+    assert r.exit_code == 0, r.output
+    cli = json.loads(r.stdout)
+    assert (cli["trials"], cli["chsh"], cli["chsh_lower"], cli["gamma_source"]) == (
+        look.trials, look.chsh, look.chsh_lower, look.design_source)
+    # The same refusal, with the same message, from both doors.
+    with pytest.raises(dicert.DicertError) as lib:
+        dicert.inspect_log(log, gamma=0.5)
+    r = CliRunner().invoke(app, ["inspect", str(log), "--gamma", "0.5"])
+    assert r.exit_code == 2 and str(lib.value) in r.stderr
