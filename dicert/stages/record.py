@@ -90,9 +90,102 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
     if solver_seconds is not None and isinstance(volatile, dict):
         volatile = {**volatile, "timings_s": {**volatile.get("timings_s", {}),
                                               "pef_solver": solver_seconds}}
+    published = analysis.status == "certified"
+    body: dict[str, Any] = {
+        "format": RECORD_FORMAT,
+        "kind": "certification",
+        "tool": {"name": "dicert", "version": __version__},
+        "protocol": {
+            "name": protocol.name,
+            "sha256": protocol.sha256,
+            "content": protocol.text,
+            "method": protocol.method,
+        },
+        "log": _log_section(scan),
+        "counts": {
+            "layout": "counts[t][x][y][a][b]; logs without a t column count every trial as t = 1",
+            "values": scan.counts.astype(np.int64).tolist(),
+        },
+        "estimate": plain(analysis.estimate),
+        "entropy": {
+            "single_round": _single_round(analysis.estimate),
+            "finite_size": _finite_section(fin, details),
+        },
+        "harvest": {
+            "parties": protocol.harvest.parties,
+            "rounds": protocol.harvest.rounds,
+            "order": HARVEST_ORDER,
+            "raw_bits": int(scan.raw_bits),
+            "raw_sha256": scan.raw_sha256,
+        },
+        "eps": _eps_section(protocol, analysis),
+        "extractor": _extractor_section(protocol, scan, analysis, seed_sha256, seed_bytes,
+                                        extraction),
+        "status": analysis.status,
+        "abort_reason": analysis.abort_reason,
+        "certified_min_entropy_bits": analysis.min_entropy_bits if published else 0.0,
+        "assumptions": _assumptions(fin),
+        "caution": CAUTION,
+        "references": [str(r) for r in fin.references],
+        "pulse_index": chain_info[0] if chain_info else None,
+        "previous_record_sha256": chain_info[1] if chain_info else None,
+        "volatile": volatile,
+    }
+    if analysis.design is not None:
+        body["design"] = _design_section(analysis, scan)
+    body["inputs"] = inputs if inputs is not None else {
+        "allow_mixed_inputs": False, "input_problems": [],
+        "allow_seed_reuse": False, "seed_problems": []}
+    if screens is not None:
+        body["output_screens"] = screens
+    return plain(body)
+
+
+def _log_section(scan: LogScan) -> dict:
+    """Which bytes of which files the record certifies (see *Log scope* in certification)."""
+    return {
+        "sha256": scan.sha256,
+        "size_bytes": int(scan.size_bytes),
+        "trials": int(scan.trials),
+        "files": ([dict(e) for e in scan.file_entries] if scan.file_entries
+                  else list(scan.files)),
+        "trials_in_log": int(scan.trials_in_log if scan.trials_in_log is not None
+                             else scan.trials),
+        "has_test_flag": bool(scan.has_test_flag),
+        "scope": scan.scope,
+        "bytes_read": int(scan.bytes_read if scan.bytes_read is not None
+                          else scan.size_bytes),
+        "trials_read": int(scan.trials_read if scan.trials_read is not None
+                           else scan.trials),
+        "stopped_early": bool(scan.stopped_early),
+        "stop_trial_index": scan.stop_trial_index,
+        "ended_by": scan.ended_by,
+        "follow": scan.follow,
+    }
+
+
+def _finite_section(fin: Any, details: Any) -> dict:
+    """The finite-size result as recorded."""
+    return {
+        "method": str(fin.method),
+        "side_information": str(fin.side_information),
+        "accepted": bool(fin.accepted),
+        "min_entropy_bits": float(fin.min_entropy_bits),
+        "smoothing_eps": float(fin.smoothing_eps),
+        "entropy_error": float(fin.entropy_error),
+        "eps": {str(k): float(v) for k, v in dict(fin.eps).items()},
+        "assumptions": [str(a) for a in fin.assumptions],
+        "references": [str(r) for r in fin.references],
+        "details": details,
+    }
+
+
+def _eps_section(protocol: Protocol, analysis: Analysis) -> dict:
+    """Every error term and the total soundness error."""
+    fin = analysis.finite
     eps = {str(k): float(v) for k, v in dict(fin.eps).items()}
     eps["eps_ext"] = float(protocol.extractor.eps_ext)
-    eps_block = {
+    return {
         "terms": eps,
         "smoothing_eps": float(fin.smoothing_eps),
         "entropy_error": float(fin.entropy_error),
@@ -100,9 +193,12 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
         "form": "P(accept) x distance from ideal of (output, seed, settings, side information) "
                 "<= total",
     }
-    certified = analysis.status == "certified"
-    published = certified
-    extractor = {
+
+
+def _extractor_section(protocol: Protocol, scan: LogScan, analysis: Analysis,
+                       seed_sha256: str, seed_bytes: int, extraction: Any | None) -> dict:
+    """The extractor, its seed and input and output digests."""
+    return {
         "kind": protocol.extractor.kind,
         "output_rule": protocol.extractor.output_rule,
         "eps_ext": float(protocol.extractor.eps_ext),
@@ -116,99 +212,31 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
         "method": getattr(extraction, "method", None) if extraction is not None else None,
         "convention": _extractor_convention(),
     }
+
+
+def _assumptions(fin: Any) -> list[str]:
+    """The general assumptions, the method's side-information model, then the method's own."""
     assumptions = list(ASSUMPTIONS)
-    side = str(fin.side_information)
-    assumptions.append(f"Side-information model of the method ({fin.method}): {side} "
-                       "side information held by the adversary.")
+    assumptions.append(f"Side-information model of the method ({fin.method}): "
+                       f"{fin.side_information} side information held by the adversary.")
     for a in fin.assumptions:
         if a not in assumptions:
             assumptions.append(str(a))
-    references = [str(r) for r in fin.references]
-    body: dict[str, Any] = {
-        "format": RECORD_FORMAT,
-        "kind": "certification",
-        "tool": {"name": "dicert", "version": __version__},
-        "protocol": {
-            "name": protocol.name,
-            "sha256": protocol.sha256,
-            "content": protocol.text,
-            "method": protocol.method,
-        },
-        "log": {
-            "sha256": scan.sha256,
-            "size_bytes": int(scan.size_bytes),
-            "trials": int(scan.trials),
-            "files": ([dict(e) for e in scan.file_entries] if scan.file_entries
-                      else list(scan.files)),
-            "trials_in_log": int(scan.trials_in_log if scan.trials_in_log is not None
-                                 else scan.trials),
-            "has_test_flag": bool(scan.has_test_flag),
-            "scope": scan.scope,
-            "bytes_read": int(scan.bytes_read if scan.bytes_read is not None
-                              else scan.size_bytes),
-            "trials_read": int(scan.trials_read if scan.trials_read is not None
-                               else scan.trials),
-            "stopped_early": bool(scan.stopped_early),
-            "stop_trial_index": scan.stop_trial_index,
-            "ended_by": scan.ended_by,
-            "follow": scan.follow,
-        },
-        "counts": {
-            "layout": "counts[t][x][y][a][b]; logs without a t column count every trial as t = 1",
-            "values": scan.counts.astype(np.int64).tolist(),
-        },
-        "estimate": plain(analysis.estimate),
-        "entropy": {
-            "single_round": _single_round(analysis.estimate),
-            "finite_size": {
-                "method": str(fin.method),
-                "side_information": side,
-                "accepted": bool(fin.accepted),
-                "min_entropy_bits": float(fin.min_entropy_bits),
-                "smoothing_eps": float(fin.smoothing_eps),
-                "entropy_error": float(fin.entropy_error),
-                "eps": {str(k): float(v) for k, v in dict(fin.eps).items()},
-                "assumptions": [str(a) for a in fin.assumptions],
-                "references": [str(r) for r in fin.references],
-                "details": details,
-            },
-        },
-        "harvest": {
-            "parties": protocol.harvest.parties,
-            "rounds": protocol.harvest.rounds,
-            "order": HARVEST_ORDER,
-            "raw_bits": int(scan.raw_bits),
-            "raw_sha256": scan.raw_sha256,
-        },
-        "eps": eps_block,
-        "extractor": extractor,
-        "status": analysis.status,
-        "abort_reason": analysis.abort_reason,
-        "certified_min_entropy_bits": analysis.min_entropy_bits if published else 0.0,
-        "assumptions": assumptions,
-        "caution": CAUTION,
-        "references": references,
-        "pulse_index": chain_info[0] if chain_info else None,
-        "previous_record_sha256": chain_info[1] if chain_info else None,
-        "volatile": volatile,
+    return assumptions
+
+
+def _design_section(analysis: Analysis, scan: LogScan) -> dict:
+    """The design checks and the settings statistics they were run on."""
+    sec = analysis.design.to_dict()
+    sec["inputs"] = {
+        "symbol": "settings symbol s = 4 t + 2 x + y (t = 0 for every trial of a log "
+                  "without a t column in pair_counts)",
+        "pair_counts": (np.asarray(scan.pair_counts, dtype=np.int64).tolist()
+                        if scan.pair_counts is not None else None),
+        "block_settings_counts": (np.asarray(scan.block_settings, dtype=np.int64).tolist()
+                                  if scan.block_settings is not None else None),
     }
-    if analysis.design is not None:
-        sec = analysis.design.to_dict()
-        sec["inputs"] = {
-            "symbol": "settings symbol s = 4 t + 2 x + y (t = 0 for every trial of a log "
-                      "without a t column in pair_counts)",
-            "pair_counts": (np.asarray(scan.pair_counts, dtype=np.int64).tolist()
-                            if scan.pair_counts is not None else None),
-            "block_settings_counts": (np.asarray(scan.block_settings, dtype=np.int64).tolist()
-                                      if scan.block_settings is not None else None),
-        }
-        body["design"] = sec
-    body["inputs"] = inputs if inputs is not None else {
-        "allow_mixed_inputs": False, "input_problems": [],
-        "allow_seed_reuse": False, "seed_problems": []}
-    if screens is not None:
-        body["output_screens"] = screens
-    return plain(body)
+    return sec
 
 
 def _now(clock: Clock | None) -> str:
