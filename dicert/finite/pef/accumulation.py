@@ -490,6 +490,8 @@ def certify_pef_counts(counts: Any, params: PefParams, design: Any = None, *,
 # =========================================================================== following a log
 
 
+# Long on purpose (about 100 lines): one polling generator; header, growth, trailer and idle
+# timeout share the file position and the partial trial carried between polls.
 def follow_log(path: Any, poll_s: float = 0.5, *, idle_timeout_s: float | None = None,
                chunk_trials: int = 1 << 20, hasher: Any = None,
                sleep: Any = time.sleep, clock: Any = time.monotonic) -> Iterator[np.ndarray]:
