@@ -70,6 +70,7 @@ from dicert._display import displayed
 from dicert.errors import DicertError, LogFormatError, ParameterError
 from dicert.stages.scan import (  # noqa: F401 (also re-exported: the old import paths)
     Clock,
+    MAX_BLOCK_POINTS,
     FollowSpec,
     LogScan,
     Progress,
@@ -83,6 +84,7 @@ from dicert.stages.scan import (  # noqa: F401 (also re-exported: the old import
     _scan_whole,
     _single_binary,
     expected_raw_bits,
+    group_blocks,
     harvest_bits,
     read_seed,
     scan_log,
@@ -106,6 +108,7 @@ from dicert.stages.record import (  # noqa: F401 (also re-exported: the old impo
     ASSUMPTIONS,
     CAUTION,
     HARVEST_ORDER,
+    _blocks_section,
     _extractor_convention,
     _now,
     _single_round,

@@ -56,6 +56,7 @@ from dicert.stages.rederive import (  # noqa: F401 (also the old import path)
     _legacy_design_note,
     _load_public_key,
     _protocol_of,
+    _recorded_block_series,
     _recorded_counts,
     _require,
     _scan_from_record,

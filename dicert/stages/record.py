@@ -15,7 +15,7 @@ import numpy as np
 
 from dicert import __version__
 from dicert._plain import plain
-from dicert.stages.analysis import Analysis
+from dicert.stages.analysis import Analysis, _estimate_eps
 from dicert.stages.scan import Clock, LogScan
 
 if TYPE_CHECKING:
@@ -138,6 +138,10 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
         "allow_seed_reuse": False, "seed_problems": []}
     if screens is not None:
         body["output_screens"] = screens
+    if scan.block_series is not None:
+        section = _blocks_section(scan.block_series, protocol)
+        if section is not None:
+            body["estimate_blocks"] = section
     return plain(body)
 
 
@@ -223,6 +227,32 @@ def _assumptions(fin: Any) -> list[str]:
         if a not in assumptions:
             assumptions.append(str(a))
     return assumptions
+
+
+def _blocks_section(block_series: Any, protocol: Protocol) -> dict | None:
+    """The record's per-block CHSH series (informational, drawn by reports and beacon pages)."""
+    from dicert.estimate import azuma_margin, martingale_chsh
+
+    firsts, counts = block_series
+    if not len(firsts):
+        return None
+    eps = _estimate_eps(protocol)
+    design = protocol.design
+    blocks = []
+    for first, row in zip(firsts, np.asarray(counts, dtype=np.int64)):
+        n = int(row.sum())
+        if n == 0:
+            continue
+        value = martingale_chsh(row.reshape(2, 2, 2, 2, 2), design)
+        margin = azuma_margin(n, design.estimator_width, eps)
+        blocks.append({"first_trial": int(first), "trials": n, "counts": row.tolist(),
+                       "chsh": value, "chsh_lower": value - margin,
+                       "chsh_upper": value + margin})
+    return {"note": "martingale CHSH estimate per group of consecutive trials with its "
+                    "two-sided Azuma-Hoeffding interval at eps_per_side (each group on its "
+                    "own; informational: drift shows here, certification uses the whole log)",
+            "eps_per_side": eps, "counts_order": "[t, x, y, a, b] flattened",
+            "blocks": blocks}
 
 
 def _design_section(analysis: Analysis, scan: LogScan) -> dict:

@@ -265,7 +265,7 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
 
 
 #: Top-level record members introduced by dicert-record/2.
-_V2_MEMBERS = ("design", "inputs", "output_screens")
+_V2_MEMBERS = ("design", "inputs", "output_screens", "estimate_blocks")
 #: What a dicert-record/1 record lacks (said in verify's notes).
 LEGACY_LACKS = ("design-conformance checks (test-round fraction, settings distribution, "
                 "serial independence, physical range, declared trial count)",
@@ -360,6 +360,9 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Protocol):
         _require(isinstance(in_log, int) and in_log >= trials, "log.trials_in_log",
                  f"expected an integer >= log.trials, got {in_log!r}")
         extra["trials_in_log"] = in_log
+    series = body.get("estimate_blocks")
+    if isinstance(series, Mapping):
+        extra["block_series"] = _recorded_block_series(series, counts)
     if isinstance(files, list) and files and all(isinstance(f, Mapping) for f in files):
         extra["file_entries"] = tuple(dict(f) for f in files)
         files = [f.get("name") for f in files]
@@ -369,6 +372,23 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Protocol):
                    has_test_flag=has_t, raw_bits=raw_bits,
                    raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite, **scope,
                    **extra)
+
+
+def _recorded_block_series(series: Mapping[str, Any], counts: Any) -> tuple:
+    """The per-block counts a record states, checked against its counts table."""
+    blocks = series.get("blocks")
+    _require(isinstance(blocks, list) and blocks and all(isinstance(b, Mapping) for b in blocks),
+             "estimate_blocks.blocks", "expected a non-empty list of blocks")
+    firsts = tuple(b.get("first_trial") for b in blocks)
+    _require(all(isinstance(f, int) and f >= 0 for f in firsts), "estimate_blocks.blocks",
+             "first_trial must be a non-negative integer")
+    table = _int_table([b.get("counts") for b in blocks], (-1, 32),
+                       "estimate_blocks.blocks.counts")
+    _require(bool((np.asarray(table).sum(axis=0).reshape(2, 2, 2, 2, 2)
+                   == np.asarray(counts)).all()),
+             "estimate_blocks.blocks.counts", "the blocks' counts do not add up to the "
+             "record's counts table")
+    return firsts, table
 
 
 def _concatenated_digest(files: list[Path]) -> str:

@@ -61,6 +61,9 @@ class LogScan:
     trials_in_log: int | None = None  # trials present (> trials when n was declared)
     file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
     formats: tuple = ()  # format of each file
+    # Per-block counts for the record's CHSH-per-block series (see group_blocks):
+    # (first trial of each group, (G, 32) int64 counts), or None.
+    block_series: Any = None
 
 
 # --------------------------------------------------------------------------- harvesting
@@ -616,8 +619,28 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                    pair_counts=summary.pair_counts, trials_in_log=in_log,
                    file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
                                        "sha256": f.sha256} for f in summary.files),
-                   formats=tuple(f.format for f in summary.files))
+                   formats=tuple(f.format for f in summary.files),
+                   block_series=group_blocks(summary.block_counts, block_trials))
     return scan, sink
+
+
+#: At most this many points in a record's per-block CHSH series (consecutive blocks are
+#: merged into groups of equal size so the record stays small whatever the log's length).
+MAX_BLOCK_POINTS = 64
+
+
+def group_blocks(block_counts: Any, block_trials: int) -> tuple[tuple[int, ...], np.ndarray]:
+    """Merge consecutive blocks into at most :data:`MAX_BLOCK_POINTS` groups.
+
+    Returns the first trial (0-based) of each group and the groups' counts, shape (G, 32),
+    each row the flattened [t, x, y, a, b] table.
+    """
+    bc = np.asarray(block_counts, dtype=np.int64).reshape(-1, 32)
+    if bc.shape[0] == 0:
+        return (), bc
+    size = -(-bc.shape[0] // MAX_BLOCK_POINTS)
+    starts = list(range(0, bc.shape[0], size))
+    return tuple(k * int(block_trials) for k in starts), np.add.reduceat(bc, starts, axis=0)
 
 
 def read_seed(seed: bytes | str | os.PathLike[str]) -> tuple[bytes, str]:
