@@ -20,6 +20,9 @@ from dicert.errors import DicertError, LogFormatError, ParameterError, SeedError
 from dicert.stages.scan import LogScan
 
 if TYPE_CHECKING:
+    from dicert.design import DesignReport
+    from dicert.estimate import ChshEstimate
+    from dicert.finite.result import FiniteSizeResult
     from dicert.protocol import Protocol
 
 
@@ -27,15 +30,15 @@ if TYPE_CHECKING:
 class Analysis:
     """Decisions derived from the counts and the protocol alone (re-derivable by verify)."""
 
-    estimate: Any
-    finite: Any
+    estimate: ChshEstimate
+    finite: FiniteSizeResult
     status: str
     abort_reason: str | None
     min_entropy_bits: float
     output_bits: int
     seed_bits_needed: int
     total_error: float
-    design: Any = None  # dicert.design.DesignReport
+    design: DesignReport | None = None
 
 
 # --------------------------------------------------------------------------- analysis
