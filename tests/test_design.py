@@ -206,6 +206,7 @@ def honest(tmp_path_factory):
 
 @pytest.mark.parametrize("log,proto", [("u.btl", "chsh-uniform.toml"),
                                        ("s.btl", "chsh-spotcheck.toml"),
+                                       ("s.btl", "chsh-spotcheck-pair.toml"),
                                        ("p.btl", "ch-photonic.toml")])
 def test_honest_runs_of_every_shipped_protocol_certify(honest, tmp_path, log, proto):
     from dicert.verify import verify
