@@ -26,6 +26,8 @@ T = TypeVar("T", bound=type)
 
 def _fmt(v: Any) -> str:
     """One value, short: floats to 6 significant digits, long strings and sequences cut."""
+    if hasattr(v, "item") and getattr(v, "ndim", None) == 0:  # a numpy scalar
+        v = v.item()
     if isinstance(v, bool) or v is None:
         return repr(v)
     if isinstance(v, float) or type(v).__name__.startswith("float"):

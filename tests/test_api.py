@@ -253,3 +253,23 @@ def test_inspect_log_agrees_with_the_command_line(run):
         dicert.inspect_log(log, gamma=0.5)
     r = CliRunner().invoke(app, ["inspect", str(log), "--gamma", "0.5"])
     assert r.exit_code == 2 and str(lib.value) in r.stderr
+
+
+def test_display_formats_numpy_scalars_and_escapes_html():
+    import dataclasses
+
+    from dicert._display import displayed
+
+    @displayed
+    @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+    class Probe:
+        n: object
+        label: str
+
+        def _headline(self, full):
+            return [("n", self.n), ("label", self.label)]
+
+    p = Probe(n=np.int64(7), label="<b>&</b>")
+    assert repr(p) == "Probe(n=7, label='<b>&</b>')"
+    assert "&lt;b&gt;&amp;&lt;/b&gt;" in p._repr_html_() and "<b>&</b>" not in p._repr_html_()
+    assert p.summary().splitlines() == ["Probe", "  n      7", "  label  <b>&</b>"]
