@@ -26,6 +26,7 @@ COMMAND_MODULES = (
     "certify",
     "verify",
     "publish",
+    "report",
     "inspect",
     "plan",
     "entropy",
