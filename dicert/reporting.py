@@ -968,29 +968,45 @@ def _load_record(path: str | os.PathLike[str]) -> dict[str, Any]:
 def write_report(record: str | os.PathLike[str], out: str | os.PathLike[str], *,
                  fmt: str | None = None, with_plan: bool = True) -> ReportResult:
     """Render the report of a record file into ``out`` (HTML or Markdown; Markdown figures
-    as SVG files next to it, ``<stem>-<figure>.svg``), each file written atomically.
+    as SVG files next to it, ``<stem>-<figure>.svg``), written as one unit (temporary
+    siblings, then renames).
 
     Raises :class:`ReportError` (exit code 2) for an unsupported format or extension (before
     the record is read) and for a file that is not a certification record.
     """
-    from dicert._io import atomic_write_bytes
+    import contextlib
+
+    from dicert._io import make_parent, output_errors, write_temp_sibling
 
     kind = report_format(out, fmt)
     rec = _load_record(record)
     out_path = Path(out)
-    written: list[str] = []
     figures: list[str] = []
+    outputs: list[tuple[Path, bytes]] = []
     if kind == "html":
-        text = render_html(rec, with_plan=with_plan)
+        outputs.append((out_path, render_html(rec, with_plan=with_plan).encode("utf-8")))
     else:
         text, files = render_markdown(rec, figure_prefix=out_path.stem, with_plan=with_plan)
         for name, svg in files.items():
-            p = out_path.with_name(name)
-            atomic_write_bytes(p, svg.encode("utf-8"))
-            figures.append(str(p))
-            written.append(str(p))
-    atomic_write_bytes(out_path, text.encode("utf-8"))
-    written.append(str(out_path))
+            outputs.append((out_path.with_name(name), svg.encode("utf-8")))
+            figures.append(str(out_path.with_name(name)))
+        outputs.append((out_path, text.encode("utf-8")))
+    # The files appear together: every temporary sibling first, then the renames (the report
+    # last), so a full disk leaves earlier files as they were and no temporary file behind.
+    make_parent(out_path)
+    temps: list[tuple[Path, Path]] = []
+    try:
+        for target, data in outputs:
+            temps.append((write_temp_sibling(target, data), target))
+        for tmp, target in temps:
+            with output_errors(target, tmp):
+                os.replace(tmp, target)
+    except BaseException:
+        for tmp, _ in temps:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+        raise
+    written = [str(t) for t, _ in outputs]
     out_bits = _get(rec, "extractor.output_bits")
     trials = _get(rec, "log.trials")
     return ReportResult(

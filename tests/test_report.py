@@ -57,6 +57,17 @@ def records(tmp_path_factory):
     res = certify(w / "u.btl", uniform_protocol(), w / "bad.bin", w / "out")
     assert res.status == "withheld"
     out["withheld"] = Path(res.record_file)
+    # Entropy accumulation with spot-checking (acceptance: losses against a count limit).
+    from dicert.protocol import load_protocol
+
+    from helpers import ROOT
+
+    e = root / "eat"
+    e.mkdir()
+    proto = load_protocol(ROOT / "protocols" / "chsh-spotcheck.toml")
+    write_log(e / "s.btl", sim_trials(200_000, seed=5, gamma=proto.design.gamma))
+    (e / "seed.bin").write_bytes(np.random.default_rng(1).bytes(200_000))
+    out["eat"] = Path(certify(e / "s.btl", proto, e / "seed.bin", e / "out").record_file)
     # A /1-style record: no design section (reports need not verify; only render).
     v1 = json.loads(out["certified"].read_bytes())
     v1.pop("design")
@@ -188,7 +199,7 @@ def md_cells(text, record):
 # --------------------------------------------------------------------------- numbers
 
 
-@pytest.mark.parametrize("name", ["certified", "aborted", "withheld", "pef", "v1"])
+@pytest.mark.parametrize("name", ["certified", "aborted", "withheld", "pef", "eat", "v1"])
 def test_every_tagged_number_in_html_matches_the_record(records, name):
     from dicert.reporting import render_html
 
@@ -204,7 +215,7 @@ def test_every_tagged_number_in_html_matches_the_record(records, name):
         assert {f"eps.terms.{t}" for t in rec["eps"]["terms"]} <= keys  # term by term
 
 
-@pytest.mark.parametrize("name", ["certified", "aborted", "withheld", "pef", "v1"])
+@pytest.mark.parametrize("name", ["certified", "aborted", "withheld", "pef", "eat", "v1"])
 def test_every_tagged_number_in_markdown_matches_the_record(records, name):
     from dicert.reporting import render_markdown
 
@@ -290,6 +301,11 @@ def test_acceptance_test_against_its_declared_limit(records):
     pd = pef["entropy"]["finite_size"]["details"]
     assert "entropy.finite_size.details.threshold_log2` |" in text
     assert pd["log2_t"] >= pd["threshold_log2"] and "Result: **passed**" in text
+    _, eat = records["eat"]
+    text, _ = render_markdown(eat, with_plan=False)
+    ed = eat["entropy"]["finite_size"]["details"]
+    assert "entropy.finite_size.details.count_limit` |" in text
+    assert ("Result: **passed**" in text) == (ed["losses"] <= ed["count_limit"])
 
 
 def test_assumptions_and_caution_verbatim(records):
@@ -318,6 +334,10 @@ def test_status_specific_content(records):
     assert "| output screens passed | no |" in text
     text, _ = render_markdown(records["v1"][1], with_plan=False)
     assert "has no `design` section" in text and "| `test_settings_x` |" not in text
+    from dicert.reporting import render_html
+
+    assert 'id="no-design"' in render_html(records["v1"][1], with_plan=False)
+    assert 'id="no-design"' not in render_html(records["certified"][1], with_plan=False)
 
 
 def test_bibtex_entries_from_the_records_references(records):
@@ -511,3 +531,53 @@ def test_html_report_renders_in_a_headless_browser(browser, records, tmp_path): 
         shot = tmp_path / f"report-{name}.png"
         assert browser.save_screenshot(str(shot)) and shot.stat().st_size > 10_000
         browser.set_window_size(1400, 1000)
+
+
+class _FullDisk:
+    """A file object whose every write fails as on a full disk (as tests/test_outputs_faults.py)."""
+
+    def __init__(self, fh) -> None:
+        self._fh = fh
+
+    def write(self, data) -> int:
+        import errno
+        import os
+
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    def __getattr__(self, name):
+        return getattr(self._fh, name)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._fh.close()
+
+
+@pytest.mark.parametrize("suffix", [".html", ".md"])
+def test_disk_full_leaves_earlier_files_and_no_temporary(records, tmp_path, monkeypatch, suffix):
+    import os
+
+    path, _ = records["certified"]
+    out = tmp_path / "out"
+    out.mkdir()
+    target = out / f"r{suffix}"
+    target.write_bytes(b"earlier report\n")
+    (out / "r-acceptance.svg").write_bytes(b"earlier figure\n")
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    real_fdopen = os.fdopen
+    monkeypatch.setattr(os, "fdopen", lambda *a, **k: _FullDisk(real_fdopen(*a, **k)))
+    r = CliRunner().invoke(app, ["report", str(path), "--out", str(target), "--no-plan"])
+    assert r.exit_code == 2 and "No space left on device" in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+
+
+def test_output_below_a_regular_file_is_one_line(records, tmp_path):
+    path, _ = records["certified"]
+    blocker = tmp_path / "blocker"
+    blocker.write_bytes(b"x")
+    r = CliRunner().invoke(app, ["report", str(path), "--out", str(blocker / "sub" / "r.md"),
+                                 "--no-plan"])
+    assert r.exit_code == 2 and "ENOTDIR" in r.stderr and len(r.stderr.strip().splitlines()) == 1
