@@ -619,7 +619,8 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
              if x <= 100.0 * trials]
     label = f"certified output bits against trials, planner row {row.name}"
     caption = (f"Planner (dicert.planning.plan) for this protocol, method {row.name}, honest "
-               f"devices at CHSH {result.chsh:.6g} (this run's estimate, kept inside (2, 2\u221a2)), "
+               f"devices at CHSH {result.chsh:.6g} (this run's estimate, kept inside "
+               "(2, 2\u221a2)), "
                f"gamma {result.gamma:g}: certified output bits on acceptance against the number "
                f"of trials; at this run's {_fmt(trials)} trials the planner expects "
                f"{_fmt(int(row.certified_bits))} bits; the marked point is this run's output "
@@ -629,7 +630,8 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
                    svg=_svg_plan(curve, run, label)), ""
 
 
-def _figures(record: Mapping[str, Any], *, with_plan: bool = True) -> tuple[list[_Figure], list[str]]:
+def _figures(record: Mapping[str, Any], *,
+             with_plan: bool = True) -> tuple[list[_Figure], list[str]]:
     figs, notes = [], []
     threshold = _num(_get(record, "entropy.finite_size.details.chsh_threshold"))
     for s in block_series(record):
@@ -764,7 +766,8 @@ def _render_html(record: Mapping[str, Any], figs: Sequence[_Figure], notes: Sequ
     if rows is None:
         out.append(f'<p class="note" id="no-design">{_e(_NO_DESIGN.replace("`", ""))}</p>\n')
     else:
-        out.append(f"<p>Significance of every check: {_exact(_num(_get(record, 'design.significance')))}; "
+        sig = _exact(_num(_get(record, 'design.significance')))
+        out.append(f"<p>Significance of every check: {sig}; "
                    f"overall: {'passed' if _get(record, 'design.passed') else 'FAILED'}.</p>\n")
         trs = "\n".join(
             f'<tr data-key="{_e(r["key"])}"><td><code>{_e(r["name"])}</code><br>'
@@ -785,7 +788,8 @@ def _render_html(record: Mapping[str, Any], figs: Sequence[_Figure], notes: Sequ
         out.append(f"<p>Accept iff the {_e(acc.name)} {_e(acc.relation)} the limit fixed in the "
                    f"protocol before the data were taken. Result: <strong>{verdict}</strong>."
                    "</p>\n" + _html_facts([acc.statistic, acc.limit]))
-    out.append("<h2>Entropy: single-round and finite-size</h2>\n" + _html_facts(sections["entropy"]))
+    out.append("<h2>Entropy: single-round and finite-size</h2>\n"
+               + _html_facts(sections["entropy"]))
     refs = bibtex_entries(_references(record))
     if refs:
         out.append("<h3>References</h3>\n<ol>"
@@ -866,7 +870,8 @@ def render_markdown(record: Mapping[str, Any], *, figure_prefix: str = "report",
             out.append(f"| `{r['name']}` | {r['statistic']} | {r['p_value']} | "
                        f"{r['threshold']} | {r['result']} | {_md(r['reference'])} |\n")
         out.append("\n")
-    out.append("## Bell estimate\n\n" + _md_facts(sections["estimate"]) + "\n## Acceptance test\n\n")
+    out.append("## Bell estimate\n\n" + _md_facts(sections["estimate"])
+               + "\n## Acceptance test\n\n")
     acc = _acceptance(record)
     if acc is None:
         out.append("The record names no acceptance statistic.\n\n")
@@ -891,7 +896,8 @@ def render_markdown(record: Mapping[str, Any], *, figure_prefix: str = "report",
         for x, m in terms:
             out.append(f"| `{x.label}` | {x.text} | {_md(m)} | `{x.key}` |\n")
         if total is not None:
-            out.append(f"| **total soundness error** | **{total.text}** | the whole protocol (meaning below) | "
+            out.append(f"| **total soundness error** | **{total.text}** | "
+                       "the whole protocol (meaning below) | "
                        "`eps.total` |\n")
         if form:
             out.append(f"\nMeaning of the total: {_md(form)}.\n")

@@ -26,7 +26,7 @@ from typer.testing import CliRunner
 
 from helpers import sim_trials, uniform_protocol
 from site_support import build_chain, build_pef_chain
-from test_site_browser import _need_browser, browser  # noqa: F401  (the shared browser fixture)
+from test_site_browser import browser  # noqa: F401  (the shared browser fixture)
 
 from dicert.cli.app import app
 
