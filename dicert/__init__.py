@@ -49,6 +49,7 @@ _EXPORTS: dict[str, tuple[str, str]] = {
     "certify": ("dicert.certification", "certify"),
     "verify": ("dicert.verification", "verify"),
     "verify_chain": ("dicert.verification", "verify_chain"),
+    "write_report": ("dicert.reporting", "write_report"),
     # primitives for experts
     "estimate_chsh": ("dicert.estimate", "estimate_chsh"),
     "entropy_bound": ("dicert.entropy", "bound_entropy"),

@@ -31,6 +31,7 @@ from decimal import ROUND_CEILING, Decimal
 from pathlib import Path
 from typing import Any
 
+from dicert._display import displayed
 from dicert.beacon.pages import (
     CHSH_QUANTUM_BOUND,
     _c,
@@ -92,6 +93,7 @@ class Fact:
     decimals: int = 0
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class ReportResult:
     """What :func:`write_report` wrote, and the headline numbers."""
@@ -108,6 +110,17 @@ class ReportResult:
     output_bits: int | None
     eps_total: float | None
     record_sha256: str | None
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows: list[tuple[str, object]] = [("out", self.out), ("format", self.format),
+                                          ("status", self.status),
+                                          ("output_bits", self.output_bits)]
+        if full:
+            rows += [("figures", len(self.figures)), ("trials", self.trials),
+                     ("chsh_lower", self.chsh_lower),
+                     ("min_entropy_bits", self.min_entropy_bits),
+                     ("eps_total", self.eps_total), ("record_sha256", self.record_sha256)]
+        return rows
 
 
 # --------------------------------------------------------------------------- numbers

@@ -581,3 +581,12 @@ def test_output_below_a_regular_file_is_one_line(records, tmp_path):
     r = CliRunner().invoke(app, ["report", str(path), "--out", str(blocker / "sub" / "r.md"),
                                  "--no-plan"])
     assert r.exit_code == 2 and "ENOTDIR" in r.stderr and len(r.stderr.strip().splitlines()) == 1
+
+
+def test_public_api_write_report(records, tmp_path):
+    import dicert
+
+    path, rec = records["pef"]
+    res = dicert.write_report(path, tmp_path / "r.html", with_plan=False)
+    assert f"output_bits={rec['extractor']['output_bits']}" in repr(res)
+    assert res.to_dict()["record_sha256"] == rec["record_sha256"]
