@@ -348,6 +348,8 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
             f("trials analysed", "log.trials", "int"),
             f("trials in the log", "log.trials_in_log", "int"),
             f("test rounds", "estimate.test_trials", "int"),
+            f("trials declared in the protocol", "design.trials.declared", "int"),
+            f("where n came from", "design.trials.source", "text"),
             f("protocol", "protocol.name", "text"),
             f("protocol file (SHA-256)", "protocol.sha256", "digest"),
             f("previous record in the chain", "previous_record_sha256", "digest"),
@@ -373,6 +375,9 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
     fin = "entropy.finite_size"
     sr = "entropy.single_round"
     entropy = [f("finite-size method", f"{fin}.method", "text"),
+               f("single-round method", f"{fin}.details.single_round", "text"),
+               f("single-round method", f"{fin}.details.single_round.method", "text"),
+               f("single-round reference", f"{fin}.details.single_round.reference", "text"),
                f("side information", f"{fin}.side_information", "text"),
                f("certified smooth min-entropy, bits (rounded down)",
                  "certified_min_entropy_bits", "down", decimals=3),
@@ -406,7 +411,8 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
             # a p-value of 0 is an underflow: its log10 (next row) is the number to quote
             ("estimate", [x for x in estimate if x.value is not None
                           and not (x.key == "estimate.p_value_local" and x.value == 0)]),
-            ("entropy", [x for x in entropy if x.value is not None]),
+            ("entropy", [x for x in entropy if x.value is not None
+                         and not isinstance(x.value, Mapping)]),
             ("output", [x for x in output if x.value is not None])]
 
 
@@ -788,6 +794,10 @@ def _render_html(record: Mapping[str, Any], figs: Sequence[_Figure], notes: Sequ
             f'<td class="num">{_e(r["statistic"])}</td><td class="num">{_e(r["p_value"])}</td>'
             f'<td class="num">{_e(r["threshold"])}</td><td>{_e(r["result"])}</td>'
             f'<td class="small">{_e(r["reference"])}</td></tr>' for r in rows)
+        checked = _get(record, "design.checked")
+        if isinstance(checked, list) and checked:
+            out.append("<p>Checked on the data:</p>\n<ul>"
+                       + "".join(f"<li>{_e(c)}</li>" for c in checked) + "</ul>\n")
         out.append('<div class="table-wrap"><table class="checks"><thead><tr><th>check</th>'
                    "<th>statistic</th><th>p-value</th><th>significance</th><th>result</th>"
                    "<th>method</th></tr></thead>\n<tbody>" + trs + "</tbody></table></div>\n")
@@ -877,7 +887,9 @@ def render_markdown(record: Mapping[str, Any], *, figure_prefix: str = "report",
         out.append(f"Significance of every check: "
                    f"{_exact(_num(_get(record, 'design.significance')))}; overall: "
                    f"{'passed' if _get(record, 'design.passed') else 'FAILED'}.\n\n"
-                   "| check | statistic | p-value | significance | result | method |\n"
+                   + ("Checked on the data:\n\n" if _get(record, "design.checked") else "")
+                   + "".join(f"- {_md(c)}\n" for c in (_get(record, "design.checked") or []))
+                   + "\n| check | statistic | p-value | significance | result | method |\n"
                    "|---|---|---|---|---|---|\n")
         for r in rows:
             out.append(f"| `{r['name']}` | {r['statistic']} | {r['p_value']} | "
