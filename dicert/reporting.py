@@ -860,7 +860,11 @@ def _render_html(record: Mapping[str, Any], figs: Sequence[_Figure], notes: Sequ
 
 
 def _md(text: Any) -> str:
-    return str(text).replace("|", "\\|").replace("\n", " ")
+    """Record text for Markdown: table pipes escaped, and a '<' that could open an HTML tag or
+    comment written as an entity (so raw HTML in a record is shown, never rendered); other
+    text stays verbatim ('P < 1e-09', '<= total')."""
+    text = re.sub(r"<(?=[A-Za-z/!?])", "&lt;", str(text))
+    return text.replace("|", "\\|").replace("\n", " ")
 
 
 def _md_facts(facts: Sequence[Fact]) -> str:
@@ -877,7 +881,7 @@ def render_markdown(record: Mapping[str, Any], *, figure_prefix: str = "report",
     SVG})``; the text references the files by relative name ``{figure_prefix}-{name}.svg``."""
     figs, notes = _figures(record, with_plan=with_plan)
     files = {f"{figure_prefix}-{f.name}.svg": _standalone_svg(f.svg) for f in figs}
-    out = [f"# {_title(record)}\n\n", _md(_summary(record)) + "\n\n"]
+    out = [f"# {_md(_title(record))}\n\n", _md(_summary(record)) + "\n\n"]
     sections = dict(_sections(record))
     out.append("## Data\n\n" + _md_facts(sections["data"]) + "\n## Design checks\n\n")
     rows = _design_rows(record)

@@ -590,3 +590,40 @@ def test_public_api_write_report(records, tmp_path):
     res = dicert.write_report(path, tmp_path / "r.html", with_plan=False)
     assert f"output_bits={rec['extractor']['output_bits']}" in repr(res)
     assert res.to_dict()["record_sha256"] == rec["record_sha256"]
+
+
+@pytest.mark.parametrize("decimals", [0, 3, 6])
+def test_rounding_helpers_never_round_the_wrong_way(decimals):
+    """Property (hypothesis): for any finite float, 'down' is at most the value and within one
+    unit of the last place, 'up' at least the value and within one unit (exact decimal
+    arithmetic, Python's decimal module: IEEE 754 doubles are exact binary fractions)."""
+    from hypothesis import given
+    from hypothesis import strategies as st
+
+    from dicert.reporting import _fact
+
+    unit = Decimal(1).scaleb(-decimals)
+
+    @given(st.floats(min_value=-1e12, max_value=1e12, allow_nan=False))
+    def prop(v):
+        rec = {"v": v}
+        down = Decimal(_fact(rec, "", "v", "down", decimals=decimals).text.replace(NNBSP, ""))
+        up = Decimal(_fact(rec, "", "v", "up", decimals=decimals).text.replace(NNBSP, ""))
+        assert down <= Decimal(v) < down + unit
+        assert up - unit < Decimal(v) <= up
+
+    prop()
+
+
+def test_record_strings_are_escaped(records):
+    from dicert.reporting import render_html, render_markdown
+
+    rec = json.loads(json.dumps(records["certified"][1]))
+    rec["protocol"]["name"] = "<script>alert(1)</script> | x"
+    rec["assumptions"] = rec["assumptions"] + ["a <b>bold</b> claim"]
+    page = render_html(rec, with_plan=False)
+    assert "<script" not in page and "<b>bold" not in page
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+    text, _ = render_markdown(rec, with_plan=False)
+    assert "<script" not in text and "<b>" not in text
+    assert "| protocol | &lt;script>alert(1)&lt;/script> \\| x | `protocol.name` |" in text
