@@ -378,9 +378,33 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
     px0, py0, bx, by = _test_settings_model(protocol)
     declared = declared_trials(protocol)
     checks: list[DesignCheck] = []
-    ref_binom = ("exact two-sided binomial test (minlike p-value, as scipy.stats.binomtest; "
-                 "Clopper & Pearson 1934)")
+    checks += _count_checks(c, n, in_log, declared, decided_early, gamma, gen, alpha)
+    pxr = (max(px0 - bx, 0.0), min(px0 + bx, 1.0))
+    pyr = (max(py0 - by, 0.0), min(py0 + by, 1.0))
+    ranges = (pxr, pyr, _xor_range(pxr, pyr))
+    checks += _settings_checks(c[1].sum(axis=(2, 3)), ranges, alpha)
+    if block_counts is not None:
+        checks += _block_checks(block_counts, ranges, gamma, alpha, spec.block_trials)
+    if pair_counts is not None:
+        checks.append(_serial_check(pair_counts, alpha))
+    if eps is None:
+        eps = _estimate_eps(protocol)
+    n_test = int(c[1].sum())
+    if n > 0 and n_test > 0:
+        checks.append(_range_check(c, gamma, px0, py0, eps, protocol))
+    return DesignReport(significance=alpha, block_trials=spec.block_trials, trials=n,
+                        trials_in_log=in_log, declared_trials=declared, checks=tuple(checks))
 
+
+_REF_BINOM = ("exact two-sided binomial test (minlike p-value, as scipy.stats.binomtest; "
+              "Clopper & Pearson 1934)")
+_SETTING_EVENTS = {"x": "P(x = 0)", "y": "P(y = 0)", "xor": "P(x XOR y = 0)"}
+
+
+def _count_checks(c: np.ndarray, n: int, in_log: int, declared: int | None, decided_early: bool,
+                  gamma: float, gen: tuple, alpha: float) -> list[DesignCheck]:
+    """Trial count, test-round fraction and generation settings."""
+    checks: list[DesignCheck] = []
     # -- trial count
     if declared is not None:
         ok = in_log >= declared or decided_early
@@ -405,7 +429,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             detail=(f"{n_test} test rounds in {n} trials ({n_test / max(n, 1):.6g}); "
                     f"declared gamma = {gamma:g} (expected {gamma * n:.6g}); two-sided "
                     f"p {_fp(p)}, significance {alpha:g}"),
-            reference=ref_binom))
+            reference=_REF_BINOM))
         wrong_gen = int(c[0].sum() - c[0, gen[0], gen[1]].sum())
         checks.append(DesignCheck(
             name="generation_settings", statistic=float(wrong_gen), p_value=None,
@@ -414,24 +438,27 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             detail=(f"{wrong_gen} generation rounds (t = 0) with settings other than the "
                     f"declared {list(gen)}"),
             reference="protocol definition (deterministic check)"))
+    return checks
 
-    # -- test settings
-    tc = c[1].sum(axis=(2, 3))  # [x, y]
-    pxr = (max(px0 - bx, 0.0), min(px0 + bx, 1.0))
-    pyr = (max(py0 - by, 0.0), min(py0 + by, 1.0))
-    xr = _xor_range(pxr, pyr)
 
-    def settings_tests(tcxy: np.ndarray) -> list[tuple[str, int, int, tuple[float, float], float]]:
-        m = int(tcxy.sum())
-        kx = int(tcxy[0].sum())
-        ky = int(tcxy[:, 0].sum())
-        kxor = int(tcxy[0, 0] + tcxy[1, 1])
-        return [("x", kx, m, pxr, binomial_two_sided(kx, m, *pxr)),
-                ("y", ky, m, pyr, binomial_two_sided(ky, m, *pyr)),
-                ("xor", kxor, m, xr, binomial_two_sided(kxor, m, *xr))]
+def _settings_tests(tcxy: np.ndarray, ranges: tuple
+                    ) -> list[tuple[str, int, int, tuple[float, float], float]]:
+    """The three binomial tests of test-round settings counts ``tcxy[x, y]``."""
+    pxr, pyr, xr = ranges
+    m = int(tcxy.sum())
+    kx = int(tcxy[0].sum())
+    ky = int(tcxy[:, 0].sum())
+    kxor = int(tcxy[0, 0] + tcxy[1, 1])
+    return [("x", kx, m, pxr, binomial_two_sided(kx, m, *pxr)),
+            ("y", ky, m, pyr, binomial_two_sided(ky, m, *pyr)),
+            ("xor", kxor, m, xr, binomial_two_sided(kxor, m, *xr))]
 
-    descr = {"x": "P(x = 0)", "y": "P(y = 0)", "xor": "P(x XOR y = 0)"}
-    for which, k, m, rng_, p in settings_tests(tc):
+
+def _settings_checks(tc: np.ndarray, ranges: tuple, alpha: float) -> list[DesignCheck]:
+    """The test settings of the whole log."""
+    checks: list[DesignCheck] = []
+    descr = _SETTING_EVENTS
+    for which, k, m, rng_, p in _settings_tests(tc, ranges):
         want = f"{rng_[0]:g}" if rng_[0] == rng_[1] else f"[{rng_[0]:g}, {rng_[1]:g}]"
         checks.append(DesignCheck(
             name=f"test_settings_{which}", statistic=float(k), p_value=p, threshold=alpha,
@@ -441,81 +468,85 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             detail=(f"{k} of {m} test rounds with {descr[which].split('(')[1][:-1]} "
                     f"({k / max(m, 1):.6g}); declared {descr[which]} = {want}; two-sided "
                     f"p {_fp(p)}, significance {alpha:g}"),
-            reference=ref_binom))
+            reference=_REF_BINOM))
+    return checks
 
-    # -- per block (Bonferroni)
-    if block_counts is not None:
-        sym = settings_symbol_counts(block_counts)
-        sym = sym[sym.sum(axis=1) > 0]
-        nb = int(sym.shape[0])
-        if nb > 1:
-            if gamma < 1.0:
-                thr = alpha / nb
-                worst, at, stat = 1.0, -1, 0.0
-                for i, s in enumerate(sym):
-                    nt, nn = int(s[4:].sum()), int(s.sum())
-                    p = binomial_two_sided(nt, nn, gamma)
-                    if p < worst:
-                        worst, at, stat = p, i, float(nt)
-                checks.append(DesignCheck(
-                    name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
-                    passed=worst >= thr, applicable=True,
-                    meaning="test rounds occur with probability gamma in every block",
-                    detail=(f"smallest p-value {_fp(worst)} in block {at} of {nb} "
-                            f"({spec.block_trials} trials per block); Bonferroni threshold "
-                            f"{alpha:g}/{nb} = {thr:.3g}"),
-                    reference=ref_binom + "; Bonferroni correction (common practice)"))
-            thr = alpha / (3 * nb)
-            worst, at, stat, what = 1.0, -1, 0.0, "x"
+
+def _block_checks(block_counts: np.ndarray, ranges: tuple, gamma: float, alpha: float,
+                  block_trials: int) -> list[DesignCheck]:
+    """Per block (Bonferroni): test-round fraction and test settings."""
+    checks: list[DesignCheck] = []
+    sym = settings_symbol_counts(block_counts)
+    sym = sym[sym.sum(axis=1) > 0]
+    nb = int(sym.shape[0])
+    if nb > 1:
+        if gamma < 1.0:
+            thr = alpha / nb
+            worst, at, stat = 1.0, -1, 0.0
             for i, s in enumerate(sym):
-                tcxy = s[4:].reshape(2, 2)
-                if tcxy.sum() == 0:
-                    continue
-                for which, k, _m, _r, p in settings_tests(tcxy):
-                    if p < worst:
-                        worst, at, stat, what = p, i, float(k), which
+                nt, nn = int(s[4:].sum()), int(s.sum())
+                p = binomial_two_sided(nt, nn, gamma)
+                if p < worst:
+                    worst, at, stat = p, i, float(nt)
             checks.append(DesignCheck(
-                name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
+                name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
                 passed=worst >= thr, applicable=True,
-                meaning="the test-round settings follow the declared distribution in every block",
-                detail=(f"smallest p-value {_fp(worst)} ({descr[what]}, block {at} of {nb}); "
-                        f"Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
-                reference=ref_binom + "; Bonferroni correction (common practice)"))
-
-    # -- serial independence
-    if pair_counts is not None:
-        g, dof, p, note = serial_g_test(pair_counts)
+                meaning="test rounds occur with probability gamma in every block",
+                detail=(f"smallest p-value {_fp(worst)} in block {at} of {nb} "
+                        f"({block_trials} trials per block); Bonferroni threshold "
+                        f"{alpha:g}/{nb} = {thr:.3g}"),
+                reference=_REF_BINOM + "; Bonferroni correction (common practice)"))
+        thr = alpha / (3 * nb)
+        worst, at, stat, what = 1.0, -1, 0.0, "x"
+        for i, s in enumerate(sym):
+            tcxy = s[4:].reshape(2, 2)
+            if tcxy.sum() == 0:
+                continue
+            for which, k, _m, _r, p in _settings_tests(tcxy, ranges):
+                if p < worst:
+                    worst, at, stat, what = p, i, float(k), which
         checks.append(DesignCheck(
-            name="serial_independence", statistic=g, p_value=p if dof else None,
-            threshold=alpha if dof else None, passed=(p >= alpha) if dof else True,
-            applicable=dof > 0,
-            meaning=("consecutive rounds' settings and round types are independent (a "
-                     "predictable settings sequence fails even with exact marginals)"),
-            detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p {_fp(p)}, "
-                    f"significance {alpha:g}" if dof else f"not applicable: {note}"),
-            reference=("likelihood-ratio test of independence against a first-order Markov "
-                       "chain (Anderson & Goodman 1957); cf. NIST SP 800-22 rev. 1a section "
-                       "2.11 serial test")))
+            name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
+            passed=worst >= thr, applicable=True,
+            meaning="the test-round settings follow the declared distribution in every block",
+            detail=(f"smallest p-value {_fp(worst)} ({_SETTING_EVENTS[what]}, block {at} of "
+                    f"{nb}); Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
+            reference=_REF_BINOM + "; Bonferroni correction (common practice)"))
+    return checks
 
-    # -- physical range
-    if eps is None:
-        eps = _estimate_eps(protocol)
-    if n > 0 and n_test > 0:
-        est, lower = weighted_chsh(c, gamma, px0, py0, eps)
-        smax, model = _device_max(protocol)
-        ok = est <= NO_SIGNALLING_MAX and lower <= smax
-        checks.append(DesignCheck(
-            name="chsh_physical_range", statistic=float(est), p_value=None, threshold=smax,
-            passed=bool(ok), applicable=True,
-            meaning="the CHSH estimate is physically possible for the method's device model",
-            detail=(f"weighted CHSH estimate {est:.6g}, lower bound {lower:.6g} at eps = "
-                    f"{eps:g}; limits: estimate <= 4, lower bound <= {smax:.6g} ({model})"
-                    + ("" if ok else "; the data cannot come from the declared design: most "
-                       "likely a wrong gamma or settings distribution in the protocol, or a "
-                       "log that is not from this experiment")),
-            reference="CHSH 1969 (no-signalling maximum 4); Cirel'son 1980 (2 sqrt 2)"))
-    return DesignReport(significance=alpha, block_trials=spec.block_trials, trials=n,
-                        trials_in_log=in_log, declared_trials=declared, checks=tuple(checks))
+
+def _serial_check(pair_counts: np.ndarray, alpha: float) -> DesignCheck:
+    """Serial independence of consecutive settings symbols."""
+    g, dof, p, note = serial_g_test(pair_counts)
+    return DesignCheck(
+        name="serial_independence", statistic=g, p_value=p if dof else None,
+        threshold=alpha if dof else None, passed=(p >= alpha) if dof else True,
+        applicable=dof > 0,
+        meaning=("consecutive rounds' settings and round types are independent (a "
+                 "predictable settings sequence fails even with exact marginals)"),
+        detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p {_fp(p)}, "
+                f"significance {alpha:g}" if dof else f"not applicable: {note}"),
+        reference=("likelihood-ratio test of independence against a first-order Markov "
+                   "chain (Anderson & Goodman 1957); cf. NIST SP 800-22 rev. 1a section "
+                   "2.11 serial test"))
+
+
+def _range_check(c: np.ndarray, gamma: float, px0: float, py0: float, eps: float,
+                 protocol: Any) -> DesignCheck:
+    """Physical range of the weighted CHSH estimate."""
+    est, lower = weighted_chsh(c, gamma, px0, py0, eps)
+    smax, model = _device_max(protocol)
+    ok = est <= NO_SIGNALLING_MAX and lower <= smax
+    return DesignCheck(
+        name="chsh_physical_range", statistic=float(est), p_value=None, threshold=smax,
+        passed=bool(ok), applicable=True,
+        meaning="the CHSH estimate is physically possible for the method's device model",
+        detail=(f"weighted CHSH estimate {est:.6g}, lower bound {lower:.6g} at eps = "
+                f"{eps:g}; limits: estimate <= 4, lower bound <= {smax:.6g} ({model})"
+                + ("" if ok else "; the data cannot come from the declared design: most "
+                   "likely a wrong gamma or settings distribution in the protocol, or a "
+                   "log that is not from this experiment")),
+        reference="CHSH 1969 (no-signalling maximum 4); Cirel'son 1980 (2 sqrt 2)")
 
 
 def _estimate_eps(protocol: Any) -> float:
