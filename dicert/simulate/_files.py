@@ -18,8 +18,6 @@ from dicert.errors import ParameterError
 from dicert.simulate._boxes import (
     DEFAULT_CHUNK_TRIALS,
     _check_design,
-    ch_eberhard_j,
-    win_probability,
 )
 from dicert.simulate._devices import DeviceModel
 from dicert.simulate._sampling import _check_n, iter_trial_chunks, make_rng, sampler_name
