@@ -321,6 +321,8 @@ def _tile_seed_start(plan: _Plan, o: int, b: int) -> int:
 # --------------------------------------------------------------------------- extraction
 
 
+# long: about 75 of its lines are the signature and numpydoc docstring; the rest is one
+# try/finally that must close both bit sources
 def extract_toeplitz(
     data: Any,
     seed: Any,
@@ -513,6 +515,8 @@ def _four_step(x: _Bits, s: _Bits, n: int, m: int, budget: int, thr: float, work
     )
 
 
+# long: the tiled FFT loop; about 50 of its lines are its helpers, closures over the shared
+# work rows, thread pool and output array (splitting them out would pass that state around)
 def _run(plan: _Plan, x: _Bits, s: _Bits, seed_len: int, thr: float, workers: int,
          progress: Callable[[int, int], None] | None) -> tuple[np.ndarray, float, int, int]:
     """Compute all output bits; returns (bits uint8[m], max deviation, fallback blocks, tiles)."""

@@ -32,6 +32,7 @@ from dicert.logs._model import (
 # --------------------------------------------------------------------------------------------
 
 
+# long: one generator whose open archive and member state live across its yields
 def _iter_npz(path: Path, chunk_trials: int, hasher,
               limits: ReadLimits | None = None) -> Iterator[np.ndarray]:
     """Stream the trials of an npz log.

@@ -156,6 +156,7 @@ def load_spec(path: str | os.PathLike[str]) -> LogSpec:
                    sources=sources, max_missing=max_missing)
 
 
+# long: validates one source table key by key, each check a few lines naming its key
 def _source(path: Path, base: Path, tab: Any, label: str, prefix: str, roles: tuple,
             required: tuple) -> SourceSpec:
     if not isinstance(tab, dict):

@@ -108,8 +108,6 @@ class PefParams:
         """beta * sigma_target + log2(1/eps_pe), the success threshold on log2 T."""
         return self.beta * self.sigma_target_bits + math.log2(1.0 / self.eps_pe)
 
-    # Long on purpose (about 110 lines): one check per protocol key, in a flat list that reads
-    # like the key table of protocols/README.md; each check is one error message.
     @classmethod
     def from_mapping(cls, d: Mapping[str, Any], where: str = "") -> PefParams:
         """Validate a mapping (the parsed [analysis] table minus ``method``)."""
