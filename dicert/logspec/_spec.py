@@ -156,7 +156,6 @@ def load_spec(path: str | os.PathLike[str]) -> LogSpec:
                    sources=sources, max_missing=max_missing)
 
 
-# long: validates one source table key by key, each check a few lines naming its key
 def _source(path: Path, base: Path, tab: Any, label: str, prefix: str, roles: tuple,
             required: tuple) -> SourceSpec:
     if not isinstance(tab, dict):
@@ -199,6 +198,18 @@ def _source(path: Path, base: Path, tab: Any, label: str, prefix: str, roles: tu
         raise _err(path, f"{prefix}.group", "expected an HDF5 group path")
     if "group" in tab and fmt != "hdf5":
         raise _err(path, f"{prefix}.group", f"only hdf5 files have groups (format is {fmt})")
+    columns = _source_columns(path, tab, label, prefix, roles, required)
+    values = _source_values(path, tab, prefix, columns)
+    for r in columns:
+        if r != "key" and r not in values:
+            values[r] = dict(_DEFAULT_MAP)
+    return SourceSpec(label=label, key_prefix=prefix, files=paths, format=fmt, delimiter=delim,
+                      group=group, columns=columns, values=values)
+
+
+def _source_columns(path: Path, tab: dict, label: str, prefix: str, roles: tuple,
+                    required: tuple) -> dict[str, Any]:
+    """The column of each role of one source (``columns`` of a table, keys of a station)."""
     if label == "table":
         cols = tab.get("columns", {})
         cols_key = f"{prefix}.columns"
@@ -223,6 +234,12 @@ def _source(path: Path, base: Path, tab: Any, label: str, prefix: str, roles: tu
     for r, c in columns.items():
         if not isinstance(c, str) or not c.strip():
             raise _err(path, f"{cols_key}.{r}", f"expected a column name, got {c!r}")
+    return columns
+
+
+def _source_values(path: Path, tab: dict, prefix: str, columns: dict[str, Any]
+                   ) -> dict[str, dict[str, int]]:
+    """The value maps given for one source's roles (``values``)."""
     vals = tab.get("values", {})
     if not isinstance(vals, dict):
         raise _err(path, f"{prefix}.values", "expected a table of role = {value = bit, ...}")
@@ -246,11 +263,7 @@ def _source(path: Path, base: Path, tab: Any, label: str, prefix: str, roles: tu
                 raise _err(path, f"{vkey}.{tok}", "appears twice")
             out[t] = int(bit)
         values[r] = out
-    for r in columns:
-        if r != "key" and r not in values:
-            values[r] = dict(_DEFAULT_MAP)
-    return SourceSpec(label=label, key_prefix=prefix, files=paths, format=fmt, delimiter=delim,
-                      group=group, columns=columns, values=values)
+    return values
 
 
 def _format_from_ext(p: Path) -> str | None:
