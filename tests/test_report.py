@@ -266,7 +266,7 @@ def test_summary_paragraph_numbers_match_the_record(records):
 def test_rounding_is_in_the_safe_direction():
     """Bounds are written rounded down, error-like numbers rounded up: a value just below a
     rounding boundary must not be rounded to it (conservative rounding: common practice)."""
-    from dicert.reporting import _fact
+    from dicert.reporting.content import _fact
 
     rec = {"estimate": {"chsh_lower": 2.9999999999, "log10_p_value_local": -10.004999,
                         "neg": -1e-9}, "bits": 1234.9999999}
@@ -380,7 +380,7 @@ def test_chsh_intervals_are_clipped_to_the_physical_range():
     """An Azuma interval can run past the no-signalling maximum 4 at small gamma (CHSH 1969:
     |S| <= 4 for any no-signalling box); the figure clips it to [-4, 4]."""
     from dicert.beacon.pages import block_series
-    from dicert.reporting import _clip_chsh
+    from dicert.reporting.figures import _clip_chsh
 
     rec = {"estimate_blocks": {"blocks": [
         {"chsh": 2.8, "chsh_lower": 0.5, "chsh_upper": 5.1, "first_trial": 0},
@@ -600,7 +600,7 @@ def test_rounding_helpers_never_round_the_wrong_way(decimals):
     from hypothesis import given
     from hypothesis import strategies as st
 
-    from dicert.reporting import _fact
+    from dicert.reporting.content import _fact
 
     unit = Decimal(1).scaleb(-decimals)
 
