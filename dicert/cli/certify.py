@@ -74,7 +74,7 @@ def certify_cmd(
     scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     idle_timeout: Annotated[float | None, typer.Option("--idle-timeout", metavar="SECONDS", help="With --follow: abort after this long without new trials; 0 waits for ever [default: 300].")] = None,
     allow_mixed_inputs: Annotated[bool, typer.Option("--allow-mixed-inputs", help="Accept a multi-file log with files of equal content, a file next to its .gz copy, or mixed formats (refused otherwise; recorded).")] = False,
-    allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed already used in the chain or equal to the log (refused otherwise; recorded). A constant seed is always refused.")] = False,
+    allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed equal to the log (refused otherwise; recorded). A constant seed, and with --chain a seed already used in the chain, are always refused.")] = False,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.certify import certify
