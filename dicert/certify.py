@@ -150,6 +150,10 @@ class LogScan:
     trials_in_log: int | None = None  # trials present (> trials when n was declared)
     file_entries: tuple = ()  # ({"name", "bytes", "sha256"}, ...) in read order
     formats: tuple = ()  # format of each file
+    log_spec: dict | None = None  # log read through a log spec: its content, digest, join report
+    # Per-block counts for the record's CHSH-per-block series (see group_blocks):
+    # (first trial of each group, (G, 32) int64 counts), or None.
+    block_series: Any = None
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -754,8 +758,63 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                    pair_counts=summary.pair_counts, trials_in_log=in_log,
                    file_entries=tuple({"name": Path(f.path).name, "bytes": int(f.size_bytes),
                                        "sha256": f.sha256} for f in summary.files),
-                   formats=tuple(f.format for f in summary.files))
+                   formats=tuple(f.format for f in summary.files),
+                   log_spec=summary.log_spec,
+                   block_series=group_blocks(summary.block_counts, block_trials))
     return scan, sink
+
+
+def _dropped_trials(scan: LogScan) -> int:
+    """Trials the station join dropped (missing at one station) under the spec's tolerance."""
+    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
+    if not isinstance(join, Mapping):
+        return 0
+    return int(join.get("missing_at_a") or 0) + int(join.get("missing_at_b") or 0)
+
+
+#: At most this many points in a record's per-block CHSH series (consecutive blocks are
+#: merged into groups of equal size so the record stays small whatever the log's length).
+MAX_BLOCK_POINTS = 64
+
+
+def group_blocks(block_counts: Any, block_trials: int) -> tuple[tuple[int, ...], np.ndarray]:
+    """Merge consecutive blocks into at most :data:`MAX_BLOCK_POINTS` groups.
+
+    Returns the first trial (0-based) of each group and the groups' counts, shape (G, 32),
+    each row the flattened [t, x, y, a, b] table.
+    """
+    bc = np.asarray(block_counts, dtype=np.int64).reshape(-1, 32)
+    if bc.shape[0] == 0:
+        return (), bc
+    size = -(-bc.shape[0] // MAX_BLOCK_POINTS)
+    starts = list(range(0, bc.shape[0], size))
+    return tuple(k * int(block_trials) for k in starts), np.add.reduceat(bc, starts, axis=0)
+
+
+def _blocks_section(block_series: Any, protocol: Any) -> dict | None:
+    """The record's per-block CHSH series (informational, drawn by reports and beacon pages)."""
+    from dicert.estimate import azuma_margin, martingale_chsh
+
+    firsts, counts = block_series
+    if not len(firsts):
+        return None
+    eps = _estimate_eps(protocol)
+    design = protocol.design
+    blocks = []
+    for first, row in zip(firsts, np.asarray(counts, dtype=np.int64)):
+        n = int(row.sum())
+        if n == 0:
+            continue
+        value = martingale_chsh(row.reshape(2, 2, 2, 2, 2), design)
+        margin = azuma_margin(n, design.estimator_width, eps)
+        blocks.append({"first_trial": int(first), "trials": n, "counts": row.tolist(),
+                       "chsh": value, "chsh_lower": value - margin,
+                       "chsh_upper": value + margin})
+    return {"note": "martingale CHSH estimate per group of consecutive trials with its "
+                    "two-sided Azuma-Hoeffding interval at eps_per_side (each group on its "
+                    "own; informational: drift shows here, certification uses the whole log)",
+            "eps_per_side": eps, "counts_order": "[t, x, y, a, b] flattened",
+            "blocks": blocks}
 
 
 # --------------------------------------------------------------------------- analysis
@@ -1047,6 +1106,13 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
     for a in fin.assumptions:
         if a not in assumptions:
             assumptions.append(str(a))
+    dropped = _dropped_trials(scan)
+    if dropped:
+        assumptions.append(
+            f"Trials dropped by the station join ({dropped}, tolerated by the log spec's "
+            "join.max_missing) went missing independently of the settings and outcomes: "
+            "NOT checked, and nothing is charged for them; if the devices or the stations' "
+            "electronics can cause a trial to go missing, the certificate does not hold.")
     references = [str(r) for r in fin.references]
     body: dict[str, Any] = {
         "format": RECORD_FORMAT,
@@ -1132,6 +1198,12 @@ def build_body(*, protocol: Any, scan: LogScan, analysis: Analysis, seed_sha256:
         "allow_seed_reuse": False, "seed_problems": []}
     if screens is not None:
         body["output_screens"] = screens
+    if scan.log_spec is not None:  # a log read through a log spec (dicert.logspec)
+        body["log"]["spec"] = dict(scan.log_spec)
+    if scan.block_series is not None:
+        section = _blocks_section(scan.block_series, protocol)
+        if section is not None:
+            body["estimate_blocks"] = section
     return plain(body)
 
 

@@ -320,6 +320,9 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
     if block_trials <= 0:
         raise ParameterError("block_trials must be positive")
     log = open_log(source, format=format)  # resolves the files, checks their t columns agree
+    if getattr(log, "spec", None) is not None:  # dicert.logspec.SpecLog: joined in one pass
+        raise ParameterError(f"{source}: a log read through a log spec (or a Parquet/HDF5 "
+                             "file) is read locally, not on a cluster; run without --scheduler")
     files = [os.fspath(Path(f).resolve()) for f in log.files]
     tag = f"dicert-log-{uuid.uuid4().hex[:12]}"
     with client_for(scheduler) as client:

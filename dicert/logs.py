@@ -371,6 +371,7 @@ class LogSummary:
     files: tuple[FileInfo, ...]
     pair_counts: np.ndarray | None = None  # (8, 8) consecutive settings symbols (4t+2x+y)
     trials_in_log: int | None = None  # trials present (>= trials when max_trials cut the scan)
+    log_spec: dict | None = None  # a log read through a log spec: dicert.logspec.SpecLog.audit
 
 
 # --------------------------------------------------------------------------------------------
@@ -623,8 +624,30 @@ class _MultiHash:
 
 
 def open_log(source, format: str | None = None, *, limits: ReadLimits | None = None) -> TrialLog:
-    """Open a log (file, directory or glob) for streaming; see :class:`TrialLog`."""
+    """Open a log (file, directory or glob) for streaming; see :class:`TrialLog`.
+
+    A log spec (:mod:`dicert.logspec`, recognised by its ``format`` key) or a single Parquet
+    or HDF5 file opens as a :class:`dicert.logspec.SpecLog`, which streams the same way.
+    """
+    if _spec_like(source, format):
+        from dicert.logspec import open_spec_log
+
+        return open_spec_log(source, limits=limits,  # type: ignore[return-value]
+                             format=format if format and format.lower() != "logspec" else None)
     return TrialLog(source, format=format, limits=limits)
+
+
+def _spec_like(source, format: str | None) -> bool:
+    if not isinstance(source, (str, os.PathLike)):
+        return False
+    name = str(source).lower()
+    if format is None and name.endswith((".parquet", ".pq", ".h5", ".hdf5")):
+        return True
+    if format is not None and format.lower() not in ("logspec", "parquet", "hdf5"):
+        return False
+    from dicert.logspec import is_spec_file
+
+    return is_spec_file(source) or (format is not None and Path(source).is_file())
 
 
 def _open_checked(path: Path):
@@ -911,7 +934,8 @@ def _read_csv_header(fh, path, limits: ReadLimits | None = None) -> tuple[list[s
         for req in ("x", "y", "a", "b"):
             if req not in present:
                 raise LogFormatError(
-                    path, f"line {lineno}", f"header has no column {req!r} (required: x,y,a,b; optional t)"
+                    path, f"line {lineno}", f"header has no column {req!r} (required: x,y,a,b; "
+                    f"optional t){_header_hint(names)}"
                 )
         seen: set[str] = set()
         for c in names:  # linear: a set, not names.count per column
@@ -919,6 +943,27 @@ def _read_csv_header(fh, path, limits: ReadLimits | None = None) -> tuple[list[s
                 raise LogFormatError(path, f"line {lineno}", f"column {c!r} appears twice")
             seen.add(c)
         return names, lineno
+
+
+def _header_hint(names: list[str]) -> str:
+    """Why a header lacks the required columns, when the reason is guessable."""
+    if len(names) == 1:
+        for d, word in (("\t", "tab"), (";", "semicolon"), ("|", "pipe")):
+            if d in names[0]:
+                return (f"; the header looks {word}-separated, but a plain log is comma-"
+                        f"separated: describe the file in a log spec with delimiter = "
+                        f"\"{word}\" (README, section Log specs)")
+    return ("; a log with other column names can be read through a log spec naming its "
+            "columns (README, section Log specs)")
+
+
+def _value_hint(name: str, val: bytes) -> str:
+    if val in (b"-1", b"+1") or (name in ("x", "y") and val == b"2"):
+        what = "+1/-1 outcomes" if val in (b"-1", b"+1") else "1/2 settings"
+        return (f"; for {what} describe the log in a log spec with a value map, e.g. "
+                + ('{"+1" = 0, "-1" = 1}' if what.startswith("+") else '{"1" = 0, "2" = 1}')
+                + " (README, section Log specs)")
+    return "; other codings can be mapped to 0/1 by a log spec (README, section Log specs)"
 
 
 def _iter_csv(path: Path, chunk_trials: int, hasher,
@@ -1087,7 +1132,8 @@ def _parse_csv_slow(data: bytes, ncol, want, tcol, path, first_line) -> np.ndarr
             if val not in (b"0", b"1"):
                 shown = val.decode("utf-8", "replace")[:20]
                 raise LogFormatError(
-                    path, f"line {lineno}", f"column {name!r} has value {shown!r}; expected 0 or 1"
+                    path, f"line {lineno}", f"column {name!r} has value {shown!r}; expected 0 or "
+                    f"1{_value_hint(name, val)}"
                 )
             code |= (val[0] - 48) << shifts[name]
         out.append(code)
@@ -1345,6 +1391,7 @@ def summarize_log(
         infos = log.file_infos
         sha = infos[0].sha256 if len(infos) == 1 else files_digest(
             {"name": Path(f.path).name, "bytes": f.size_bytes, "sha256": f.sha256} for f in infos)
+    spec_audit = getattr(log, "audit", None)
     return LogSummary(
         trials=trials,
         counts=counts,
@@ -1356,6 +1403,7 @@ def summarize_log(
         files=tuple(log.file_infos),
         pair_counts=pairs.reshape(8, 8),
         trials_in_log=in_log,
+        log_spec=spec_audit,
     )
 
 

@@ -316,7 +316,7 @@ def expected_body(body: Mapping[str, Any], protocol: Any, scan: Any, *, seed_sha
 
 
 #: Top-level record members introduced by dicert-record/2.
-_V2_MEMBERS = ("design", "inputs", "output_screens")
+_V2_MEMBERS = ("design", "inputs", "output_screens", "estimate_blocks")
 #: What a dicert-record/1 record lacks (said in verify's notes).
 LEGACY_LACKS = ("design-conformance checks (test-round fraction, settings distribution, "
                 "serial independence, physical range, declared trial count)",
@@ -411,6 +411,16 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
         _require(isinstance(in_log, int) and in_log >= trials, "log.trials_in_log",
                  f"expected an integer >= log.trials, got {in_log!r}")
         extra["trials_in_log"] = in_log
+    spec = _get(body, "log").get("spec") if isinstance(_get(body, "log"), Mapping) else None
+    if spec is not None:  # a log read through a log spec: its digest must match its content
+        from dicert.logspec import spec_entry_problem
+
+        problem = spec_entry_problem(spec)
+        _require(problem is None, "log.spec", str(problem))
+        extra["log_spec"] = dict(spec)
+    series = body.get("estimate_blocks")
+    if isinstance(series, Mapping):
+        extra["block_series"] = _recorded_block_series(series, counts)
     if isinstance(files, list) and files and all(isinstance(f, Mapping) for f in files):
         extra["file_entries"] = tuple(dict(f) for f in files)
         files = [f.get("name") for f in files]
@@ -420,6 +430,25 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Any):
                    has_test_flag=has_t, raw_bits=raw_bits,
                    raw_sha256=_get(body, "harvest.raw_sha256"), finite=finite, **scope,
                    **extra)
+
+
+def _recorded_block_series(series: Mapping[str, Any], counts: Any) -> tuple:
+    """The per-block counts a record states, checked against its counts table."""
+    import numpy as np
+
+    blocks = series.get("blocks")
+    _require(isinstance(blocks, list) and blocks and all(isinstance(b, Mapping) for b in blocks),
+             "estimate_blocks.blocks", "expected a non-empty list of blocks")
+    firsts = tuple(b.get("first_trial") for b in blocks)
+    _require(all(isinstance(f, int) and f >= 0 for f in firsts), "estimate_blocks.blocks",
+             "first_trial must be a non-negative integer")
+    table = _int_table([b.get("counts") for b in blocks], (-1, 32),
+                       "estimate_blocks.blocks.counts")
+    _require(bool((np.asarray(table).sum(axis=0).reshape(2, 2, 2, 2, 2)
+                   == np.asarray(counts)).all()),
+             "estimate_blocks.blocks.counts", "the blocks' counts do not add up to the "
+             "record's counts table")
+    return firsts, table
 
 
 def _concatenated_digest(files: list[Path]) -> str:
@@ -665,8 +694,13 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
                     {**e, "name": r["name"]} if isinstance(e, Mapping) and isinstance(r, Mapping)
                     and "name" in r else (r if not isinstance(e, Mapping) else e)
                     for e, r in zip(ef, rf)]
+            es, rs = exp["log"].get("spec"), body["log"].get("spec")
+            if isinstance(es, dict) and isinstance(rs, Mapping) and "name" in rs:
+                es["name"] = rs["name"]  # the spec file may be renamed; its content counts
             _compare(exp, body)
             checked.append("log digest, size, trial count, counts and harvested raw bits")
+            if isinstance(body["log"].get("spec"), Mapping):
+                checked.append("log spec digest and station join re-run (same trials)")
             if seed_data is not None and status in ("certified", "withheld"):
                 from dicert.extract import extract_toeplitz
 

@@ -206,6 +206,7 @@ def honest(tmp_path_factory):
 
 @pytest.mark.parametrize("log,proto", [("u.btl", "chsh-uniform.toml"),
                                        ("s.btl", "chsh-spotcheck.toml"),
+                                       ("s.btl", "chsh-spotcheck-pair.toml"),
                                        ("p.btl", "ch-photonic.toml")])
 def test_honest_runs_of_every_shipped_protocol_certify(honest, tmp_path, log, proto):
     from dicert.verify import verify
@@ -492,8 +493,8 @@ def test_verify_reruns_design_checks_and_reads_old_records(tmp_path):
     # says what it lacks.
     old = copy.deepcopy(body)
     old["format"] = "dicert-record/1"
-    for k in ("design", "inputs", "output_screens"):
-        old.pop(k)
+    for k in ("design", "inputs", "output_screens", "estimate_blocks"):
+        old.pop(k)  # members a /1 record never had
     old["log"].pop("trials_in_log")
     old["log"]["files"] = [f["name"] for f in old["log"]["files"]]
     for k in ("gamma_source", "local_win_bound"):
@@ -722,8 +723,8 @@ def test_old_multi_file_record_keeps_its_concatenated_digest(tmp_path):
     rec = read_record(res.record_file)
     old = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
     old["format"] = "dicert-record/1"
-    for k in ("design", "inputs", "output_screens"):
-        old.pop(k)
+    for k in ("design", "inputs", "output_screens", "estimate_blocks"):
+        old.pop(k)  # members a /1 record never had
     old["log"].pop("trials_in_log")
     old["log"]["files"] = [f["name"] for f in old["log"]["files"]]
     old["log"]["sha256"] = hashlib.sha256((d / "a.btl").read_bytes()

@@ -189,7 +189,9 @@ def test_pulse_page_shows_numbers_budget_and_assumptions(site):
         assert html.escape(text) in page
     assert 'data-pulse="1"' in page and 'id="pulse-result"' in page
     assert f"{record['estimate']['chsh']:.6g}" in page
-    assert "no per-block data" in page  # martingale records carry no blocks today
+    # Martingale records carry their per-block CHSH series (estimate_blocks): it is plotted.
+    assert "no per-block data" not in page
+    assert "CHSH value per block" in page and "<svg" in page
     # Bounds are shown rounded down, never above the recorded value; budgets in full.
     lower = re.search(r"lower confidence bound on CHSH \(rounded down\)</dt><dd>([0-9.]+)<", page)
     assert 0 <= record["estimate"]["chsh_lower"] - float(lower.group(1)) < 1e-6

@@ -12,7 +12,7 @@ import time
 from collections.abc import Callable
 
 # Benchmark modules in the order ``dicert bench`` runs them.
-SUITES = ("logs", "simulate", "entropy", "extract", "finite", "pef", "certify")
+SUITES = ("logs", "join", "simulate", "entropy", "extract", "finite", "pef", "certify")
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)

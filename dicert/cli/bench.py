@@ -15,7 +15,7 @@ def register(app: typer.Typer) -> None:
 
 @handle_errors
 def bench_cmd(
-    suite: Annotated[Optional[list[str]], typer.Option("--suite", help="Run only these suites (repeatable): logs, simulate, entropy, extract, finite, pef, certify.")] = None,
+    suite: Annotated[Optional[list[str]], typer.Option("--suite", help="Run only these suites (repeatable): logs, join, simulate, entropy, extract, finite, pef, certify.")] = None,
     quick: Annotated[bool, typer.Option("--quick", help="Smaller sizes (about 10x), for a fast look.")] = False,
     as_json: JsonFlag = False,
 ) -> None:

@@ -60,10 +60,10 @@ def register(app: typer.Typer) -> None:
 
 @handle_errors
 def certify_cmd(
-    log: Annotated[str, typer.Argument(help="Trial log: a file, a directory of files, or a glob pattern.")],
     protocol: Annotated[Path, typer.Option("--protocol", help="Protocol file (TOML), fixed before the run.")],
     seed: Annotated[Path, typer.Option("--seed", help="Extractor seed file (uniformly random raw bytes; n + m - 1 bits are used).")],
     out: Annotated[Path, typer.Option("--out", help="Output directory for random.bits and record.json.")],
+    log: Annotated[str | None, typer.Argument(help="Trial log: a file, a directory of files, a glob pattern, or a log spec (TOML).")] = None,
     key: Annotated[Path | None, typer.Option("--key", help="Ed25519 private key (from `dicert keygen`) that signs the record.")] = None,
     chain: Annotated[Path | None, typer.Option("--chain", help="Beacon chain directory: verify it, link the record to the previous pulse and append it (needs --key).")] = None,
     trusted_keys: Annotated[Path | None, typer.Option("--trusted-keys", help="With --chain: TOML file of further keys trusted for earlier pulses (key rotation).")] = None,
@@ -74,11 +74,15 @@ def certify_cmd(
     scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     idle_timeout: Annotated[float | None, typer.Option("--idle-timeout", metavar="SECONDS", help="With --follow: abort after this long without new trials; 0 waits for ever [default: 300].")] = None,
     allow_mixed_inputs: Annotated[bool, typer.Option("--allow-mixed-inputs", help="Accept a multi-file log with files of equal content, a file next to its .gz copy, or mixed formats (refused otherwise; recorded).")] = False,
-    allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed equal to the log (refused otherwise; recorded). A constant seed, and with --chain a seed already used in the chain, are always refused.")] = False,
+    allow_seed_reuse: Annotated[bool, typer.Option("--allow-seed-reuse", help="Accept a seed whose SHA-256 equals the log's (refused otherwise; recorded). A constant or periodic seed, and a seed already named by a pulse of the --chain, are always refused.")] = False,
+    log_spec: Annotated[Path | None, typer.Option("--log-spec", help="Log spec (TOML) describing the run: station files joined by trial key, columns, value maps (instead of LOG); recorded in the record.")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     from dicert.certify import certify
     from dicert.errors import ParameterError
+    from dicert.logspec import choose_source
+
+    log = choose_source(log, log_spec)
 
     if not follow and (poll is not None or idle_timeout is not None):
         raise ParameterError("--poll and --idle-timeout apply only with --follow")

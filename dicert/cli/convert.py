@@ -15,15 +15,25 @@ def register(app: typer.Typer) -> None:
 
 @handle_errors
 def convert_cmd(
-    src: Annotated[str, typer.Argument(help="Input log: file, directory or glob pattern.")],
-    dest: Annotated[str, typer.Argument(help="Output file (.csv, .csv.gz, .btl, .npz).")],
+    src: Annotated[Optional[str], typer.Argument(help="Input log: file, directory, glob pattern or log spec (TOML). Omit it with --log-spec.")] = None,
+    dest: Annotated[Optional[str], typer.Argument(help="Output file (.csv, .csv.gz, .btl, .npz).")] = None,
     fmt: Annotated[Optional[str], typer.Option("--format", help="Output format (csv, csv.gz, binary, npz); default from the extension.")] = None,
-    in_fmt: Annotated[Optional[str], typer.Option("--in-format", help="Force the input format.")] = None,
+    in_fmt: Annotated[Optional[str], typer.Option("--in-format", help="Force the input format (csv, binary, npz, parquet, hdf5).")] = None,
+    log_spec: Annotated[Optional[str], typer.Option("--log-spec", help="Log spec (TOML) describing the run (station files joined by trial key, columns, value maps); the joined log is written to DEST.")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Convert a trial log between CSV, the binary format and npz. The output is written to a
     temporary file and renamed, so a failure leaves nothing behind."""
+    from dicert.errors import ParameterError
     from dicert.logs import convert_log, format_from_name
+    from dicert.logspec import choose_source
+
+    if log_spec is not None and dest is None:
+        src, dest = None, src
+    if dest is None:
+        raise ParameterError("give the input log and the output file (SRC DEST), or "
+                             "--log-spec FILE DEST")
+    src = choose_source(src, log_spec, "SRC")
 
     out_fmt = format_from_name(dest, fmt)
     with progress_bar() as bar:

@@ -28,6 +28,11 @@ from dicert.cli._common import (
 DEFAULT_OUT = "dicert-demo"
 
 
+
+def _site_title(title: str) -> str:
+    """The site's title, marked invented once (the scenario's own title may already say so)."""
+    return title if "invented" in title.lower() else f"{title} (invented demo)"
+
 def register(app: typer.Typer) -> None:
     app.command("demo")(demo_cmd)
 
@@ -191,7 +196,7 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     from dicert.beacon import build_site, check_site
 
     site = build_site(chain, out / "site", public_key=keys.public_key_file,
-                      title=f"{sc['title']} (invented demo)")
+                      title=_site_title(sc["title"]))
     site_check = check_site(site.site_dir, keys.public_key_file)
     say(f"beacon site built and checked ({site_check.pulses} pulses, head "
         f"{site_check.head_sha256[:16]}...): {site.index_file}")

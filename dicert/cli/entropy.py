@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Annotated, Optional
 
 import typer
@@ -22,8 +23,9 @@ def entropy_cmd(
     level: Annotated[str, typer.Option("--level", help="NPA relaxation level: 1, 1+AB or 2.")] = "1+AB",
     method: Annotated[str, typer.Option("--method", help="auto, analytic, npa (exact certified solve), table (precomputed certificates), radau (von Neumann: solve the Gauss-Radau quadrature SDPs) or radau-table (its precomputed lines).")] = "auto",
     tolerance: Annotated[float, typer.Option("--tolerance", help="Slack allowed on each observed correlator (with --from-log).")] = 0.0,
-    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz).")] = None,
+    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the log format (csv, binary, npz, parquet, hdf5).")] = None,
     protocol: Annotated[Optional[str], typer.Option("--protocol", help="With --from-log: the protocol whose declared design the log is checked against (default: every round a test round, or the observed test fraction of a log with a t column).")] = None,
+    log_spec: Annotated[Optional[Path], typer.Option("--log-spec", help="Log spec (TOML) describing the run: station files, join key, columns, value maps (instead of --from-log).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Lower-bound the entropy per round of the outcomes, against an adversary holding quantum
@@ -32,6 +34,10 @@ def entropy_cmd(
     from dicert.entropy import bound_entropy
     from dicert.errors import ParameterError
 
+    if log_spec is not None:
+        from dicert.logspec import choose_source
+
+        from_log = choose_source(from_log, log_spec, "--from-log")
     if (chsh is None) == (from_log is None):
         raise ParameterError("give exactly one of --chsh or --from-log")
     if parties not in ("A", "AB"):
@@ -69,7 +75,7 @@ def entropy_cmd(
         except ParameterError as exc:
             raise ParameterError(f"{from_log}: {exc}") from None
         log_info = {"path": from_log, "sha256": summary.sha256, "trials": summary.trials,
-                    "design_checks": report.to_dict()}
+                    "design_checks": report.to_dict(), "log_spec": summary.log_spec}
     result = bound_entropy(
         chsh=chsh, correlators=correlators, parties=parties, measure=measure, level=level,
         method=method, tolerance=tolerance,

@@ -16,14 +16,15 @@ def register(app: typer.Typer) -> None:
 
 @handle_errors
 def inspect_cmd(
-    log: Annotated[str, typer.Argument(help="Trial log: a file, a directory of files, or a glob pattern.")],
+    log: Annotated[Optional[str], typer.Argument(help="Trial log: a file, a directory of files, a glob pattern, or a log spec (TOML).")] = None,
     error: Annotated[float, typer.Option("--error", help="Error probability eps of the lower bound on S.")] = 1e-6,
     gamma: Annotated[Optional[float], typer.Option("--gamma", help="Test-round probability of the design (1 = uniform settings every round). Default: the protocol's, else the observed fraction of test rounds of a log with a t column (labelled), else 1.")] = None,
     protocol: Annotated[Optional[Path], typer.Option("--protocol", help="Protocol file: use its declared design and run its design-conformance checks.")] = None,
     block_trials: Annotated[int, typer.Option("--block-trials", help="Trials per block for drift diagnostics.")] = 1 << 20,
     block_error: Annotated[float, typer.Option("--block-error", help="Error per side of each block's interval.")] = 1e-3,
     plot: Annotated[Optional[Path], typer.Option("--plot", help="Write a plot of S per block to this file (PNG/PDF/SVG).")] = None,
-    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the input format (csv, binary, npz).")] = None,
+    fmt: Annotated[Optional[str], typer.Option("--format", help="Force the input format (csv, binary, npz, parquet, hdf5).")] = None,
+    log_spec: Annotated[Optional[Path], typer.Option("--log-spec", help="Log spec (TOML) describing the run: station files, join key, columns, value maps (instead of LOG).")] = None,
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: count and hash the log's files on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
@@ -31,6 +32,9 @@ def inspect_cmd(
     confidence bound valid for devices with memory, and the p-value of local realism."""
     from dicert.estimate import SettingsDesign, block_estimates, estimate_chsh, observed_design
     from dicert.errors import ParameterError
+    from dicert.logspec import choose_source
+
+    log = choose_source(log, log_spec)
 
     proto = None
     if protocol is not None:
@@ -129,6 +133,7 @@ def inspect_cmd(
                     for b in blocks
                 ],
                 "plot": str(plot) if plot else None,
+                "log_spec": summary.log_spec,
             }
         )
         return
@@ -148,6 +153,11 @@ def inspect_cmd(
     bad = [c for c in report.checks if not c.passed]
     rows.append(("design checks", f"{len(report.checks)} run at significance {report.significance:g}: "
                  + ("all passed" if not bad else "FAILED: " + "; ".join(f"{c.name}: {c.detail}" for c in bad))))
+    if summary.log_spec is not None and summary.log_spec.get("join") is not None:
+        j = summary.log_spec["join"]
+        rows.append(("station join", f"{j['matched']:,} trials matched; missing at A "
+                     f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
+                     f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
     con.print(kv_table(f"Bell test summary: {log}", rows))
     from rich.table import Table
 

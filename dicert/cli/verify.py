@@ -51,6 +51,7 @@ def verify_cmd(
     trusted_keys: Annotated[Path | None, typer.Option("--trusted-keys", help="TOML file of trusted public keys with optional pulse/time ranges (key rotation).")] = None,
     chain: Annotated[Path | None, typer.Option("--chain", help="Check every record of this beacon chain directory.")] = None,
     head: Annotated[str | None, typer.Option("--head", metavar="SHA256", help="With --chain: the published head digest; a chain without it was truncated.")] = None,
+    log_spec: Annotated[Path | None, typer.Option("--log-spec", help="The log spec the record was certified with (instead of --log); the join is re-run.")] = None,
     strict: Annotated[bool, typer.Option("--strict", help="Fail (exit 1) unless authenticated and every artifact was checked.")] = False,
     scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: re-run the extraction's pieces on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
@@ -59,6 +60,10 @@ def verify_cmd(
 
     from dicert.errors import ParameterError, VerificationError
 
+    if log_spec is not None:
+        from dicert.logspec import choose_source
+
+        log = choose_source(log, log_spec, "--log")
     if (record is None) == (chain is None):
         raise ParameterError("give either a RECORD file or --chain DIR (not both)")
     if chain is not None and (log or seed or bits):

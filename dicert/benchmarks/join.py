@@ -1,0 +1,142 @@
+"""Benchmark of the two-station join (:mod:`dicert.logspec`): throughput and peak memory.
+
+Two Parquet station files (trial key int64, setting and outcome int8, coded 1/2 and +1/-1,
+row groups of 2^20 rows) are joined through a log spec by a whole ``dicert inspect`` process.
+The baseline is a whole numpy process making one pass over the same bytes (``np.fromfile``
+of both files and one reduction), measured in the same run; a second, informational baseline
+is a whole process that only decodes the same Parquet files with pyarrow (Parquet decoding
+alone costs several numpy passes over the compressed bytes). A CSV run of the same trials
+(one tenth of the size) is timed too, informationally.
+"""
+
+from __future__ import annotations
+
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from dicert.benchmarks import BenchResult, peak_rss_mb_of
+
+SUITE = "join"
+_SPEC = """format = "dicert-logspec/1"
+[join]
+max_missing = {missing}
+[stations.A]
+files = "{a}"
+key = "pulse"
+setting = "basis"
+outcome = "result"
+values.setting = {{ "1" = 0, "2" = 1 }}
+values.outcome = {{ "+1" = 0, "-1" = 1 }}
+[stations.B]
+files = "{b}"
+key = "pulse"
+setting = "basis"
+outcome = "result"
+values.setting = {{ "1" = 0, "2" = 1 }}
+values.outcome = {{ "+1" = 0, "-1" = 1 }}
+"""
+
+
+def _write_parquet(path: Path, n: int, rng, drop_every: int = 0) -> None:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    step = 1 << 22
+    writer = None
+    try:
+        for lo in range(0, n, step):
+            m = min(step, n - lo)
+            key = np.arange(lo, lo + m, dtype=np.int64)
+            if drop_every:
+                key = key[key % drop_every != 0]
+            k = key.size
+            tab = pa.table({"pulse": key,
+                            "basis": rng.integers(1, 3, k, dtype=np.int8),
+                            "result": (rng.integers(0, 2, k, dtype=np.int8) * 2 - 1)})
+            if writer is None:
+                writer = pq.ParquetWriter(str(path), tab.schema)
+            writer.write_table(tab, row_group_size=1 << 20)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
+def _write_csv(path: Path, n: int, rng) -> None:
+    step = 1 << 20
+    sign = np.array([b"+1", b"-1"])
+    with open(path, "wb") as fh:
+        fh.write(b"pulse,basis,result\n")
+        for lo in range(0, n, step):
+            m = min(step, n - lo)
+            key = np.arange(lo, lo + m).astype("S")
+            s = rng.integers(1, 3, m).astype("S")
+            o = sign[rng.integers(0, 2, m)]
+            fh.write(b"\n".join(b",".join(r) for r in zip(key, s, o)) + b"\n")
+
+
+def run(quick: bool = False) -> list[BenchResult]:
+    import importlib.util
+
+    if importlib.util.find_spec("pyarrow") is None:
+        return [BenchResult(suite=SUITE, name="two-station join", value=float("nan"), unit="",
+                            note="skipped: needs the optional extra dicert[formats]")]
+    n = 10**7 if quick else 10**8
+    n_csv = n // 10
+    rng = np.random.default_rng(7)
+    py = sys.executable
+    out: list[BenchResult] = []
+    with tempfile.TemporaryDirectory(prefix="dicert-bench-join-") as tmp:
+        tmp = Path(tmp)
+        a, b = tmp / "a.parquet", tmp / "b.parquet"
+        _write_parquet(a, n, rng)
+        _write_parquet(b, n, rng, drop_every=1_000_003)
+        missing = n // 1_000_003 + 1
+        spec = tmp / "run.toml"
+        spec.write_text(_SPEC.format(missing=missing, a=a.name, b=b.name))
+        size = a.stat().st_size + b.stat().st_size
+        base_cmd = [py, "-c", "import numpy as np, sys; "
+                    "[np.fromfile(p, dtype=np.uint8).max() for p in sys.argv[1:]]", str(a), str(b)]
+        join_cmd = [py, "-m", "dicert.cli.app", "inspect", "--log-spec", str(spec), "--json"]
+        peak_rss_mb_of(base_cmd)  # warm the page cache
+        t_base = min(peak_rss_mb_of(base_cmd)[0] for _ in range(2))
+        runs = [peak_rss_mb_of(join_cmd) for _ in range(1 if not quick else 2)]
+        t_join = min(r[0] for r in runs)
+        rss = max(r[1] for r in runs)
+        out.append(BenchResult(suite=SUITE, name=f"two-station join, Parquet ({n:.0e} trials): "
+                               "whole-process inspect / numpy pass", value=t_join / t_base,
+                               unit="x", target=5.0, higher_is_better=False,
+                               note=f"{t_join:.2f} s vs {t_base:.2f} s over {size / 1e6:.0f} MB; "
+                               f"{n / t_join / 1e6:.1f} M trials/s"))
+        out.append(BenchResult(suite=SUITE, name=f"peak memory of the join ({n:.0e} trials)",
+                               value=rss, unit="MB", target=300.0, higher_is_better=False))
+        dec_cmd = [py, "-c", "import sys, pyarrow.parquet as pq; "
+                   "[[b.column(c).to_numpy() for b in pq.ParquetFile(p, buffer_size=1 << 20, "
+                   "pre_buffer=False).iter_batches(batch_size=1 << 19) for c in range(3)] "
+                   "for p in sys.argv[1:]]", str(a), str(b)]
+        t_dec = min(peak_rss_mb_of(dec_cmd)[0] for _ in range(2))
+        out.append(BenchResult(suite=SUITE, name="whole-process inspect / pyarrow decoding of "
+                               "the same files alone", value=t_join / t_dec, unit="x",
+                               higher_is_better=False,
+                               note=f"{t_dec:.2f} s to decode (informational: the cost of the "
+                               "join, value maps, counting and hashing over the decoding)"))
+        a.unlink()
+        b.unlink()
+        ca, cb = tmp / "a.csv", tmp / "b.csv"
+        _write_csv(ca, n_csv, rng)
+        _write_csv(cb, n_csv, rng)
+        spec.write_text(_SPEC.format(missing=0, a=ca.name, b=cb.name))
+        size = ca.stat().st_size + cb.stat().st_size
+        base_cmd[3:] = [str(ca), str(cb)]
+        peak_rss_mb_of(base_cmd)
+        t_base = min(peak_rss_mb_of(base_cmd)[0] for _ in range(2))
+        t_join, rss = peak_rss_mb_of(join_cmd)
+        out.append(BenchResult(suite=SUITE, name=f"two-station join, CSV ({n_csv:.0e} trials): "
+                               "whole-process inspect / numpy pass", value=t_join / t_base,
+                               unit="x", higher_is_better=False,
+                               note=f"{t_join:.2f} s vs {t_base:.2f} s over {size / 1e6:.0f} MB; "
+                               f"{n_csv / t_join / 1e6:.1f} M trials/s; peak {rss:.0f} MB "
+                               "(informational)"))
+    return out
