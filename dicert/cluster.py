@@ -270,38 +270,13 @@ def _task_summary(path: str, fmt: str, block_trials: int) -> tuple[Any, int, int
 def _task_blocks(path: str, fmt: str, offset: int, block_trials: int) -> Any:
     """Raw (t not re-filed) counts of the global blocks this file's trials fall in, for a file
     whose first trial has global index ``offset``; returns (first block index, counts)."""
-    import numpy as np
-
-    from dicert._kernels import count_blocks
-    from dicert.logs import open_log
+    from dicert.logs import BlockTally, open_log
 
     _fault_point()
-    blocks: list[Any] = []
-    partial = np.zeros(32, dtype=np.int64)
-    in_partial = offset % block_trials
+    tally = BlockTally(block_trials, offset)
     for chunk in open_log(path, format=fmt).iter_chunks(hash_files=False):
-        codes, pos = chunk.codes, 0
-        if in_partial:
-            take = min(block_trials - in_partial, codes.size)
-            c, _ = count_blocks(codes[:take], max(take, 1))
-            partial += c.sum(axis=0)
-            in_partial += take
-            pos = take
-            if in_partial == block_trials:
-                blocks.append(partial.copy())
-                partial[:] = 0
-                in_partial = 0
-        rest = codes[pos:]
-        if rest.size:
-            c, _ = count_blocks(rest, block_trials)
-            full = rest.size // block_trials
-            blocks.extend(c[:full])
-            if rest.size % block_trials:
-                partial += c[-1]
-                in_partial = rest.size % block_trials
-    if in_partial:
-        blocks.append(partial.copy())
-    return offset // block_trials, np.array(blocks, dtype=np.int64).reshape(-1, 2, 2, 2, 2, 2)
+        tally.add(chunk.codes)
+    return tally.first_block, tally.result()
 
 
 def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,

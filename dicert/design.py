@@ -7,8 +7,8 @@ fixed generation settings), the round type and settings stay unknown to the devi
 round, and the number of trials n is fixed in advance. The software cannot prove these; it
 can, and must, refuse logs whose counts contradict them. :func:`check_design` is the one
 stage that does that. It is pure (counts in, a frozen report out) and every path runs it
-before any finite-size method: :func:`dicert.certify.certify` (a failed check ABORTS the run:
-a record is written, 0 bits), :func:`dicert.verify.verify` (re-derives every check),
+before any finite-size method: :func:`dicert.certification.certify` (a failed check ABORTS the run:
+a record is written, 0 bits), :func:`dicert.verification.verify` (re-derives every check),
 ``dicert inspect`` and ``dicert entropy --from-log`` (show the checks).
 
 Checks (each at the protocol's significance ``alpha``, key ``[design] significance``,
@@ -38,7 +38,7 @@ default :data:`DEFAULT_SIGNIFICANCE`):
   beyond them means the declared gamma or settings distribution is not the one the data came
   from.
 * ``trial_count``: with a pre-declared n (``[design] trials``), the log must hold at least n
-  trials (a longer log is analysed up to n, see :mod:`dicert.certify`).
+  trials (a longer log is analysed up to n, see :mod:`dicert.certification`).
 
 False alarms: with k checks at level alpha each the probability that an honest run is
 refused is at most k * alpha by the union bound (k <= 12, so <= 1.2e-8 at the default); the

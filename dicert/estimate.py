@@ -42,6 +42,7 @@ import math
 
 import numpy as np
 
+from dicert._display import displayed
 from dicert.errors import ParameterError
 
 #: CHSH sign (-1)^(x y) per setting pair.
@@ -83,6 +84,7 @@ class SettingsDesign:
         return p
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class ChshEstimate:
     """CHSH estimates and finite-statistics bounds from one log.
@@ -111,6 +113,16 @@ class ChshEstimate:
     bound_method: str = "martingale estimator, Azuma-Hoeffding, width 8/gamma"
     gamma_source: str = "declared"  # "declared" | "observed" (t column, no design given) | "default"
     local_win_bound: float = 0.75  # best local win probability at the observed settings frequencies
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("chsh", self.chsh), ("chsh_lower", self.chsh_lower), ("eps", self.eps),
+                ("test_trials", self.test_trials), ("p_value_local", self.p_value_local)]
+        if full:
+            rows += [("trials", self.trials), ("chsh_stderr", self.chsh_stderr),
+                     ("chsh_martingale", self.chsh_martingale), ("margin", self.margin),
+                     ("gamma", self.gamma), ("win_probability", self.win_probability),
+                     ("log10_p_value_local", self.log10_p_value_local)]
+        return rows
 
 
 def azuma_margin(n: int, width: float, eps: float) -> float:

@@ -78,6 +78,7 @@ from typing import Any
 
 import numpy as np
 
+from dicert._display import displayed
 from dicert.errors import ParameterError, SeedError
 
 #: Human-readable statement of the matrix convention, recorded with every extraction.
@@ -259,6 +260,7 @@ def lhl_sizing(min_entropy_bits: float, eps_ext: float, eps_smooth: float = 0.0)
 # --------------------------------------------------------------------------- result
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class ExtractionResult:
     """Output of :func:`extract_toeplitz` with the provenance an auditor needs.
@@ -294,6 +296,22 @@ class ExtractionResult:
         """All fields except the output bytes (for JSON and audit records)."""
         return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
                 if f.name != "output"}
+
+    def to_dict(self) -> dict[str, Any]:
+        """:meth:`summary` as plain JSON values (the output bytes stay in ``output``)."""
+        from dicert._plain import plain
+
+        return plain(self.summary())
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("m_bits", self.m_bits), ("n_bits", self.n_bits), ("method", self.method),
+                ("output_sha256", self.output_sha256[:16] + "...")]
+        if full:
+            rows[-1] = ("output_sha256", self.output_sha256)
+            rows += [("seed_bits_used", self.seed_bits_used), ("blocks", self.blocks),
+                     ("max_rounding_error", self.max_rounding_error),
+                     ("fallback_blocks", self.fallback_blocks)]
+        return rows
 
 
 # --------------------------------------------------------------------------- bit sources

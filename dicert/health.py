@@ -29,6 +29,7 @@ from typing import Any
 
 import numpy as np
 
+from dicert._display import displayed
 from dicert.errors import ParameterError
 
 #: Plain statement printed with every health report.
@@ -81,6 +82,7 @@ class McvEstimate:
     bits_per_sample: int
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class HealthReport:
     """All health checks of one bit string; ``passed`` = every applicable test passed."""
@@ -93,6 +95,13 @@ class HealthReport:
     passed: bool
     statement: str = STATEMENT
     references: tuple[str, ...] = _REFERENCES
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("passed", self.passed), ("n_bits", self.n_bits), ("alpha", self.alpha),
+                ("tests", len(self.tests))]
+        if full:
+            rows += [(f"{t.name} (p-value)", t.p_value) for t in self.tests]
+        return rows
 
 
 # --------------------------------------------------------------------------- input

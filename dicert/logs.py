@@ -52,6 +52,7 @@ from typing import Any
 
 import numpy as np
 
+from dicert._display import displayed
 from dicert._io import atomic_writer, output_errors
 from dicert.errors import LogFormatError, ParameterError
 
@@ -226,11 +227,24 @@ def _check_bits(values: Any, name: str) -> None:
                              f"{i}; every value must be 0 or 1")
 
 
+class _Codes(np.ndarray):
+    """Trial codes that can also be called: ``arrays.codes()`` (the earlier method form) works."""
+
+    def __call__(self) -> np.ndarray:
+        return self.view(np.ndarray)
+
+
+_COLUMNS = ("x", "y", "a", "b", "t")
+
+
 @dataclasses.dataclass(frozen=True, slots=True, eq=False)
 class TrialArrays:
     """Per-trial settings and outcomes held in memory (uint8 arrays of equal length).
 
     ``t`` is ``None`` when the log has no test-round column (every trial is then a test round).
+    Columns may be given as any 0/1 sequences (lists, bool or int arrays); values are checked
+    (a ParameterError names the column and index) and non-array inputs become uint8 arrays.
+    ``codes`` holds the one-byte trial codes (see :meth:`from_mapping` for dict input).
     """
 
     x: np.ndarray
@@ -245,6 +259,10 @@ class TrialArrays:
             if len(getattr(self, name)) != n:
                 raise ParameterError(f"TrialArrays: column {name!r} has a different length")
         self.validate()
+        for name in _COLUMNS:
+            v = getattr(self, name)
+            if v is not None and not isinstance(v, np.ndarray):
+                object.__setattr__(self, name, np.asarray(v).astype(np.uint8))
 
     def validate(self) -> None:
         """Raise ParameterError naming the column and value if any value is outside {0, 1}."""
@@ -258,8 +276,19 @@ class TrialArrays:
     def has_test_flag(self) -> bool:
         return self.t is not None
 
+    def __repr__(self) -> str:
+        return f"TrialArrays(trials={len(self)}, has_test_flag={self.has_test_flag})"
+
+    @property
     def codes(self) -> np.ndarray:
-        """The one-byte trial codes ``(t<<4)|(x<<3)|(y<<2)|(a<<1)|b``."""
+        """The one-byte trial codes ``(t<<4)|(x<<3)|(y<<2)|(a<<1)|b`` (uint8 array).
+
+        An attribute like ``x, y, a, b, t``; calling it (``arrays.codes()``, the earlier
+        method form) returns the same array.
+        """
+        return self._codes().view(_Codes)
+
+    def _codes(self) -> np.ndarray:
         c = (
             (np.asarray(self.x, np.uint8) << 3)
             | (np.asarray(self.y, np.uint8) << 2)
@@ -269,6 +298,19 @@ class TrialArrays:
         if self.t is not None:
             c |= np.asarray(self.t, np.uint8) << 4
         return c.astype(np.uint8, copy=False)
+
+    @classmethod
+    def from_mapping(cls, columns: Any, where: str = "TrialArrays") -> TrialArrays:
+        """Build from a mapping of columns (a dict, or a table with ``keys()`` such as a
+        DataFrame): keys ``x, y, a, b`` and optionally ``t``, each a 0/1 sequence."""
+        keys = [str(k) for k in columns.keys()]
+        unknown = [k for k in keys if k not in _COLUMNS]
+        missing = [k for k in _COLUMNS[:4] if k not in keys]
+        if unknown or missing:
+            what = (f"unknown column {unknown[0]!r}" if unknown
+                    else f"missing column {missing[0]!r}")
+            raise ParameterError(f"{where}: {what}; expected columns x, y, a, b and optionally t")
+        return cls(**{k: columns[k] for k in _COLUMNS if k in keys})
 
     @classmethod
     def from_codes(cls, codes: np.ndarray, has_test_flag: bool) -> TrialArrays:
@@ -331,6 +373,7 @@ class FileInfo:
     trials: int
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True, eq=False)
 class LogSummary:
     """Everything one streaming pass over a log yields.
@@ -372,6 +415,16 @@ class LogSummary:
     pair_counts: np.ndarray | None = None  # (8, 8) consecutive settings symbols (4t+2x+y)
     trials_in_log: int | None = None  # trials present (>= trials when max_trials cut the scan)
     log_spec: dict | None = None  # a log read through a log spec: dicert.logspec.SpecLog.audit
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("trials", self.trials), ("has_test_flag", self.has_test_flag),
+                ("files", len(self.files)), ("size_bytes", self.size_bytes),
+                ("sha256", None if self.sha256 is None else self.sha256[:16] + "...")]
+        if full:
+            rows[-1] = ("sha256", self.sha256)
+            rows += [("trials_in_log", self.trials_in_log), ("block_trials", self.block_trials),
+                     ("test_rounds", int(self.counts[1].sum()))]
+        return rows
 
 
 # --------------------------------------------------------------------------------------------
@@ -1215,7 +1268,7 @@ def _iter_npz(path: Path, chunk_trials: int, hasher,
                         raise LogFormatError(path, f"array {k!r}, index {offset + i}",
                                              f"value {arr[i]!r}; expected 0 or 1")
                     cols[k] = arr.astype(np.uint8)
-                yield TrialArrays(**cols).codes()
+                yield TrialArrays(**cols)._codes()
                 offset += want
             for k in names:  # reach each member's end: zipfile checks its CRC-32 there
                 m, _ = streams[k]
@@ -1288,6 +1341,51 @@ def _read_npy_chunk(m, dtype: np.dtype, count: int, path, key: str, offset: int)
 # --------------------------------------------------------------------------------------------
 
 
+
+class BlockTally:
+    """Counts per block of ``block_trials`` consecutive trials over a stream of trial codes.
+
+    ``offset`` is the global index of the first trial fed, so a stream that starts inside a
+    block (one file of a multi-file log) fills that block's remainder first. :meth:`result`
+    gives the raw counts (t as coded) of every block touched, the last one possibly partial,
+    shape (nblocks, 2, 2, 2, 2, 2).
+    """
+
+    def __init__(self, block_trials: int, offset: int = 0) -> None:
+        self.block_trials = int(block_trials)
+        self.first_block = int(offset) // self.block_trials
+        self._blocks: list[np.ndarray] = []
+        self._partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
+        self._fill = int(offset) % self.block_trials
+
+    def add(self, codes: np.ndarray) -> None:
+        from dicert._kernels import count_blocks
+
+        bt, pos = self.block_trials, 0
+        if self._fill:
+            take = min(bt - self._fill, codes.size)
+            c, _ = count_blocks(codes[:take], max(take, 1))
+            self._partial += c.sum(axis=0)
+            self._fill += take
+            pos = take
+            if self._fill == bt:
+                self._blocks.append(self._partial.copy())
+                self._partial[:] = 0
+                self._fill = 0
+        rest = codes[pos:]
+        if rest.size:
+            c, _ = count_blocks(rest, bt)
+            full = rest.size // bt
+            if full:
+                self._blocks.extend(c[:full])
+            if rest.size % bt:
+                self._partial += c[-1]
+                self._fill = rest.size % bt
+
+    def result(self) -> np.ndarray:
+        blocks = self._blocks + ([self._partial.copy()] if self._fill else [])
+        return np.array(blocks, dtype=np.int64).reshape(-1, 2, 2, 2, 2, 2)
+
 def summarize_log(
     source,
     *,
@@ -1317,15 +1415,13 @@ def summarize_log(
         Count (and pass to ``on_chunk``) only the first ``max_trials`` trials; the rest of
         the log is still read, validated and hashed, and counted in ``trials_in_log``.
     """
-    from dicert._kernels import count_blocks, count_pairs
+    from dicert._kernels import count_pairs
 
     if block_trials <= 0:
         raise ParameterError("block_trials must be positive")
     log = open_log(source, format=format)
     total_bytes = sum(f.stat().st_size for f in log.files)
-    blocks: list[np.ndarray] = []
-    partial = np.zeros(32, dtype=np.int64)  # counts of the block being filled
-    in_partial = 0
+    tally = BlockTally(block_trials)
     trials = 0
     in_log = 0
     pairs = np.zeros(64, dtype=np.int64)
@@ -1352,26 +1448,7 @@ def summarize_log(
         if fut is None:
             pc, prev = count_pairs(codes, prev)
             pairs += pc
-        pos = 0
-        if in_partial:
-            take = min(block_trials - in_partial, codes.size)
-            c, _ = count_blocks(codes[:take], max(take, 1))
-            partial += c.sum(axis=0)
-            in_partial += take
-            pos = take
-            if in_partial == block_trials:
-                blocks.append(partial.copy())
-                partial[:] = 0
-                in_partial = 0
-        rest = codes[pos:]
-        if rest.size:
-            c, _ = count_blocks(rest, block_trials)
-            full = rest.size // block_trials
-            if full:
-                blocks.extend(c[:full])
-            if rest.size % block_trials:
-                partial += c[-1]
-                in_partial = rest.size % block_trials
+        tally.add(codes)
         if fut is not None:
             pc, prev = fut.result()
             pairs += pc
@@ -1380,9 +1457,7 @@ def summarize_log(
             on_chunk(chunk)
         if progress is not None:
             progress(min(total_bytes, _bytes_done(log, trials, total_bytes)), total_bytes)
-    if in_partial:
-        blocks.append(partial.copy())
-    block_counts = np.array(blocks, dtype=np.int64).reshape(-1, 2, 2, 2, 2, 2)
+    block_counts = tally.result()
     if not log.has_test_flag:
         block_counts = np.stack([np.zeros_like(block_counts[:, 0]), block_counts.sum(axis=1)], axis=1)
     counts = block_counts.sum(axis=0) if block_counts.size else np.zeros((2,) * 5, dtype=np.int64)
@@ -1487,6 +1562,8 @@ def read_trials(source, format: str | None = None) -> TrialArrays:
 
 def _as_code_chunks(trials) -> tuple[bool, Iterator[np.ndarray]]:
     """(has_test_flag, iterator of code arrays) from TrialArrays, LogChunks or an iterable of them."""
+    if not isinstance(trials, (TrialArrays, LogChunk)) and hasattr(trials, "keys"):
+        trials = TrialArrays.from_mapping(trials, "write_log")
     if isinstance(trials, (TrialArrays, LogChunk)):
         trials = [trials]
     it = iter(trials)
@@ -1501,7 +1578,7 @@ def _as_code_chunks(trials) -> tuple[bool, Iterator[np.ndarray]]:
                 raise ParameterError("write_log: a chunk holds trial codes with reserved bits set")
             return item.codes
         item.validate()  # the arrays may have been changed since construction
-        return item.codes()
+        return item._codes()
 
     flag = first.has_test_flag
 
@@ -1532,8 +1609,9 @@ def _csv_bytes(codes: np.ndarray, has_t: bool) -> bytes:
 def write_log(path, trials, format: str | None = None, *, compress_level: int = 6) -> int:
     """Write trials to ``path`` atomically; return the number of trials written.
 
-    ``trials`` is a :class:`TrialArrays`, a :class:`LogChunk`, or an iterable of either (for
-    streaming large logs with bounded memory; npz needs everything in memory). The format is
+    ``trials`` is a :class:`TrialArrays`, a mapping of columns (``{"x": ..., "y": ..., "a": ...,
+    "b": ..., "t": ...}``, t optional), a :class:`LogChunk`, or an iterable of TrialArrays or
+    LogChunks (for streaming large logs with bounded memory; npz needs everything in memory). The format is
     taken from ``format`` or the extension (.csv, .csv.gz, .btl, .npz).
     """
     fmt = format_from_name(path, format)
@@ -1588,6 +1666,7 @@ def convert_log(source, dest, *, format: str | None = None, in_format: str | Non
 __all__ = [
     "BINARY_MAGIC",
     "BinaryLogWriter",
+    "BlockTally",
     "FileInfo",
     "LogChunk",
     "LogSummary",

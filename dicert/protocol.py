@@ -48,9 +48,16 @@ import math
 import os
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
+from dicert._display import displayed
 from dicert.errors import ProtocolError
+
+if TYPE_CHECKING:
+    from dicert.design import DesignSpec
+    from dicert.estimate import SettingsDesign
+    from dicert.finite.params import EatParams, MartingaleParams
+    from dicert.finite.pef import PefParams
 
 PROTOCOL_FORMAT = "dicert-protocol/1"
 
@@ -109,6 +116,7 @@ class ExtractorSpec:
     output_rule: str
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class Protocol:
     """A validated protocol file. ``sha256`` is over the file's bytes; ``text`` is its content."""
@@ -118,13 +126,23 @@ class Protocol:
     sha256: str
     text: str
     bell: BellTest
-    design: Any  # dicert.estimate.SettingsDesign
+    design: SettingsDesign
     harvest: Harvest
     method: str
-    analysis: Any  # MartingaleParams | EatParams | PefParams
+    analysis: MartingaleParams | EatParams | PefParams  # the method's parameters
     extractor: ExtractorSpec
     description: str = ""
-    conformance: Any = None  # dicert.design.DesignSpec (the optional [design] table)
+    conformance: DesignSpec | None = None  # the optional [design] table
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("name", self.name), ("method", self.method), ("gamma", self.gamma),
+                ("harvest", f"{self.harvest.parties}/{self.harvest.rounds}"),
+                ("eps_ext", self.extractor.eps_ext)]
+        if full:
+            rows += [("bell", self.bell.kind), ("extractor", self.extractor.kind),
+                     ("path", self.path), ("sha256", self.sha256),
+                     ("description", self.description)]
+        return rows
 
     @property
     def gamma(self) -> float:
@@ -481,8 +499,12 @@ def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | Non
                               path=path or source)
 
 
-def load_protocol(path: str | os.PathLike[str]) -> Protocol:
+def load_protocol(path: str | os.PathLike[str] | Mapping[str, Any] | Protocol) -> Protocol:
     """Read and validate a protocol file.
+
+    ``path`` may also be a mapping of the protocol's tables (validated by
+    :func:`protocol_from_dict`, with the same messages as for a file) or a :class:`Protocol`
+    (returned as is), so library callers can pass whichever they hold.
 
     Raises
     ------
@@ -492,6 +514,10 @@ def load_protocol(path: str | os.PathLike[str]) -> Protocol:
     """
     from dicert._io import read_user_file
 
+    if isinstance(path, Protocol):
+        return path
+    if isinstance(path, Mapping):
+        return protocol_from_dict(path)
     p = Path(path)
     data = read_user_file(p, "protocol file (.toml)", ProtocolError, max_bytes=1 << 20)
     return protocol_from_bytes(data, str(p), path=str(p))

@@ -17,11 +17,11 @@ from pathlib import Path
 import numpy as np
 
 from dicert.audit.signing import write_keypair
-from dicert.certify import certify
+from dicert.certification import certify
 from dicert.errors import VerificationError
 from dicert.protocol import load_protocol, shipped_protocol_path
 from dicert.simulate import device_model, simulate_to_file
-from dicert.verify import verify
+from dicert.verification import verify
 
 
 def main(out: Path) -> int:

@@ -202,7 +202,7 @@ def test_nothing_half_written_when_a_late_stage_fails(small_run, tmp_path, monke
 
 
 def test_spilled_raw_bits_give_the_same_result(small_run, tmp_path, monkeypatch):
-    import dicert.certify as certify_mod
+    import dicert.stages.scan as certify_mod
 
     _d, log, seed = small_run
     r1 = certify(log, uniform_protocol(), seed, tmp_path / "mem")

@@ -149,7 +149,7 @@ def test_certify_with_spilled_bits_and_four_step_leaves_only_outputs(tmp_path, m
     # with neither (the in-memory single convolution).
     from helpers import sim_trials, uniform_protocol
 
-    import dicert.certify as certify_mod
+    import dicert.stages.scan as certify_mod
     import dicert.extract as ex
     from dicert.certify import BITS_NAME, RECORD_NAME, certify
     from dicert.logs import write_log

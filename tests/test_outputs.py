@@ -291,7 +291,7 @@ def test_published_modes_ignore_the_umask(tmp_path, inputs):
 
 
 def test_raw_bit_spill_is_private_and_removed(tmp_path, inputs, monkeypatch):
-    import dicert.certify as certify_mod
+    import dicert.stages.scan as certify_mod
     import dicert.extract as extract_mod
 
     d, _keys = inputs
@@ -448,7 +448,7 @@ def test_seed_reuse_refused_before_reading_the_log(tmp_path, inputs, two_pulses)
 
 
 def test_disk_full_while_spilling_raw_bits(tmp_path, inputs, monkeypatch):
-    import dicert.certify as certify_mod
+    import dicert.stages.scan as certify_mod
 
     d, _keys = inputs
 

@@ -37,7 +37,7 @@ def _honest_counts(n: int, gamma: float, win: float, rng: np.random.Generator) -
 def run(quick: bool) -> list[BenchResult]:
     from dicert.finite import certify_counts
     from dicert.finite.eat import _eat_min_entropy_cached, df_rate, optimise_df
-    from dicert.plan import plan
+    from dicert.planning import plan
     from dicert.protocol import load_protocol, shipped_protocol_path
 
     out: list[BenchResult] = []
@@ -77,7 +77,7 @@ def run(quick: bool) -> list[BenchResult]:
 
     from pathlib import Path
 
-    import dicert.plan as planmod
+    import dicert.planning as planmod
 
     photonic = Path(planmod.__file__).resolve().parents[1] / "protocols" / "ch-photonic.toml"
     protos: list[tuple[str, object, int | None]] = [

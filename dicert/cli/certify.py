@@ -78,7 +78,7 @@ def certify_cmd(
     log_spec: Annotated[Path | None, typer.Option("--log-spec", help="Log spec (TOML) describing the run: station files joined by trial key, columns, value maps (instead of LOG); recorded in the record.")] = None,
     as_json: JsonFlag = False,
 ) -> None:
-    from dicert.certify import certify
+    from dicert.certification import certify
     from dicert.errors import ParameterError
     from dicert.logspec import choose_source
 

@@ -138,11 +138,11 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
 
     from dicert._io import atomic_write_bytes
     from dicert.audit.signing import write_keypair
-    from dicert.certify import certify
+    from dicert.certification import certify
     from dicert.errors import DicertError, VerificationError
     from dicert.logs import write_log
     from dicert.protocol import load_protocol, shipped_protocol_path
-    from dicert.verify import verify, verify_chain
+    from dicert.verification import verify, verify_chain
 
     protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
     rng_seed = int(sc["rng_seed"])

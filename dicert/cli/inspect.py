@@ -30,7 +30,7 @@ def inspect_cmd(
 ) -> None:
     """Read a trial log (streaming) and report counts, correlators, the CHSH value, its lower
     confidence bound valid for devices with memory, and the p-value of local realism."""
-    from dicert.estimate import SettingsDesign, block_estimates, estimate_chsh, observed_design
+    from dicert.estimate import block_estimates
     from dicert.errors import ParameterError
     from dicert.logspec import choose_source
 
@@ -58,31 +58,12 @@ def inspect_cmd(
                 log, block_trials=block_trials, digest=False, format=fmt,
                 progress=lambda done, total: bar.update(task, completed=done, total=total),
             )
-    if proto is not None:
-        design, source = proto.design, "declared in the protocol"
-    elif gamma is not None:
-        design, source = SettingsDesign(gamma=gamma), "given with --gamma"
-    elif summary.has_test_flag:
-        design, source = observed_design(summary.counts), "OBSERVED fraction of test rounds (not pre-declared: the bound is indicative only)"
-    else:
-        design, source = SettingsDesign(), "every round a test round (the log has no t column)"
-    if design.gamma < 1.0 and not summary.has_test_flag:
-        raise ParameterError(f"{log}: gamma = {design.gamma:g} < 1 needs a log with a t column "
-                             "marking test rounds; this log has none (every trial is a test round)")
-    if design.gamma >= 1.0 and int(summary.counts[0].sum()):
-        raise ParameterError(f"{log}: gamma = 1 declares every round a test round, but the log "
-                             f"marks {int(summary.counts[0].sum())} trials as generation rounds")
-    from types import SimpleNamespace
+    from dicert.inspection import inspect_summary
 
-    from dicert.design import check_design
-
-    like = proto if proto is not None else SimpleNamespace(
-        design=design, analysis=None, method=None, conformance=None)
-    report = check_design(summary.counts, like, block_counts=summary.block_counts,
-                          pair_counts=summary.pair_counts, eps=error)
+    look = inspect_summary(summary, protocol=proto, gamma=gamma, eps=error, source=log)
+    design, source, report, est = look.design, look.design_source, look.design_report, look.estimate
     settings_ok = all(c.passed for c in report.checks
                       if c.name.startswith(("test_settings", "serial", "generation")))
-    est = estimate_chsh(summary.counts, design, eps=error)
     blocks = block_estimates(summary.block_counts, summary.block_trials, design, eps=block_error)
     lower_shown, lower_note = _clip(est.chsh_lower)
     declared = proto is not None or gamma is not None

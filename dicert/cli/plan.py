@@ -63,7 +63,7 @@ def plan_cmd(
         "--plot", help="Write a plot of certified bits vs trials (PNG/SVG/PDF by extension).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
-    from dicert.plan import plan, plot_plan
+    from dicert.planning import plan, plot_plan
     from dicert.protocol import load_protocol
 
     proto = load_protocol(protocol)

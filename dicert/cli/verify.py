@@ -91,7 +91,7 @@ def verify_cmd(
 
 def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool,
             scheduler=None) -> int:
-    from dicert.verify import verify
+    from dicert.verification import verify
 
     rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
                  trusted_keys=trusted_keys, strict=strict, scheduler=scheduler)
@@ -138,7 +138,7 @@ def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool
 
 def _chain(chain, pubkey, trusted_keys, head, strict, as_json: bool) -> int:
     from dicert.cli._common import to_jsonable
-    from dicert.verify import EXIT_NOT_AUTHENTICATED, verify_chain
+    from dicert.verification import EXIT_NOT_AUTHENTICATED, verify_chain
 
     rep = verify_chain(chain, public_key=pubkey, trusted_keys=trusted_keys, head=head,
                        strict=strict)

@@ -24,6 +24,7 @@ import dataclasses
 import math
 from typing import Any
 
+from dicert._display import displayed
 from dicert.errors import ParameterError, SolverError
 
 MEASURES = ("min", "vn")
@@ -51,6 +52,7 @@ _ASSUME_QUANTUM = (
 )
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class EntropyBound:
     """A certified single-round entropy lower bound.
@@ -103,6 +105,15 @@ class EntropyBound:
     assumptions: tuple[str, ...] = ()
     references: tuple[str, ...] = ()
     quadrature: dict | None = None
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("entropy_bits", self.entropy_bits), ("measure", self.measure),
+                ("parties", self.parties), ("chsh", self.chsh), ("method", self.method)]
+        if full:
+            rows += [("guessing_probability", self.guessing_probability),
+                     ("level", self.level), ("inputs", self.inputs),
+                     ("fallback_reason", self.fallback_reason)]
+        return rows
 
 
 def _make(measure, parties, value, **kw) -> EntropyBound:

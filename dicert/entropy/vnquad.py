@@ -90,6 +90,7 @@ from fractions import Fraction
 
 import numpy as np
 
+from dicert.entropy.npa import _reduce
 from dicert.errors import ParameterError, SolverError
 
 ZLEVELS = ("z1", "z2")
@@ -102,16 +103,6 @@ REFERENCE = ("P. Brown, H. Fawzi, O. Fawzi, Quantum 8, 1445 (2024), arXiv:2106.1
 
 Word = tuple  # (alice letters, bob letters, eve letters)
 ID: Word = ((), (), ())
-
-
-def _red(seq) -> tuple:
-    out: list = []
-    for s in seq:
-        if out and out[-1] == s:
-            out.pop()
-        else:
-            out.append(s)
-    return tuple(out)
 
 
 def _adj_e(e: tuple) -> tuple:
@@ -128,8 +119,8 @@ def _canon(w: Word) -> Word:
 
 def _prod(parties: str, wi: Word, wj: Word) -> tuple[int, Word]:
     """Sign and canonical word of O_i^dagger O_j."""
-    a = _red(tuple(reversed(wi[0])) + wj[0])
-    b = _red(tuple(reversed(wi[1])) + wj[1])
+    a = _reduce(tuple(reversed(wi[0])) + wj[0])
+    b = _reduce(tuple(reversed(wi[1])) + wj[1])
     e = _adj_e(wi[2]) + wj[2]
     return 1, _canon((a, b, e))
 

@@ -6,9 +6,12 @@ import dataclasses
 import math
 from typing import Any
 
+from dicert._display import displayed
+
 SIDE_INFORMATION = ("classical", "quantum")
 
 
+@displayed
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class FiniteSizeResult:
     """A finite-size certificate (or an abort) for one run.
@@ -49,6 +52,15 @@ class FiniteSizeResult:
     assumptions: tuple[str, ...] = ()
     references: tuple[str, ...] = ()
     details: dict[str, Any] = dataclasses.field(default_factory=dict)
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("method", self.method), ("accepted", self.accepted),
+                ("min_entropy_bits", self.min_entropy_bits),
+                ("side_information", self.side_information)]
+        if full:
+            rows += [(name, val) for name, val in self.eps.items()]
+            rows += [("smoothing_eps", self.smoothing_eps), ("entropy_error", self.entropy_error)]
+        return rows
 
     def __post_init__(self) -> None:
         if self.side_information not in SIDE_INFORMATION:

@@ -1,0 +1,438 @@
+"""Planning before an experiment: how many trials, which test-round probability, what output.
+
+:func:`plan` takes a protocol (or the same pieces as plain objects) and the expected quality
+of honest devices, and reports for each finite-size method that applies: the certified
+min-entropy and extractable output on acceptance, the seed the protocol consumes, the net
+expansion, the probability that honest devices abort, the smallest number of trials with a
+positive output and with a positive net expansion, and the test-round probability gamma that
+maximises the net output at the given number of trials.
+
+Conventions
+-----------
+- The protocol's own method is evaluated with its declared thresholds ("declared"). The other
+  methods are evaluated with thresholds DERIVED for the same honest quality and a
+  completeness target (the protocol's eps_comp, else 1e-6), labelled "derived": martingale
+  S_th = S_honest - (8/gamma) sqrt(ln(1/eps_comp)/(2n)) (Hoeffding); entropy accumulation with
+  the tolerance from the exact binomial tail. Error parameters are taken from the protocol.
+- Output on acceptance m = floor(k - 2 log2(1/eps_ext)) (leftover hash lemma, conservative).
+- Seed consumed by the protocol: n (h2(gamma) + 2 gamma) bits for spot-checking (interval
+  algorithm for the test flags, two uniform bits per test round; Han & Hoshi 1997), 2n bits
+  when every round is a test round with uniform settings. The strong extractor's seed is
+  returned, so it is not counted. Net = m - seed.
+- Abort probability of honest i.i.d. devices: exact binomial tail for entropy accumulation
+  (scipy.stats.binom); an optimised Chernoff upper bound for the martingale estimator and for
+  probability estimation.
+
+Probability estimation factors (PEFs, method "pef", classical side information)
+--------------------------------------------------------------------------------
+- Device quality: with --chsh / --win-probability / --visibility, the isotropic box (the
+  Tsirelson box mixed with white noise) of that CHSH value; otherwise, for a PEF protocol, the
+  anticipated box it declares (calibration "isotropic" or "table"), else the photonic
+  Eberhard-type model of :func:`dicert.simulate.device_model` ("photonic": r = 2.918,
+  detector efficiency 0.76, outcome 1 = click). ``PlanResult.device`` says which.
+- A PEF run stops at the first trial where log2 T >= beta sigma_target + log2(1/eps_pe); the
+  output on success is floor(k - 2 log2(1/eps_ext)) with k = sigma_target - 1. ``trials`` is
+  the cap on analysis trials (the protocol's n_max by default). The trials consumed are the
+  calibration prefix plus min(expected stopping trial, cap), with the expected stopping trial
+  (beta sigma_target + log2(1/eps_pe)) / E[log2 F] (Wald's identity, up to the overshoot of the
+  last factor); seed and ``rate_per_trial`` are per trial consumed.
+- The protocol's own PEF row ("declared") uses its beta and target; ``pef.beta_chosen`` is the
+  beta minimising the expected trials for that target (:func:`dicert.finite.pef.plan_pef`), with
+  its expected trials and the trials for 99% completeness (normal approximation, methods note
+  section 2). For CHSH protocols a PEF row is added with DERIVED parameters: model "ns", the
+  protocol's settings distribution, and the largest target whose honest abort probability
+  within ``trials`` is at most eps_comp (Chernoff bound), beta chosen for it on a log grid.
+  The plotted curve, the smallest numbers of trials and the best gamma of every PEF row use
+  that derived target.
+- The anticipated box fixes the PEF here; a "prefix" protocol fits it from its calibration
+  trials instead, which can only cost rate.
+- A local box (no PEF has positive expected log2 F) certifies nothing: by the PEF inequality at
+  the local vertices T is a test supermartingale, so such devices succeed with probability at
+  most 2^-(beta sigma_target) eps_pe, which is a soundness failure and not an output.
+
+References
+----------
+.. [1] P. J. Brown, S. Ragy, R. Colbeck, IEEE Trans. Inf. Theory 66, 2964 (2020) (seed
+   accounting of spot-checking protocols).
+.. [2] T. S. Han, M. Hoshi, "Interval algorithm for random number generation", IEEE Trans.
+   Inf. Theory 43, 599 (1997).
+.. [3] H. Chernoff, Ann. Math. Stat. 23, 493 (1952).
+.. [4] E. Knill, Y. Zhang, P. Bierhorst, "Generation of quantum randomness by probability
+   estimation with classical side information", Phys. Rev. Research 2, 033465 (2020).
+.. [5] Y. Zhang, E. Knill, P. Bierhorst, "Certifying quantum randomness by probability
+   estimation", Phys. Rev. A 98, 040304(R) (2018).
+.. [6] A. Wald, "On cumulative sums of random variables", Ann. Math. Stat. 15, 283 (1944).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import os
+import types
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from dicert._display import displayed
+from dicert.entropy.analytic import W_QUANTUM
+from dicert.errors import ParameterError
+from dicert.finite.params import EatParams, MartingaleParams
+from dicert.plan_models import (  # noqa: F401 (also re-exported: the old import path)
+    N_SWEEP,
+    PEF_BETAS,
+    PEF_COMPLETENESS,
+    PEF_DERIVED_LAM,
+    PEF_GAMMA_POINTS,
+    PEF_THETAS,
+    PefPlanDetails,
+    _Eval,
+    _MethodModel,
+    _PefModel,
+    _log_mgf,
+    _min_trials,
+    _output_bits,
+    _pef_default_box,
+    _pef_stats,
+    _plan_pef_cached,
+    _settings,
+    _unscored_trials,
+    chernoff_reachable_threshold,
+    chernoff_shortfall_bound,
+    honest_quality,
+    martingale_abort_bound,
+    seed_bits_consumed,
+)
+from dicert.protocol import MAX_INTEGER, MIN_GAMMA
+
+DEFAULT_TRIALS = 10**7
+DEFAULT_EPS_COMP = 1e-6
+GAMMA_SWEEP = (1e-4, 1.0)
+
+
+@displayed
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class PlanMethod:
+    """One method's plan at the given number of trials and gamma.
+
+    ``pef`` carries the PEF specifics for method "pef" rows (None for the others).
+    """
+
+    name: str
+    side_information: str
+    thresholds: str  # "declared" | "derived"
+    parameters: dict[str, Any]
+    min_entropy_bits: float
+    certified_bits: int  # extractable output on acceptance
+    rate_per_trial: float  # certified_bits / trials
+    seed_bits: float
+    net_bits: float
+    abort_probability: float
+    abort_probability_kind: str
+    min_trials_positive: int | None
+    min_trials_net_positive: int | None
+    best_gamma: float | None
+    best_gamma_net_bits: float | None
+    curve_trials: tuple[float, ...]
+    curve_certified_bits: tuple[float, ...]
+    pef: PefPlanDetails | None = None
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("name", self.name), ("certified_bits", self.certified_bits),
+                ("net_bits", self.net_bits), ("abort_probability", self.abort_probability)]
+        if full:
+            rows += [("side_information", self.side_information),
+                     ("min_entropy_bits", self.min_entropy_bits),
+                     ("rate_per_trial", self.rate_per_trial), ("seed_bits", self.seed_bits),
+                     ("min_trials_positive", self.min_trials_positive),
+                     ("min_trials_net_positive", self.min_trials_net_positive),
+                     ("best_gamma", self.best_gamma)]
+        return rows
+
+
+@displayed
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class PlanResult:
+    """What :func:`plan` reports. JSON keys follow the field names."""
+
+    protocol: str
+    trials: int
+    trials_source: str
+    gamma: float
+    device: str
+    win_probability: float
+    chsh: float
+    eps_ext: float
+    eps_comp: float
+    methods: tuple[PlanMethod, ...]
+    min_trials_positive: dict[str, int | None]
+    min_trials_net_positive: dict[str, int | None]
+    best_gamma: dict[str, float | None]
+    notes: tuple[str, ...]
+
+    def _headline(self, full: bool) -> list[tuple[str, object]]:
+        rows = [("protocol", self.protocol), ("trials", self.trials), ("gamma", self.gamma),
+                ("chsh", self.chsh),
+                ("certified_bits", {m.name: m.certified_bits for m in self.methods})]
+        if full:
+            rows[-1:] = [("device", self.device), ("trials_source", self.trials_source),
+                         ("eps_ext", self.eps_ext)]
+            for m in self.methods:
+                rows += [(f"{m.name}: certified bits", m.certified_bits),
+                         (f"{m.name}: net bits (after seed)", m.net_bits),
+                         (f"{m.name}: abort probability", m.abort_probability),
+                         (f"{m.name}: min trials, net positive", m.min_trials_net_positive)]
+        return rows
+
+
+def _models(protocol: Any, win: float, eps_comp: float,
+            box: np.ndarray) -> list[_MethodModel | _PefModel]:
+    method = getattr(protocol, "method", None)
+    analysis = getattr(protocol, "analysis", None)
+    eps_ext = float(protocol.extractor.eps_ext)
+    harvest = getattr(protocol, "harvest", None)
+    # Error parameters shared with derived methods: the declared method's entropy error.
+    if isinstance(analysis, MartingaleParams):
+        err = analysis.eps_est
+        eps_s = eps_ea = analysis.eps_est
+    elif isinstance(analysis, EatParams):
+        err = analysis.eps_ea
+        eps_s, eps_ea = analysis.eps_s, analysis.eps_ea
+    else:
+        err = float(getattr(analysis, "eps_pe", None) or getattr(analysis, "eps_PE", None)
+                    or 1e-8)
+        eps_s = eps_ea = err
+    models: list[_MethodModel | _PefModel] = []
+    if method == "martingale" and isinstance(analysis, MartingaleParams):
+        models.append(_MethodModel("martingale-azuma", "classical", "declared", win, eps_ext,
+                                   eps_comp, mart=analysis, harvest=harvest))
+    else:
+        models.append(_MethodModel("martingale-azuma", "classical", "derived", win, eps_ext,
+                                   eps_comp, mart=MartingaleParams(chsh_threshold=2.5,
+                                                                   eps_est=err),
+                                   harvest=types.SimpleNamespace(parties="AB", rounds="all")))
+    for variant in ("df-conservative", "dfr"):
+        if method == "eat" and isinstance(analysis, EatParams) and analysis.variant == variant:
+            p = dataclasses.replace(analysis, rounds=None)
+            models.append(_MethodModel(p.method_name, "quantum", "declared", win, eps_ext,
+                                       eps_comp, eat=p))
+            continue
+        if method == "eat" and isinstance(analysis, EatParams):
+            p = dataclasses.replace(analysis, variant=variant, rounds=None)
+            models.append(_MethodModel(p.method_name, "quantum", "declared-switched", win,
+                                       eps_ext, eps_comp, eat=p))
+            continue
+        if win <= 0.75:
+            continue
+        p = EatParams(variant=variant, expected_win_probability=win, eps_comp=eps_comp,
+                      eps_s=eps_s, eps_ea=eps_ea)
+        models.append(_MethodModel(p.method_name, "quantum", "derived", win, eps_ext,
+                                   eps_comp, eat=p))
+    # The same EAT engines with the other single-round bound: the certified Gauss-Radau
+    # quadrature lines on H(AB|X,Y,E) (Brown, Fawzi & Fawzi 2024), or back to the analytic G.
+    declared_eat = method == "eat" and isinstance(analysis, EatParams)
+    other = ("analytic-vn-A" if declared_eat and analysis.single_round == "radau-vn-AB"
+             else "radau-vn-AB")
+    for variant in ("df-conservative", "dfr"):
+        if declared_eat:
+            p = dataclasses.replace(analysis, variant=variant, rounds=None, single_round=other)
+            how = "declared" if variant == analysis.variant else "declared-switched"
+        elif win <= 0.75:
+            continue
+        else:
+            p = EatParams(variant=variant, expected_win_probability=win, eps_comp=eps_comp,
+                          eps_s=eps_s, eps_ea=eps_ea, single_round=other)
+            how = "derived"
+        models.append(_MethodModel(p.method_name, "quantum", how, win, eps_ext, eps_comp,
+                                   eat=p))
+    design = getattr(protocol, "design", None)
+    generation = tuple(getattr(design, "generation", (0, 0)))
+    if method == "pef":
+        models.append(_PefModel(box, eps_ext, eps_comp, declared=analysis,
+                                generation=generation))
+    else:
+        # Derived PEF row: classical side information, no-signalling model, the protocol's
+        # settings distribution, the declared method's error as eps_pe.
+        models.append(_PefModel(box, eps_ext, eps_comp, eps_pe=err, generation=generation))
+    return models
+
+
+# Long on purpose (about 120 lines, 30 of them docstring): the defaults taken from the
+# protocol, the models (dicert.plan_models), then one row per model; no numerics of its own.
+def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | None = None,
+         visibility: float | None = None, trials: int | None = None,
+         gamma: float | None = None, n_points: int = 30, gamma_points: int = 30) -> PlanResult:
+    """Plan an experiment under ``protocol`` for honest devices of the given quality.
+
+    Parameters
+    ----------
+    protocol : Protocol or object with ``name``, ``method``, ``analysis``, ``design``,
+        ``harvest``, ``extractor`` (``eps_ext``)
+        The protocol to plan for.
+    chsh, win_probability, visibility : float, optional
+        At most one: the honest devices' quality, i.e. the isotropic box of that CHSH value
+        (default: the protocol's expectation; for a PEF protocol its anticipated box, else the
+        photonic model of :func:`dicert.simulate.device_model`).
+    trials : int, optional
+        Number of trials (default: the protocol's ``rounds``, for a PEF protocol its
+        ``n_max``, else 1e7). For PEF rows, the cap on analysis trials.
+    gamma : float, optional
+        Test-round probability (default: the protocol's).
+    n_points, gamma_points : int
+        Sizes of the trial-number sweep (plotted curve) and of the gamma sweep (at most
+        :data:`PEF_GAMMA_POINTS` for PEF rows, which need new PEFs per gamma).
+
+    Returns
+    -------
+    PlanResult
+
+    References
+    ----------
+    Brown, Ragy & Colbeck (2020); Han & Hoshi (1997); Chernoff (1952); Knill, Zhang & Bierhorst
+    (2020); Zhang, Knill & Bierhorst (2018). See the module docstring.
+    """
+    from dicert.finite.pef import box_from_chsh
+
+    if isinstance(protocol, (str, os.PathLike, Mapping)):  # a file or the tables, as certify
+        from dicert.protocol import load_protocol
+
+        protocol = load_protocol(protocol)
+    analysis = getattr(protocol, "analysis", None)
+    is_pef = getattr(protocol, "method", None) == "pef"
+    default_win = None
+    if isinstance(analysis, EatParams):
+        default_win = analysis.expected_win_probability
+    elif isinstance(analysis, MartingaleParams) and analysis.expected_chsh is not None:
+        default_win = 0.5 + analysis.expected_chsh / 8.0
+    if is_pef and chsh is None and win_probability is None and visibility is None:
+        box, device = _pef_default_box(analysis)
+        # CHSH-game win probability with uniform settings: sum_z (1/4) P(a xor b = xy | z).
+        # Clamped to the quantum maximum (float rounding, or a super-quantum declared box).
+        win = min(W_QUANTUM, float(sum(0.25 * box[z, c] for z in range(4) for c in range(4)
+                                       if ((c >> 1) ^ (c & 1)) == ((z >> 1) & (z & 1)))))
+    else:
+        win = honest_quality(chsh=chsh, win_probability=win_probability,
+                             visibility=visibility, default_win=default_win)
+        box = box_from_chsh(8.0 * win - 4.0)
+        device = (f"isotropic box (Tsirelson box mixed with white noise), CHSH "
+                  f"{8.0 * win - 4.0:.6g}")
+    design = getattr(protocol, "design", None)
+    g = float(gamma if gamma is not None else getattr(design, "gamma", 1.0))
+    if not (math.isfinite(g) and MIN_GAMMA <= g <= 1.0):
+        raise ParameterError(f"--gamma must lie in [{MIN_GAMMA:g}, 1], got {gamma!r}")
+    source = "given"
+    if trials is None:
+        declared = getattr(analysis, "n_max" if is_pef else "rounds", None)
+        trials, source = (declared, "protocol") if declared else (DEFAULT_TRIALS, "default")
+    if (isinstance(trials, bool) or not math.isfinite(trials) or int(trials) != trials
+            or not 1 <= trials <= MAX_INTEGER):
+        # Bounded so that every count stays exact in double precision and in the record.
+        raise ParameterError(f"--trials must be an integer in [1, 2**53 - 1], got {trials!r}")
+    n = int(trials)
+    eps_comp = float(getattr(analysis, "eps_comp", None) or DEFAULT_EPS_COMP)
+    models = _models(protocol, win, eps_comp, box)
+    ns = np.geomspace(*N_SWEEP, n_points)
+    out = []
+    for mdl in models:
+        details = None
+        consumed = float(n)
+        if isinstance(mdl, _PefModel):
+            ev, details, consumed = mdl.row(n, g)
+            gammas = np.geomspace(*GAMMA_SWEEP, min(gamma_points, PEF_GAMMA_POINTS))
+        else:
+            ev = mdl.evaluate(n, g)
+            gammas = np.geomspace(*GAMMA_SWEEP, gamma_points)
+        curve = tuple(float(mdl.evaluate(x, g).m) for x in ns)
+        nets = [mdl.evaluate(n, float(gg)).net for gg in gammas]
+        j = int(np.argmax(nets))
+        best_g = float(gammas[j]) if nets[j] > 0 else None
+        out.append(PlanMethod(
+            name=mdl.name, side_information=mdl.side, thresholds=mdl.thresholds,
+            parameters=ev.params, min_entropy_bits=ev.k, certified_bits=ev.m,
+            rate_per_trial=ev.m / consumed if consumed > 0 else 0.0, seed_bits=ev.seed,
+            net_bits=ev.net, abort_probability=ev.abort, abort_probability_kind=mdl.abort_kind,
+            min_trials_positive=_min_trials(mdl, g, "m"),
+            min_trials_net_positive=_min_trials(mdl, g, "net"),
+            best_gamma=best_g, best_gamma_net_bits=float(nets[j]) if best_g else None,
+            curve_trials=tuple(float(x) for x in ns), curve_certified_bits=curve,
+            pef=details))
+    notes = (
+        ("certified_bits is the extractable output on acceptance, "
+         "floor(k - 2 log2(1/eps_ext)); multiply by 1 - abort_probability for the mean"),
+        ("seed_bits: n (h2(gamma) + 2 gamma) for spot-checking, 2n for uniform settings; the "
+         "extractor seed is returned and not counted"),
+        ("'derived' methods use thresholds set for this device quality and eps_comp "
+         f"= {eps_comp:g}; 'declared' ones use the protocol's"),
+        "best_gamma maximises net_bits over a log grid of gamma in [1e-4, 1] at the given trials",
+        f"device: {device}",
+        ("pef rows (classical side information): trials is the cap on analysis trials; the "
+         "run stops at the target, so seed and output per trial count the calibration prefix "
+         "plus the expected stopping trial; curves, smallest n and best gamma use the largest "
+         "target reachable with honest abort <= eps_comp"),
+    )
+    return PlanResult(
+        protocol=str(getattr(protocol, "name", "<protocol>")), trials=n, trials_source=source,
+        gamma=g, device=device, win_probability=win, chsh=8.0 * win - 4.0,
+        eps_ext=float(protocol.extractor.eps_ext), eps_comp=eps_comp, methods=tuple(out),
+        min_trials_positive={m.name: m.min_trials_positive for m in out},
+        min_trials_net_positive={m.name: m.min_trials_net_positive for m in out},
+        best_gamma={m.name: m.best_gamma for m in out}, notes=notes)
+
+
+def plot_plan(result: PlanResult, path: Any) -> None:
+    """Certified output bits vs number of trials for each method (matplotlib, Agg), atomically."""
+    import io
+
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    from dicert._io import atomic_write_bytes
+
+    fig, ax = plt.subplots(figsize=(7, 4.5))
+    for m in result.methods:
+        xs = np.asarray(m.curve_trials)
+        ys = np.asarray(m.curve_certified_bits, dtype=float)
+        ok = ys > 0
+        if m.pef is not None:
+            label = f"{m.name} ({m.side_information}, best target per n)"
+        else:
+            label = f"{m.name} ({m.side_information}, {m.thresholds})"
+        if ok.any():
+            (line,) = ax.loglog(xs[ok], ys[ok], marker="o", ms=3, label=label)
+            color = line.get_color()
+        else:
+            color = None
+        d = m.pef
+        if d is not None and m.certified_bits > 0 and math.isfinite(d.expected_trials):
+            ax.loglog([d.expected_trials], [m.certified_bits], marker="*", ms=11, ls="none",
+                      color=color, label=f"{m.name}: {d.target_source} target, expected trials")
+    ax.axvline(result.trials, color="grey", ls=":", lw=1, label=f"n = {result.trials:.3g}")
+    ax.set_xlabel("number of trials n")
+    ax.set_ylabel("certified output bits on acceptance")
+    ax.set_title(f"{result.protocol}: gamma = {result.gamma:g}, "
+                 f"win probability = {result.win_probability:.4f}")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8)
+    fmt = str(path).rsplit(".", 1)[-1].lower() if "." in str(path) else "png"
+    buf = io.BytesIO()
+    fig.savefig(buf, format=fmt, dpi=120, bbox_inches="tight",
+                metadata={"Software": None} if fmt == "png" else None)
+    plt.close(fig)
+    atomic_write_bytes(path, buf.getvalue())
+
+
+__all__ = [
+    "PefPlanDetails",
+    "PlanMethod",
+    "PlanResult",
+    "chernoff_reachable_threshold",
+    "chernoff_shortfall_bound",
+    "honest_quality",
+    "martingale_abort_bound",
+    "plan",
+    "plot_plan",
+    "seed_bits_consumed",
+]
