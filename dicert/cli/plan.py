@@ -81,19 +81,25 @@ def plan_cmd(
     plot: Annotated[Optional[Path], typer.Option(
         "--plot", help="Write a plot of certified bits vs trials and net bits vs gamma "
                        "(.png, .svg or .pdf).")] = None,
+    no_cache: Annotated[bool, typer.Option(
+        "--no-cache", help="Recompute even if this plan is cached (results are cached per "
+                           "protocol text, options and code version; see DICERT_CACHE_DIR).")] = False,
     as_json: JsonFlag = False,
 ) -> None:
-    from dicert.planning import plan, plot_plan, with_error_parameters
+    from dicert.planning import plot_plan
     from dicert.protocol import load_protocol
 
     if plot is not None:
         from dicert.plotting import check_plot_path
 
         check_plot_path(plot)
-    proto = with_error_parameters(load_protocol(protocol), eps_ext=eps_ext, eps_est=eps_est,
-                                  eps_s=eps_s, eps_ea=eps_ea, eps_pe=eps_pe)
-    result = plan(proto, chsh=chsh, win_probability=win_probability, visibility=visibility,
-                  trials=_trials(trials), gamma=gamma, eps_comp=eps_comp)
+    from dicert.plan_cache import cached_plan
+
+    result = cached_plan(load_protocol(protocol), use_cache=not no_cache,
+                         overrides={"eps_ext": eps_ext, "eps_est": eps_est, "eps_s": eps_s,
+                                    "eps_ea": eps_ea, "eps_pe": eps_pe},
+                         chsh=chsh, win_probability=win_probability, visibility=visibility,
+                         trials=_trials(trials), gamma=gamma, eps_comp=eps_comp)
     if plot is not None:
         plot_plan(result, plot)
     if as_json:
