@@ -40,10 +40,14 @@ def test_bad_plot_extension_is_one_line_exit_2_before_any_work(tmp_path, monkeyp
     assert list(tmp_path.iterdir()) == []
 
 
-def test_plot_in_missing_directory_is_refused_first(tmp_path):
-    r = runner.invoke(app, ["plan", "--protocol", "chsh-uniform", "--plot",
-                            str(tmp_path / "nodir" / "p.png")])
-    assert r.exit_code == 2 and "does not exist" in r.stderr
+def test_plot_svg_and_pdf_written_like_other_outputs(tmp_path):
+    # Missing directories are created, as for every output (dicert._io.make_parent).
+    for name, magic in (("p.svg", b"<?xml"), ("p.pdf", b"%PDF-")):  # XML 1.0; ISO 32000
+        out = tmp_path / "new" / name
+        r = runner.invoke(app, ["plan", "--protocol", "chsh-uniform", "--trials", "1e5",
+                                "--plot", str(out)])
+        assert r.exit_code == 0, r.output
+        assert out.read_bytes()[:5] == magic
 
 
 def test_chsh_axis_range_clipped_and_follows_photonic_data():
