@@ -25,8 +25,8 @@ from typing import Any
 _PKG = Path(__file__).resolve().parent
 #: Sources whose change must invalidate every cached plan (relative to the package).
 _FINGERPRINT_GLOBS = ("planning.py", "plan_models.py", "protocol.py", "extract.py",
-                      "estimate.py", "simulate.py", "finite/**/*.py", "entropy/**/*.py",
-                      "data/*.json")
+                      "_extract_sizing.py", "estimate.py", "simulate.py", "simulate/**/*.py",
+                      "finite/**/*.py", "entropy/**/*.py", "data/*.json")
 SHIPPED_CACHE = _PKG / "data" / "plan_cache"
 #: (protocol, options) of the shipped entries: each shipped protocol at its defaults, and the
 #: README's example.
