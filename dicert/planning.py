@@ -271,7 +271,7 @@ def _models(protocol: Any, win: float, eps_comp: float,
     return models
 
 
-# Long on purpose (about 120 lines, 30 of them docstring): the defaults taken from the
+# long: about 120 lines, 30 of them docstring: the defaults taken from the
 # protocol, the models (dicert.plan_models), then one row per model; no numerics of its own.
 def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | None = None,
          visibility: float | None = None, trials: int | None = None,

@@ -14,6 +14,8 @@ def register(app: typer.Typer) -> None:
     app.command("inspect")(inspect_cmd)
 
 
+# long: one typer option per line and the table rendering; the numbers come from
+# dicert.inspection.inspect_summary.
 @handle_errors
 def inspect_cmd(
     log: Annotated[Optional[str], typer.Argument(help="Trial log: a file, a directory of files, a glob pattern, or a log spec (TOML).")] = None,

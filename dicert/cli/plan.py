@@ -50,6 +50,7 @@ def _trials(value: Optional[str]) -> Optional[int]:
     return int(x)
 
 
+# long: one typer option per line (error parameters included) and the table rendering.
 @handle_errors
 def plan_cmd(
     protocol: Annotated[Path, typer.Option("--protocol", help="Protocol file (TOML).")],
