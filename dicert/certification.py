@@ -198,7 +198,7 @@ def _load(protocol: Protocol | str | os.PathLike[str] | Mapping[str, Any]) -> Pr
     return load_protocol(protocol)
 
 
-# Long docstring (about 85 lines: every parameter); the body is the stages in order.
+# long: docstring (about 85 lines: every parameter); the body is the stages in order.
 def certify(log: Any, protocol: Protocol | str | os.PathLike[str], seed: bytes | str | os.PathLike[str],
             out_dir: str | os.PathLike[str], *, key: Any = None,
             chain: str | os.PathLike[str] | None = None, clock: Clock | None = None,

@@ -65,12 +65,28 @@ import numpy as np
 
 from dicert.errors import ParameterError, ProtocolError
 
+# re-exported: every name that lived here keeps its import path
+from dicert._design_stats import (  # noqa: F401
+    MIN_EXPECTED,
+    _binom_two_sided_point,
+    _lpmf,
+    binomial_two_sided,
+    chi2_sf,
+    serial_g_test,
+    settings_symbol_counts,
+)
+
+#: Reference of the trial-count check (recorded): the number of rounds is fixed in advance.
+TRIAL_COUNT_REFERENCE = ("pre-declared run length: n fixed before the run (Dupuis, Fawzi & "
+                         "Renner, Commun. Math. Phys. 379:867, 2020; Arnon-Friedman et al., "
+                         "Nat. Commun. 9:459, 2018)")
+#: Text recorded before (still accepted by verify: a citation, not a number).
+LEGACY_TRIAL_COUNT_REFERENCE = "pre-declared run length (methods notes: n fixed before the run)"
+
 #: Default significance of every design-conformance test (a protocol key overrides it).
 DEFAULT_SIGNIFICANCE = 1e-9
 #: Default block size of the per-block tests.
 DEFAULT_BLOCK_TRIALS = 1 << 20
-#: Smallest expected count of a cell of the serial-independence table after pooling.
-MIN_EXPECTED = 50.0
 
 TSIRELSON = 2.0 * math.sqrt(2.0)
 NO_SIGNALLING_MAX = 4.0
@@ -276,143 +292,6 @@ class DesignReport:
         }
 
 
-# --------------------------------------------------------------------------- statistics
-
-
-def _lpmf(j: int, n: int, p: float) -> float:
-    from dicert.estimate import _log_binom_pmf
-
-    return _log_binom_pmf(j, n, p)
-
-
-def _binom_two_sided_point(k: int, n: int, p: float) -> float:
-    """Exact two-sided ("minlike") binomial p-value, free of scipy (``dicert inspect`` stays
-    fast); the same definition as ``scipy.stats.binomtest`` (tests compare the two)."""
-    from dicert.estimate import _log_tail_sum
-
-    if p <= 0.0:
-        return 1.0 if k == 0 else 0.0
-    if p >= 1.0:
-        return 1.0 if k == n else 0.0
-    if k == p * n:
-        return 1.0
-    target = _lpmf(k, n, p) + math.log1p(1e-7)  # scipy's relative tolerance
-    if k < p * n:
-        lo, hi = int(math.ceil(p * n)), n
-        if _lpmf(hi, n, p) > target:
-            other = -math.inf
-        else:
-            while lo < hi:  # smallest j in [ceil(np), n] with pmf(j) <= pmf(k)
-                mid = (lo + hi) // 2
-                if _lpmf(mid, n, p) <= target:
-                    hi = mid
-                else:
-                    lo = mid + 1
-            other = _log_tail_sum(lo, n, p, +1)
-        near = _log_tail_sum(k, n, p, -1)
-    else:
-        lo, hi = 0, int(math.floor(p * n))
-        if _lpmf(lo, n, p) > target:
-            other = -math.inf
-        else:
-            while lo < hi:  # largest j in [0, floor(np)] with pmf(j) <= pmf(k)
-                mid = (lo + hi + 1) // 2
-                if _lpmf(mid, n, p) <= target:
-                    lo = mid
-                else:
-                    hi = mid - 1
-            other = _log_tail_sum(lo, n, p, -1)
-        near = _log_tail_sum(k, n, p, +1)
-    total = math.exp(near) + (math.exp(other) if other > -math.inf else 0.0)
-    return min(1.0, total)
-
-
-def binomial_two_sided(k: int, n: int, lo: float, hi: float | None = None) -> float:
-    """Two-sided exact binomial p-value of k successes in n under p in [lo, hi].
-
-    The "minlike" two-sided p-value of ``scipy.stats.binomtest`` (the total probability of
-    the outcomes no more likely than k), computed without scipy. For an interval (a
-    composite null) the largest p-value over the interval is taken, evaluated at the point of
-    the interval nearest k/n and at both ends.
-    """
-    hi = lo if hi is None else hi
-    if n <= 0:
-        return 1.0
-    best = 0.0
-    for p in {min(max(k / n, lo), hi), lo, hi}:
-        best = max(best, _binom_two_sided_point(int(k), int(n), float(p)))
-    return min(1.0, best)
-
-
-def chi2_sf(x: float, dof: int) -> float:
-    """Survival function of the chi-square distribution with an integer number of degrees of
-    freedom (closed forms of the regularised upper incomplete gamma function Q(dof/2, x/2);
-    scipy-free, compared with ``scipy.stats.chi2.sf`` in the tests)."""
-    if x <= 0:
-        return 1.0
-    h = x / 2.0
-    if dof % 2 == 0:
-        terms = [-h + i * math.log(h) - math.lgamma(i + 1) for i in range(dof // 2)]
-        base = 0.0
-    else:
-        terms = [-h + (i + 0.5) * math.log(h) - math.lgamma(i + 1.5)
-                 for i in range((dof - 1) // 2)]
-        base = math.erfc(math.sqrt(h))
-    return float(min(1.0, base + sum(math.exp(t) for t in terms)))
-
-
-def serial_g_test(pair_counts: np.ndarray, min_expected: float = MIN_EXPECTED
-                  ) -> tuple[float, int, float, str]:
-    """G-test of independence of consecutive symbols from their transition counts.
-
-    ``pair_counts[s, s']`` counts the overlapping pairs (symbol i, symbol i+1). Symbols are
-    pooled until every expected cell holds at least ``min_expected`` pairs. Returns
-    ``(G, dof, p_value, note)``; dof 0 (fewer than two groups) means not applicable (p = 1).
-    """
-    pc = np.asarray(pair_counts, dtype=np.float64)
-    n = float(pc.sum())
-    if n <= 0:
-        return 0.0, 0, 1.0, "no consecutive pairs"
-    occ = pc.sum(axis=1) + pc.sum(axis=0)  # occurrences (each symbol counted as prev and cur)
-    need = math.sqrt(min_expected * n) * 2.0
-    order = np.argsort(occ)[::-1]
-    keep = [int(s) for s in order if occ[s] >= need]
-    rest = [int(s) for s in order if 0 < occ[s] < need]
-    groups = [[s] for s in keep]
-    if rest:
-        if sum(occ[s] for s in rest) >= need or not groups:
-            groups.append(rest)
-        else:
-            groups[-1] = groups[-1] + rest  # too few to stand alone: join the smallest kept
-    k = len(groups)
-    if k < 2:
-        return 0.0, 0, 1.0, "fewer than two distinct settings symbols with enough occurrences"
-    tab = np.array([[pc[np.ix_(g, h)].sum() for h in groups] for g in groups])
-    rows = tab.sum(axis=1, keepdims=True)
-    cols = tab.sum(axis=0, keepdims=True)
-    exp = rows * cols / n
-    with np.errstate(divide="ignore", invalid="ignore"):
-        terms = np.where(tab > 0, tab * np.log(tab / exp), 0.0)
-    g = float(2.0 * terms.sum())
-    dof = (k - 1) ** 2
-    p = chi2_sf(g, dof)
-    note = f"{k} symbol groups ({dof} degrees of freedom)"
-    return g, dof, p, note
-
-
-def settings_symbol_counts(counts: np.ndarray) -> np.ndarray:
-    """Counts of the settings symbol s = 4 t + 2 x + y from a [t, x, y, a, b] table (or a
-    stack of them), shape (..., 8)."""
-    c = np.asarray(counts, dtype=np.int64)
-    if c.shape[-5:] == (2, 2, 2, 2, 2):
-        c = c.sum(axis=(-1, -2))
-        return c.reshape(c.shape[:-3] + (8,))
-    if c.shape[-1] == 8:
-        return c
-    raise ParameterError(f"expected counts [t,x,y,a,b] or settings-symbol counts, got shape "
-                         f"{c.shape}")
-
-
 def _test_settings_model(protocol: Any) -> tuple[float, float, float, float]:
     an = getattr(protocol, "analysis", None)
     return (float(getattr(an, "p_x0", 0.5)), float(getattr(an, "p_y0", 0.5)),
@@ -505,9 +384,33 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
     px0, py0, bx, by = _test_settings_model(protocol)
     declared = declared_trials(protocol)
     checks: list[DesignCheck] = []
-    ref_binom = ("exact two-sided binomial test (minlike p-value, as scipy.stats.binomtest; "
-                 "Clopper & Pearson 1934)")
+    checks += _count_checks(c, n, in_log, declared, decided_early, gamma, gen, alpha)
+    pxr = (max(px0 - bx, 0.0), min(px0 + bx, 1.0))
+    pyr = (max(py0 - by, 0.0), min(py0 + by, 1.0))
+    ranges = (pxr, pyr, _xor_range(pxr, pyr))
+    checks += _settings_checks(c[1].sum(axis=(2, 3)), ranges, alpha)
+    if block_counts is not None:
+        checks += _block_checks(block_counts, ranges, gamma, alpha, spec.block_trials)
+    if pair_counts is not None:
+        checks.append(_serial_check(pair_counts, alpha))
+    if eps is None:
+        eps = _estimate_eps(protocol)
+    n_test = int(c[1].sum())
+    if n > 0 and n_test > 0:
+        checks.append(_range_check(c, gamma, px0, py0, eps, protocol))
+    return DesignReport(significance=alpha, block_trials=spec.block_trials, trials=n,
+                        trials_in_log=in_log, declared_trials=declared, checks=tuple(checks))
 
+
+_REF_BINOM = ("exact two-sided binomial test (minlike p-value, as scipy.stats.binomtest; "
+              "Clopper & Pearson 1934)")
+_SETTING_EVENTS = {"x": "P(x = 0)", "y": "P(y = 0)", "xor": "P(x XOR y = 0)"}
+
+
+def _count_checks(c: np.ndarray, n: int, in_log: int, declared: int | None, decided_early: bool,
+                  gamma: float, gen: tuple, alpha: float) -> list[DesignCheck]:
+    """Trial count, test-round fraction and generation settings."""
+    checks: list[DesignCheck] = []
     # -- trial count
     if declared is not None:
         ok = in_log >= declared or decided_early
@@ -519,7 +422,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
                     + ("" if ok else " (too few: a run shorter than declared is not the run the "
                        "protocol describes)")
                     + (f"; the first {declared} are analysed" if in_log > declared else "")),
-            reference="pre-declared run length (methods notes: n fixed before the run)"))
+            reference=TRIAL_COUNT_REFERENCE))
 
     # -- test-round fraction
     n_test = int(c[1].sum())
@@ -532,7 +435,7 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             detail=(f"{n_test} test rounds in {n} trials ({n_test / max(n, 1):.6g}); "
                     f"declared gamma = {gamma:g} (expected {gamma * n:.6g}); two-sided "
                     f"p {_fp(p)}, significance {alpha:g}"),
-            reference=ref_binom))
+            reference=_REF_BINOM))
         wrong_gen = int(c[0].sum() - c[0, gen[0], gen[1]].sum())
         checks.append(DesignCheck(
             name="generation_settings", statistic=float(wrong_gen), p_value=None,
@@ -541,24 +444,27 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             detail=(f"{wrong_gen} generation rounds (t = 0) with settings other than the "
                     f"declared {list(gen)}"),
             reference="protocol definition (deterministic check)"))
+    return checks
 
-    # -- test settings
-    tc = c[1].sum(axis=(2, 3))  # [x, y]
-    pxr = (max(px0 - bx, 0.0), min(px0 + bx, 1.0))
-    pyr = (max(py0 - by, 0.0), min(py0 + by, 1.0))
-    xr = _xor_range(pxr, pyr)
 
-    def settings_tests(tcxy: np.ndarray) -> list[tuple[str, int, int, tuple[float, float], float]]:
-        m = int(tcxy.sum())
-        kx = int(tcxy[0].sum())
-        ky = int(tcxy[:, 0].sum())
-        kxor = int(tcxy[0, 0] + tcxy[1, 1])
-        return [("x", kx, m, pxr, binomial_two_sided(kx, m, *pxr)),
-                ("y", ky, m, pyr, binomial_two_sided(ky, m, *pyr)),
-                ("xor", kxor, m, xr, binomial_two_sided(kxor, m, *xr))]
+def _settings_tests(tcxy: np.ndarray, ranges: tuple
+                    ) -> list[tuple[str, int, int, tuple[float, float], float]]:
+    """The three binomial tests of test-round settings counts ``tcxy[x, y]``."""
+    pxr, pyr, xr = ranges
+    m = int(tcxy.sum())
+    kx = int(tcxy[0].sum())
+    ky = int(tcxy[:, 0].sum())
+    kxor = int(tcxy[0, 0] + tcxy[1, 1])
+    return [("x", kx, m, pxr, binomial_two_sided(kx, m, *pxr)),
+            ("y", ky, m, pyr, binomial_two_sided(ky, m, *pyr)),
+            ("xor", kxor, m, xr, binomial_two_sided(kxor, m, *xr))]
 
-    descr = {"x": "P(x = 0)", "y": "P(y = 0)", "xor": "P(x XOR y = 0)"}
-    for which, k, m, rng_, p in settings_tests(tc):
+
+def _settings_checks(tc: np.ndarray, ranges: tuple, alpha: float) -> list[DesignCheck]:
+    """The test settings of the whole log."""
+    checks: list[DesignCheck] = []
+    descr = _SETTING_EVENTS
+    for which, k, m, rng_, p in _settings_tests(tc, ranges):
         want = f"{rng_[0]:g}" if rng_[0] == rng_[1] else f"[{rng_[0]:g}, {rng_[1]:g}]"
         checks.append(DesignCheck(
             name=f"test_settings_{which}", statistic=float(k), p_value=p, threshold=alpha,
@@ -568,81 +474,85 @@ def check_design(counts: np.ndarray, protocol: Any, *, block_counts: np.ndarray 
             detail=(f"{k} of {m} test rounds with {descr[which].split('(')[1][:-1]} "
                     f"({k / max(m, 1):.6g}); declared {descr[which]} = {want}; two-sided "
                     f"p {_fp(p)}, significance {alpha:g}"),
-            reference=ref_binom))
+            reference=_REF_BINOM))
+    return checks
 
-    # -- per block (Bonferroni)
-    if block_counts is not None:
-        sym = settings_symbol_counts(block_counts)
-        sym = sym[sym.sum(axis=1) > 0]
-        nb = int(sym.shape[0])
-        if nb > 1:
-            if gamma < 1.0:
-                thr = alpha / nb
-                worst, at, stat = 1.0, -1, 0.0
-                for i, s in enumerate(sym):
-                    nt, nn = int(s[4:].sum()), int(s.sum())
-                    p = binomial_two_sided(nt, nn, gamma)
-                    if p < worst:
-                        worst, at, stat = p, i, float(nt)
-                checks.append(DesignCheck(
-                    name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
-                    passed=worst >= thr, applicable=True,
-                    meaning="test rounds occur with probability gamma in every block",
-                    detail=(f"smallest p-value {_fp(worst)} in block {at} of {nb} "
-                            f"({spec.block_trials} trials per block); Bonferroni threshold "
-                            f"{alpha:g}/{nb} = {thr:.3g}"),
-                    reference=ref_binom + "; Bonferroni correction (common practice)"))
-            thr = alpha / (3 * nb)
-            worst, at, stat, what = 1.0, -1, 0.0, "x"
+
+def _block_checks(block_counts: np.ndarray, ranges: tuple, gamma: float, alpha: float,
+                  block_trials: int) -> list[DesignCheck]:
+    """Per block (Bonferroni): test-round fraction and test settings."""
+    checks: list[DesignCheck] = []
+    sym = settings_symbol_counts(block_counts)
+    sym = sym[sym.sum(axis=1) > 0]
+    nb = int(sym.shape[0])
+    if nb > 1:
+        if gamma < 1.0:
+            thr = alpha / nb
+            worst, at, stat = 1.0, -1, 0.0
             for i, s in enumerate(sym):
-                tcxy = s[4:].reshape(2, 2)
-                if tcxy.sum() == 0:
-                    continue
-                for which, k, _m, _r, p in settings_tests(tcxy):
-                    if p < worst:
-                        worst, at, stat, what = p, i, float(k), which
+                nt, nn = int(s[4:].sum()), int(s.sum())
+                p = binomial_two_sided(nt, nn, gamma)
+                if p < worst:
+                    worst, at, stat = p, i, float(nt)
             checks.append(DesignCheck(
-                name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
+                name="test_fraction_per_block", statistic=stat, p_value=worst, threshold=thr,
                 passed=worst >= thr, applicable=True,
-                meaning="the test-round settings follow the declared distribution in every block",
-                detail=(f"smallest p-value {_fp(worst)} ({descr[what]}, block {at} of {nb}); "
-                        f"Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
-                reference=ref_binom + "; Bonferroni correction (common practice)"))
-
-    # -- serial independence
-    if pair_counts is not None:
-        g, dof, p, note = serial_g_test(pair_counts)
+                meaning="test rounds occur with probability gamma in every block",
+                detail=(f"smallest p-value {_fp(worst)} in block {at} of {nb} "
+                        f"({block_trials} trials per block); Bonferroni threshold "
+                        f"{alpha:g}/{nb} = {thr:.3g}"),
+                reference=_REF_BINOM + "; Bonferroni correction (common practice)"))
+        thr = alpha / (3 * nb)
+        worst, at, stat, what = 1.0, -1, 0.0, "x"
+        for i, s in enumerate(sym):
+            tcxy = s[4:].reshape(2, 2)
+            if tcxy.sum() == 0:
+                continue
+            for which, k, _m, _r, p in _settings_tests(tcxy, ranges):
+                if p < worst:
+                    worst, at, stat, what = p, i, float(k), which
         checks.append(DesignCheck(
-            name="serial_independence", statistic=g, p_value=p if dof else None,
-            threshold=alpha if dof else None, passed=(p >= alpha) if dof else True,
-            applicable=dof > 0,
-            meaning=("consecutive rounds' settings and round types are independent (a "
-                     "predictable settings sequence fails even with exact marginals)"),
-            detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p {_fp(p)}, "
-                    f"significance {alpha:g}" if dof else f"not applicable: {note}"),
-            reference=("likelihood-ratio test of independence against a first-order Markov "
-                       "chain (Anderson & Goodman 1957); cf. NIST SP 800-22 rev. 1a section "
-                       "2.11 serial test")))
+            name="test_settings_per_block", statistic=stat, p_value=worst, threshold=thr,
+            passed=worst >= thr, applicable=True,
+            meaning="the test-round settings follow the declared distribution in every block",
+            detail=(f"smallest p-value {_fp(worst)} ({_SETTING_EVENTS[what]}, block {at} of "
+                    f"{nb}); Bonferroni threshold {alpha:g}/(3 x {nb}) = {thr:.3g}"),
+            reference=_REF_BINOM + "; Bonferroni correction (common practice)"))
+    return checks
 
-    # -- physical range
-    if eps is None:
-        eps = _estimate_eps(protocol)
-    if n > 0 and n_test > 0:
-        est, lower = weighted_chsh(c, gamma, px0, py0, eps)
-        smax, model = _device_max(protocol)
-        ok = est <= NO_SIGNALLING_MAX and lower <= smax
-        checks.append(DesignCheck(
-            name="chsh_physical_range", statistic=float(est), p_value=None, threshold=smax,
-            passed=bool(ok), applicable=True,
-            meaning="the CHSH estimate is physically possible for the method's device model",
-            detail=(f"weighted CHSH estimate {est:.6g}, lower bound {lower:.6g} at eps = "
-                    f"{eps:g}; limits: estimate <= 4, lower bound <= {smax:.6g} ({model})"
-                    + ("" if ok else "; the data cannot come from the declared design: most "
-                       "likely a wrong gamma or settings distribution in the protocol, or a "
-                       "log that is not from this experiment")),
-            reference="CHSH 1969 (no-signalling maximum 4); Cirel'son 1980 (2 sqrt 2)"))
-    return DesignReport(significance=alpha, block_trials=spec.block_trials, trials=n,
-                        trials_in_log=in_log, declared_trials=declared, checks=tuple(checks))
+
+def _serial_check(pair_counts: np.ndarray, alpha: float) -> DesignCheck:
+    """Serial independence of consecutive settings symbols."""
+    g, dof, p, note = serial_g_test(pair_counts)
+    return DesignCheck(
+        name="serial_independence", statistic=g, p_value=p if dof else None,
+        threshold=alpha if dof else None, passed=(p >= alpha) if dof else True,
+        applicable=dof > 0,
+        meaning=("consecutive rounds' settings and round types are independent (a "
+                 "predictable settings sequence fails even with exact marginals)"),
+        detail=(f"G = {g:.6g} on consecutive settings pairs, {note}; p {_fp(p)}, "
+                f"significance {alpha:g}" if dof else f"not applicable: {note}"),
+        reference=("likelihood-ratio test of independence against a first-order Markov "
+                   "chain (Anderson & Goodman 1957); cf. NIST SP 800-22 rev. 1a section "
+                   "2.11 serial test"))
+
+
+def _range_check(c: np.ndarray, gamma: float, px0: float, py0: float, eps: float,
+                 protocol: Any) -> DesignCheck:
+    """Physical range of the weighted CHSH estimate."""
+    est, lower = weighted_chsh(c, gamma, px0, py0, eps)
+    smax, model = _device_max(protocol)
+    ok = est <= NO_SIGNALLING_MAX and lower <= smax
+    return DesignCheck(
+        name="chsh_physical_range", statistic=float(est), p_value=None, threshold=smax,
+        passed=bool(ok), applicable=True,
+        meaning="the CHSH estimate is physically possible for the method's device model",
+        detail=(f"weighted CHSH estimate {est:.6g}, lower bound {lower:.6g} at eps = "
+                f"{eps:g}; limits: estimate <= 4, lower bound <= {smax:.6g} ({model})"
+                + ("" if ok else "; the data cannot come from the declared design: most "
+                   "likely a wrong gamma or settings distribution in the protocol, or a "
+                   "log that is not from this experiment")),
+        reference="CHSH 1969 (no-signalling maximum 4); Cirel'son 1980 (2 sqrt 2)")
 
 
 def _estimate_eps(protocol: Any) -> float:

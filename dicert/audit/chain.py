@@ -386,76 +386,40 @@ def _trust_of(public_key: Any, trusted: Any) -> Any:
 OnRecord = Callable[[str, int, Mapping[str, Any]], None]
 
 
-def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted: Any = None,
-          head: str | None = None, on_record: OnRecord | None = None,
-          strict: bool = False) -> tuple[ChainReport, ChainState]:
-    """One pass over the pulses in index order; keeps only a few digests per pulse."""
-    from dicert.audit.trust import record_time
+class _Walk:
+    """The running state of one pass over a chain (internal to :func:`_walk`): what has been
+    seen so far (digests, claimed indices, seeds, logs, keys, protocol) and the findings."""
 
-    directory = _require_dir(chain_dir)
-    trust = _trust_of(public_key, trusted)
-    pulses, unexpected, temporary = _scan_dir(directory)
-    findings: list[ChainFinding] = []
+    def __init__(self, trust: Any) -> None:
+        self.trust = trust
+        self.findings: list[ChainFinding] = []
+        self.digest_at: dict[str, int] = {}  # digest -> file index
+        self.body_index_at: dict[Any, str] = {}  # claimed pulse_index -> file name
+        self.prev_claimed: dict[str, str] = {}  # previous digest -> file name
+        self.seeds: dict[str, int] = {}
+        self.seeds_named: dict[str, int] = {}  # every seed digest, used or not (appenders refuse any)
+        self.logs: dict[str, int] = {}
+        self.fingerprints: list[str] = []
+        self.unsigned: list[tuple[int, str]] = []
+        self.signed = 0
+        self.prev_fp: str | None = None
+        self.proto_sha: str | None = None
 
-    def add(kind: str, severity: str, file: str | None, field: str | None, message: str,
+    def add(self, kind: str, severity: str, file: str | None, field: str | None, message: str,
             idx: tuple[int, ...] = ()) -> None:
-        findings.append(ChainFinding(kind=kind, severity=severity, file=file, field=field,
-                                     message=message, pulses=idx))
+        self.findings.append(ChainFinding(kind=kind, severity=severity, file=file, field=field,
+                                          message=message, pulses=idx))
 
-    for path in unexpected:
-        add("unexpected-file", "error", path.name, None, _unexpected_message(path))
-    for path in temporary:
-        add("temporary-file", "info", path.name, None,
-            f"{path.name}: temporary file of an interrupted write, ignored (the next "
-            "certify --chain removes it)")
+    def signer(self, record: Mapping[str, Any], result: Any, name: str, index: int) -> None:
+        """Who signed it."""
+        from dicert.audit.trust import record_time
 
-    digest_at: dict[str, int] = {}  # digest -> file index
-    body_index_at: dict[Any, str] = {}  # claimed pulse_index -> file name
-    prev_claimed: dict[str, str] = {}  # previous digest -> file name
-    seeds: dict[str, int] = {}
-    seeds_named: dict[str, int] = {}  # every seed digest, used or not (appenders refuse any)
-    logs: dict[str, int] = {}
-    fingerprints: list[str] = []
-    unsigned: list[tuple[int, str]] = []
-    signed = 0
-    prev_index: int | None = None
-    prev_digest: str | None = None  # digest of the pulse with file index prev_index
-    prev_fp: str | None = None
-    proto_sha: str | None = None
-    head_index = head_digest = None
-    head_pulse = None
-    expected_next = FIRST_PULSE_INDEX
-
-    for index, path in pulses:
-        name = path.name
-        if index > expected_next:
-            missing = list(range(expected_next, index))
-            add("gap", "error", None, "pulse_index", f"missing pulse(s) {_ranges(missing)}",
-                tuple(missing))
-        expected_next = index + 1
-        follows = prev_index == index - 1
-        this_prev_digest, prev_index = (prev_digest if follows else None), index
-        prev_digest = None
-        try:
-            record = read_record(path)
-        except VerificationError as exc:
-            add("unreadable", "error", name, exc.field, _plain(exc), (index,))
-            continue
-        try:
-            result = check_record(record)
-        except VerificationError as exc:
-            add("record", "error", name, exc.field, _plain(exc), (index,))
-            continue
-        digest = result.record_sha256
-        prev_digest = digest
-        if head is not None and digest == head:
-            head_pulse = index
-        # Who signed it.
+        add, trust, prev_fp = self.add, self.trust, self.prev_fp
         if result.signed:
-            signed += 1
+            self.signed += 1
             fp = result.key_fingerprint
-            if fp not in fingerprints:
-                fingerprints.append(fp)
+            if fp not in self.fingerprints:
+                self.fingerprints.append(fp)
             if trust is not None:
                 try:
                     tk = trust.authorise(fp, record.get("pulse_index"), record_time(record))
@@ -472,13 +436,18 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
                 add("key-change", "error", name, "signature.key_fingerprint",
                     f"signed by key {fp[:16]}..., the previous pulse by {prev_fp[:16]}...; "
                     "give a trusted-keys file that allows the rotation", (index,))
-            prev_fp = fp
+            self.prev_fp = fp
         else:
-            unsigned.append((index, name))
+            self.unsigned.append((index, name))
             if trust is not None:
                 add("unsigned", "error", name, "signature", "pulse record is unsigned",
                     (index,))
-        # Structure.
+
+    def structure(self, record: Mapping[str, Any], name: str, index: int,
+                  this_prev_digest: str | None) -> None:
+        """The pulse's claimed index and its link to the previous pulse."""
+        add, body_index_at, prev_claimed, digest_at = \
+            self.add, self.body_index_at, self.prev_claimed, self.digest_at
         body_index = record.get("pulse_index")
         if body_index != index or type(body_index) is not int:
             add("index-mismatch", "error", name, "pulse_index",
@@ -515,12 +484,14 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
                 add("link", "error", name, "previous_record_sha256",
                     f"does not match the digest of pulse {index - 1} "
                     f"({this_prev_digest[:16]}...)", (index,))
-        digest_at[digest] = index
-        # Reuse of inputs.
+
+    def reuse(self, record: Mapping[str, Any], name: str, index: int) -> None:
+        """Reuse of inputs: the extractor seed and the log."""
+        add, seeds, logs = self.add, self.seeds, self.logs
         ext = record.get("extractor")
         named = ext.get("seed_sha256") if isinstance(ext, Mapping) else None
         if isinstance(named, str):
-            seeds_named.setdefault(named, index)
+            self.seeds_named.setdefault(named, index)
         seed = used_seed(record)
         if seed is not None:
             if seed in seeds:
@@ -538,7 +509,10 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
                     "every pulse needs fresh trials", (logs[log], index))
             else:
                 logs[log] = index
-        # Protocol continuity.
+
+    def protocol(self, record: Mapping[str, Any], name: str, index: int) -> None:
+        """Protocol continuity: a change needs a signed declaration."""
+        add, proto_sha = self.add, self.proto_sha
         psha = protocol_digest(record)
         try:
             change = protocol_change_of(record)
@@ -560,7 +534,61 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
                     "declares a protocol change but the protocol "
                     + ("is the same" if proto_sha is not None else "has no predecessor"),
                     (index,))
-            proto_sha = psha
+            self.proto_sha = psha
+
+
+def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted: Any = None,
+          head: str | None = None, on_record: OnRecord | None = None,
+          strict: bool = False) -> tuple[ChainReport, ChainState]:
+    """One pass over the pulses in index order; keeps only a few digests per pulse."""
+    directory = _require_dir(chain_dir)
+    trust = _trust_of(public_key, trusted)
+    pulses, unexpected, temporary = _scan_dir(directory)
+    w = _Walk(trust)
+    add = w.add
+
+    for path in unexpected:
+        add("unexpected-file", "error", path.name, None, _unexpected_message(path))
+    for path in temporary:
+        add("temporary-file", "info", path.name, None,
+            f"{path.name}: temporary file of an interrupted write, ignored (the next "
+            "certify --chain removes it)")
+
+    prev_index: int | None = None
+    prev_digest: str | None = None  # digest of the pulse with file index prev_index
+    head_index = head_digest = None
+    head_pulse = None
+    expected_next = FIRST_PULSE_INDEX
+
+    for index, path in pulses:
+        name = path.name
+        if index > expected_next:
+            missing = list(range(expected_next, index))
+            add("gap", "error", None, "pulse_index", f"missing pulse(s) {_ranges(missing)}",
+                tuple(missing))
+        expected_next = index + 1
+        follows = prev_index == index - 1
+        this_prev_digest, prev_index = (prev_digest if follows else None), index
+        prev_digest = None
+        try:
+            record = read_record(path)
+        except VerificationError as exc:
+            add("unreadable", "error", name, exc.field, _plain(exc), (index,))
+            continue
+        try:
+            result = check_record(record)
+        except VerificationError as exc:
+            add("record", "error", name, exc.field, _plain(exc), (index,))
+            continue
+        digest = result.record_sha256
+        prev_digest = digest
+        if head is not None and digest == head:
+            head_pulse = index
+        w.signer(record, result, name, index)
+        w.structure(record, name, index, this_prev_digest)
+        w.digest_at[digest] = index
+        w.reuse(record, name, index)
+        w.protocol(record, name, index)
         if on_record is not None:
             try:
                 on_record(name, index, record)
@@ -568,7 +596,15 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
                 add("consistency", "error", name, exc.field, _plain(exc), (index,))
         head_index, head_digest = index, digest
 
-    if trust is None and unsigned and signed:
+    return _walk_result(w, directory, pulses, head, head_pulse, head_index, head_digest, strict)
+
+
+def _walk_result(w: _Walk, directory: Path, pulses: list, head: str | None,
+                 head_pulse: int | None, head_index: int | None, head_digest: str | None,
+                 strict: bool) -> tuple[ChainReport, ChainState]:
+    """The last findings of a pass (unsigned among signed, the published head) and its report."""
+    add, findings, trust, unsigned = w.add, w.findings, w.trust, w.unsigned
+    if trust is None and unsigned and w.signed:
         for index, name in unsigned:
             add("unsigned", "error", name, "signature",
                 "pulse record is unsigned while other pulses are signed", (index,))
@@ -594,8 +630,8 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
         first_index=present[0] if present else None,
         last_index=present[-1] if present else None,
         head_sha256=head_digest,
-        signed_pulses=signed,
-        key_fingerprints=tuple(fingerprints),
+        signed_pulses=w.signed,
+        key_fingerprints=tuple(w.fingerprints),
         signer_trusted=trust is not None,
         strict=strict,
         findings=tuple(findings),
@@ -605,8 +641,8 @@ def _walk(chain_dir: str | os.PathLike[str], public_key: Any = None, *, trusted:
         result=result,
     )
     state = ChainState(head_index=head_index, head_sha256=head_digest,
-                       protocol_sha256=proto_sha, seeds_used=seeds_named,
-                       logs_used=logs, report=report)
+                       protocol_sha256=w.proto_sha, seeds_used=w.seeds_named,
+                       logs_used=w.logs, report=report)
     return report, state
 
 

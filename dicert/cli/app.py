@@ -28,6 +28,7 @@ COMMAND_MODULES = (
     "publish",
     "inspect",
     "plan",
+    "protocols",
     "entropy",
     "extract",
     "health",

@@ -133,25 +133,17 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         raise
 
 
-def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
+def _certify_pulses(out: Path, sc: dict, rng_seed: int, protocol: Any, keys: Any, chain: Path,
+                    say) -> list[dict]:
+    """Simulate, certify (into the chain) and verify each pulse of the scenario."""
     import numpy as np
 
     from dicert._io import atomic_write_bytes
-    from dicert.audit.signing import write_keypair
     from dicert.certification import certify
-    from dicert.errors import DicertError, VerificationError
+    from dicert.errors import VerificationError
     from dicert.logs import write_log
-    from dicert.protocol import load_protocol, shipped_protocol_path
-    from dicert.verification import verify, verify_chain
+    from dicert.verification import verify
 
-    protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
-    rng_seed = int(sc["rng_seed"])
-    say(f"[invented scenario] {sc['title']}")
-    say(f"writing into {out}")
-
-    keys = write_keypair(out / "operator-key.pem")
-    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint[:16]}...)")
-    chain = out / "chain"
     pulses = []
     for i, p in enumerate(sc["pulse"], start=1):
         pdir = out / f"pulse-{i}"
@@ -182,27 +174,16 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
             "record_file": str(res.record_file), "record_sha256": res.record_sha256,
             "verified": rep.scope, "result": rep.result,
         })
-    chain_report = verify_chain(chain, public_key=keys.public_key_file)
-    head = chain_report.head_sha256
-    verify_chain(chain, public_key=keys.public_key_file, head=head)
-    say(f"chain of {len(pulses)} pulses: {chain_report.result} against the operator's key "
-        f"(head {head[:16]}...): {chain}")
-    # Without a trusted key a record's integrity can be checked, not who made it.
-    anon = verify(pulses[0]["record_file"])
-    say(f"the same record checked without the operator's key: {anon.result} (authenticity "
-        "not established)")
+    return pulses
 
-    # The beacon's public face: a static site built from the chain, then re-checked.
-    from dicert.beacon import build_site, check_site
 
-    site = build_site(chain, out / "site", public_key=keys.public_key_file,
-                      title=_site_title(sc["title"]))
-    site_check = check_site(site.site_dir, keys.public_key_file)
-    say(f"beacon site built and checked ({site_check.pulses} pulses, head "
-        f"{site_check.head_sha256[:16]}...): {site.index_file}")
+def _tamper_checks(out: Path, first: dict, chain: Path, head: str, keys: Any, say) -> list[dict]:
+    """Tamper with copies of the first pulse's files and of the chain; each must make
+    verification fail (the demo stops if one does not)."""
+    from dicert._io import atomic_write_bytes
+    from dicert.errors import DicertError, VerificationError
+    from dicert.verification import verify, verify_chain
 
-    # Tampering: each must make verification fail.
-    first = pulses[0]
     tdir = out / "tampered"
     tdir.mkdir()
     checks = []
@@ -258,6 +239,44 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
         expect_failure("chain (newest pulse removed, head published)", lambda: verify_chain(
             _truncated(chain, tdir / "chain-truncated"),
             public_key=keys.public_key_file, head=head))
+    return checks
+
+
+def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
+    from dicert.audit.signing import write_keypair
+    from dicert.protocol import load_protocol, shipped_protocol_path
+    from dicert.verification import verify, verify_chain
+
+    protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
+    rng_seed = int(sc["rng_seed"])
+    say(f"[invented scenario] {sc['title']}")
+    say(f"writing into {out}")
+
+    keys = write_keypair(out / "operator-key.pem")
+    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint[:16]}...)")
+    chain = out / "chain"
+    pulses = _certify_pulses(out, sc, rng_seed, protocol, keys, chain, say)
+    chain_report = verify_chain(chain, public_key=keys.public_key_file)
+    head = chain_report.head_sha256
+    verify_chain(chain, public_key=keys.public_key_file, head=head)
+    say(f"chain of {len(pulses)} pulses: {chain_report.result} against the operator's key "
+        f"(head {head[:16]}...): {chain}")
+    # Without a trusted key a record's integrity can be checked, not who made it.
+    anon = verify(pulses[0]["record_file"])
+    say(f"the same record checked without the operator's key: {anon.result} (authenticity "
+        "not established)")
+
+    # The beacon's public face: a static site built from the chain, then re-checked.
+    from dicert.beacon import build_site, check_site
+
+    site = build_site(chain, out / "site", public_key=keys.public_key_file,
+                      title=_site_title(sc["title"]))
+    site_check = check_site(site.site_dir, keys.public_key_file)
+    say(f"beacon site built and checked ({site_check.pulses} pulses, head "
+        f"{site_check.head_sha256[:16]}...): {site.index_file}")
+
+    # Tampering: each must make verification fail.
+    checks = _tamper_checks(out, pulses[0], chain, head, keys, say)
 
     from dicert.cli._common import to_jsonable
 

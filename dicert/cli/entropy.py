@@ -14,6 +14,7 @@ def register(app: typer.Typer) -> None:
     app.command("entropy")(entropy_cmd)
 
 
+# long: a typer command: its option declarations, then validation, the bound, the table
 @handle_errors
 def entropy_cmd(
     chsh: Annotated[Optional[float], typer.Option("--chsh", help="CHSH value S (values above 2*sqrt(2) are clamped; S <= 2 gives 0).")] = None,

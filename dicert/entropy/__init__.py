@@ -133,6 +133,7 @@ def _clamped(chsh: float | None) -> float | None:
     return None if chsh is None else float(clamp_chsh(chsh))
 
 
+# long: mostly its signature and numpydoc docstring (about 60 lines)
 def bound_entropy(
     *,
     chsh: float | None = None,

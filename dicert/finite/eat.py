@@ -83,6 +83,15 @@ LN2 = math.log(2.0)
 _LOG2_33 = math.log2(2 * D_OUT**2 + 1)
 _LOG2_9 = math.log2(1 + 2 * D_OUT)
 _W_LO = 0.75
+#: How the df-conservative variant reads the second-order constants (recorded in details).
+CONSERVATIVE_CONSTANTS = (
+    "conservative: log2(2 d^2 + 1) in V and the full K_alpha term of the second-order "
+    "bound (Dupuis & Fawzi, IEEE Trans. Inf. Theory 65:7596, 2019), taking the larger reading "
+    "wherever a constant admits two")
+#: Text recorded before (still accepted by verify: a citation, not a number).
+LEGACY_CONSERVATIVE_CONSTANTS = ("conservative: log2(2 d^2 + 1) in V and the full K_alpha "
+                                 "term (constants flagged uncertain in the methods note)")
+
 #: Smallest and largest alpha - 1 searched (methods note, section 4).
 ALPHA_M1_MIN, ALPHA_M1_MAX = 1e-12, 0.49
 
@@ -487,6 +496,42 @@ def _eat_min_entropy_cached(params: EatParams, n: int, gamma: float):
     return float(bits), th, rate
 
 
+def _single_round_details(params: Any) -> dict[str, Any]:
+    """The record's description of the single-round bound behind the rate."""
+    if getattr(params, "single_round", "analytic-vn-A") == "radau-vn-AB":
+        from dicert.entropy.vnquad import REFERENCE as _RADAU_REF
+        from dicert.entropy.vnquad import load_vn_table
+
+        tab = load_vn_table()
+        return {
+            "method": "radau-vn-AB",
+            "bound": "H(A_i B_i | X_i Y_i T_i E) >= tangent_offset_b + tangent_slope_a * w "
+                     "for every quantum strategy (certified affine line; tangent_point is the "
+                     "win probability at which its duals were optimised)",
+            "reference": _RADAU_REF,
+            "quadrature_nodes": tab.nodes, "relaxation": tab.level,
+            "table_sha256": tab.sha256,
+        }
+    return {"method": "analytic-vn-A", "reference": REFERENCES_DF[2]}
+
+
+def _eat_assumptions(gamma: float, gen: Any) -> tuple[str, ...]:
+    """The assumptions an entropy-accumulation certificate rests on."""
+    return (
+        "devices are quantum and the adversary may hold quantum side information",
+        "no communication between the two stations during a round; the devices' rounds are "
+        "sequential (entropy accumulation channel structure)",
+        "settings drawn independently of the devices and of any adversary, with the known "
+        f"probabilities (gamma = {gamma:g}, uniform test settings, generation settings {gen})",
+        "the round type (test or generation) and the settings of each round stay unknown to "
+        "the devices until that round",
+        "number of rounds n, gamma and the acceptance threshold fixed before the run; only "
+        "the tangent point and alpha are optimised after the data",
+        "trusted classical post-processing and trial recording",
+    )
+
+
+# long: about 30 of its lines are the numpydoc docstring
 def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
                 harvest: Any = None) -> FiniteSizeResult:
     """Certify a run by entropy accumulation (quantum side information).
@@ -548,45 +593,17 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
         "raw_bits": 2 * n, "min_entropy_if_accepted_bits": bits,
     }
     if params.variant == "df-conservative":
-        details["constants"] = ("conservative: log2(2 d^2 + 1) in V and the full K_alpha "
-                                "term (constants flagged uncertain in the methods note)")
+        details["constants"] = CONSERVATIVE_CONSTANTS
         details["g_eps_s"] = g_smooth(params.eps_s)
         details["variance_f"] = float(df_variance(rate.a, gamma))
-    if getattr(params, "single_round", "analytic-vn-A") == "radau-vn-AB":
-        from dicert.entropy.vnquad import REFERENCE as _RADAU_REF
-        from dicert.entropy.vnquad import load_vn_table
-
-        tab = load_vn_table()
-        details["single_round"] = {
-            "method": "radau-vn-AB",
-            "bound": "H(A_i B_i | X_i Y_i T_i E) >= tangent_offset_b + tangent_slope_a * w "
-                     "for every quantum strategy (certified affine line; tangent_point is the "
-                     "win probability at which its duals were optimised)",
-            "reference": _RADAU_REF,
-            "quadrature_nodes": tab.nodes, "relaxation": tab.level,
-            "table_sha256": tab.sha256,
-        }
-    else:
-        details["single_round"] = {"method": "analytic-vn-A",
-                                   "reference": REFERENCES_DF[2]}
+    details["single_round"] = _single_round_details(params)
     if not math.isfinite(float(rate.w_tangent)):
         details["tangent_point"] = None
     if not accepted:
         details["abort_reason"] = why
     elif bits <= 0:
         details["note"] = "accepted, but the finite-size bound is not positive: 0 bits certified"
-    assumptions = (
-        "devices are quantum and the adversary may hold quantum side information",
-        "no communication between the two stations during a round; the devices' rounds are "
-        "sequential (entropy accumulation channel structure)",
-        "settings drawn independently of the devices and of any adversary, with the known "
-        f"probabilities (gamma = {gamma:g}, uniform test settings, generation settings {gen})",
-        "the round type (test or generation) and the settings of each round stay unknown to "
-        "the devices until that round",
-        "number of rounds n, gamma and the acceptance threshold fixed before the run; only "
-        "the tangent point and alpha are optimised after the data",
-        "trusted classical post-processing and trial recording",
-    )
+    assumptions = _eat_assumptions(gamma, gen)
     refs = REFERENCES_DF if params.variant == "df-conservative" else REFERENCES_DFR
     if getattr(params, "single_round", "analytic-vn-A") == "radau-vn-AB":
         from dicert.entropy.vnquad import REFERENCE as _RADAU_REF

@@ -357,7 +357,7 @@ def _open_log_file(path: Path):
         raise LogFormatError(path, "", f"cannot open ({exc.strerror})") from None
 
 
-# Long on purpose (about 130 lines): one read loop whose state (header tap, PEF feed, block
+# long: on purpose (about 130 lines): one read loop whose state (header tap, PEF feed, block
 # tally, byte offsets) is shared by the read, follow and prefix modes; splitting it would pass
 # that state around in pieces. Tested through certify and verify in every mode (test_pef.py).
 def _scan_binary_pef(path: Path, protocol: Protocol, sink: _BitSink, *,

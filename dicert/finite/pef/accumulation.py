@@ -313,6 +313,8 @@ class PefAccumulator:
         self.trials_seen += block.size
 
     # ------------------------------------------------------------------ result
+    # long: the docstring is 15 lines; the body assembles the finite-size result and its
+    # details in one place, so the record's fields can be read together
     def result(self, *, complete: bool = True):
         """The :class:`~dicert.finite.result.FiniteSizeResult` of the run so far.
 
@@ -490,7 +492,7 @@ def certify_pef_counts(counts: Any, params: PefParams, design: Any = None, *,
 # =========================================================================== following a log
 
 
-# Long on purpose (about 100 lines): one polling generator; header, growth, trailer and idle
+# long: on purpose (about 100 lines): one polling generator; header, growth, trailer and idle
 # timeout share the file position and the partial trial carried between polls.
 def follow_log(path: Any, poll_s: float = 0.5, *, idle_timeout_s: float | None = None,
                chunk_trials: int = 1 << 20, hasher: Any = None,

@@ -108,50 +108,16 @@ class PefParams:
         """beta * sigma_target + log2(1/eps_pe), the success threshold on log2 T."""
         return self.beta * self.sigma_target_bits + math.log2(1.0 / self.eps_pe)
 
-    # Long on purpose (about 110 lines): one check per protocol key, in a flat list that reads
-    # like the key table of protocols/README.md; each check is one error message.
     @classmethod
     def from_mapping(cls, d: Mapping[str, Any], where: str = "") -> PefParams:
         """Validate a mapping (the parsed [analysis] table minus ``method``)."""
-        loc = f"{where}: " if where else ""
-
-        def fail(key: str, problem: str) -> ProtocolError:
-            return ProtocolError(f"{loc}key '{key}': {problem}")
+        k = _Keys(d, where)
+        fail, num, integer, choice = k.fail, k.num, k.integer, k.choice
 
         allowed = tuple(f.name for f in dataclasses.fields(cls))
         for key in d:
             if key not in allowed:
                 raise fail(str(key), f"unknown key (allowed: {', '.join(allowed)})")
-
-        def num(key: str, lo: float, hi: float, *, lo_open=True, hi_open=True, default=None):
-            if key not in d or d[key] is None:
-                if default is None:
-                    raise fail(key, "is required")
-                return default
-            v = d[key]
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-                raise fail(key, f"expected a finite number, got {v!r}")
-            v = float(v)
-            if (v <= lo if lo_open else v < lo) or (v >= hi if hi_open else v > hi):
-                raise fail(key, f"must lie in {'(' if lo_open else '['}{lo:g}, {hi:g}"
-                                f"{')' if hi_open else ']'}, got {v!r}")
-            return v
-
-        def integer(key: str, lo: int, default=None) -> int:
-            if key not in d or d[key] is None:
-                if default is None:
-                    raise fail(key, "is required")
-                return default
-            v = d[key]
-            if isinstance(v, bool) or not isinstance(v, int) or v < lo:
-                raise fail(key, f"expected an integer >= {lo}, got {v!r}")
-            return int(v)
-
-        def choice(key: str, options: tuple[str, ...], default: str) -> str:
-            v = d.get(key, default)
-            if not isinstance(v, str) or v not in options:
-                raise fail(key, f"expected one of {', '.join(map(repr, options))}, got {v!r}")
-            return v
 
         vals: dict[str, Any] = {
             "beta": num("beta", 0.0, 16.0, hi_open=False),
@@ -176,53 +142,11 @@ class PefParams:
             if vals[key] >= min(vals[p], 1.0 - vals[p]):
                 raise fail(key, f"must be below min({p}, 1 - {p}) = "
                                 f"{min(vals[p], 1 - vals[p]):g}")
-        cal = vals["calibration"]
-        # The rule that fixes the anticipated box of the (first) PEF.
-        anticipated = cal
-        if cal == "adaptive":
-            vals["initial"] = choice("initial", INITIAL_RULES, "trivial")
-            vals["block_trials"] = integer("block_trials", 1, DEFAULT_BLOCK_TRIALS)
-            vals["fit_window_blocks"] = integer("fit_window_blocks", 0, 0)
-            if vals["lam"] <= 0.0:
-                # lam > 0 keeps every factor of a producible trial positive in every block, so
-                # the trials with factor 0 are the same (those outside the settings model) for
-                # all blocks.
-                raise fail("lam", "calibration = \"adaptive\" needs lam > 0 (no zero factors "
-                                  "in any block's PEF)")
-            anticipated = vals["initial"]
-        else:
-            for key in ("initial", "block_trials", "fit_window_blocks"):
-                if d.get(key) not in (None, 0):
-                    raise fail(key, "only used with calibration = \"adaptive\"")
-        if cal == "prefix":
-            if vals["calibration_trials"] < 1:
-                raise fail("calibration_trials", "calibration = \"prefix\" needs a positive "
-                                                 "number of calibration trials")
-        else:
-            if d.get("calibration_trials"):
-                raise fail("calibration_trials", "only used with calibration = \"prefix\"")
-        if anticipated == "isotropic":
-            vals["calibration_chsh"] = num("calibration_chsh", 2.0, 2.0 * SQRT2, hi_open=False)
-        elif "calibration_chsh" in d and d["calibration_chsh"] is not None:
-            raise fail("calibration_chsh", "only used with calibration = \"isotropic\" (or "
-                                           "\"adaptive\" with initial = \"isotropic\")")
-        if anticipated == "table":
-            tab = d.get("calibration_table")
-            if not isinstance(tab, (list, tuple)) or len(tab) != 16:
-                raise fail("calibration_table", "expected 16 numbers p(ab|xy), index 8x+4y+2a+b")
-            for i, v in enumerate(tab):
-                if isinstance(v, bool) or not isinstance(v, (int, float)) or not (v >= 0):
-                    raise fail(f"calibration_table[{i}]", f"expected a number >= 0, got {v!r}")
-            arr = np.array(tab, dtype=float).reshape(4, 4)
-            if np.any(np.abs(arr.sum(axis=1) - 1.0) > 1e-6):
-                raise fail("calibration_table", "each group of 4 (one setting pair) must sum to 1")
-            vals["calibration_table"] = tuple(float(v) for v in tab)
-        elif "calibration_table" in d and d["calibration_table"] is not None:
-            raise fail("calibration_table", "only used with calibration = \"table\" (or "
-                                            "\"adaptive\" with initial = \"table\")")
+        anticipated = _calibration_keys(k, vals)
+        _anticipated_box_keys(k, vals, anticipated)
         obj = object.__new__(cls)
-        for k, v in vals.items():
-            object.__setattr__(obj, k, v)
+        for key, v in vals.items():
+            object.__setattr__(obj, key, v)
         return obj
 
     def settings_model(self, design: Any = None) -> SettingsModel:
@@ -248,6 +172,105 @@ class PefParams:
 
 
 #: Keys of :class:`PefParams` used only by calibration = "adaptive".
+
+class _Keys:
+    """Readers of the keys of one [analysis] mapping; every problem names the key."""
+
+    def __init__(self, d: Mapping[str, Any], where: str) -> None:
+        self.d = d
+        self.loc = f"{where}: " if where else ""
+
+    def fail(self, key: str, problem: str) -> ProtocolError:
+        return ProtocolError(f"{self.loc}key '{key}': {problem}")
+
+    def num(self, key: str, lo: float, hi: float, *, lo_open=True, hi_open=True, default=None):
+        d, fail = self.d, self.fail
+        if key not in d or d[key] is None:
+            if default is None:
+                raise fail(key, "is required")
+            return default
+        v = d[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise fail(key, f"expected a finite number, got {v!r}")
+        v = float(v)
+        if (v <= lo if lo_open else v < lo) or (v >= hi if hi_open else v > hi):
+            raise fail(key, f"must lie in {'(' if lo_open else '['}{lo:g}, {hi:g}"
+                            f"{')' if hi_open else ']'}, got {v!r}")
+        return v
+
+    def integer(self, key: str, lo: int, default=None) -> int:
+        d, fail = self.d, self.fail
+        if key not in d or d[key] is None:
+            if default is None:
+                raise fail(key, "is required")
+            return default
+        v = d[key]
+        if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+            raise fail(key, f"expected an integer >= {lo}, got {v!r}")
+        return int(v)
+
+    def choice(self, key: str, options: tuple[str, ...], default: str) -> str:
+        v = self.d.get(key, default)
+        if not isinstance(v, str) or v not in options:
+            raise self.fail(key, f"expected one of {', '.join(map(repr, options))}, got {v!r}")
+        return v
+
+
+def _calibration_keys(k: _Keys, vals: dict[str, Any]) -> str:
+    """The keys of the calibration rule (into ``vals``); returns the rule that fixes the
+    anticipated box of the (first) PEF."""
+    d, fail, integer, choice = k.d, k.fail, k.integer, k.choice
+    cal = vals["calibration"]
+    # The rule that fixes the anticipated box of the (first) PEF.
+    anticipated = cal
+    if cal == "adaptive":
+        vals["initial"] = choice("initial", INITIAL_RULES, "trivial")
+        vals["block_trials"] = integer("block_trials", 1, DEFAULT_BLOCK_TRIALS)
+        vals["fit_window_blocks"] = integer("fit_window_blocks", 0, 0)
+        if vals["lam"] <= 0.0:
+            # lam > 0 keeps every factor of a producible trial positive in every block, so
+            # the trials with factor 0 are the same (those outside the settings model) for
+            # all blocks.
+            raise fail("lam", "calibration = \"adaptive\" needs lam > 0 (no zero factors "
+                              "in any block's PEF)")
+        anticipated = vals["initial"]
+    else:
+        for key in ("initial", "block_trials", "fit_window_blocks"):
+            if d.get(key) not in (None, 0):
+                raise fail(key, "only used with calibration = \"adaptive\"")
+    if cal == "prefix":
+        if vals["calibration_trials"] < 1:
+            raise fail("calibration_trials", "calibration = \"prefix\" needs a positive "
+                                             "number of calibration trials")
+    else:
+        if d.get("calibration_trials"):
+            raise fail("calibration_trials", "only used with calibration = \"prefix\"")
+    return anticipated
+
+
+def _anticipated_box_keys(k: _Keys, vals: dict[str, Any], anticipated: str) -> None:
+    """The keys that fix the anticipated box (``calibration_chsh``, ``calibration_table``)."""
+    d, fail, num = k.d, k.fail, k.num
+    if anticipated == "isotropic":
+        vals["calibration_chsh"] = num("calibration_chsh", 2.0, 2.0 * SQRT2, hi_open=False)
+    elif "calibration_chsh" in d and d["calibration_chsh"] is not None:
+        raise fail("calibration_chsh", "only used with calibration = \"isotropic\" (or "
+                                       "\"adaptive\" with initial = \"isotropic\")")
+    if anticipated == "table":
+        tab = d.get("calibration_table")
+        if not isinstance(tab, (list, tuple)) or len(tab) != 16:
+            raise fail("calibration_table", "expected 16 numbers p(ab|xy), index 8x+4y+2a+b")
+        for i, v in enumerate(tab):
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not (v >= 0):
+                raise fail(f"calibration_table[{i}]", f"expected a number >= 0, got {v!r}")
+        arr = np.array(tab, dtype=float).reshape(4, 4)
+        if np.any(np.abs(arr.sum(axis=1) - 1.0) > 1e-6):
+            raise fail("calibration_table", "each group of 4 (one setting pair) must sum to 1")
+        vals["calibration_table"] = tuple(float(v) for v in tab)
+    elif "calibration_table" in d and d["calibration_table"] is not None:
+        raise fail("calibration_table", "only used with calibration = \"table\" (or "
+                                        "\"adaptive\" with initial = \"table\")")
+
 ADAPTIVE_KEYS = ("block_trials", "initial", "fit_window_blocks")
 
 #: Sub-block length of the scoring pass: counts per sub-block locate the threshold crossing;

@@ -1,0 +1,425 @@
+"""One source (its files in order), the streaming station join and :class:`SpecLog`.
+
+Part of :mod:`dicert.logspec` (import the names from there).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from dicert.errors import LogFormatError, ParameterError
+
+from dicert.logspec._spec import (
+    LogSpec,
+    SPEC_FORMAT,
+    STATION_CHUNK_ROWS,
+    SourceSpec,
+    _format_from_ext,
+    is_spec_file,
+    load_spec,
+)
+from dicert.logspec._readers import _READERS, implicit_spec
+
+
+# --------------------------------------------------------------------------------------------
+# One source (files in order) and the join
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class JoinReport:
+    """What the station join found: trials matched, missing at A or at B (dropped, within the
+    spec's ``join.max_missing``), and keys refused (always zero in a completed join: a
+    duplicated or out-of-order key stops the join with an error)."""
+
+    matched: int
+    missing_at_a: int
+    missing_at_b: int
+    duplicated_keys: int
+    out_of_order_keys: int
+    max_missing: int
+    first_key: int | None
+    last_key: int | None
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+
+class _Source:
+    """The rows of one source (its files in order), with per-file digests and key checks."""
+
+    def __init__(self, src: SourceSpec, limits, hash_files: bool) -> None:
+        self.src, self.limits, self.hash_files = src, limits, hash_files
+        self.infos: list[Any] = []
+        self.rows = 0
+
+    def chunks(self, chunk_trials: int) -> Iterator[tuple[Path, dict[str, np.ndarray]]]:
+        from dicert.logs import FileInfo
+
+        prev = -1
+        keyed = "key" in self.src.columns
+        for path in self.src.files:
+            h = hashlib.sha256() if self.hash_files else None
+            reader = _READERS[self.src.format](self.src, path, self.limits)
+            here = 0
+            try:
+                for cols in reader.chunks(chunk_trials, h):
+                    n = len(next(iter(cols.values())))
+                    if n == 0:
+                        continue
+                    if keyed:
+                        prev = _check_keys(cols["key"], prev, path, self.src)
+                    here += n
+                    yield path, cols
+                size = path.stat().st_size
+            except LogFormatError:
+                raise
+            except OSError as exc:
+                from dicert.logs import _read_error
+
+                raise _read_error(path, exc) from None
+            if here == 0:
+                raise LogFormatError(path, "", "contains no trials")
+            self.rows += here
+            self.infos.append(FileInfo(path=str(path), format=self.src.format, size_bytes=size,
+                                       sha256=h.hexdigest() if h is not None else None,
+                                       trials=here))
+
+
+def _check_keys(keys: np.ndarray, prev: int, path: Path, src: SourceSpec) -> int:
+    """Keys must increase strictly (across chunks and files); return the last key."""
+    if int(keys[0]) > prev and bool((keys[1:] > keys[:-1]).all()):
+        return int(keys[-1])
+    d = np.diff(keys, prepend=prev)
+    i = int(np.argmax(d <= 0))
+    k = int(keys[i])
+    before = int(keys[i - 1]) if i else prev
+    if d[i] == 0:
+        raise LogFormatError(path, f"key {k}", f"duplicated trial key at {src.label} "
+                             f"(column {src.columns['key']!r}); a trial recorded twice "
+                             "cannot be joined (remove the duplicate, or find why it was "
+                             "written twice)")
+    raise LogFormatError(path, f"key {k}", f"out-of-order trial key at {src.label}: {k} "
+                         f"follows {before}; the streaming join needs each station's rows "
+                         "sorted by increasing key (sort the file, e.g. sort -t, -k1,1n)")
+
+
+def _prefetched(it: Iterator[Any], depth: int = 1) -> Iterator[Any]:
+    """Run ``it`` in a worker thread, at most ``depth`` items ahead (the readers and numpy
+    release the GIL, so the two stations are read in parallel with the merge). Exceptions are
+    re-raised in the consumer; closing the consumer stops the worker."""
+    import queue
+    import threading
+
+    q: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    end = object()
+
+    def put(item) -> bool:
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def work() -> None:
+        try:
+            for item in it:
+                if not put((None, item)):
+                    return
+            put((None, end))
+        except BaseException as exc:  # re-raised in the consumer
+            put((exc, None))
+        finally:
+            close = getattr(it, "close", None)
+            if close is not None and stop.is_set():
+                try:
+                    close()
+                except Exception:  # pragma: no cover - best effort on abandon
+                    pass
+
+    th = threading.Thread(target=work, name="dicert-station-reader", daemon=True)
+    th.start()
+    try:
+        while True:
+            exc, item = q.get()
+            if exc is not None:
+                raise exc
+            if item is end:
+                return
+            yield item
+    finally:
+        stop.set()
+        th.join()
+
+
+def _codes_table(cols: Mapping[str, np.ndarray]) -> np.ndarray:
+    c = (cols["x"] << 3) | (cols["y"] << 2) | (cols["a"] << 1) | cols["b"]
+    if "t" in cols:
+        c |= cols["t"] << 4
+    return c.astype(np.uint8, copy=False)
+
+
+class SpecLog:
+    """A log described by a :class:`LogSpec`, opened for streaming (see the module docstring).
+
+    Offers the interface of :class:`dicert.logs.TrialLog`; after a complete
+    :meth:`iter_chunks` pass, :attr:`join_report` and :attr:`audit` describe the join.
+    """
+
+    def __init__(self, spec: LogSpec, *, limits=None) -> None:
+        from dicert.logs import current_read_limits
+
+        self.spec = spec
+        self.limits = limits if limits is not None else current_read_limits()
+        self.files = [p for s in spec.sources for p in s.files]
+        self.formats = [s.format for s in spec.sources for _ in s.files]
+        for p in self.files:
+            if not p.is_file():
+                raise LogFormatError(p, "", "no such file" if not p.exists() else
+                                     "is not a regular file")
+        self.has_test_flag = spec.has_test_flag
+        self.file_infos: list[Any] = []
+        self.join_report: JoinReport | None = None
+
+    @property
+    def audit(self) -> dict | None:
+        """The record's ``log.spec`` section: the spec's name, content, SHA-256 and the join
+        report (None for a plain Parquet/HDF5 log read without a spec)."""
+        if self.spec.layout == "plain":
+            return None
+        return {"format": SPEC_FORMAT, "name": self.spec.path.name, "sha256": self.spec.sha256,
+                "content": self.spec.text, "layout": self.spec.layout,
+                "join": self.join_report.to_dict() if self.join_report is not None else None}
+
+    def iter_chunks(self, chunk_trials: int = 1 << 24, *, hasher=None, hash_files: bool = True,
+                    reuse_buffers: bool = False) -> Iterator[Any]:
+        from dicert.logs import LogChunk
+
+        if chunk_trials <= 0:
+            raise ParameterError("chunk_trials must be positive")
+        if hasher is not None:
+            raise ParameterError("a log read through a log spec is digested per file "
+                                 "(hash_files), not through one hasher")
+        self.file_infos = []
+        self.join_report = None
+        start = 0
+        # Station rows are read in chunks of at most STATION_CHUNK_ROWS (each row costs about
+        # 10 bytes per station in the merge buffers); the joined chunks are no larger.
+        chunk_trials = min(chunk_trials, STATION_CHUNK_ROWS)
+        if self.spec.layout in ("table", "plain"):
+            s = _Source(self.spec.sources[0], self.limits, hash_files)
+            for _path, cols in s.chunks(chunk_trials):
+                codes = _codes_table(cols)
+                yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
+                start += codes.size
+            self.file_infos = list(s.infos)
+            return
+        sa = _Source(self.spec.sources[0], self.limits, hash_files)
+        sb = _Source(self.spec.sources[1], self.limits, hash_files)
+        state = _JoinState(self.spec)
+        for codes in _merge_join(_prefetched(sa.chunks(chunk_trials)),
+                                 _prefetched(sb.chunks(chunk_trials)), state, self.spec):
+            if codes.size:
+                yield LogChunk(codes=codes, start=start, has_test_flag=self.has_test_flag)
+                start += codes.size
+        self.file_infos = list(sa.infos) + list(sb.infos)
+        self.join_report = JoinReport(matched=state.matched, missing_at_a=state.missing_a,
+                                      missing_at_b=state.missing_b, duplicated_keys=0,
+                                      out_of_order_keys=0, max_missing=self.spec.max_missing,
+                                      first_key=state.first_key, last_key=state.last_key)
+        if state.matched == 0:
+            raise LogFormatError(self.spec.path, "", "the stations share no trial key: the "
+                                 "join is empty")
+
+
+class _JoinState:
+    def __init__(self, spec: LogSpec) -> None:
+        self.spec = spec
+        self.matched = self.missing_a = self.missing_b = 0
+        self.first_key: int | None = None
+        self.last_key: int | None = None
+
+    def missing(self, miss_a: np.ndarray, miss_b: np.ndarray, pa: Path, pb: Path) -> None:
+        """Count trials missing at A (``miss_a``: keys seen only at B) and at B; refuse, naming
+        the first key in key order beyond the spec's tolerance."""
+        n = miss_a.size + miss_b.size
+        if n == 0:
+            return
+        allowed = self.spec.max_missing - (self.missing_a + self.missing_b)
+        if n > allowed:
+            keys = np.concatenate([miss_a, miss_b])
+            at_a = np.concatenate([np.ones(miss_a.size, bool), np.zeros(miss_b.size, bool)])
+            order = np.argsort(keys, kind="stable")
+            j = int(order[max(allowed, 0)])
+            k, at = int(keys[j]), ("A" if at_a[j] else "B")
+            here, other = (pa, pb) if at == "A" else (pb, pa)
+            raise LogFormatError(here, f"key {k}", f"trial missing at station {at} (present "
+                                 f"at station {'B' if at == 'A' else 'A'}, {other.name}); the "
+                                 f"spec tolerates {self.spec.max_missing} missing trials "
+                                 "(join.max_missing); silently dropping trials can bias the "
+                                 "test")
+        self.missing_a += miss_a.size
+        self.missing_b += miss_b.size
+
+
+_EMPTY = np.zeros(0, np.int64)
+
+
+def _match_sorted(ka: np.ndarray, kb: np.ndarray, max_steps: int = 16) -> tuple[np.ndarray,
+                                                                              np.ndarray]:
+    """Positions of the keys common to two strictly increasing arrays (``ka[ixa] ==
+    kb[ixb]``). A few missing keys are stepped over with vectorised comparisons of the
+    aligned remainders; beyond ``max_steps`` the rest is matched by binary search."""
+    pa: list[np.ndarray] = []
+    pb: list[np.ndarray] = []
+    i = j = 0
+    for _ in range(max_steps):
+        m = min(ka.size - i, kb.size - j)
+        if m == 0:
+            break
+        diff = ka[i:i + m] != kb[j:j + m]
+        d = int(np.argmax(diff)) if diff.any() else m
+        pa.append(np.arange(i, i + d))
+        pb.append(np.arange(j, j + d))
+        i, j = i + d, j + d
+        if d == m:
+            break  # what is left of the longer array lies beyond the other's last key
+        if ka[i] < kb[j]:
+            i += 1  # ka[i] is in no later position of kb (all larger): missing at B
+        else:
+            j += 1
+    else:
+        ra, rb = ka[i:], kb[j:]
+        pos = np.searchsorted(rb, ra)
+        posc = np.minimum(pos, max(rb.size - 1, 0))
+        hit = (pos < rb.size) & (rb[posc] == ra) if rb.size else np.zeros(ra.size, bool)
+        h = np.flatnonzero(hit)
+        pa.append(h + i)
+        pb.append(pos[h] + j)
+    if not pa:
+        return _EMPTY, _EMPTY
+    return np.concatenate(pa), np.concatenate(pb)
+
+
+def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> Iterator[np.ndarray]:
+    """Merge join of two key-sorted chunk streams; each round consumes one buffer entirely,
+    so each holds at most one chunk (memory is flat)."""
+    ta = "test" in spec.sources[0].columns
+    tb = "test" in spec.sources[1].columns
+    ba = bb = None  # (path, cols) with unconsumed rows
+    pa, pb = spec.sources[0].files[0], spec.sources[1].files[0]
+    done_a = done_b = False
+    while True:
+        if ba is None and not done_a:
+            nxt = next(ia, None)
+            if nxt is None:
+                done_a = True
+            else:
+                pa, ba = nxt
+        if bb is None and not done_b:
+            nxt = next(ib, None)
+            if nxt is None:
+                done_b = True
+            else:
+                pb, bb = nxt
+        if ba is None and bb is None:
+            return
+        if ba is None:
+            st.missing(bb["key"], _EMPTY, pa, pb)
+            bb = None
+            continue
+        if bb is None:
+            st.missing(_EMPTY, ba["key"], pa, pb)
+            ba = None
+            continue
+        ka, kb = ba["key"], bb["key"]
+        cut = min(int(ka[-1]), int(kb[-1]))
+        na = int(np.searchsorted(ka, cut, "right"))
+        nb = int(np.searchsorted(kb, cut, "right"))
+        ka_, kb_ = ka[:na], kb[:nb]
+        if na == nb and np.array_equal(ka_, kb_):
+            ixa = ixb = slice(0, na)
+            nm = na
+        else:
+            ixa, ixb = _match_sorted(ka_, kb_)
+            nm = int(ixa.size)
+            miss_b = np.ones(na, bool)
+            miss_b[ixa] = False
+            miss_a = np.ones(nb, bool)
+            miss_a[ixb] = False
+            st.missing(kb_[miss_a], ka_[miss_b], pa, pb)
+        if nm:
+            codes = ((ba["setting"][:na][ixa] << 3) | (bb["setting"][:nb][ixb] << 2)
+                     | (ba["outcome"][:na][ixa] << 1) | bb["outcome"][:nb][ixb])
+            if ta and tb:
+                t1, t2 = ba["test"][:na][ixa], bb["test"][:nb][ixb]
+                if not np.array_equal(t1, t2):
+                    i = int(np.argmax(t1 != t2))
+                    k = int(ka_[ixa][i])
+                    raise LogFormatError(pb, f"key {k}", "the stations disagree on whether "
+                                         f"this trial is a test round ({pa.name}: {int(t1[i])}, "
+                                         f"{pb.name}: {int(t2[i])})")
+                codes = codes | (t1 << 4)
+            elif ta:
+                codes = codes | (ba["test"][:na][ixa] << 4)
+            elif tb:
+                codes = codes | (bb["test"][:nb][ixb] << 4)
+            keys_m = ka_[ixa]
+            if st.first_key is None:
+                st.first_key = int(keys_m[0])
+            st.last_key = int(keys_m[-1])
+            st.matched += nm
+            yield codes.astype(np.uint8, copy=False)
+        ba = {k: v[na:] for k, v in ba.items()} if na < ka.size else None
+        bb = {k: v[nb:] for k, v in bb.items()} if nb < kb.size else None
+
+
+def open_spec_log(source: Any, *, limits=None, format: str | None = None) -> SpecLog:
+    """Open the log a spec file describes (or a plain Parquet/HDF5 log, by its extension or
+    an explicit ``format``) for streaming."""
+    p = Path(source)
+    fmt = format.lower() if format is not None else None
+    if fmt in ("parquet", "hdf5") or (fmt is None and _format_from_ext(p) in ("parquet", "hdf5")
+                                      and not is_spec_file(p)):
+        return SpecLog(implicit_spec(p, fmt), limits=limits)
+    return SpecLog(load_spec(p), limits=limits)
+
+
+def spec_entry_problem(entry: Any) -> str | None:
+    """Why a record's ``log.spec`` section is inconsistent (None if it is consistent): the
+    recorded SHA-256 must be that of the recorded content."""
+    if not isinstance(entry, Mapping):
+        return "expected an object"
+    content, sha = entry.get("content"), entry.get("sha256")
+    if not isinstance(content, str) or not isinstance(sha, str):
+        return "expected content and sha256 strings"
+    if hashlib.sha256(content.encode("utf-8")).hexdigest() != sha:
+        return "the recorded SHA-256 is not that of the recorded spec content"
+    if entry.get("format") != SPEC_FORMAT:
+        return f"unknown spec format {entry.get('format')!r}"
+    return None
+
+
+def choose_source(log: str | None, log_spec: Any, what: str = "LOG") -> str:
+    """The log a command reads: the positional log, or the ``--log-spec`` file (one of them)."""
+    if log_spec is None:
+        if log is None:
+            raise ParameterError(f"give the {what} or --log-spec FILE")
+        return log
+    if log is not None:
+        raise ParameterError(f"give the log either as {what} or with --log-spec, not both")
+    if not Path(log_spec).is_file():
+        raise LogFormatError(log_spec, "", "no such file")
+    if not is_spec_file(log_spec):
+        raise LogFormatError(log_spec, "key 'format'", "not a log spec (expected format = "
+                             f"\"{SPEC_FORMAT}\" near the top of the file)")
+    return str(log_spec)
