@@ -76,6 +76,12 @@ from dicert._design_stats import (  # noqa: F401
     settings_symbol_counts,
 )
 
+#: Reference of the trial-count check (recorded): the number of rounds is fixed in advance.
+TRIAL_COUNT_REFERENCE = ("pre-declared run length: n fixed before the run (Dupuis, Fawzi & "
+                         "Renner, Commun. Math. Phys. 379:867, 2020; Arnon-Friedman et al., "
+                         "Nat. Commun. 9:459, 2018)")
+#: Text recorded before (still accepted by verify: a citation, not a number).
+LEGACY_TRIAL_COUNT_REFERENCE = "pre-declared run length (methods notes: n fixed before the run)"
 
 #: Default significance of every design-conformance test (a protocol key overrides it).
 DEFAULT_SIGNIFICANCE = 1e-9
@@ -416,7 +422,7 @@ def _count_checks(c: np.ndarray, n: int, in_log: int, declared: int | None, deci
                     + ("" if ok else " (too few: a run shorter than declared is not the run the "
                        "protocol describes)")
                     + (f"; the first {declared} are analysed" if in_log > declared else "")),
-            reference="pre-declared run length (methods notes: n fixed before the run)"))
+            reference=TRIAL_COUNT_REFERENCE))
 
     # -- test-round fraction
     n_test = int(c[1].sum())

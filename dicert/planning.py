@@ -137,6 +137,19 @@ class PlanMethod:
     curve_trials: tuple[float, ...]
     curve_certified_bits: tuple[float, ...]
     pef: PefPlanDetails | None = None
+    # Extractor input at these trials (at most; the raw bits the extractor may read) and the
+    # Toeplitz seed it needs, n_raw + m - 1 bits (0 when m = 0); a beacon provisions this.
+    raw_bits: int = 0
+    extractor_seed_bits: int = 0
+    extractor_seed_bytes: int = 0
+    # The output at best_gamma (same trials), and the gamma trade-off sweep behind it.
+    best_gamma_certified_bits: int | None = None
+    best_gamma_abort_probability: float | None = None
+    best_gamma_extractor_seed_bits: int | None = None
+    gamma_sweep: tuple[float, ...] = ()
+    gamma_sweep_certified_bits: tuple[int, ...] = ()
+    gamma_sweep_net_bits: tuple[float, ...] = ()
+    gamma_sweep_abort_probability: tuple[float, ...] = ()
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("name", self.name), ("certified_bits", self.certified_bits),
@@ -258,11 +271,12 @@ def _models(protocol: Any, win: float, eps_comp: float,
     return models
 
 
-# Long on purpose (about 120 lines, 30 of them docstring): the defaults taken from the
+# long: about 120 lines, 30 of them docstring: the defaults taken from the
 # protocol, the models (dicert.plan_models), then one row per model; no numerics of its own.
 def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | None = None,
          visibility: float | None = None, trials: int | None = None,
-         gamma: float | None = None, n_points: int = 30, gamma_points: int = 30) -> PlanResult:
+         gamma: float | None = None, n_points: int = 30, gamma_points: int = 30,
+         eps_comp: float | None = None) -> PlanResult:
     """Plan an experiment under ``protocol`` for honest devices of the given quality.
 
     Parameters
@@ -279,6 +293,9 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         ``n_max``, else 1e7). For PEF rows, the cap on analysis trials.
     gamma : float, optional
         Test-round probability (default: the protocol's).
+    eps_comp : float, optional
+        Completeness target of the derived thresholds (default: the protocol's, else 1e-6).
+        The protocol's own error parameters: :func:`with_error_parameters`.
     n_points, gamma_points : int
         Sizes of the trial-number sweep (plotted curve) and of the gamma sweep (at most
         :data:`PEF_GAMMA_POINTS` for PEF rows, which need new PEFs per gamma).
@@ -330,7 +347,10 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         # Bounded so that every count stays exact in double precision and in the record.
         raise ParameterError(f"--trials must be an integer in [1, 2**53 - 1], got {trials!r}")
     n = int(trials)
-    eps_comp = float(getattr(analysis, "eps_comp", None) or DEFAULT_EPS_COMP)
+    if eps_comp is not None and not (math.isfinite(eps_comp) and 0.0 < eps_comp < 1.0):
+        raise ParameterError(f"--eps-comp must lie in (0, 1), got {eps_comp!r}")
+    eps_comp = float(eps_comp if eps_comp is not None
+                     else getattr(analysis, "eps_comp", None) or DEFAULT_EPS_COMP)
     models = _models(protocol, win, eps_comp, box)
     ns = np.geomspace(*N_SWEEP, n_points)
     out = []
@@ -344,9 +364,11 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
             ev = mdl.evaluate(n, g)
             gammas = np.geomspace(*GAMMA_SWEEP, gamma_points)
         curve = tuple(float(mdl.evaluate(x, g).m) for x in ns)
-        nets = [mdl.evaluate(n, float(gg)).net for gg in gammas]
+        sweep = [mdl.evaluate(n, float(gg)) for gg in gammas]
+        nets = [e.net for e in sweep]
         j = int(np.argmax(nets))
         best_g = float(gammas[j]) if nets[j] > 0 else None
+        raw = _raw_bits(mdl, n)
         out.append(PlanMethod(
             name=mdl.name, side_information=mdl.side, thresholds=mdl.thresholds,
             parameters=ev.params, min_entropy_bits=ev.k, certified_bits=ev.m,
@@ -356,7 +378,15 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
             min_trials_net_positive=_min_trials(mdl, g, "net"),
             best_gamma=best_g, best_gamma_net_bits=float(nets[j]) if best_g else None,
             curve_trials=tuple(float(x) for x in ns), curve_certified_bits=curve,
-            pef=details))
+            pef=details, raw_bits=raw, extractor_seed_bits=_toeplitz_seed(raw, ev.m),
+            extractor_seed_bytes=(_toeplitz_seed(raw, ev.m) + 7) // 8,
+            best_gamma_certified_bits=int(sweep[j].m) if best_g else None,
+            best_gamma_abort_probability=float(sweep[j].abort) if best_g else None,
+            best_gamma_extractor_seed_bits=_toeplitz_seed(raw, sweep[j].m) if best_g else None,
+            gamma_sweep=tuple(float(x) for x in gammas),
+            gamma_sweep_certified_bits=tuple(int(e.m) for e in sweep),
+            gamma_sweep_net_bits=tuple(float(e.net) for e in sweep),
+            gamma_sweep_abort_probability=tuple(float(e.abort) for e in sweep)))
     notes = (
         ("certified_bits is the extractable output on acceptance, "
          "floor(k - 2 log2(1/eps_ext)); multiply by 1 - abort_probability for the mean"),
@@ -380,18 +410,89 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         best_gamma={m.name: m.best_gamma for m in out}, notes=notes)
 
 
+def _raw_bits(mdl: Any, n: int) -> int:
+    """Most raw bits the extractor reads at n trials: the harvested parties' outcomes of every
+    (analysed) trial; an upper bound when only generation rounds are harvested or a PEF run
+    stops early, so the seed below is never under-provisioned."""
+    if getattr(mdl, "mart", None) is not None:
+        return len(getattr(mdl.harvest, "parties", "AB")) * int(n)
+    return 2 * int(n)
+
+
+def _toeplitz_seed(raw: int, m: int) -> int:
+    """Seed bits of a Toeplitz extractor from raw to m bits: raw + m - 1 (0 when m = 0)."""
+    from dicert.extract import seed_bits_required
+
+    return int(seed_bits_required(raw, m)) if m > 0 and raw > 0 else 0
+
+
+#: Options of `dicert plan` that override a protocol's error parameters: option -> (table, key,
+#: methods it applies to).
+ERROR_OPTIONS = {
+    "eps_ext": ("extractor", "eps_ext", ("martingale", "eat", "pef")),
+    "eps_est": ("analysis", "eps_est", ("martingale",)),
+    "eps_s": ("analysis", "eps_s", ("eat",)),
+    "eps_ea": ("analysis", "eps_ea", ("eat",)),
+    "eps_pe": ("analysis", "eps_pe", ("pef",)),
+}
+
+
+def with_error_parameters(protocol: Any, **values: float | None) -> Any:
+    """The protocol with some error parameters replaced (keys of :data:`ERROR_OPTIONS`), validated
+    exactly like a protocol file (the message names the key). For planning only: a certificate
+    uses the protocol file fixed before the run."""
+    import tomllib
+
+    from dicert.protocol import protocol_from_dict
+
+    given = {k: v for k, v in values.items() if v is not None}
+    if not given:
+        return protocol
+    for key in given:
+        if key not in ERROR_OPTIONS:
+            raise ParameterError(f"unknown error parameter {key!r}")
+        _, _, methods = ERROR_OPTIONS[key]
+        if protocol.method not in methods:
+            fit = [f"--{k.replace('_', '-')}" for k, (_, _, ms) in ERROR_OPTIONS.items()
+                   if protocol.method in ms]
+            raise ParameterError(f"--{key.replace('_', '-')} does not apply to a "
+                                 f"{protocol.method} protocol; it takes {', '.join(fit)}")
+    if not protocol.text:
+        raise ParameterError("error parameters can be overridden only for a protocol read "
+                             "from a file")
+    d = tomllib.loads(protocol.text)
+    for key, v in given.items():
+        table, name, _ = ERROR_OPTIONS[key]
+        d.setdefault(table, {})[name] = float(v)
+    return protocol_from_dict(d, f"{protocol.name} (with --{', --'.join(k.replace('_', '-') for k in given)})")
+
+
+def plan_plot_range(result: PlanResult) -> tuple[float, float]:
+    """x range of the plan plot: from half the smallest n with any output to five times the
+    largest of the planned n and the smallest n with a positive net expansion (the region where
+    the methods start to pay), inside the computed sweep."""
+    starts = [v for m in result.methods for v in (m.min_trials_positive,) if v]
+    nets = [v for m in result.methods for v in (m.min_trials_net_positive,) if v]
+    xs = [x for m in result.methods for x in m.curve_trials]
+    lo_all, hi_all = (min(xs), max(xs)) if xs else (N_SWEEP[0], N_SWEEP[1])
+    lo = min([*starts, result.trials]) / 2.0
+    hi = max([*nets, result.trials, *starts]) * 5.0
+    lo, hi = max(lo_all, lo), min(hi_all, hi)
+    if not hi > lo * 10:
+        lo, hi = max(lo_all, result.trials / 100.0), min(hi_all, result.trials * 100.0)
+    return lo, hi
+
+
 def plot_plan(result: PlanResult, path: Any) -> None:
-    """Certified output bits vs number of trials for each method (matplotlib, Agg), atomically."""
-    import io
+    """Two panels, written atomically: certified output bits against the number of trials for
+    each method (x range around where the methods start to pay, :func:`plan_plot_range`), and
+    the gamma trade-off (net bits against gamma at the planned n, best gamma starred)."""
+    from dicert.plotting import _figure, save_figure
 
-    import matplotlib
-
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
-
-    from dicert._io import atomic_write_bytes
-
-    fig, ax = plt.subplots(figsize=(7, 4.5))
+    plt = _figure()
+    fig, (ax, bx) = plt.subplots(1, 2, figsize=(11, 4.6))
+    x_lo, x_hi = plan_plot_range(result)
+    y_vals: list[float] = []
     for m in result.methods:
         xs = np.asarray(m.curve_trials)
         ys = np.asarray(m.curve_certified_bits, dtype=float)
@@ -403,25 +504,50 @@ def plot_plan(result: PlanResult, path: Any) -> None:
         if ok.any():
             (line,) = ax.loglog(xs[ok], ys[ok], marker="o", ms=3, label=label)
             color = line.get_color()
+            inside = ok & (xs >= x_lo) & (xs <= x_hi)
+            y_vals += list(ys[inside])
         else:
-            color = None
+            (line,) = ax.loglog([], [], marker="o", ms=3, label=label + ": no output")
+            color = line.get_color()
         d = m.pef
         if d is not None and m.certified_bits > 0 and math.isfinite(d.expected_trials):
             ax.loglog([d.expected_trials], [m.certified_bits], marker="*", ms=11, ls="none",
                       color=color, label=f"{m.name}: {d.target_source} target, expected trials")
+        if m.gamma_sweep:
+            gs = np.asarray(m.gamma_sweep)
+            net = np.asarray(m.gamma_sweep_net_bits, dtype=float)
+            cert = np.asarray(m.gamma_sweep_certified_bits)
+            show = cert > 0
+            if show.any():
+                bx.semilogx(gs[show], net[show], marker="o", ms=3, color=color)
+            if m.best_gamma is not None and m.best_gamma_net_bits is not None:
+                bx.semilogx([m.best_gamma], [m.best_gamma_net_bits], marker="*", ms=11,
+                            ls="none", color=color)
     ax.axvline(result.trials, color="grey", ls=":", lw=1, label=f"n = {result.trials:.3g}")
+    ax.set_xlim(x_lo, x_hi)
+    if y_vals:
+        ax.set_ylim(max(1.0, min(y_vals) / 2.0), max(y_vals) * 2.0)
     ax.set_xlabel("number of trials n")
     ax.set_ylabel("certified output bits on acceptance")
-    ax.set_title(f"{result.protocol}: gamma = {result.gamma:g}, "
-                 f"win probability = {result.win_probability:.4f}")
+    ax.set_title(f"gamma = {result.gamma:g}", fontsize=10)
     ax.grid(True, which="both", alpha=0.3)
-    ax.legend(fontsize=8)
-    fmt = str(path).rsplit(".", 1)[-1].lower() if "." in str(path) else "png"
-    buf = io.BytesIO()
-    fig.savefig(buf, format=fmt, dpi=120, bbox_inches="tight",
-                metadata={"Software": None} if fmt == "png" else None)
+    bx.axhline(0.0, color="grey", lw=1)
+    bx.axvline(result.gamma, color="grey", ls=":", lw=1)
+    pos = [v for m in result.methods for v, c in zip(m.gamma_sweep_net_bits,
+                                                       m.gamma_sweep_certified_bits) if c > 0]
+    if pos:
+        top = max(max(pos), 1.0)
+        bx.set_ylim(max(min(pos), -top) * 1.1 if min(pos) < 0 else -0.05 * top, top * 1.15)
+    bx.set_xlabel("test-round probability gamma")
+    bx.set_ylabel("net bits (output - protocol seed)")
+    bx.set_title(f"gamma trade-off at n = {result.trials:.3g} (* best)", fontsize=10)
+    bx.grid(True, which="both", alpha=0.3)
+    fig.suptitle(f"{result.protocol}: win probability {result.win_probability:.4f} "
+                 f"(CHSH {result.chsh:.4f})")
+    ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(1.1, -0.14), ncol=2,
+              frameon=False)
+    save_figure(fig, path)
     plt.close(fig)
-    atomic_write_bytes(path, buf.getvalue())
 
 
 __all__ = [
@@ -433,6 +559,8 @@ __all__ = [
     "honest_quality",
     "martingale_abort_bound",
     "plan",
+    "plan_plot_range",
     "plot_plan",
     "seed_bits_consumed",
+    "with_error_parameters",
 ]

@@ -518,14 +518,41 @@ def load_protocol(path: str | os.PathLike[str] | Mapping[str, Any] | Protocol) -
         return path
     if isinstance(path, Mapping):
         return protocol_from_dict(path)
-    p = Path(path)
+    p = _shipped_fallback(Path(path))
     data = read_user_file(p, "protocol file (.toml)", ProtocolError, max_bytes=1 << 20)
     return protocol_from_bytes(data, str(p), path=str(p))
 
 
+#: Package copy of the top-level ``protocols/`` folder (every file; a test keeps them identical).
+SHIPPED_DIR = Path(__file__).parent / "data" / "protocols"
+
+
+def shipped_protocol_names() -> tuple[str, ...]:
+    """Names of the protocols shipped inside the package, sorted (``dicert protocols``)."""
+    return tuple(sorted(p.stem for p in SHIPPED_DIR.glob("*.toml")))
+
+
 def shipped_protocol_path(name: str) -> Path:
-    """Path of a protocol shipped inside the package data (``dicert/data/demo``)."""
-    return Path(__file__).parent / "data" / "demo" / f"{name}.toml"
+    """Path of a protocol shipped inside the package data (``dicert/data/protocols``).
+
+    ``name`` is the file stem (``"chsh-spotcheck"``) or the file name (``"chsh-spotcheck.toml"``).
+    The path need not exist; :func:`shipped_protocol_names` lists the ones that do.
+    """
+    stem = name[:-5] if name.endswith(".toml") else name
+    return SHIPPED_DIR / f"{stem}.toml"
+
+
+def _shipped_fallback(p: Path) -> Path:
+    """``p`` itself if it exists or is not a bare name; else the shipped protocol of that name.
+
+    Lets ``--protocol chsh-spotcheck`` work from a plain install: a path that exists always
+    wins, so a user's edited copy in the working directory is never shadowed.
+    """
+    text = str(p)
+    if p.exists() or "/" in text or os.sep in text or (os.altsep and os.altsep in text):
+        return p
+    cand = shipped_protocol_path(text)
+    return cand if cand.is_file() else p
 
 
 __all__ = [
@@ -537,5 +564,6 @@ __all__ = [
     "load_protocol",
     "protocol_from_bytes",
     "protocol_from_dict",
+    "shipped_protocol_names",
     "shipped_protocol_path",
 ]

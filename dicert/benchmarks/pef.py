@@ -36,6 +36,7 @@ def _sample(box: np.ndarray, n: int, rng) -> np.ndarray:
     return out
 
 
+# long: one timed section per measurement in a fixed order, sharing the warmed-up models.
 def run(quick: bool = False) -> list[BenchResult]:
     from dicert.finite import pef as P
 

@@ -29,6 +29,7 @@ COMMAND_MODULES = (
     "report",
     "inspect",
     "plan",
+    "protocols",
     "entropy",
     "extract",
     "health",

@@ -40,17 +40,32 @@ def bench_cmd(
         if not as_json:
             err.print(f"running benchmark suite {name} ...")
         results.extend(importlib.import_module(mod).run(quick=quick))
+    from dicert.benchmarks import QUICK_NOTE, checked_at
+
     if as_json:
         emit_json([{**{k: getattr(r, k) for k in ("suite", "name", "value", "unit", "target", "higher_is_better", "note")},
-                    "meets_target": r.meets} for r in results])
+                    "meets_target": checked_at(r, quick),
+                    "target_checked": r.target is not None and checked_at(r, quick) is not None}
+                   for r in results])
         return
     from rich.table import Table
 
-    tab = Table(title="dicert benchmarks", title_justify="left")
-    for col in ("suite", "measure", "value", "target", "ok", "note"):
-        tab.add_column(col)
+    # Four columns that fit 80: the measure carries its note on a second, dim line, and each
+    # suite starts with a heading row (no cell wraps into a column of fragments).
+    tab = Table(title="dicert benchmarks", title_justify="left",
+                caption=QUICK_NOTE if quick else None, caption_justify="left")
+    tab.add_column("measure", ratio=1, overflow="fold")
+    tab.add_column("value", no_wrap=True, justify="right")
+    tab.add_column("target", no_wrap=True)
+    tab.add_column("ok", no_wrap=True)
+    current = None
     for r in results:
+        if r.suite != current:
+            current = r.suite
+            tab.add_row(f"[bold]{r.suite}[/bold]", "", "", "")
         tgt = "" if r.target is None else ("\u2265 " if r.higher_is_better else "\u2264 ") + f"{r.target:g} {r.unit}"
-        ok = {True: "yes", False: "NO", None: ""}[r.meets]
-        tab.add_row(r.suite, r.name, f"{r.value:.4g} {r.unit}", tgt, ok, r.note)
+        verdict = checked_at(r, quick)
+        ok = {True: "yes", False: "[red]NO[/red]", None: "" if r.target is None else "-"}[verdict]
+        name = r.name + (f"\n[dim]{r.note}[/dim]" if r.note else "")
+        tab.add_row(name, f"{r.value:.4g} {r.unit}".strip(), tgt, ok)
     stdout_console().print(tab)

@@ -58,6 +58,7 @@ def register(app: typer.Typer) -> None:
     app.command("certify", help=HELP)(certify_cmd)
 
 
+# long: one typer option per line (about 25) and the table rendering; no numerics here.
 @handle_errors
 def certify_cmd(
     protocol: Annotated[Path, typer.Option("--protocol", help="Protocol file (TOML), fixed before the run.")],

@@ -14,6 +14,8 @@ def register(app: typer.Typer) -> None:
     app.command("inspect")(inspect_cmd)
 
 
+# long: one typer option per line and the table rendering; the numbers come from
+# dicert.inspection.inspect_summary.
 @handle_errors
 def inspect_cmd(
     log: Annotated[Optional[str], typer.Argument(help="Trial log: a file, a directory of files, a glob pattern, or a log spec (TOML).")] = None,
@@ -34,6 +36,10 @@ def inspect_cmd(
     from dicert.errors import ParameterError
     from dicert.logspec import choose_source
 
+    if plot is not None:
+        from dicert.plotting import check_plot_path
+
+        check_plot_path(plot)
     log = choose_source(log, log_spec)
 
     proto = None
@@ -72,7 +78,10 @@ def inspect_cmd(
     if plot is not None:
         from dicert.plotting import plot_chsh_blocks
 
-        plot_chsh_blocks(blocks, plot, eps=block_error)
+        threshold, threshold_label = _protocol_threshold(proto)
+        plot_chsh_blocks(blocks, plot, eps=block_error, overall=est.chsh,
+                         overall_lower=lower_shown, threshold=threshold,
+                         threshold_label=threshold_label)
     if as_json:
         emit_json(
             {
@@ -173,3 +182,22 @@ def _clip(value: float) -> tuple[float, str]:
     if value > 2.0 * math.sqrt(2.0):
         return value, "above the quantum maximum 2 sqrt 2: impossible for quantum devices; check gamma and the design"
     return value, ""
+
+
+def _protocol_threshold(proto) -> tuple[float | None, str]:
+    """The protocol's acceptance threshold in CHSH units, for the plot (None if it has none).
+
+    Martingale: chsh_threshold. Entropy accumulation: the win rate omega_exp - delta on test
+    rounds, i.e. S = 8 (omega_exp - delta) - 4 (CHSH game w = 1/2 + S/8, common practice).
+    """
+    if proto is None:
+        return None, ""
+    a = proto.analysis
+    s_th = getattr(a, "chsh_threshold", None)
+    if s_th is not None:
+        return float(s_th), f"protocol threshold S = {s_th:.4f}"
+    w, d = getattr(a, "expected_win_probability", None), getattr(a, "tolerance", None)
+    if w is not None and d is not None:
+        s = 8.0 * (w - d) - 4.0
+        return s, f"protocol acceptance S = 8 (w_exp - delta) - 4 = {s:.4f}"
+    return None, ""

@@ -83,6 +83,15 @@ LN2 = math.log(2.0)
 _LOG2_33 = math.log2(2 * D_OUT**2 + 1)
 _LOG2_9 = math.log2(1 + 2 * D_OUT)
 _W_LO = 0.75
+#: How the df-conservative variant reads the second-order constants (recorded in details).
+CONSERVATIVE_CONSTANTS = (
+    "conservative: log2(2 d^2 + 1) in V and the full K_alpha term of the second-order "
+    "bound (Dupuis & Fawzi, IEEE Trans. Inf. Theory 65:7596, 2019), taking the larger reading "
+    "wherever a constant admits two")
+#: Text recorded before (still accepted by verify: a citation, not a number).
+LEGACY_CONSERVATIVE_CONSTANTS = ("conservative: log2(2 d^2 + 1) in V and the full K_alpha "
+                                 "term (constants flagged uncertain in the methods note)")
+
 #: Smallest and largest alpha - 1 searched (methods note, section 4).
 ALPHA_M1_MIN, ALPHA_M1_MAX = 1e-12, 0.49
 
@@ -584,8 +593,7 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
         "raw_bits": 2 * n, "min_entropy_if_accepted_bits": bits,
     }
     if params.variant == "df-conservative":
-        details["constants"] = ("conservative: log2(2 d^2 + 1) in V and the full K_alpha "
-                                "term (constants flagged uncertain in the methods note)")
+        details["constants"] = CONSERVATIVE_CONSTANTS
         details["g_eps_s"] = g_smooth(params.eps_s)
         details["variance_f"] = float(df_variance(rate.a, gamma))
     details["single_round"] = _single_round_details(params)
