@@ -175,7 +175,7 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
         protocol = _protocol_from_record(record)
         if protocol is None:
             return None, "the record's protocol text could not be read back"
-        from dicert.planning import plan
+        from dicert.planning import plan, plan_plot_range
 
         est_chsh = _num(_get(record, "estimate.chsh"))
         chsh = None
@@ -191,9 +191,10 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
     row = rows[0]
     out_bits = _get(record, "extractor.output_bits")
     run = (float(trials), float(out_bits)) if isinstance(out_bits, int) else None
-    # the region around this run (the planner's sweep runs to 1e14 trials)
+    # the region around this run, as `dicert plan --plot` shows it (the sweep runs to 1e14)
+    lo, hi = plan_plot_range(result)
     curve = [(x, y) for x, y in zip(row.curve_trials, row.curve_certified_bits)
-             if x <= 100.0 * trials]
+             if lo <= x <= hi]
     label = f"certified output bits against trials, planner row {row.name}"
     caption = (f"Planner (dicert.planning.plan) for this protocol, method {row.name}, honest "
                f"devices at CHSH {result.chsh:.6g} (this run's estimate, kept inside "
