@@ -223,6 +223,8 @@ def _nice_ticks(lo: float, hi: float, target: int = 6) -> list[float]:
     return ticks
 
 
+# long: one SVG document assembled element by element (axes, ticks, reference lines, points,
+# intervals); splitting it would only pass the scale around.
 def svg_block_plot(series: BlockSeries, *, threshold: float | None = None,
                    width: int = 720, height: int = 260) -> str:
     """An inline SVG plot of a per-block series (no scripts, no external references).
