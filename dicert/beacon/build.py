@@ -39,6 +39,7 @@ from typing import Any
 
 from dicert import __version__
 from dicert.errors import ParameterError, VerificationError
+from dicert.stages.record import _now  # the one UTC timestamp format of records
 
 __all__ = ["SITE_FORMAT", "SiteBuild", "SiteCheck", "build_site", "check_site"]
 
@@ -81,15 +82,6 @@ class SiteCheck:
     signatures_checked: bool
     key_fingerprint: str | None
     notes: tuple[str, ...]
-
-
-def _now(clock: Clock | None) -> str:
-    t = clock() if clock is not None else _dt.datetime.now(_dt.UTC)
-    if isinstance(t, str):
-        return t
-    if t.tzinfo is None:
-        t = t.replace(tzinfo=_dt.UTC)
-    return t.astimezone(_dt.UTC).isoformat().replace("+00:00", "Z")
 
 
 def _asset_bytes(name: str) -> bytes:
