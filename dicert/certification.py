@@ -28,8 +28,8 @@ An abort is a normal outcome: status ``"aborted"``, 0 output bits, a record is s
 
 Raw-bit order and packing
 -------------------------
-Harvested trials are taken in log order (trial index 0, 1, ...). ``rounds = "all"`` harvests
-every trial; ``rounds = "generation"`` only trials with t = 0. Per harvested trial the bits
+Harvested trials are taken in log order (trial index 0, 1, ...). ``select = "all"`` harvests
+every trial; ``select = "generation"`` only trials with t = 0. Per harvested trial the bits
 are ``a`` (parties "A") or ``a`` then ``b`` (parties "AB"). The bit string is packed
 big-endian, 8 bits per byte (``numpy.packbits``, first bit = most significant bit of byte 0),
 the last byte zero-padded. ``raw_bits`` counts the bits without padding; ``raw_sha256`` is the
@@ -500,7 +500,7 @@ def _certify_locked(*, log: Any, run: RunInputs, state: Any, protocol_change: st
     t1 = time.perf_counter()
     spill = outputs.new_spill_dir(out)  # private (0700): raw bits never sit in --out
     try:
-        scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.rounds,
+        scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.select,
                               spill_dir=spill, progress=progress, protocol=proto, follow=spec)
         timings["scan"] = time.perf_counter() - t1
         outputs.fault_point("after-scan")

@@ -172,8 +172,8 @@ class DesignSpec:
 
 
 def declared_trials(protocol: Any) -> int | None:
-    """The pre-declared number of trials of a protocol (``[design] trials``, or the entropy
-    accumulation key ``[analysis] rounds``), or None."""
+    """The pre-declared number of trials of a protocol (``[design] trials``; for a library
+    caller's entropy-accumulation parameters also ``EatParams.rounds``), or None."""
     spec = getattr(protocol, "conformance", None)
     n = getattr(spec, "trials", None)
     if n is None:

@@ -210,7 +210,7 @@ class _MethodModel:
                 p = MartingaleParams(chsh_threshold=min(s_th, TSIRELSON), eps_est=p.eps_est,
                                      single_round=p.single_round)
             parties = getattr(self.harvest, "parties", "AB")
-            rounds = getattr(self.harvest, "rounds", "all")
+            rounds = self.harvest.select
             if rounds == "generation" and gamma >= 1.0:
                 rounds = "all"
             k, _ = martingale_min_entropy(int(n), p, gamma=gamma, harvest_parties=parties,

@@ -224,7 +224,7 @@ def _models(protocol: Any, win: float, eps_comp: float,
         models.append(_MethodModel("martingale-azuma", "classical", "derived", win, eps_ext,
                                    eps_comp, mart=MartingaleParams(chsh_threshold=2.5,
                                                                    eps_est=err),
-                                   harvest=types.SimpleNamespace(parties="AB", rounds="all")))
+                                   harvest=types.SimpleNamespace(parties="AB", select="all")))
     for variant in ("df-conservative", "dfr"):
         if method == "eat" and isinstance(analysis, EatParams) and analysis.variant == variant:
             p = dataclasses.replace(analysis, rounds=None)
@@ -289,7 +289,7 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         (default: the protocol's expectation; for a PEF protocol its anticipated box, else the
         photonic model of :func:`dicert.simulate.device_model`).
     trials : int, optional
-        Number of trials (default: the protocol's ``rounds``, for a PEF protocol its
+        Number of trials (default: the protocol's ``[design] trials``, for a PEF protocol its
         ``n_max``, else 1e7). For PEF rows, the cap on analysis trials.
     gamma : float, optional
         Test-round probability (default: the protocol's).
@@ -340,7 +340,10 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         raise ParameterError(f"--gamma must lie in [{MIN_GAMMA:g}, 1], got {gamma!r}")
     source = "given"
     if trials is None:
-        declared = getattr(analysis, "n_max" if is_pef else "rounds", None)
+        from dicert.design import declared_trials
+
+        declared = (getattr(analysis, "n_max", None) if is_pef
+                    else declared_trials(protocol))
         trials, source = (declared, "protocol") if declared else (DEFAULT_TRIALS, "default")
     if (isinstance(trials, bool) or not math.isfinite(trials) or int(trials) != trials
             or not 1 <= trials <= MAX_INTEGER):

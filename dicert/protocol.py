@@ -21,7 +21,7 @@ Layout (all tables required unless marked optional)::
 
     [harvest]
     parties = "AB"                    # "A" or "AB"
-    rounds = "all"                    # "all" or "generation"
+    select = "all"                    # "all" or "generation" (the harvest selection)
 
     [analysis]
     method = "martingale"             # "martingale" | "eat" | "pef"
@@ -38,6 +38,8 @@ Layout (all tables required unless marked optional)::
     block_trials = 1048576            # block size of the per-block checks
 
 Errors are :class:`~dicert.errors.ProtocolError` with one line naming the file and the key.
+Keys of earlier versions (:data:`RENAMED_KEYS`: ``[harvest] rounds``, ``[analysis] rounds``) are
+refused with one line naming the file, the old key and the new one.
 """
 
 from __future__ import annotations
@@ -63,7 +65,16 @@ PROTOCOL_FORMAT = "dicert-protocol/1"
 
 BELL_KINDS = ("chsh", "coefficients")
 PARTIES = ("A", "AB")
-ROUNDS = ("all", "generation")
+SELECTIONS = ("all", "generation")
+#: Protocol keys of earlier versions -> (their new key, how to move). A protocol holding one
+#: is refused with one line naming the file, the old key and the new key (never silently read:
+#: the two old ``rounds`` keys meant different things).
+RENAMED_KEYS = {
+    "harvest.rounds": ("harvest.select",
+                       "rename it: [harvest] select = \"all\" or \"generation\""),
+    "analysis.rounds": ("design.trials",
+                        "declare the number of trials as [design] trials = N"),
+}
 METHODS = ("martingale", "eat", "pef")
 EXTRACTOR_KINDS = ("toeplitz",)
 OUTPUT_RULES = ("lhl-conservative",)
@@ -97,14 +108,20 @@ class BellTest:
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class Harvest:
-    """Which outcomes become raw randomness: parties "A" or "AB"; rounds "all" or "generation"."""
+    """Which outcomes become raw randomness: parties "A" or "AB"; the harvest selection
+    ``select`` "all" (every trial) or "generation" (trials with t = 0)."""
 
     parties: str
-    rounds: str
+    select: str
 
     @property
     def bits_per_trial(self) -> int:
         return len(self.parties)
+
+    @property
+    def rounds(self) -> str:
+        """Deprecated name of :attr:`select` (the harvest selection)."""
+        return self.select
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -136,7 +153,7 @@ class Protocol:
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("name", self.name), ("method", self.method), ("gamma", self.gamma),
-                ("harvest", f"{self.harvest.parties}/{self.harvest.rounds}"),
+                ("harvest", f"{self.harvest.parties}/{self.harvest.select}"),
                 ("eps_ext", self.extractor.eps_ext)]
         if full:
             rows += [("bell", self.bell.kind), ("extractor", self.extractor.kind),
@@ -252,9 +269,19 @@ def _parse_settings(ctx: _Ctx, d: Mapping[str, Any]):
 
 def _parse_harvest(ctx: _Ctx, d: Mapping[str, Any]) -> Harvest:
     t = ctx.table(d, "harvest")
-    ctx.no_extra(t, "harvest", ("parties", "rounds"))
+    ctx.no_extra(t, "harvest", ("parties", "select"))
     return Harvest(parties=ctx.choice(t, "harvest", "parties", PARTIES),
-                   rounds=ctx.choice(t, "harvest", "rounds", ROUNDS))
+                   select=ctx.choice(t, "harvest", "select", SELECTIONS))
+
+
+def _check_renamed(ctx: _Ctx, d: Mapping[str, Any]) -> None:
+    """Refuse keys of earlier versions with one line naming the old and the new key."""
+    for old, (new, how) in RENAMED_KEYS.items():
+        table, key = old.split(".")
+        t = d.get(table)
+        if isinstance(t, Mapping) and key in t:
+            raise ctx.fail(old, f"renamed to '{new}' (the two old 'rounds' keys meant different "
+                           f"things); {how}")
 
 
 def _parse_extractor(ctx: _Ctx, d: Mapping[str, Any]) -> ExtractorSpec:
@@ -304,22 +331,23 @@ def _parse_analysis(ctx: _Ctx, d: Mapping[str, Any]) -> tuple[str, Any]:
 def _cross_checks(ctx: _Ctx, *, bell: BellTest, design: Any, harvest: Harvest, method: str,
                   params: Any) -> None:
     gamma = float(design.gamma)
-    if harvest.rounds == "generation" and gamma >= 1.0:
-        raise ctx.fail("harvest.rounds", "\"generation\" needs settings.gamma < 1 "
+    if harvest.select == "generation" and gamma >= 1.0:
+        raise ctx.fail("harvest.select", "\"generation\" needs settings.gamma < 1 "
                        "(with gamma = 1 every round is a test round)")
     if method in ("martingale", "eat") and bell.kind != "chsh":
         raise ctx.fail("bell.kind", f"method {method!r} supports only kind = \"chsh\"")
     if method in ("eat", "pef"):
-        # Entropy accumulation bounds the register (A_i, B_i) of every round (methods note
-        # "entropy-accumulation", raw output A^n B^n); the probability estimate bounds the
-        # pair (A_i, B_i) of every analysed trial.
+        # Entropy accumulation bounds the register (A_i, B_i) of every round (raw output
+        # A^n B^n; Arnon-Friedman, Renner & Vidick, SIAM J. Comput. 48, 181 (2019)); the
+        # probability estimate bounds the pair (A_i, B_i) of every analysed trial (Knill,
+        # Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)).
         which = "the outcomes of every round" if method == "eat" else "every analysed trial"
         if harvest.parties != "AB":
             raise ctx.fail("harvest.parties", f"method \"{method}\" bounds the pair of "
                            "outcomes; use parties = \"AB\"")
-        if harvest.rounds != "all":
-            raise ctx.fail("harvest.rounds", f"method \"{method}\" harvests {which}; "
-                           "use rounds = \"all\"")
+        if harvest.select != "all":
+            raise ctx.fail("harvest.select", f"method \"{method}\" harvests {which}; "
+                           "use select = \"all\"")
     if method == "martingale":
         single = getattr(params, "single_round", None)
         if single == "npa-AB" and harvest.parties != "AB":
@@ -390,6 +418,7 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     if not isinstance(d, Mapping):
         raise ProtocolError(f"{source}: expected a table of protocol keys, got {_kind(d)}")
     ctx.no_extra(d, None, _TOP_KEYS)
+    _check_renamed(ctx, d)
     _check_numeric_ranges(ctx, d)
     fmt = d.get("format", PROTOCOL_FORMAT)
     if fmt != PROTOCOL_FORMAT:
@@ -422,11 +451,7 @@ def _parse_design(ctx: _Ctx, d: Mapping[str, Any], params: Any):
     """The optional [design] table (significance of the conformance checks, declared n)."""
     from dicert.design import DesignSpec
 
-    spec = DesignSpec.from_mapping(d.get("design", {}), ctx.source)
-    rounds = getattr(params, "rounds", None)
-    if spec.trials is not None and isinstance(rounds, int) and rounds != spec.trials:
-        raise ctx.fail("design.trials", f"{spec.trials} disagrees with analysis.rounds = {rounds}")
-    return spec
+    return DesignSpec.from_mapping(d.get("design", {}), ctx.source)
 
 
 def _plain(obj: Any) -> Any:

@@ -323,7 +323,7 @@ def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
 
     body, protocol, rec_scan = facts.body, facts.protocol, facts.scan
     resolve_sources(log)  # a missing log is bad input (exit 2), not a mismatch
-    parties, rounds = protocol.harvest.parties, protocol.harvest.rounds
+    parties, rounds = protocol.harvest.parties, protocol.harvest.select
     spill = Path(tempfile.gettempdir())
     try:
         if rec_scan.scope == "prefix" and rec_scan.ended_by != "declared-trials":

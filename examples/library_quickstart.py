@@ -28,7 +28,7 @@ PROTOCOL = {
     "description": "INVENTED example: every round a test round, martingale CHSH test.",
     "bell": {"kind": "chsh"},
     "settings": {"gamma": 1.0, "generation": [0, 0]},
-    "harvest": {"parties": "AB", "rounds": "all"},
+    "harvest": {"parties": "AB", "select": "all"},
     "analysis": {"method": "martingale", "chsh_threshold": 2.6, "eps_est": 1e-6,
                  "single_round": "analytic-A", "expected_chsh": 2.74},
     "design": {"significance": 1e-9},

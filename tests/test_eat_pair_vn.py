@@ -33,7 +33,7 @@ def _protocol(**kw):
                             "eps_ea": EPS, **kw})
     return NS(name="test-eat-pair", method="eat", analysis=analysis,
               design=NS(gamma=0.01, generation=(0, 0)),
-              harvest=NS(parties="AB", rounds="all"), extractor=NS(eps_ext=EPS))
+              harvest=NS(parties="AB", select="all"), extractor=NS(eps_ext=EPS))
 
 
 def test_plan_goal_rate_at_w085():

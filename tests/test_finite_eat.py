@@ -264,13 +264,13 @@ def test_dispatch_rounds_and_harvest_checks():
     proto = types.SimpleNamespace(
         method="eat", analysis=EatParams(**SHIPPED, rounds=10**5),
         design=Design(gamma=0.5, generation=(0, 0)),
-        harvest=types.SimpleNamespace(parties="AB", rounds="all"))
+        harvest=types.SimpleNamespace(parties="AB", select="all"))
     assert certify_counts(c, proto).method == "eat-df-conservative"
     proto.analysis = EatParams(**SHIPPED, rounds=10**5 + 1)
     with pytest.raises(ParameterError, match="rounds"):
         certify_counts(c, proto)
     proto.analysis = EatParams(**SHIPPED)
-    proto.harvest = types.SimpleNamespace(parties="A", rounds="all")
+    proto.harvest = types.SimpleNamespace(parties="A", select="all")
     with pytest.raises(ParameterError, match="harvest"):
         certify_counts(c, proto)
 

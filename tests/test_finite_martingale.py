@@ -218,9 +218,9 @@ def test_dispatch_and_generation_harvest():
     proto = types.SimpleNamespace(method="martingale",
                                   analysis=MartingaleParams(chsh_threshold=2.6, eps_est=1e-6),
                                   design=Design(gamma=gamma, generation=(0, 0)),
-                                  harvest=Harvest(parties="AB", rounds="all"))
+                                  harvest=Harvest(parties="AB", select="all"))
     r_all = certify_counts(c, proto)
-    proto.harvest = Harvest(parties="AB", rounds="generation")
+    proto.harvest = Harvest(parties="AB", select="generation")
     r_gen = certify_counts(c, proto)
     assert r_all.accepted and r_gen.accepted and r_gen.min_entropy_bits > 0
     assert r_gen.min_entropy_bits == pytest.approx(
@@ -282,4 +282,4 @@ def test_npa_pair_bound_route():
     ra, rn = certify_martingale(c, pa), certify_martingale(c, pn)
     assert rn.accepted and rn.min_entropy_bits > ra.min_entropy_bits > 0
     with pytest.raises(ParameterError, match="npa-AB"):
-        certify_martingale(c, pn, harvest=Harvest(parties="A", rounds="all"))
+        certify_martingale(c, pn, harvest=Harvest(parties="A", select="all"))

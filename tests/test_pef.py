@@ -468,9 +468,9 @@ def test_shipped_photonic_protocol_loads_with_the_shared_loader():
     proto = load_protocol(Path(__file__).resolve().parents[1] / "protocols" / "ch-photonic.toml")
     assert proto.method == "pef"
     assert isinstance(proto.analysis, P.PefParams)
-    assert proto.harvest.parties == "AB" and proto.harvest.rounds == "all"
+    assert proto.harvest.parties == "AB" and proto.harvest.select == "all"
     d = {"name": "x", "bell": {"kind": "chsh"}, "settings": {"gamma": 1.0},
-         "harvest": {"parties": "AB", "rounds": "all"},
+         "harvest": {"parties": "AB", "select": "all"},
          "analysis": {"method": "pef", "beta": 0.02, "eps_pe": 1e-9, "sigma_target_bits": 64,
                       "n_max": 1000, "calibration_trials": 10, "lam": 2.0},
          "extractor": {"kind": "toeplitz", "eps_ext": 1e-9}}

@@ -35,7 +35,7 @@ def _eat_protocol(**kw):
                             "eps_ea": 1e-8, **kw})
     return NS(name="test-eat", method="eat", analysis=analysis,
               design=NS(gamma=0.01, generation=(0, 0)),
-              harvest=NS(parties="AB", rounds="all"), extractor=NS(eps_ext=1e-8))
+              harvest=NS(parties="AB", select="all"), extractor=NS(eps_ext=1e-8))
 
 
 def test_seed_cost_table():
@@ -183,7 +183,7 @@ def test_cli_missing_protocol(tmp_path):
 def test_params_objects_accepted_directly():
     proto = NS(name="direct", method="martingale",
                analysis=MartingaleParams(chsh_threshold=2.5, eps_est=1e-6),
-               design=NS(gamma=1.0, generation=(0, 0)), harvest=NS(parties="A", rounds="all"),
+               design=NS(gamma=1.0, generation=(0, 0)), harvest=NS(parties="A", select="all"),
                extractor=NS(eps_ext=1e-8))
     res = plan(proto, chsh=2.7, trials=10**6, n_points=4, gamma_points=4)
     assert res.methods[0].certified_bits > 0
@@ -199,7 +199,7 @@ def _pef_protocol(**cal):
     analysis = PefParams(beta=0.1, eps_pe=2.0 ** -64, sigma_target_bits=512, n_max=10**6,
                          lam=0.0, **cal)
     return NS(name="pef-512", method="pef", analysis=analysis, design=SettingsDesign(),
-              harvest=NS(parties="AB", rounds="all"), extractor=NS(eps_ext=1e-8))
+              harvest=NS(parties="AB", select="all"), extractor=NS(eps_ext=1e-8))
 
 
 def _pef_row(result):
@@ -362,7 +362,7 @@ def test_pef_adaptive_trivial_first_block_is_counted_as_consumed():
     # versus analysis"): the planner must charge it the same trials.
     common = dict(beta=0.1, eps_pe=2.0 ** -64, sigma_target_bits=512, n_max=10**6, lam=1e-3)
     mk = lambda **cal: NS(name="pef", method="pef", analysis=PefParams(**common, **cal),  # noqa: E731
-                          design=SettingsDesign(), harvest=NS(parties="AB", rounds="all"),
+                          design=SettingsDesign(), harvest=NS(parties="AB", select="all"),
                           extractor=NS(eps_ext=1e-8))
     adaptive = _pef_row(plan(mk(calibration="adaptive", block_trials=5000, initial="trivial"),
                              chsh=2.7, n_points=4, gamma_points=2))

@@ -39,7 +39,7 @@ def test_uniform_protocol_contents():
     p = load_protocol(ROOT / "protocols" / "chsh-uniform.toml")
     assert p.method == "martingale"
     assert p.design.gamma == 1.0
-    assert (p.harvest.parties, p.harvest.rounds) == ("AB", "all")
+    assert (p.harvest.parties, p.harvest.select) == ("AB", "all")
     # A CHSH threshold must lie strictly between the local bound 2 and Tsirelson's bound
     # 2*sqrt(2) (Cirel'son 1980) for the protocol to separate classical from quantum devices.
     assert 2.0 < p.analysis.chsh_threshold < 2.0 * 2**0.5
@@ -52,7 +52,7 @@ def test_spotcheck_protocol_contents():
     assert 0.0 < p.design.gamma < 1.0
     assert p.design.generation == (0, 0)
     # Raw output A^n B^n of every round (entropy-accumulation methods note, section 1).
-    assert (p.harvest.parties, p.harvest.rounds) == ("AB", "all")
+    assert (p.harvest.parties, p.harvest.select) == ("AB", "all")
     # omega_exp - delta must exceed the classical CHSH-game value 3/4 (common practice).
     assert p.analysis.expected_win_probability - p.analysis.tolerance > 0.75
 
@@ -79,7 +79,7 @@ def test_packaged_copy_matches(name):
         (lambda d: d["settings"].__setitem__("gamma", "half"), "settings.gamma"),
         (lambda d: d["settings"].__setitem__("generation", [0, 2]), "settings.generation"),
         (lambda d: d["harvest"].__setitem__("parties", "B"), "harvest.parties"),
-        (lambda d: d["harvest"].__setitem__("rounds", "generation"), "harvest.rounds"),
+        (lambda d: d["harvest"].__setitem__("select", "generation"), "harvest.select"),
         (lambda d: d["analysis"].__setitem__("method", "magic"), "analysis.method"),
         (lambda d: d["analysis"].__setitem__("chsh_threshold", 3.5), "chsh_threshold"),
         (lambda d: d["analysis"].pop("eps_est"), "eps_est"),
@@ -108,8 +108,8 @@ def test_eat_requires_pair_of_outcomes():
     with pytest.raises(ProtocolError, match="'harvest.parties'"):
         protocol_from_dict(d, "x.toml")
     d["harvest"]["parties"] = "AB"
-    d["harvest"]["rounds"] = "generation"
-    with pytest.raises(ProtocolError, match="'harvest.rounds'"):
+    d["harvest"]["select"] = "generation"
+    with pytest.raises(ProtocolError, match="'harvest.select'"):
         protocol_from_dict(d, "x.toml")
 
 
@@ -144,3 +144,38 @@ def test_digest_changes_with_any_byte(tmp_path):
     b = load_protocol(_write(tmp_path, src + "\n# a comment\n"))
     assert a.sha256 != b.sha256
     assert a.analysis == b.analysis
+
+
+# Old keys: the two `rounds` keys meant different things (the harvest selection and the
+# pre-declared trial count); neither is read silently, each error names the new key.
+@pytest.mark.parametrize("old,new,edit", [
+    ("harvest.rounds", "harvest.select",
+     lambda t: t.replace('select = "all"', 'rounds = "all"', 1)),
+    ("analysis.rounds", "design.trials",
+     lambda t: t.replace("eps_ea = 1e-8", "eps_ea = 1e-8\nrounds = 1000000", 1)),
+])
+def test_old_protocol_keys_name_the_new_key(tmp_path, old, new, edit):
+    from typer.testing import CliRunner
+
+    from dicert.cli.app import app
+
+    text = edit((ROOT / "protocols" / "chsh-spotcheck.toml").read_text())
+    assert old.split(".")[1] + " =" in text  # the edit took
+    path = _write(tmp_path, text)
+    with pytest.raises(ProtocolError) as info:
+        load_protocol(path)
+    msg = str(info.value)
+    assert "\n" not in msg and msg.startswith(str(path))
+    assert f"'{old}'" in msg and f"'{new}'" in msg
+    res = CliRunner().invoke(app, ["plan", "--protocol", str(path), "--trials", "1e6"])
+    assert res.exit_code == 2
+    err = res.stderr.strip()
+    assert len(err.splitlines()) == 1 and f"'{old}'" in err and f"'{new}'" in err
+    assert "Traceback" not in res.output
+
+
+def test_shipped_protocols_use_no_old_key():
+    for name in ("chsh-uniform", "chsh-spotcheck", "chsh-spotcheck-pair", "ch-photonic"):
+        d = tomllib.loads((ROOT / "protocols" / f"{name}.toml").read_text())
+        assert "rounds" not in d["harvest"] and "rounds" not in d["analysis"]
+        assert d["harvest"]["select"] in ("all", "generation")

@@ -43,7 +43,7 @@ def _replace_line(name: str, start: str, new: str) -> str:
     ("ch-photonic", "n_max =", f"n_max = {BIG}", "analysis.n_max"),
     ("ch-photonic", "calibration_trials =", f"calibration_trials = {BIG}",
      "analysis.calibration_trials"),
-    ("chsh-spotcheck", "# rounds =", f"rounds = {2**53}", "analysis.rounds"),
+    ("chsh-spotcheck", "# trials =", f"trials = {2**53}", "design.trials"),
 ])
 def test_out_of_range_values_are_refused_at_load_naming_the_key(tmp_path, name, start, line, key):
     p = tmp_path / "p.toml"

@@ -60,7 +60,7 @@ def plan_cmd(
     visibility: Annotated[Optional[float], typer.Option(
         "--visibility", help="Visibility v of the optimal singlet strategy (S = 2 sqrt2 v).")] = None,
     trials: Annotated[Optional[str], typer.Option(
-        "--trials", help="Number of trials n (e.g. 1e8; default: the protocol's rounds or "
+        "--trials", help="Number of trials n (e.g. 1e8; default: the protocol's [design] trials or "
                          "n_max, else 1e7).")] = None,
     gamma: Annotated[Optional[float], typer.Option(
         "--gamma", help="Test-round probability (default: the protocol's).")] = None,

@@ -564,9 +564,9 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
         raise ParameterError("certify_eat needs EatParams")
     c, gamma, gen = check_counts(counts, design)
     if harvest is not None and (getattr(harvest, "parties", "AB") != "AB"
-                                or getattr(harvest, "rounds", "all") != "all"):
+                                or harvest.select != "all"):
         raise ParameterError("entropy accumulation bounds the pair of outcomes of every round; "
-                             "harvest must be parties 'AB', rounds 'all'")
+                             "harvest must be parties 'AB', select 'all'")
     n, n_test, wins = game_counts(c)
     if n == 0:
         raise ParameterError("no trials in the counts")

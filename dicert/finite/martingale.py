@@ -233,7 +233,7 @@ def certify_martingale(counts: Any, params: MartingaleParams, design: Any = None
         Threshold S_th, eps_est and the single-round bound.
     design : SettingsDesign, optional
         gamma and generation settings (default: gamma = 1, uniform settings every round).
-    harvest : object with ``parties`` ("A" | "AB") and ``rounds`` ("all" | "generation")
+    harvest : object with ``parties`` ("A" | "AB") and ``select`` ("all" | "generation")
         Which outcomes form the raw string (default AB of all rounds).
 
     Returns
@@ -251,12 +251,12 @@ def certify_martingale(counts: Any, params: MartingaleParams, design: Any = None
         raise ParameterError("certify_martingale needs MartingaleParams")
     c, gamma, gen = check_counts(counts, design)
     parties = getattr(harvest, "parties", "AB") if harvest is not None else "AB"
-    rounds = getattr(harvest, "rounds", "all") if harvest is not None else "all"
+    rounds = harvest.select if harvest is not None else "all"
     if parties not in ("A", "AB") or rounds not in ("all", "generation"):
-        raise ParameterError(f"harvest must be parties 'A'|'AB', rounds 'all'|'generation'; "
+        raise ParameterError(f"harvest must be parties 'A'|'AB', select 'all'|'generation'; "
                              f"got {parties!r}, {rounds!r}")
     if rounds == "generation" and gamma >= 1.0:
-        raise ParameterError("harvest rounds 'generation' needs gamma < 1")
+        raise ParameterError("harvest select 'generation' needs gamma < 1")
     if params.single_round == "npa-AB" and parties != "AB":
         raise ParameterError("single_round 'npa-AB' bounds the pair of outcomes; "
                              "harvest parties must be 'AB'")
@@ -273,7 +273,7 @@ def certify_martingale(counts: Any, params: MartingaleParams, design: Any = None
         "trials": n, "test_rounds": n_test, "wins": wins, "losses": losses, "gamma": gamma,
         "generation_settings": list(gen), "chsh_estimate": chsh_hat,
         "chsh_threshold": params.chsh_threshold, "estimator_width": 8.0 / gamma,
-        "harvest_parties": parties, "harvest_rounds": rounds, "raw_bits": raw_bits,
+        "harvest_parties": parties, "harvest_select": rounds, "raw_bits": raw_bits,
         "min_entropy_if_accepted_bits": bound_bits, **bd,
     }
     if not accepted:

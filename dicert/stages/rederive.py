@@ -346,7 +346,7 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Protocol):
             _require(raw_bits == want, "harvest.raw_bits",
                      f"recorded {raw_bits!r}, the analysed trials give {want!r}")
     else:
-        raw_bits = expected_raw_bits(counts, protocol.harvest.parties, protocol.harvest.rounds)
+        raw_bits = expected_raw_bits(counts, protocol.harvest.parties, protocol.harvest.select)
     files = _get(body, "log.files")
     size_bytes = _get(body, "log.size_bytes")
     scope = _scope_of(body, trials, size_bytes)
