@@ -143,8 +143,10 @@ RECORD_NAME = "record.json"
 class CertifyResult:
     """Outcome of :func:`certify`.
 
-    ``status`` is "certified" or "aborted"; ``error`` is the total soundness error in
-    "P(accept) x distance" form; ``bits_file`` is None when no bits were produced.
+    ``status`` is "certified", "aborted" or "withheld"; ``soundness_error`` is the sum of the
+    error budget's terms, in "P(accept) x distance" form; ``bits_file`` is None when no bits
+    were produced. The names of earlier versions (``min_entropy_bits``, ``error``,
+    ``log_scope``) remain as read-only aliases.
     """
 
     status: str
@@ -152,14 +154,14 @@ class CertifyResult:
     bits_file: Path | None
     record_file: Path
     chain_file: Path | None
-    min_entropy_bits: float
-    error: float
+    certified_min_entropy_bits: float
+    soundness_error: float
     raw_bits: int
     trials: int
     abort_reason: str | None
     record_sha256: str
     record: dict
-    log_scope: str = "whole"
+    log_coverage: str = "whole"
     stopped_early: bool = False
     stop_trial_index: int | None = None
     success_trial_index: int | None = None
@@ -167,14 +169,19 @@ class CertifyResult:
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("status", self.status), ("output_bits", self.output_bits),
-                ("min_entropy_bits", self.min_entropy_bits), ("error", self.error),
-                ("trials", self.trials)]
+                ("certified_min_entropy_bits", self.certified_min_entropy_bits),
+                ("soundness_error", self.soundness_error), ("trials", self.trials)]
         if full:
-            rows += [("raw_bits", self.raw_bits), ("log_scope", self.log_scope),
+            rows += [("raw_bits", self.raw_bits), ("log_coverage", self.log_coverage),
                      ("ended_by", self.ended_by), ("abort_reason", self.abort_reason),
                      ("bits_file", self.bits_file), ("record_file", self.record_file),
                      ("chain_file", self.chain_file), ("record_sha256", self.record_sha256)]
         return rows
+
+    # Deprecated names of earlier versions (read-only).
+    min_entropy_bits = property(lambda self: self.certified_min_entropy_bits)
+    error = property(lambda self: self.soundness_error)
+    log_scope = property(lambda self: self.log_coverage)
 
     @property
     def certified(self) -> bool:
@@ -538,10 +545,10 @@ def _certify_locked(*, log: Any, run: RunInputs, state: Any, protocol_change: st
         status=analysis.status, output_bits=analysis.output_bits,
         bits_file=out / BITS_NAME if publish else None,
         record_file=out / RECORD_NAME,
-        chain_file=chain_file, min_entropy_bits=analysis.min_entropy_bits,
-        error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
+        chain_file=chain_file, certified_min_entropy_bits=analysis.min_entropy_bits,
+        soundness_error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
         abort_reason=analysis.abort_reason, record_sha256=rec_sha, record=record,
-        log_scope=scan.scope, stopped_early=scan.stopped_early,
+        log_coverage=scan.scope, stopped_early=scan.stopped_early,
         stop_trial_index=scan.stop_trial_index,
         success_trial_index=_success_index(analysis.finite), ended_by=scan.ended_by,
     )

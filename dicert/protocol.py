@@ -396,7 +396,8 @@ def _check_numeric_ranges(ctx: _Ctx, d: Mapping[str, Any]) -> None:
 
 
 def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: str | None = None,
-                       sha256: str | None = None, path: str | None = None) -> Protocol:
+                       sha256: str | None = None, path: str | None = None,
+                       legacy_keys: bool = False) -> Protocol:
     """Validate a protocol given as a mapping (the parsed TOML).
 
     Parameters
@@ -408,6 +409,10 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     text, sha256, path : optional
         The file content, its digest and path, when loading from a file. For a plain
         mapping, ``text`` defaults to a canonical JSON rendering and ``sha256`` to its digest.
+    legacy_keys : bool
+        Read the keys of earlier versions (:data:`RENAMED_KEYS`) as they were read then. Only
+        for protocols recorded in audit records of earlier formats (verify, report); a
+        protocol file given to certify or plan never is.
 
     Raises
     ------
@@ -418,7 +423,10 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     if not isinstance(d, Mapping):
         raise ProtocolError(f"{source}: expected a table of protocol keys, got {_kind(d)}")
     ctx.no_extra(d, None, _TOP_KEYS)
-    _check_renamed(ctx, d)
+    if legacy_keys:
+        d = _legacy_tables(ctx, d)
+    else:
+        _check_renamed(ctx, d)
     _check_numeric_ranges(ctx, d)
     fmt = d.get("format", PROTOCOL_FORMAT)
     if fmt != PROTOCOL_FORMAT:
@@ -445,6 +453,22 @@ def protocol_from_dict(d: Mapping[str, Any], source: str = "<dict>", *, text: st
     return Protocol(name=name.strip(), path=path or source, sha256=sha256, text=text, bell=bell,
                     design=design, harvest=harvest, method=method, analysis=params,
                     extractor=extractor, description=desc, conformance=conformance)
+
+
+def _legacy_tables(ctx: _Ctx, d: Mapping[str, Any]) -> dict:
+    """The tables of an earlier version's protocol under today's keys: ``[harvest] rounds``
+    was the harvest selection; ``[analysis] rounds`` (entropy accumulation) the declared
+    trials, which had to agree with ``[design] trials`` when both were given."""
+    out = {k: (dict(v) if isinstance(v, Mapping) else v) for k, v in d.items()}
+    harvest = out.get("harvest")
+    if isinstance(harvest, dict) and "rounds" in harvest and "select" not in harvest:
+        harvest["select"] = harvest.pop("rounds")
+    analysis, design = out.get("analysis"), out.get("design")
+    n_old = analysis.get("rounds") if isinstance(analysis, dict) else None
+    n_new = design.get("trials") if isinstance(design, dict) else None
+    if isinstance(n_old, int) and isinstance(n_new, int) and n_old != n_new:
+        raise ctx.fail("design.trials", f"{n_new} disagrees with analysis.rounds = {n_old}")
+    return out
 
 
 def _parse_design(ctx: _Ctx, d: Mapping[str, Any], params: Any):
@@ -493,7 +517,8 @@ def _toml_problem(text: str, exc: Exception) -> str:
     return f"key '{table}{key}' is given twice, or conflicts with an earlier key (line {lineno})"
 
 
-def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | None = None) -> Protocol:
+def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | None = None,
+                        legacy_keys: bool = False) -> Protocol:
     """Parse and validate protocol file bytes; ``sha256`` is over ``data``.
 
     The bytes are UTF-8 TOML, or (for protocols built in code by :func:`protocol_from_dict`)
@@ -515,13 +540,13 @@ def protocol_from_bytes(data: bytes, source: str = "<bytes>", *, path: str | Non
         except json.JSONDecodeError as exc:
             raise ProtocolError(f"{source}: invalid JSON protocol: {exc}") from None
         return protocol_from_dict(d, source, text=text, sha256=hashlib.sha256(data).hexdigest(),
-                                  path=path or source)
+                                  path=path or source, legacy_keys=legacy_keys)
     try:
         d = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ProtocolError(f"{source}: invalid TOML: {_toml_problem(text, exc)}") from None
     return protocol_from_dict(d, source, text=text, sha256=hashlib.sha256(data).hexdigest(),
-                              path=path or source)
+                              path=path or source, legacy_keys=legacy_keys)
 
 
 def load_protocol(path: str | os.PathLike[str] | Mapping[str, Any] | Protocol) -> Protocol:

@@ -21,7 +21,7 @@ The result word is ``VERIFIED`` (authenticated, and log, seed and bits all check
 ``INTEGRITY-ONLY`` (not authenticated). With ``strict`` anything not established raises.
 
 The first disagreement raises :class:`~dicert.errors.VerificationError` naming the field
-(dotted path into the record, e.g. ``entropy.finite_size.min_entropy_bits``). A failure can
+(dotted path into the record, e.g. ``entropy.finite_size.certified_min_entropy_bits``). A failure can
 therefore never be ignored by forgetting to look at a return value.
 """
 
@@ -160,7 +160,11 @@ def verify(record_path: str | os.PathLike[str], *, log: Any = None,
     """
     path = Path(record_path)
     record, found = read_and_authenticate(path, public_key, trusted_keys)
-    facts = recheck_record(_body_of(record), found, log_given=log is not None)
+    from dicert.stages.record_compat import upgrade_body
+
+    # Digest and signature were checked on the record as written; its numbers are compared
+    # under today's names (records /1 and /2 are mapped in one place, record_compat).
+    facts = recheck_record(upgrade_body(_body_of(record)), found, log_given=log is not None)
     seed_data = recheck_seed(seed, facts, found)
     recomputed_output = None
     if log is not None:
@@ -241,7 +245,7 @@ def recheck_record(body: Mapping[str, Any], found: Findings, *, log_given: bool)
     exp = expected_body(body, protocol, rec_scan, seed_sha256=seed_sha, seed_bytes=seed_bytes_n,
                         output_sha256=output_sha)
     _compare(exp, body)
-    used = _get(body, "extractor.seed_bits_used")
+    used = _get(body, "extractor.seed_bits")
     _require(isinstance(seed_bytes_n, int) and seed_bytes_n * 8 >= used, "extractor.seed_bytes",
              f"{seed_bytes_n!r} bytes cannot supply {used} seed bits")
     if status in ("certified", "withheld"):
@@ -329,11 +333,11 @@ def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
         if rec_scan.scope == "prefix" and rec_scan.ended_by != "declared-trials":
             # Only the recorded prefix is read: the file may have grown since, or still
             # lack its trailer; nothing after the prefix is looked at.
-            _require(_single_binary(log) is not None, "log.scope",
+            _require(_single_binary(log) is not None, "log.coverage",
                      "a prefix record needs the single binary (.btl) log file it covers")
             scan, sink = scan_log(log, parties, rounds, spill_dir=spill,
                                   protocol=protocol, prefix_trials=rec_scan.trials_read)
-        elif "scope" not in body["log"]:
+        elif "coverage" not in body["log"]:
             scan, sink = _scan_whole(log, parties, rounds, spill_dir=spill, progress=None,
                                      protocol=protocol)
         else:
@@ -413,7 +417,7 @@ def _rerun_extraction(scan: Any, sink: Any, facts: RecordFacts, found: Findings,
             bits_per_symbol=protocol.harvest.bits_per_trial,
             min_entropy_bits=float(_get(body, "certified_min_entropy_bits"))
             if status == "certified" else float(
-                _get(body, "entropy.finite_size.min_entropy_bits")))
+                _get(body, "entropy.finite_size.certified_min_entropy_bits")))
         _compare({"output_screens": scr}, {"output_screens": body["output_screens"]})
         found.checked.append("output screens re-run on the recomputed output")
     return recomputed_output

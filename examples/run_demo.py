@@ -48,7 +48,7 @@ def main(out: Path) -> int:
     #    a signed record. Exit code semantics in the CLI: 0 certified, 3 aborted.
     res = certify(log, protocol, seed, out / "certified", key=keys.private_key_file)
     print(f"certify: {res.status}, {res.output_bits} bits, min-entropy "
-          f"{res.min_entropy_bits:.1f} bits, total error {res.error:.3g}")
+          f"{res.certified_min_entropy_bits:.1f} bits, soundness error {res.soundness_error:.3g}")
     if not res.certified:
         return 3
 

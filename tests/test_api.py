@@ -159,7 +159,7 @@ def test_summary_to_dict_and_html(run):
         assert p.tags[0] == "table" and p.tags.count("tr") >= 4, key
     res = run[4]
     assert res.to_dict()["record"] == json.loads(res.record_file.read_text())  # record in full
-    assert f"{res.min_entropy_bits:.6g}" in res.summary()
+    assert f"{res.certified_min_entropy_bits:.6g}" in res.summary()
 
 
 def test_entropy_bound_is_the_published_formula():

@@ -53,22 +53,23 @@ def test_certified_numbers_follow_the_published_formulas(small_run, tmp_path):
     # Azuma-Hoeffding margin with estimator width 8/gamma (methods README; Azuma 1967).
     mu = 8.0 * math.sqrt(math.log(1.0 / eps_est) / (2.0 * n))
     k = n * _f(proto.analysis.chsh_threshold - mu)
-    assert res.min_entropy_bits == pytest.approx(k, rel=1e-12)
+    assert res.certified_min_entropy_bits == pytest.approx(k, rel=1e-12)
     # Conservative leftover-hash sizing m = floor(k - 2 log2(1/eps_ext)) (Impagliazzo, Levin,
     # Luby 1989; methods note B3).
     m = math.floor(k - 2.0 * math.log2(1.0 / proto.extractor.eps_ext))
     assert res.output_bits == m
     # Soundness error eps_est + eps_ext ("P(accept) x distance" form, methods note A3/B3).
-    assert res.error == pytest.approx(eps_est + proto.extractor.eps_ext, rel=1e-12)
+    assert res.soundness_error == pytest.approx(eps_est + proto.extractor.eps_ext, rel=1e-12)
     data = res.bits_file.read_bytes()
     assert len(data) == (m + 7) // 8
     rec = res.record
     assert rec["extractor"]["output_sha256"] == hashlib.sha256(data).hexdigest()
     # Toeplitz seed length n + m - 1 (Mansour, Nisan, Tiwari 1990; methods note B1).
-    assert rec["extractor"]["seed_bits_used"] == 2 * n + m - 1
+    assert rec["extractor"]["seed_bits"] == 2 * n + m - 1
     assert rec["log"]["sha256"] == hashlib.sha256(log.read_bytes()).hexdigest()
     assert rec["log"]["trials"] == n and int(np.sum(rec["counts"]["values"])) == n
-    for key in ("assumptions", "caution", "references", "volatile", "protocol", "eps"):
+    for key in ("assumptions", "caution", "references", "volatile", "protocol", "error_budget",
+                "soundness_error"):
         assert rec[key]
     assert rec["protocol"]["content"] == proto.text
     assert rec["entropy"]["finite_size"]["side_information"] == "classical"
@@ -123,7 +124,7 @@ def test_classical_devices_abort_with_a_record(tmp_path):
     assert rec["status"] == "aborted" and rec["extractor"]["output_bits"] == 0
     # The best classical strategy wins the CHSH game with probability 3/4, S = 2 (Clauser,
     # Horne, Shimony, Holt 1969), far below the threshold.
-    assert rec["estimate"]["chsh"] == pytest.approx(2.0, abs=0.1)
+    assert rec["estimate"]["chsh_estimate"] == pytest.approx(2.0, abs=0.1)
     assert "threshold" in rec["abort_reason"]
 
 
@@ -310,12 +311,12 @@ def test_spotcheck_protocol_certifies_honest_devices(spot_logs, tmp_path):
     # The record carries exactly what the finite-size engine gives for the recorded counts.
     direct = certify_eat(np.array(rec["counts"]["values"]), proto.analysis, proto.design,
                          harvest=proto.harvest)
-    assert res.min_entropy_bits == pytest.approx(direct.min_entropy_bits, rel=1e-12)
+    assert res.certified_min_entropy_bits == pytest.approx(direct.min_entropy_bits, rel=1e-12)
     # Raw output A^n B^n of every round (entropy-accumulation methods note, section 1).
     assert res.raw_bits == 2 * 1_000_000
     # Error budget eps_EA + 2 eps_s + eps_ext (methods note, section 5; TSSR 2011 for 2 eps_s).
     a = proto.analysis
-    assert res.error == pytest.approx(a.eps_ea + 2 * a.eps_s + proto.extractor.eps_ext, rel=1e-12)
+    assert res.soundness_error == pytest.approx(a.eps_ea + 2 * a.eps_s + proto.extractor.eps_ext, rel=1e-12)
 
 
 def test_spotcheck_protocol_aborts_classical_devices(spot_logs, tmp_path):
@@ -355,10 +356,10 @@ def test_pef_streaming_harvests_analysed_trials_up_to_success(tmp_path):
     raw[0::2], raw[1::2] = tr.a[first:last + 1], tr.b[first:last + 1]
     assert res.record["harvest"]["raw_sha256"] == hashlib.sha256(np.packbits(raw).tobytes()).hexdigest()
     # Extractor min-entropy sigma_target - 1 (the PEF module's documented rule).
-    assert res.min_entropy_bits == pytest.approx(128 - 1)
+    assert res.certified_min_entropy_bits == pytest.approx(128 - 1)
     # Reading stopped at the success trial: the record covers header + trials 0..last only.
     lg = res.record["log"]
-    assert lg["scope"] == "prefix" and lg["stopped_early"] is True
+    assert lg["coverage"] == "prefix" and lg["stopped_early"] is True
     assert lg["stop_trial_index"] == last and lg["trials"] == lg["trials_read"] == last + 1
     assert lg["bytes_read"] == 24 + last + 1 < log.stat().st_size
     assert lg["sha256"] == hashlib.sha256(log.read_bytes()[:24 + last + 1]).hexdigest()
@@ -432,7 +433,7 @@ def test_pef_early_stop_reads_a_prefix_and_reports_the_oracle_index(fast_pef_log
     assert k == _oracle_success_index(codes, factors, thr + 1e-9) and k >= 0
     assert res.success_trial_index == res.stop_trial_index == det["success_trial_index"] == k
     lg = res.record["log"]
-    assert (lg["scope"], lg["stopped_early"], lg["ended_by"]) == ("prefix", True, "decision")
+    assert (lg["coverage"], lg["stopped_early"], lg["ended_by"]) == ("prefix", True, "decision")
     assert lg["trials_read"] == lg["trials"] == k + 1
     assert lg["bytes_read"] == lg["size_bytes"] == 24 + k + 1 < bad_tail.stat().st_size
     # The digest covers exactly the header and trials 0..k; counts are of those trials only.

@@ -44,7 +44,8 @@ def test_certify_json_and_exit_0(files, tmp_path):
                                "--key", str(files / "op.key")])
     assert r.exit_code == 0, r.output
     d = json.loads(r.stdout)
-    for key in ("status", "output_bits", "bits_file", "record_file", "min_entropy_bits", "error"):
+    for key in ("status", "output_bits", "bits_file", "record_file", "certified_min_entropy_bits",
+                "soundness_error"):
         assert key in d
     assert d["status"] == "certified" and d["output_bits"] > 0
     assert Path(d["bits_file"]).stat().st_size == (d["output_bits"] + 7) // 8
@@ -223,7 +224,7 @@ def test_follow_stops_at_the_target_while_the_log_grows(files, tmp_path):
     assert still_acquiring
     d = json.loads(r.stdout)
     assert d["status"] == "certified" and d["stopped_early"] is True
-    assert d["log_scope"] == "prefix" and d["ended_by"] == "decision"
+    assert d["log_coverage"] == "prefix" and d["ended_by"] == "decision"
     k = d["stop_trial_index"]
     assert k == d["success_trial_index"] and d["trials"] == k + 1
     assert d["bytes_read"] == 24 + k + 1 < log.stat().st_size
@@ -251,7 +252,7 @@ def test_follow_idle_timeout_and_trailer_abort_with_a_record(files, tmp_path):
     assert r.exit_code == 3, r.output
     d = json.loads(r.stdout)
     assert d["status"] == "aborted" and "idle timeout" in d["abort_reason"]
-    assert d["ended_by"] == "idle-timeout" and d["log_scope"] == "prefix" and d["trials"] == 200
+    assert d["ended_by"] == "idle-timeout" and d["log_coverage"] == "prefix" and d["trials"] == 200
     assert Path(d["record_file"]).exists()
     r1 = _runner().invoke(app, ["verify", d["record_file"], "--log", str(log)])
     assert r1.exit_code == 4, r1.output  # consistent; unsigned: integrity only
@@ -260,7 +261,7 @@ def test_follow_idle_timeout_and_trailer_abort_with_a_record(files, tmp_path):
     r = _runner().invoke(app, [*args, "--out", str(tmp_path / "o2"), "--idle-timeout", "5"])
     assert r.exit_code == 3, r.output
     d = json.loads(r.stdout)
-    assert d["ended_by"] == "end-of-log" and d["log_scope"] == "whole"
+    assert d["ended_by"] == "end-of-log" and d["log_coverage"] == "whole"
     assert "log ended before the target was reached" in d["abort_reason"]
 
 

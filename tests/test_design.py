@@ -214,7 +214,22 @@ def test_honest_runs_of_every_shipped_protocol_certify(honest, tmp_path, log, pr
     res = certify(honest / log, PROTOS / proto, honest / "seed.bin", tmp_path / "out")
     assert res.status == "certified", res.abort_reason
     rec = res.record
-    assert rec["format"] == "dicert-record/2"
+    assert rec["format"] == "dicert-record/3"
+    # The error budget's terms sum to the soundness error, for every method (union bound over
+    # the failure events; composable security, Tomamichel, Schaffner, Smith & Renner, IEEE
+    # Trans. Inf. Theory 57, 5524 (2011)), and the total is the method's published sum.
+    terms = rec["error_budget"]["terms"]
+    assert math.fsum(x["value"] for x in terms) == pytest.approx(rec["soundness_error"],
+                                                                 rel=1e-15)
+    assert rec["error_budget"]["total"] == rec["soundness_error"] == res.soundness_error
+    proto_obj = load_protocol(PROTOS / proto)
+    a, e_ext = proto_obj.analysis, proto_obj.extractor.eps_ext
+    want = {"martingale": lambda: a.eps_est + e_ext,  # Pironio et al., Nature 464 (2010)
+            "eat": lambda: a.eps_ea + 2 * a.eps_s + e_ext,  # Arnon-Friedman et al. 2019
+            "pef": lambda: a.eps_pe + e_ext}[proto_obj.method]()  # Knill et al., PRR 2 (2020)
+    assert rec["soundness_error"] == pytest.approx(want, rel=1e-15)
+    assert [x["name"] for x in terms].count("eps_ext") == 1 and all(
+        x["meaning"] for x in terms)
     des = rec["design"]
     assert des["passed"] and des["significance"] == 1e-9
     assert des["trials"]["source"] == "log" and "taken from the log" in des["trials"]["note"]
@@ -429,7 +444,7 @@ def test_declared_trial_count(tmp_path):
     assert res.certified, res.abort_reason
     lg = res.record["log"]
     assert lg["trials"] == 100_000 and lg["trials_in_log"] == 120_000
-    assert lg["scope"] == "prefix" and lg["ended_by"] == "declared-trials"
+    assert lg["coverage"] == "prefix" and lg["ended_by"] == "declared-trials"
     assert res.raw_bits == 2 * 100_000
     assert res.record["design"]["trials"]["source"] == "declared"
     verify(res.record_file, log=log, seed=seed, bits=res.bits_file)

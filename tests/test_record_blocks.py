@@ -58,13 +58,13 @@ def test_block_values_match_a_per_trial_oracle(certified):
     assert sum(b["trials"] for b in blocks) == 40_000
     for b in blocks:
         stop = b["first_trial"] + b["trials"]
-        assert b["chsh"] == pytest.approx(_naive_block_chsh(trials, b["first_trial"], stop),
+        assert b["chsh_estimate"] == pytest.approx(_naive_block_chsh(trials, b["first_trial"], stop),
                                           abs=1e-12)
         # Azuma-Hoeffding half-width (8/gamma) sqrt(ln(1/eps) / (2 n)) with gamma = 1
         # (Azuma 1967; width of the estimator's range as in the methods note).
         half = 8.0 * math.sqrt(math.log(1 / sec["eps_per_side"]) / (2 * b["trials"]))
-        assert b["chsh_upper"] - b["chsh"] == pytest.approx(half, rel=1e-12)
-        assert b["chsh"] - b["chsh_lower"] == pytest.approx(half, rel=1e-12)
+        assert b["chsh_upper_bound"] - b["chsh_estimate"] == pytest.approx(half, rel=1e-12)
+        assert b["chsh_estimate"] - b["chsh_lower_bound"] == pytest.approx(half, rel=1e-12)
     total = np.sum([b["counts"] for b in blocks], axis=0)
     assert total.tolist() == np.asarray(result.record["counts"]["values"]).reshape(-1).tolist()
 

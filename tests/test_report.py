@@ -155,14 +155,15 @@ def html_cells(text):
 
 
 MD_ROW = re.compile(r"^\| (?P<label>.+?) \| (?P<value>.+?) \| `(?P<key>[^`]+)` \|$")
-MD_EPS = re.compile(r"^\| (?P<label>.+?) \| (?P<value>.+?) \| .+? \| `(?P<key>eps\.[^`]+)` \|$")
+MD_EPS = re.compile(r"^\| (?P<label>.+?) \| (?P<value>.+?) \| .+? \| "
+                    r"`(?P<key>(?:error_budget\.|soundness_error)[^`]*)` \|$")
 
 #: Values the report must show for a certified record (the brief's list: digests in full,
 #: trials, test rounds, bounds, error terms, bits, seed use).
 CORE_KEYS = {"record_sha256", "log.sha256", "log.files.0.sha256", "log.trials",
-             "estimate.test_trials", "estimate.chsh_lower", "estimate.log10_p_value_local",
-             "certified_min_entropy_bits", "eps.total", "extractor.output_bits",
-             "extractor.output_sha256", "extractor.seed_sha256", "extractor.seed_bits_used",
+             "estimate.test_rounds", "estimate.chsh_lower_bound", "estimate.log10_p_value_local",
+             "certified_min_entropy_bits", "soundness_error", "extractor.output_bits",
+             "extractor.output_sha256", "extractor.seed_sha256", "extractor.seed_bits",
              "protocol.sha256", "signature.key_fingerprint"}
 
 
@@ -175,7 +176,8 @@ def md_cells(text, record):
         if not m:
             continue
         key, label, value = m["key"], m["label"], m["value"]
-        if key.startswith("eps.") or key.endswith((".eps", "_eps", "entropy_error", "eps_ext")):
+        if key.startswith("error_budget.") or key == "soundness_error" or key.endswith(
+                (".eps_est", "_eps", "entropy_error", "eps_ext")):
             kind, dec = "exact", 0
         elif "rounded down" in label:
             dec = len(value.split(".")[1]) if "." in value else 0
@@ -189,7 +191,7 @@ def md_cells(text, record):
             v = resolve(record, key)
             kind = ("int" if isinstance(v, int) and not isinstance(v, bool) else
                     "text" if not isinstance(v, float) else
-                    "approx" if key in ("estimate.chsh", "estimate.chsh_stderr",
+                    "approx" if key in ("estimate.chsh_estimate", "estimate.chsh_stderr",
                                         "estimate.win_probability") else "exact")
             dec = 0
         out.append((key, kind, dec, value))
@@ -212,7 +214,8 @@ def test_every_tagged_number_in_html_matches_the_record(records, name):
     keys = {c[0] for c in cells}
     if name == "certified":
         assert CORE_KEYS <= keys, CORE_KEYS - keys
-        assert {f"eps.terms.{t}" for t in rec["eps"]["terms"]} <= keys  # term by term
+        assert {f"error_budget.terms.{i}.value"
+                for i in range(len(rec["error_budget"]["terms"]))} <= keys  # term by term
 
 
 @pytest.mark.parametrize("name", ["certified", "aborted", "withheld", "pef", "eat", "v1"])
@@ -228,7 +231,8 @@ def test_every_tagged_number_in_markdown_matches_the_record(records, name):
     keys = {c[0] for c in cells}
     if name == "certified":
         assert CORE_KEYS <= keys, CORE_KEYS - keys
-        assert {f"eps.terms.{t}" for t in rec["eps"]["terms"]} <= keys
+        assert {f"error_budget.terms.{i}.value"
+                for i in range(len(rec["error_budget"]["terms"]))} <= keys
 
 
 def test_design_check_rows_match_the_record(records):
@@ -252,15 +256,15 @@ def test_summary_paragraph_numbers_match_the_record(records):
     text, _ = render_markdown(rec, with_plan=False)
     summary = text.split("\n\n")[1].replace(NNBSP, "")
     m = re.search(r"\((\d+) files?, (\d+) trials, (\d+) test rounds\)", summary)
-    assert m and int(m[2]) == rec["log"]["trials"] and int(m[3]) == rec["estimate"]["test_trials"]
+    assert m and int(m[2]) == rec["log"]["trials"] and int(m[3]) == rec["estimate"]["test_rounds"]
     lower = Decimal(re.search(r"lower confidence bound of ([\d.]+)", summary)[1])
-    assert lower <= Decimal(rec["estimate"]["chsh_lower"]) < lower + Decimal("1e-6")
+    assert lower <= Decimal(rec["estimate"]["chsh_lower_bound"]) < lower + Decimal("1e-6")
     bits = Decimal(re.search(r"certified ([\d.]+) bits", summary)[1])
     assert bits <= Decimal(rec["certified_min_entropy_bits"]) < bits + Decimal("0.001")
     assert int(re.search(r"produced (\d+) output bits", summary)[1]) == \
         rec["extractor"]["output_bits"]
-    assert float(re.search(r"total soundness error ([\deE.+-]+)\.", summary)[1]) == \
-        rec["eps"]["total"]
+    assert float(re.search(r"soundness error ([\deE.+-]+)\.", summary)[1]) == \
+        rec["soundness_error"] == rec["error_budget"]["total"]
 
 
 def test_rounding_is_in_the_safe_direction():
@@ -268,9 +272,9 @@ def test_rounding_is_in_the_safe_direction():
     rounding boundary must not be rounded to it (conservative rounding: common practice)."""
     from dicert.reporting.content import _fact
 
-    rec = {"estimate": {"chsh_lower": 2.9999999999, "log10_p_value_local": -10.004999,
+    rec = {"estimate": {"chsh_lower_bound": 2.9999999999, "log10_p_value_local": -10.004999,
                         "neg": -1e-9}, "bits": 1234.9999999}
-    assert _fact(rec, "x", "estimate.chsh_lower", "down", decimals=6).text == "2.999999"
+    assert _fact(rec, "x", "estimate.chsh_lower_bound", "down", decimals=6).text == "2.999999"
     assert _fact(rec, "x", "bits", "down", decimals=3).text == "1\u202f234.999"
     assert _fact(rec, "x", "estimate.neg", "down", decimals=6).text == "-0.000001"
     # log10 of a p-value rounded up: -10.004999 -> -10.00 (never the smaller -10.01)
@@ -283,9 +287,10 @@ def test_error_budget_shows_each_term_and_the_meaning_of_the_total(records):
     for name in ("certified", "pef"):
         _, rec = records[name]
         text, _ = render_markdown(rec, with_plan=False)
-        for term, value in rec["eps"]["terms"].items():
-            assert re.search(rf"^\| `{term}` \| {re.escape(repr(float(value)))} \|", text, re.M)
-        assert f"Meaning of the total: {rec['eps']['form']}." in text
+        for term in rec["error_budget"]["terms"]:
+            assert re.search(rf"^\| `{term['name']}` \| {re.escape(repr(float(term['value'])))} "
+                             rf"\| {re.escape(term['meaning'])} \|", text, re.M)
+        assert f"Meaning of the total: {rec['error_budget']['meaning']}." in text
 
 
 def test_acceptance_test_against_its_declared_limit(records):
@@ -383,8 +388,10 @@ def test_chsh_intervals_are_clipped_to_the_physical_range():
     from dicert.reporting.figures import _clip_chsh
 
     rec = {"estimate_blocks": {"blocks": [
-        {"chsh": 2.8, "chsh_lower": 0.5, "chsh_upper": 5.1, "first_trial": 0},
-        {"chsh": -3.0, "chsh_lower": -6.0, "chsh_upper": 1.0, "first_trial": 10}]}}
+        {"chsh_estimate": 2.8, "chsh_lower_bound": 0.5, "chsh_upper_bound": 5.1,
+         "first_trial": 0},
+        {"chsh_estimate": -3.0, "chsh_lower_bound": -6.0, "chsh_upper_bound": 1.0,
+         "first_trial": 10}]}}
     s = _clip_chsh(block_series(rec)[0])
     assert s.upper == (4.0, 1.0) and s.lower == (0.5, -4.0)
 
@@ -450,8 +457,8 @@ def test_cli_json_lists_files_and_headline_numbers(records, tmp_path):
     assert js["files"] == [str(out)] and js["format"] == "html" and out.exists()
     assert js["record_sha256"] == rec["record_sha256"]
     assert js["output_bits"] == rec["extractor"]["output_bits"]
-    assert js["min_entropy_bits"] == rec["certified_min_entropy_bits"]
-    assert js["eps_total"] == rec["eps"]["total"] and js["trials"] == rec["log"]["trials"]
+    assert js["certified_min_entropy_bits"] == rec["certified_min_entropy_bits"]
+    assert js["soundness_error"] == rec["soundness_error"] and js["trials"] == rec["log"]["trials"]
     r = CliRunner().invoke(app, ["report", str(path), "--out", str(tmp_path / "r.md"),
                                  "--no-plan"])
     assert r.exit_code == 0 and "certification report" in r.stdout

@@ -183,22 +183,25 @@ def test_pulse_page_shows_numbers_budget_and_assumptions(site):
     page = (out / "pulses/pulse-000001.html").read_text(encoding="utf-8")
     import html
 
-    for name in record["eps"]["terms"]:
-        assert f"<code>{name}</code>" in page
+    from dicert.stages.record_compat import upgrade_body
+
+    record = upgrade_body(record)  # the site reads records of every format
+    for term in record["error_budget"]["terms"]:
+        assert f"<code>{term['name']}</code>" in page
     for text in record["assumptions"]:
         assert html.escape(text) in page
     assert 'data-pulse="1"' in page and 'id="pulse-result"' in page
-    assert f"{record['estimate']['chsh']:.6g}" in page
+    assert f"{record['estimate']['chsh_estimate']:.6g}" in page
     # Martingale records carry their per-block CHSH series (estimate_blocks): it is plotted.
     assert "no per-block data" not in page
-    assert "CHSH value per block" in page and "<svg" in page
+    assert "CHSH estimate per block" in page and "<svg" in page
     # Bounds are shown rounded down, never above the recorded value; budgets in full.
-    lower = re.search(r"lower confidence bound on CHSH \(rounded down\)</dt><dd>([0-9.]+)<", page)
-    assert 0 <= record["estimate"]["chsh_lower"] - float(lower.group(1)) < 1e-6
+    lower = re.search(r"CHSH lower bound \(rounded down\)</dt><dd>([0-9.]+)<", page)
+    assert 0 <= record["estimate"]["chsh_lower_bound"] - float(lower.group(1)) < 1e-6
     shown = re.search(r"min-entropy \(bits, rounded down\)</dt><dd>([0-9.\u202f]+)<", page)
     value = float(shown.group(1).replace("\u202f", ""))
     assert 0 <= record["certified_min_entropy_bits"] - value < 1e-3
-    assert f'<td class="num">{record["eps"]["total"]!r}</td>' in page
+    assert f'<td class="num">{record["soundness_error"]!r}</td>' in page
     assert 'href="pulse-000002.html"' in page and 'href="../index.html"' in page
 
 
@@ -324,9 +327,10 @@ def test_unsigned_chain_publishes_with_a_warning(tmp_path):
 
 def _blocks_body(values):
     return {"status": "certified", "estimate": {
-        "chsh": 2.7, "blocks": [
-            {"index": k, "first_trial": 1000 * k, "trials": 1000, "chsh": v,
-             "chsh_lower": v - 0.1, "chsh_upper": v + 0.1} for k, v in enumerate(values)]},
+        "chsh_estimate": 2.7, "blocks": [
+            {"index": k, "first_trial": 1000 * k, "trials": 1000, "chsh_estimate": v,
+             "chsh_lower_bound": v - 0.1, "chsh_upper_bound": v + 0.1}
+            for k, v in enumerate(values)]},
         "entropy": {"finite_size": {"method": "martingale-azuma",
                                      "details": {"chsh_threshold": 2.5}}}}
 

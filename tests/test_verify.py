@@ -205,14 +205,17 @@ def _reseal(record_path: Path, edit, key=None) -> dict:
     [
         (lambda b: b["extractor"].__setitem__("output_bits", b["extractor"]["output_bits"] + 1),
          "extractor.output_bits"),
-        (lambda b: b["entropy"]["finite_size"].__setitem__("min_entropy_bits", 1e9),
-         "entropy.finite_size.min_entropy_bits"),
-        (lambda b: b["eps"].__setitem__("total", 1e-30), "eps.total"),
+        (lambda b: b["entropy"]["finite_size"].__setitem__("certified_min_entropy_bits", 1e9),
+         "entropy.finite_size.certified_min_entropy_bits"),
+        (lambda b: b.__setitem__("soundness_error", 1e-30), "soundness_error"),
+        (lambda b: b["error_budget"].__setitem__("total", 1e-30), "error_budget.total"),
+        (lambda b: b["error_budget"]["terms"][0].__setitem__("value", 1e-30),
+         "error_budget.terms[0].value"),
         (lambda b: b["counts"]["values"][1][0][0][0].__setitem__(0, 10**6), "log.trials"),
         (lambda b: b["protocol"].__setitem__("content", b["protocol"]["content"] + "# x\n"),
          "protocol.sha256"),
         (lambda b: b.__setitem__("status", "certified") or b["extractor"].__setitem__(
-            "seed_bits_used", 10**9), "extractor.seed_bits_used"),
+            "seed_bits", 10**9), "extractor.seed_bits"),
     ],
 )
 def test_resealed_forgeries_fail_internal_consistency(run, tmp_path, edit, field):
@@ -337,7 +340,7 @@ def test_prefix_record_verifies_as_the_log_grows_and_catches_tampering_in_the_pr
     seed = tmp_path / "seed.bin"
     seed.write_bytes(np.random.default_rng(4).bytes(4_000))
     res = certify(log, _fast_pef_protocol(), seed, tmp_path / "out")
-    assert res.status == "certified" and res.log_scope == "prefix"
+    assert res.status == "certified" and res.log_coverage == "prefix"
     n_pre = res.record["log"]["bytes_read"]
     assert n_pre < log.stat().st_size
     rep = verify(res.record_file, log=log, seed=seed, bits=res.bits_file)
@@ -371,7 +374,7 @@ def test_record_without_log_scope_members_still_verifies(run, tmp_path):
     rec = read_record(run["record"])
     body = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
     body["log"] = {k: v for k, v in body["log"].items()
-                   if k not in ("scope", "bytes_read", "trials_read", "stopped_early",
+                   if k not in ("coverage", "bytes_read", "trials_read", "stopped_early",
                                 "stop_trial_index", "ended_by", "follow")}
     old = tmp_path / "old.json"
     old.write_bytes(record_bytes(seal_record(body, None)))

@@ -321,7 +321,7 @@ def _plain(exc: VerificationError) -> str:
 
 
 def _seed_used(extractor: Mapping[str, Any]) -> bool:
-    for name in ("seed_bits_used", "output_bits"):
+    for name in ("seed_bits", "seed_bits_used", "output_bits"):  # /3 name, then /1-/2
         value = extractor.get(name)
         if isinstance(value, (int, float)) and not isinstance(value, bool):
             return value > 0

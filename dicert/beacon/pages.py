@@ -84,10 +84,10 @@ class PulseView:
     time: str | None
     trials: int | None
     output_bits: int | None
-    chsh: float | None
-    chsh_lower: float | None
-    min_entropy_bits: float | None
-    eps_total: float | None
+    chsh_estimate: float | None
+    chsh_lower_bound: float | None
+    certified_min_entropy_bits: float | None
+    soundness_error: float | None
     output_sha256: str | None
     key_fingerprint: str | None
     protocol_name: str | None
@@ -108,14 +108,23 @@ class SiteInfo:
     caution: str
 
 
+def _today(record: Mapping[str, Any]) -> dict:
+    """A record of any format under today's member names (dicert-record/3)."""
+    from dicert.stages.record_compat import upgrade_body
+
+    return upgrade_body(record)
+
+
 def pulse_view(record: Mapping[str, Any], *, index: int, record_file: str, page_file: str,
                record_sha256: str, file_sha256: str, file_bytes: int) -> PulseView:
-    """Summarise a record for the pages (tolerant: a missing member shows as a dash)."""
+    """Summarise a record for the pages (tolerant: a missing member shows as a dash; records
+    of earlier formats are read under today's names, :mod:`dicert.stages.record_compat`)."""
+    record = _today(record)
     ts = _get(record, "volatile.timestamps")
     time = None
     if isinstance(ts, Mapping):
         time = _str(ts.get("finished")) or _str(ts.get("started"))
-    chsh_lower = _num(_get(record, "estimate.chsh_lower"))
+    chsh_lower = _num(_get(record, "estimate.chsh_lower_bound"))
     return PulseView(
         index=index, record_file=record_file, page_file=page_file,
         record_sha256=record_sha256,
@@ -125,9 +134,9 @@ def pulse_view(record: Mapping[str, Any], *, index: int, record_file: str, page_
         trials=_int(_get(record, "log.trials")) if _int(_get(record, "log.trials")) is not None
         else _int(_get(record, "estimate.trials")),
         output_bits=_int(_get(record, "extractor.output_bits")),
-        chsh=_num(_get(record, "estimate.chsh")), chsh_lower=chsh_lower,
-        min_entropy_bits=_num(record.get("certified_min_entropy_bits")),
-        eps_total=_num(_get(record, "eps.total")),
+        chsh_estimate=_num(_get(record, "estimate.chsh_estimate")), chsh_lower_bound=chsh_lower,
+        certified_min_entropy_bits=_num(record.get("certified_min_entropy_bits")),
+        soundness_error=_num(record.get("soundness_error")),
         output_sha256=_str(_get(record, "extractor.output_sha256")),
         key_fingerprint=_str(_get(record, "signature.key_fingerprint")),
         protocol_name=_str(_get(record, "protocol.name")),
@@ -142,7 +151,7 @@ def pulse_view(record: Mapping[str, Any], *, index: int, record_file: str, page_
 class BlockSeries:
     """One per-block quantity found in a record, ready to plot.
 
-    ``kind`` is ``chsh`` (CHSH value per block, optional interval) or ``pef-score`` (each
+    ``kind`` is ``chsh`` (CHSH estimate per block, optional interval) or ``pef-score`` (each
     block's share of log2 T of a probability-estimation run).
     """
 
@@ -175,18 +184,19 @@ def _score(value: Any) -> float | None:
 
 def block_series(record: Mapping[str, Any]) -> list[BlockSeries]:
     """Every per-block series the record holds (lists named ``blocks``/``per_block`` whose
-    entries carry ``chsh`` or ``log2_t_block``), in a fixed order."""
+    entries carry ``chsh_estimate`` or ``log2_t_block``), in a fixed order; the record is
+    read under today's names (:func:`dicert.stages.record_compat.upgrade_body`)."""
     found: list[tuple[str, list]] = []
     _walk_block_lists(record, "", found)
     series: list[BlockSeries] = []
     for path, blocks in found:
         firsts = tuple(_int(b.get("first_trial")) for b in blocks)
-        if any(_num(b.get("chsh")) is not None for b in blocks):
-            lo = tuple(_num(b.get("chsh_lower")) for b in blocks)
-            hi = tuple(_num(b.get("chsh_upper")) for b in blocks)
+        if any(_num(b.get("chsh_estimate")) is not None for b in blocks):
+            lo = tuple(_num(b.get("chsh_lower_bound")) for b in blocks)
+            hi = tuple(_num(b.get("chsh_upper_bound")) for b in blocks)
             series.append(BlockSeries(
-                kind="chsh", path=path, label="CHSH value per block",
-                first_trials=firsts, values=tuple(_num(b.get("chsh")) for b in blocks),
+                kind="chsh", path=path, label="CHSH estimate per block",
+                first_trials=firsts, values=tuple(_num(b.get("chsh_estimate")) for b in blocks),
                 lower=lo if any(v is not None for v in lo) else None,
                 upper=hi if any(v is not None for v in hi) else None))
         elif any("log2_t_block" in b for b in blocks):
@@ -436,9 +446,9 @@ def render_index(info: SiteInfo, pulses: Sequence[PulseView]) -> str:
     """The site's ``index.html``: the chain facts, the check panel and the table of pulses."""
     rows = []
     for p in pulses:
-        chsh = _fmt(p.chsh)
-        if p.chsh_lower is not None:
-            chsh += f'<br><span class="small">lower bound {_down(p.chsh_lower, 5)}</span>'
+        chsh = _fmt(p.chsh_estimate)
+        if p.chsh_lower_bound is not None:
+            chsh += f'<br><span class="small">lower bound {_down(p.chsh_lower_bound, 5)}</span>'
         rows.append(
             f'<tr id="pulse-{p.index}" data-index="{p.index}" '
             f'data-record-sha256="{_e(p.record_sha256)}">\n'
@@ -447,7 +457,7 @@ def render_index(info: SiteInfo, pulses: Sequence[PulseView]) -> str:
             f'<td class="status status-{_e(p.status or "unknown")}">{_e(p.status or _DASH)}</td>\n'
             f'<td class="num">{_fmt(p.output_bits)}</td>\n'
             f'<td class="num">{chsh}</td>\n'
-            f'<td class="num">{_down(p.min_entropy_bits, 1)}</td>\n'
+            f'<td class="num">{_down(p.certified_min_entropy_bits, 1)}</td>\n'
             f"<td>record {_code(p.record_sha256)}<br>previous {_code(p.previous_record_sha256)}"
             f"<br>output {_code(p.output_sha256)}</td>\n"
             f'<td class="check-cell" data-state="pending" data-result-for="{p.index}">'
@@ -480,26 +490,29 @@ def _dl(rows: Sequence[tuple[str, str]]) -> str:
 
 
 def _eps_table(record: Mapping[str, Any]) -> str:
-    """The error budget term by term, numbers in full (as recorded, never rounded)."""
-    eps = record.get("eps")
-    if not isinstance(eps, Mapping):
+    """The error budget term by term, numbers in full (as recorded, never rounded); the
+    record under today's names (:func:`dicert.stages.record_compat.upgrade_body`)."""
+    budget = record.get("error_budget")
+    if not isinstance(budget, Mapping):
         return "<p>The record holds no error budget.</p>\n"
     rows = []
-    terms = eps.get("terms")
-    if isinstance(terms, Mapping):
-        for name in sorted(terms):
-            rows.append(f"<tr><td><code>{_e(name)}</code></td>"
-                        f'<td class="num">{_exact(terms[name])}</td></tr>')
-    rows.append('<tr class="total"><td>total soundness error</td>'
-                f'<td class="num">{_exact(eps.get("total"))}</td></tr>')
-    other = [(k, eps[k]) for k in sorted(eps) if k not in ("terms", "total", "form")]
-    form = _str(eps.get("form"))
+    terms = budget.get("terms")
+    for term in terms if isinstance(terms, list) else []:
+        if isinstance(term, Mapping):
+            rows.append(f"<tr><td><code>{_e(_str(term.get('name')) or _DASH)}</code></td>"
+                        f'<td class="num">{_exact(term.get("value"))}</td>'
+                        f"<td>{_e(_str(term.get('meaning')) or '')}</td></tr>")
+    rows.append('<tr class="total"><td>soundness error</td>'
+                f'<td class="num">{_exact(record.get("soundness_error"))}</td>'
+                "<td>the sum of the terms</td></tr>")
+    other = [(k, budget[k]) for k in sorted(budget) if k not in ("terms", "total", "meaning")]
+    form = _str(budget.get("meaning"))
     extra = ""
     if other:
-        extra = ("<p>Other error parameters in the record's <code>eps</code> section:</p>\n"
-                 + _dl([(k, _exact(v)) for k, v in other]))
-    return ('<table class="eps"><thead><tr><th>term</th><th>value</th></tr></thead>\n<tbody>'
-            + "\n".join(rows) + "</tbody></table>\n"
+        extra = ("<p>Other members of the record's error budget:</p>\n"
+                 + _dl([(k, _e(json.dumps(v, sort_keys=True))) for k, v in other]))
+    return ('<table class="eps"><thead><tr><th>term</th><th>value</th><th>meaning</th></tr>'
+            "</thead>\n<tbody>" + "\n".join(rows) + "</tbody></table>\n"
             + (f'<p class="small">Meaning of the total: {_e(form)}</p>\n' if form else "")
             + extra)
 
@@ -551,6 +564,7 @@ def _checks(record: Mapping[str, Any]) -> str:
 def render_pulse_page(info: SiteInfo, pulse: PulseView, record: Mapping[str, Any], *,
                       previous: PulseView | None, following: PulseView | None) -> str:
     """The page of one pulse (``pulses/pulse-NNNNNN.html``)."""
+    as_written, record = record, _today(record)  # numbers under today's names
     root = ".."
     est = record.get("estimate") if isinstance(record.get("estimate"), Mapping) else {}
     fin = _get(record, "entropy.finite_size") or {}
@@ -561,18 +575,19 @@ def render_pulse_page(info: SiteInfo, pulse: PulseView, record: Mapping[str, Any
         ("abort reason", _e(_str(record.get("abort_reason")) or _DASH)),
         ("time (UTC)", _e(pulse.time or _DASH)),
         ("trials", _fmt(pulse.trials)),
-        ("CHSH estimate", _fmt(pulse.chsh)),
+        ("CHSH estimate", _fmt(pulse.chsh_estimate)),
         ("its standard error", _fmt(_num(est.get("chsh_stderr")))),
-        ("lower confidence bound on CHSH (rounded down)", _down(pulse.chsh_lower, 6)),
+        ("CHSH lower bound (rounded down)", _down(pulse.chsh_lower_bound, 6)),
         ("acceptance threshold (declared in the protocol)", _exact(threshold)),
         ("CHSH-game win probability", _fmt(_num(est.get("win_probability")))),
         ("log10 p-value of local realism", _fmt(_num(est.get("log10_p_value_local")))),
         ("finite-size method", _e(pulse.method or _DASH)),
         ("side information", _e(_str(fin.get("side_information") if isinstance(fin, Mapping)
                                       else None) or _DASH)),
-        ("certified smooth min-entropy (bits, rounded down)", _down(pulse.min_entropy_bits, 3)),
+        ("certified min-entropy (bits, rounded down)",
+         _down(pulse.certified_min_entropy_bits, 3)),
         ("output bits", _fmt(pulse.output_bits)),
-        ("total soundness error", _exact(pulse.eps_total)),
+        ("soundness error", _exact(pulse.soundness_error)),
         ("protocol", _e(pulse.protocol_name or _DASH) + " "
          + _code(_str(_get(record, "protocol.sha256")))),
     ]
@@ -603,7 +618,7 @@ def render_pulse_page(info: SiteInfo, pulse: PulseView, record: Mapping[str, Any
     if following is not None:
         nav.append(f'<a href="{_e(pulse_page_name(following.index))}">pulse '
                    f"{following.index} &rarr;</a>")
-    full = json.dumps(record, indent=2, sort_keys=True, ensure_ascii=False, allow_nan=False)
+    full = json.dumps(as_written, indent=2, sort_keys=True, ensure_ascii=False, allow_nan=False)
     return (
         _head(f"{info.title}: pulse {pulse.index}", root)
         + f'<body data-root="{root}" data-page="pulse" data-pulse="{pulse.index}">\n'

@@ -112,10 +112,10 @@ def certify_cmd(
             "record_file": str(result.record_file),
             "record_sha256": result.record_sha256,
             "chain_file": str(result.chain_file) if result.chain_file else None,
-            "min_entropy_bits": result.min_entropy_bits,
-            "error": result.error,
+            "certified_min_entropy_bits": result.certified_min_entropy_bits,
+            "soundness_error": result.soundness_error,
             "trials": result.trials,
-            "log_scope": lg.get("scope"),
+            "log_coverage": lg.get("coverage"),
             "bytes_read": lg.get("bytes_read"),
             "stopped_early": result.stopped_early,
             "stop_trial_index": result.stop_trial_index,
@@ -139,12 +139,12 @@ def certify_cmd(
             ("status", result.status.upper()),
             ("trials", result.trials),
             ("log read", _read_text(lg)),
-            ("CHSH estimate", rec["estimate"].get("chsh")),
+            ("CHSH estimate", rec["estimate"].get("chsh_estimate")),
             ("method", f"{fin['method']} ({fin['side_information']} side information)"),
-            ("certified min-entropy (bits)", result.min_entropy_bits),
+            ("certified min-entropy (bits)", result.certified_min_entropy_bits),
             ("raw bits", result.raw_bits),
             ("output bits", result.output_bits),
-            ("total soundness error", result.error),
+            ("soundness error", result.soundness_error),
             ("bits file", str(result.bits_file) if result.bits_file else "-"),
             ("record", str(result.record_file)),
             ("record SHA-256", result.record_sha256),
@@ -179,7 +179,7 @@ def certify_cmd(
 def _read_text(lg: dict) -> str:
     """One line on how much of the log the record covers."""
     n, b = lg.get("trials_read"), lg.get("bytes_read")
-    if lg.get("scope") != "prefix":
+    if lg.get("coverage") != "prefix":
         return f"whole log ({b} bytes)"
     if lg.get("stopped_early"):
         return (f"prefix: {n} trials, {b} bytes (stopped early at trial "

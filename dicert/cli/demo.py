@@ -79,11 +79,11 @@ def _simulate(n: int, model: str, visibility: float, rng: Any):
     return simulate_trials(n, device_model("quantum", visibility=visibility), rng=rng)
 
 
-def _demo_seed(rng_seed: int, pulse: int, nbytes: int) -> bytes:
+def _demo_seed(rng_stream: int, pulse: int, nbytes: int) -> bytes:
     """Demo-only extractor seed: reproducible, NOT secret. Real beacons use a true random source."""
     import numpy as np
 
-    g = np.random.Generator(np.random.PCG64(np.random.SeedSequence([rng_seed, 7, pulse])))
+    g = np.random.Generator(np.random.PCG64(np.random.SeedSequence([rng_stream, 7, pulse])))
     return g.bytes(nbytes)
 
 
@@ -133,7 +133,7 @@ def run_demo(out: Path | None = None, *, scenario: dict | None = None,
         raise
 
 
-def _certify_pulses(out: Path, sc: dict, rng_seed: int, protocol: Any, keys: Any, chain: Path,
+def _certify_pulses(out: Path, sc: dict, rng_stream: int, protocol: Any, keys: Any, chain: Path,
                     say) -> list[dict]:
     """Simulate, certify (into the chain) and verify each pulse of the scenario."""
     import numpy as np
@@ -148,16 +148,17 @@ def _certify_pulses(out: Path, sc: dict, rng_seed: int, protocol: Any, keys: Any
     for i, p in enumerate(sc["pulse"], start=1):
         pdir = out / f"pulse-{i}"
         pdir.mkdir()
-        rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([rng_seed, i])))
+        rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence([rng_stream, i])))
         trials = _simulate(int(p["trials"]), p["model"], float(p.get("visibility", 1.0)), rng)
         log_path = pdir / "trials.btl"
         write_log(log_path, trials)
         seed_path = pdir / "seed.bin"
-        atomic_write_bytes(seed_path, _demo_seed(rng_seed, i, (4 * int(p["trials"])) // 8 + 8))
+        atomic_write_bytes(seed_path, _demo_seed(rng_stream, i, (4 * int(p["trials"])) // 8 + 8))
         res = certify(log_path, protocol, seed_path, pdir / "certified", key=keys.private_key_file,
                       chain=chain)
         say(f"{p['label']}: {res.status.upper()}, {res.output_bits} bits "
-            f"(min-entropy {res.min_entropy_bits:.1f} bits, error {res.error:.3g})")
+            f"(certified min-entropy {res.certified_min_entropy_bits:.1f} bits, soundness error "
+            f"{res.soundness_error:.3g})")
         rep = verify(res.record_file, log=log_path, seed=seed_path,
                      public_key=keys.public_key_file)
         if rep.result != "VERIFIED":  # pragma: no cover - the demo's own check
@@ -167,8 +168,9 @@ def _certify_pulses(out: Path, sc: dict, rng_seed: int, protocol: Any, keys: Any
         pulses.append({
             "pulse": i, "label": p["label"], "model": p["model"], "trials": res.trials,
             "status": res.status, "output_bits": res.output_bits,
-            "min_entropy_bits": res.min_entropy_bits, "error": res.error,
-            "chsh": res.record["estimate"].get("chsh"),
+            "certified_min_entropy_bits": res.certified_min_entropy_bits,
+            "soundness_error": res.soundness_error,
+            "chsh_estimate": res.record["estimate"].get("chsh_estimate"),
             "log_file": str(log_path), "seed_file": str(seed_path),
             "bits_file": str(res.bits_file) if res.bits_file else None,
             "record_file": str(res.record_file), "record_sha256": res.record_sha256,
@@ -248,14 +250,14 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     from dicert.verification import verify, verify_chain
 
     protocol = load_protocol(shipped_protocol_path(sc["protocol"]))
-    rng_seed = int(sc["rng_seed"])
+    rng_stream = int(sc["rng_stream"])
     say(f"[invented scenario] {sc['title']}")
     say(f"writing into {out}")
 
     keys = write_keypair(out / "operator-key.pem")
     say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint[:16]}...)")
     chain = out / "chain"
-    pulses = _certify_pulses(out, sc, rng_seed, protocol, keys, chain, say)
+    pulses = _certify_pulses(out, sc, rng_stream, protocol, keys, chain, say)
     chain_report = verify_chain(chain, public_key=keys.public_key_file)
     head = chain_report.head_sha256
     verify_chain(chain, public_key=keys.public_key_file, head=head)
@@ -318,7 +320,8 @@ def demo_cmd(
     rows = []
     for p in summary["pulses"]:
         rows.append((f"pulse {p['pulse']} ({p['model']})",
-                     f"{p['status']}: {p['output_bits']} bits, CHSH {p['chsh']:.4f}"))
+                     f"{p['status']}: {p['output_bits']} bits, CHSH estimate "
+                     f"{p['chsh_estimate']:.4f}"))
     for c in summary["tamper_checks"]:
         rows.append((f"tampered {c['tampered']}", f"detected ({c['field'] or 'error'})"))
     rows.append(("outputs", summary["out_dir"]))

@@ -56,11 +56,12 @@ def report(
                                                    else "none")),
         ("status", result.status or "-"),
         ("trials", str(result.trials) if result.trials is not None else "-"),
-        ("CHSH lower bound (rounded down)", _down(result.chsh_lower, 6)),
-        ("certified min-entropy, bits (rounded down)", _down(result.min_entropy_bits, 3)),
+        ("CHSH lower bound (rounded down)", _down(result.chsh_lower_bound, 6)),
+        ("certified min-entropy, bits (rounded down)",
+         _down(result.certified_min_entropy_bits, 3)),
         ("output bits", str(result.output_bits) if result.output_bits is not None else "-"),
-        ("total soundness error", repr(result.eps_total) if result.eps_total is not None
-         else "-"),
+        ("soundness error", repr(result.soundness_error)
+         if result.soundness_error is not None else "-"),
         ("record", result.record_sha256 or "-"),
     ]
     for row in rows:

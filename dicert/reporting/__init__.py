@@ -45,11 +45,16 @@ class ReportResult:
     figures: tuple[str, ...]
     status: str | None
     trials: int | None
-    chsh_lower: float | None
-    min_entropy_bits: float | None
+    chsh_lower_bound: float | None
+    certified_min_entropy_bits: float | None
     output_bits: int | None
-    eps_total: float | None
+    soundness_error: float | None
     record_sha256: str | None
+
+    # Deprecated names of earlier versions (read-only).
+    chsh_lower = property(lambda self: self.chsh_lower_bound)
+    min_entropy_bits = property(lambda self: self.certified_min_entropy_bits)
+    eps_total = property(lambda self: self.soundness_error)
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows: list[tuple[str, object]] = [("out", self.out), ("format", self.format),
@@ -57,9 +62,10 @@ class ReportResult:
                                           ("output_bits", self.output_bits)]
         if full:
             rows += [("figures", len(self.figures)), ("trials", self.trials),
-                     ("chsh_lower", self.chsh_lower),
-                     ("min_entropy_bits", self.min_entropy_bits),
-                     ("eps_total", self.eps_total), ("record_sha256", self.record_sha256)]
+                     ("chsh_lower_bound", self.chsh_lower_bound),
+                     ("certified_min_entropy_bits", self.certified_min_entropy_bits),
+                     ("soundness_error", self.soundness_error),
+                     ("record_sha256", self.record_sha256)]
         return rows
 
 
@@ -107,10 +113,13 @@ def _load_record(path: str | os.PathLike[str]) -> dict[str, Any]:
     if record.get("kind", "certification") != "certification":
         raise ReportError(f"{path}: key 'kind' is {record.get('kind')!r}; only certification "
                           "records have a report")
-    for key in ("status", "log", "eps"):
+    from dicert.stages.record_compat import CURRENT_FORMAT, upgrade_body
+
+    budget = "error_budget" if fmt == CURRENT_FORMAT else "eps"  # its name in that format
+    for key in ("status", "log", budget):
         if key not in record:
             raise ReportError(f"{path}: key {key!r} missing; not a certification record")
-    return record
+    return upgrade_body(record)  # records /1 and /2: today's member names
 
 
 def write_report(record: str | os.PathLike[str], out: str | os.PathLike[str], *,
@@ -161,7 +170,8 @@ def write_report(record: str | os.PathLike[str], out: str | os.PathLike[str], *,
         record=str(record), out=str(out_path), format=kind, files=tuple(written),
         figures=tuple(figures), status=_str(rec.get("status")),
         trials=trials if isinstance(trials, int) else None,
-        chsh_lower=_num(_get(rec, "estimate.chsh_lower")),
-        min_entropy_bits=_num(rec.get("certified_min_entropy_bits")),
+        chsh_lower_bound=_num(_get(rec, "estimate.chsh_lower_bound")),
+        certified_min_entropy_bits=_num(rec.get("certified_min_entropy_bits")),
         output_bits=out_bits if isinstance(out_bits, int) else None,
-        eps_total=_num(_get(rec, "eps.total")), record_sha256=_str(rec.get("record_sha256")))
+        soundness_error=_num(rec.get("soundness_error")),
+        record_sha256=_str(rec.get("record_sha256")))

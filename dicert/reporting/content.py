@@ -26,7 +26,7 @@ EPS_MEANING = {
     "eps_ext": "extraction: distance of the extractor's output from uniform given a source of "
                "that min-entropy (leftover hash lemma)",
     "eps_ea": "entropy accumulation: error of the finite-size entropy bound",
-    "eps_s": "smoothing parameter of the smooth min-entropy",
+    "eps_s": "smoothing parameter of the min-entropy (purified distance)",
     "eps_pe": "probability estimation: error of the estimated probability bound",
     "eps_comp": "completeness: probability that honest devices are refused",
 }
@@ -237,7 +237,7 @@ def _summary(record: Mapping[str, Any]) -> str:
     files = _get(record, "log.files")
     nfiles = len(files) if isinstance(files, list) else 0
     trials = _get(record, "log.trials")
-    tests = _get(record, "estimate.test_trials")
+    tests = _get(record, "estimate.test_rounds")
     tool = _get(record, "tool") or {}
     parts = [
         f"{tool.get('name', 'dicert')} {tool.get('version', '')}".strip()
@@ -245,18 +245,18 @@ def _summary(record: Mapping[str, Any]) -> str:
         f"{_fmt(trials)} trials, {_fmt(tests)} test rounds) under the protocol '{proto}', "
         f"with the finite-size method {method} (single-round bound {single}) against an "
         f"adversary holding {side} side information."]
-    lower = _num(_get(record, "estimate.chsh_lower"))
+    lower = _num(_get(record, "estimate.chsh_lower_bound"))
     if lower is not None:
-        parts.append(f"The CHSH value was estimated at "
-                     f"{_fmt(_num(_get(record, 'estimate.chsh')))} with a lower confidence "
+        parts.append(f"The CHSH estimate is "
+                     f"{_fmt(_num(_get(record, 'estimate.chsh_estimate')))} with a lower confidence "
                      f"bound of {_down(lower, 6)} (local bound 2).")
     if status == "certified":
         parts.append(
             f"The pre-declared acceptance test passed; the run certified "
-            f"{_down(_num(record.get('certified_min_entropy_bits')), 3)} bits of smooth "
+            f"{_down(_num(record.get('certified_min_entropy_bits')), 3)} bits of certified "
             f"min-entropy and the Toeplitz extractor produced "
-            f"{_fmt(_get(record, 'extractor.output_bits'))} output bits, with total soundness "
-            f"error {_exact(_num(_get(record, 'eps.total')))}.")
+            f"{_fmt(_get(record, 'extractor.output_bits'))} output bits, with soundness "
+            f"error {_exact(_num(_get(record, 'soundness_error')))}.")
     elif status == "aborted":
         parts.append(f"The protocol ABORTED: {_str(record.get('abort_reason')) or 'no reason'}"
                      ". No output bits are certified.")
@@ -274,11 +274,11 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
             f("record format", "format", "text"),
             f("status", "status", "text"),
             f("trial log (SHA-256 of the bytes analysed)", "log.sha256", "digest"),
-            f("scope of the digest", "log.scope", "text"),
+            f("log coverage of the digest", "log.coverage", "text"),
             f("bytes analysed", "log.bytes_read", "int"),
             f("trials analysed", "log.trials", "int"),
             f("trials in the log", "log.trials_in_log", "int"),
-            f("test rounds", "estimate.test_trials", "int"),
+            f("test rounds", "estimate.test_rounds", "int"),
             f("trials declared in the protocol", "design.trials.declared", "int"),
             f("where n came from", "design.trials.source", "text"),
             f("protocol", "protocol.name", "text"),
@@ -292,10 +292,10 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
                 data.append(f(f"file {i + 1}: name", f"log.files.{i}.name", "text"))
                 data.append(f(f"file {i + 1}: bytes", f"log.files.{i}.bytes", "int"))
                 data.append(f(f"file {i + 1}: SHA-256", f"log.files.{i}.sha256", "digest"))
-    estimate = [f("CHSH estimate (point value)", "estimate.chsh", "approx"),
+    estimate = [f("CHSH estimate (point value)", "estimate.chsh_estimate", "approx"),
                 f("its standard error", "estimate.chsh_stderr", "approx"),
-                f("CHSH lower confidence bound (rounded down)", "estimate.chsh_lower", "down"),
-                f("error of the confidence bound", "estimate.eps", "exact"),
+                f("CHSH lower bound (rounded down)", "estimate.chsh_lower_bound", "down"),
+                f("error of the confidence bound (eps_est)", "estimate.eps_est", "exact"),
                 f("confidence bound method", "estimate.bound_method", "text"),
                 f("CHSH-game win probability", "estimate.win_probability", "approx"),
                 f("p-value of local realism (in full)", "estimate.p_value_local", "exact"),
@@ -310,9 +310,9 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
                f("single-round method", f"{fin}.details.single_round.method", "text"),
                f("single-round reference", f"{fin}.details.single_round.reference", "text"),
                f("side information", f"{fin}.side_information", "text"),
-               f("certified smooth min-entropy, bits (rounded down)",
+               f("certified min-entropy, bits (rounded down)",
                  "certified_min_entropy_bits", "down", decimals=3),
-               f("per trial analysed, bits (rounded down)",
+               f("certified rate, bits per trial (rounded down)",
                  "certified_min_entropy_bits / log.trials", "down", decimals=6),
                f("min-entropy if accepted, bits (rounded down)",
                  f"{fin}.details.min_entropy_if_accepted_bits", "down", decimals=3),
@@ -320,10 +320,10 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
                f("smoothing parameter", f"{fin}.smoothing_eps", "exact"),
                f("single-round min-entropy bound", f"{sr}.bound_min_entropy", "text"),
                f("single-round von Neumann bound", f"{sr}.bound_von_neumann", "text"),
-               f("single-round min-entropy at the CHSH lower bound (rounded down)",
-                 f"{sr}.min_entropy_per_round_at_chsh_lower", "down"),
-               f("single-round von Neumann entropy at the CHSH lower bound (rounded down)",
-                 f"{sr}.von_neumann_per_round_at_chsh_lower", "down")]
+               f("single-round bound at the CHSH lower bound, bits (rounded down)",
+                 f"{sr}.single_round_bound_bits_at_chsh_lower_bound", "down"),
+               f("single-round von Neumann bound at the CHSH lower bound, bits (rounded down)",
+                 f"{sr}.von_neumann_bound_bits_at_chsh_lower_bound", "down")]
     output = [f("output bits", "extractor.output_bits", "int"),
               f("output file", "bits_file", "text"),
               f("output (SHA-256)", "extractor.output_sha256", "digest"),
@@ -333,9 +333,9 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
               f("raw bits harvested", "extractor.raw_bits", "int"),
               f("raw bits (SHA-256)", "extractor.raw_sha256", "digest"),
               f("harvested parties", "harvest.parties", "text"),
-              f("harvested rounds", "harvest.rounds", "text"),
+              f("harvest selection", "harvest.select", "text"),
               f("seed bytes supplied", "extractor.seed_bytes", "int"),
-              f("seed bits used (n + m - 1)", "extractor.seed_bits_used", "int"),
+              f("seed bits used (n + m - 1)", "extractor.seed_bits", "int"),
               f("seed (SHA-256)", "extractor.seed_sha256", "digest"),
               f("output screens passed", "output_screens.passed", "text")]
     return [("data", [x for x in data if x.value is not None or x.kind == "digest"]),
@@ -348,15 +348,22 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
 
 
 def _eps_facts(record: Mapping[str, Any]) -> tuple[list[tuple[Fact, str]], Fact | None, str]:
-    terms = _get(record, "eps.terms")
+    """The error budget's terms (each with its meaning), the soundness error and what it
+    means (records of earlier formats are read through record_compat)."""
+    terms = _get(record, "error_budget.terms")
     rows = []
-    if isinstance(terms, Mapping):
-        for name in sorted(terms):
-            rows.append((_fact(record, name, f"eps.terms.{name}", "exact"),
-                         EPS_MEANING.get(name, "as named in the record")))
-    total = _fact(record, "total soundness error", "eps.total", "exact") \
-        if _num(_get(record, "eps.total")) is not None else None
-    return rows, total, _str(_get(record, "eps.form")) or ""
+    if isinstance(terms, list):
+        for i, term in enumerate(terms):
+            if not isinstance(term, Mapping):
+                continue
+            name = str(term.get("name", _DASH))
+            meaning = term.get("meaning")
+            rows.append((_fact(record, name, f"error_budget.terms.{i}.value", "exact"),
+                         str(meaning) if isinstance(meaning, str)
+                         else EPS_MEANING.get(name, "as named in the record")))
+    total = _fact(record, "soundness error", "soundness_error", "exact") \
+        if _num(_get(record, "soundness_error")) is not None else None
+    return rows, total, _str(_get(record, "error_budget.meaning")) or ""
 
 
 def _assumption_groups(record: Mapping[str, Any]) -> list[tuple[str, list[str]]]:

@@ -152,7 +152,10 @@ def _protocol_from_record(record: Mapping[str, Any]):
             tables = json.loads(text)
         except ValueError:
             return None
-    return protocol_from_dict(tables, str(_get(record, "protocol.name") or "<record>"))
+    from dicert.stages.record_compat import CURRENT_FORMAT
+
+    return protocol_from_dict(tables, str(_get(record, "protocol.name") or "<record>"),
+                              legacy_keys=record.get("format") != CURRENT_FORMAT)
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -177,7 +180,7 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
             return None, "the record's protocol text could not be read back"
         from dicert.planning import plan, plan_plot_range
 
-        est_chsh = _num(_get(record, "estimate.chsh"))
+        est_chsh = _num(_get(record, "estimate.chsh_estimate"))
         chsh = None
         if est_chsh is not None:  # plan for devices as good as this run's estimate, at most
             chsh = min(max(est_chsh, 2.0 + 1e-6), CHSH_QUANTUM_BOUND - 1e-9)
@@ -220,7 +223,7 @@ def _figures(record: Mapping[str, Any], *,
                    "the local bound 2, Tsirelson's bound 2\u221a2"
                    + (f" and the protocol's threshold {_fmt_axis(threshold)}" if threshold
                       is not None else "") + ". Informational: certification uses the whole log.")
-            figs.append(_Figure(name="blocks", title="CHSH value per block", caption=cap,
+            figs.append(_Figure(name="blocks", title="CHSH estimate per block", caption=cap,
                                 svg=svg_block_plot(s, threshold=threshold)))
         else:
             cap = (f"Score per block (from {s.path}): each block's share of log2 of the "

@@ -90,6 +90,9 @@ def _html_facts(facts: Sequence[Fact]) -> str:
 def render_html(record: Mapping[str, Any], *, with_plan: bool = True) -> str:
     """The report as one self-contained HTML page (inline SVG figures, inline style, no
     scripts; a Content-Security-Policy meta forbids every external load)."""
+    from dicert.stages.record_compat import upgrade_body
+
+    record = upgrade_body(record)  # records /1 and /2 under today's names
     figs, notes = _figures(record, with_plan=with_plan)
     return _render_html(record, figs, notes)
 
@@ -167,8 +170,8 @@ def _render_html(record: Mapping[str, Any], figs: Sequence[_Figure], notes: Sequ
                f'data-key="{_e(x.key)}" data-kind="exact" data-decimals="0">{_e(x.text)}</td>'
                f"<td>{_e(m)}</td></tr>" for x, m in terms]
         if total is not None:
-            trs.append(f'<tr class="total"><td>total soundness error</td><td class="val num" '
-                       f'data-key="eps.total" data-kind="exact" data-decimals="0">'
+            trs.append(f'<tr class="total"><td>soundness error</td><td class="val num" '
+                       f'data-key="soundness_error" data-kind="exact" data-decimals="0">'
                        f"{_e(total.text)}</td><td>the whole protocol (meaning below)</td></tr>")
         out.append('<table class="eps"><thead><tr><th>term</th><th>value (in full)</th>'
                    "<th>what it bounds</th></tr></thead>\n<tbody>" + "\n".join(trs)
@@ -218,6 +221,9 @@ def render_markdown(record: Mapping[str, Any], *, figure_prefix: str = "report",
                     with_plan: bool = True) -> tuple[str, dict[str, str]]:
     """The report in Markdown and its figures as standalone SVG files: ``(text, {file name:
     SVG})``; the text references the files by relative name ``{figure_prefix}-{name}.svg``."""
+    from dicert.stages.record_compat import upgrade_body
+
+    record = upgrade_body(record)  # records /1 and /2 under today's names
     figs, notes = _figures(record, with_plan=with_plan)
     files = {f"{figure_prefix}-{f.name}.svg": _standalone_svg(f.svg) for f in figs}
     out = [f"# {_md(_title(record))}\n\n", _md(_summary(record)) + "\n\n"]
@@ -264,9 +270,9 @@ def render_markdown(record: Mapping[str, Any], *, figure_prefix: str = "report",
         for x, m in terms:
             out.append(f"| `{x.label}` | {x.text} | {_md(m)} | `{x.key}` |\n")
         if total is not None:
-            out.append(f"| **total soundness error** | **{total.text}** | "
+            out.append(f"| **soundness error** | **{total.text}** | "
                        "the whole protocol (meaning below) | "
-                       "`eps.total` |\n")
+                       "`soundness_error` |\n")
         if form:
             out.append(f"\nMeaning of the total: {_md(form)}.\n")
     out.append("\n## Output and seed use\n\n" + _md_facts(sections["output"]))

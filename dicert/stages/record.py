@@ -17,6 +17,7 @@ import numpy as np
 from dicert import __version__
 from dicert._plain import plain
 from dicert.stages.analysis import Analysis, _estimate_eps
+from dicert.stages import record_compat as _compat
 from dicert.stages.scan import Clock, LogScan
 
 if TYPE_CHECKING:
@@ -42,11 +43,7 @@ CAUTION = (
     "review."
 )
 
-HARVEST_ORDER = (
-    "trials in log order; rounds 'all' = every trial, 'generation' = trials with t = 0; per "
-    "trial a (parties A) or a then b (parties AB); packed big-endian with numpy.packbits "
-    "(first bit = MSB of byte 0), last byte zero-padded; raw_sha256 is over the packed bytes"
-)
+HARVEST_ORDER = _compat.HARVEST_ORDER
 
 # --------------------------------------------------------------------------- record body
 
@@ -55,18 +52,25 @@ def _single_round(estimate: Any) -> dict:
     from dicert.entropy.analytic import min_entropy_single, vn_entropy_single
 
     out: dict[str, Any] = {
-        "note": "informational values at the estimated CHSH value; the certified quantity "
-                "is entropy.finite_size.min_entropy_bits",
+        "note": _compat.SINGLE_ROUND_NOTE,
         "bound_min_entropy": "f(S) = 1 - log2(1 + sqrt(2 - S^2/4)) (Pironio et al. 2010)",
         "bound_von_neumann": "1 - h(1/2 + 1/2 sqrt(S^2/4 - 1)) (Pironio et al. 2009)",
     }
-    for label in ("chsh", "chsh_lower"):
-        s = getattr(estimate, label, None)
+    for attr, label in (("chsh", "chsh_estimate"), ("chsh_lower", "chsh_lower_bound")):
+        s = getattr(estimate, attr, None)
         if s is None or not math.isfinite(float(s)):
             continue
-        out[f"min_entropy_per_round_at_{label}"] = float(min_entropy_single(float(s)))
-        out[f"von_neumann_per_round_at_{label}"] = float(vn_entropy_single(float(s)))
+        out[f"single_round_bound_bits_at_{label}"] = float(min_entropy_single(float(s)))
+        out[f"von_neumann_bound_bits_at_{label}"] = float(vn_entropy_single(float(s)))
     return out
+
+
+def _estimate_section(estimate: Any) -> dict:
+    """The CHSH estimate under the record's names (:data:`record_compat.ESTIMATE_KEYS`)."""
+    est = plain(estimate)
+    if not isinstance(est, dict):
+        return est
+    return {_compat.ESTIMATE_KEYS.get(k, k): v for k, v in est.items()}
 
 
 def _split_timing(details: Any) -> tuple[Any, float | None]:
@@ -107,24 +111,25 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
             "layout": "counts[t][x][y][a][b]; logs without a t column count every trial as t = 1",
             "values": scan.counts.astype(np.int64).tolist(),
         },
-        "estimate": plain(analysis.estimate),
+        "estimate": _estimate_section(analysis.estimate),
         "entropy": {
             "single_round": _single_round(analysis.estimate),
             "finite_size": _finite_section(fin, details),
         },
         "harvest": {
             "parties": protocol.harvest.parties,
-            "rounds": protocol.harvest.rounds,
+            "select": protocol.harvest.select,
             "order": HARVEST_ORDER,
             "raw_bits": int(scan.raw_bits),
             "raw_sha256": scan.raw_sha256,
         },
-        "eps": _eps_section(protocol, analysis),
+        "error_budget": _error_budget(protocol, analysis),
         "extractor": _extractor_section(protocol, scan, analysis, seed_sha256, seed_bytes,
                                         extraction),
         "status": analysis.status,
         "abort_reason": analysis.abort_reason,
         "certified_min_entropy_bits": analysis.min_entropy_bits if published else 0.0,
+        "soundness_error": analysis.total_error,
         "assumptions": _assumptions(fin, scan),
         "caution": CAUTION,
         "references": [str(r) for r in fin.references],
@@ -159,7 +164,7 @@ def _log_section(scan: LogScan) -> dict:
         "trials_in_log": int(scan.trials_in_log if scan.trials_in_log is not None
                              else scan.trials),
         "has_test_flag": bool(scan.has_test_flag),
-        "scope": scan.scope,
+        "coverage": scan.scope,
         "bytes_read": int(scan.bytes_read if scan.bytes_read is not None
                           else scan.size_bytes),
         "trials_read": int(scan.trials_read if scan.trials_read is not None
@@ -177,29 +182,22 @@ def _finite_section(fin: Any, details: Any) -> dict:
         "method": str(fin.method),
         "side_information": str(fin.side_information),
         "accepted": bool(fin.accepted),
-        "min_entropy_bits": float(fin.min_entropy_bits),
+        "certified_min_entropy_bits": float(fin.min_entropy_bits),
         "smoothing_eps": float(fin.smoothing_eps),
         "entropy_error": float(fin.entropy_error),
-        "eps": {str(k): float(v) for k, v in dict(fin.eps).items()},
+        "error_parameters": {str(k): float(v) for k, v in dict(fin.eps).items()},
         "assumptions": [str(a) for a in fin.assumptions],
         "references": [str(r) for r in fin.references],
         "details": details,
     }
 
 
-def _eps_section(protocol: Protocol, analysis: Analysis) -> dict:
-    """Every error term and the total soundness error."""
+def _error_budget(protocol: Protocol, analysis: Analysis) -> dict:
+    """Every term of the soundness error, named by its protocol key; they sum to the total."""
     fin = analysis.finite
-    eps = {str(k): float(v) for k, v in dict(fin.eps).items()}
-    eps["eps_ext"] = float(protocol.extractor.eps_ext)
-    return {
-        "terms": eps,
-        "smoothing_eps": float(fin.smoothing_eps),
-        "entropy_error": float(fin.entropy_error),
-        "total": analysis.total_error,
-        "form": "P(accept) x distance from ideal of (output, seed, settings, side information) "
-                "<= total",
-    }
+    return _compat.error_budget({str(k): float(v) for k, v in dict(fin.eps).items()},
+                                float(fin.smoothing_eps), float(protocol.extractor.eps_ext),
+                                analysis.total_error)
 
 
 def _extractor_section(protocol: Protocol, scan: LogScan, analysis: Analysis,
@@ -211,7 +209,7 @@ def _extractor_section(protocol: Protocol, scan: LogScan, analysis: Analysis,
         "eps_ext": float(protocol.extractor.eps_ext),
         "seed_sha256": seed_sha256,
         "seed_bytes": int(seed_bytes),
-        "seed_bits_used": int(extraction.seed_bits_used) if extraction is not None else 0,
+        "seed_bits": int(extraction.seed_bits_used) if extraction is not None else 0,
         "raw_sha256": scan.raw_sha256,
         "raw_bits": int(scan.raw_bits),
         "output_bits": int(analysis.output_bits),
@@ -265,8 +263,8 @@ def _blocks_section(block_series: Any, protocol: Protocol) -> dict | None:
         value = martingale_chsh(row.reshape(2, 2, 2, 2, 2), design)
         margin = azuma_margin(n, design.estimator_width, eps)
         blocks.append({"first_trial": int(first), "trials": n, "counts": row.tolist(),
-                       "chsh": value, "chsh_lower": value - margin,
-                       "chsh_upper": value + margin})
+                       "chsh_estimate": value, "chsh_lower_bound": value - margin,
+                       "chsh_upper_bound": value + margin})
     return {"note": "martingale CHSH estimate per group of consecutive trials with its "
                     "two-sided Azuma-Hoeffding interval at eps_per_side (each group on its "
                     "own; informational: drift shows here, certification uses the whole log)",

@@ -85,8 +85,10 @@ def _legacy_text() -> dict[str, str]:
     from dicert.design import LEGACY_TRIAL_COUNT_REFERENCE, TRIAL_COUNT_REFERENCE
     from dicert.finite.eat import CONSERVATIVE_CONSTANTS, LEGACY_CONSERVATIVE_CONSTANTS
 
+    from dicert.stages.record_compat import LEGACY_TEXT
+
     return {LEGACY_TRIAL_COUNT_REFERENCE: TRIAL_COUNT_REFERENCE,
-            LEGACY_CONSERVATIVE_CONSTANTS: CONSERVATIVE_CONSTANTS}
+            LEGACY_CONSERVATIVE_CONSTANTS: CONSERVATIVE_CONSTANTS, **LEGACY_TEXT}
 
 
 def _short(v: Any) -> str:
@@ -144,7 +146,10 @@ def _protocol_of(body: Mapping[str, Any]):
     _require(hashlib.sha256(data).hexdigest() == _get(body, "protocol.sha256"), "protocol.sha256",
              "is not the SHA-256 of protocol.content")
     try:
-        return protocol_from_bytes(data, "protocol.content")
+        from dicert.stages.record_compat import CURRENT_FORMAT
+
+        return protocol_from_bytes(data, "protocol.content",
+                                   legacy_keys=body.get("format") != CURRENT_FORMAT)
     except ProtocolError as exc:
         raise VerificationError(f"the recorded protocol does not validate: {exc}",
                                 "protocol.content") from None
@@ -258,6 +263,7 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
     # A record written by another version is compared on its numbers, not its version string;
     # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])
+    exp["format"] = body.get("format")  # checked against the supported formats on reading
     exp["volatile"] = body.get("volatile")
     if "bits_file" in body:  # the record names its bits file (older records do not)
         from dicert.certification import BITS_NAME
@@ -268,7 +274,8 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
 
         exp["protocol_change"] = protocol_change_of(body)
     log_rec = body.get("log")
-    if isinstance(log_rec, Mapping) and "scope" not in log_rec and isinstance(exp.get("log"), dict):
+    if isinstance(log_rec, Mapping) and "coverage" not in log_rec \
+            and isinstance(exp.get("log"), dict):
         # A record from before log scopes: it always covered the whole log.
         for k in _SCOPE_KEYS:
             exp["log"].pop(k, None)
@@ -284,7 +291,7 @@ LEGACY_LACKS = ("design-conformance checks (test-round fraction, settings distri
                 "output screens")
 
 #: Members of the record's ``log`` section that describe what part of the log was read.
-_SCOPE_KEYS = ("scope", "bytes_read", "trials_read", "stopped_early", "stop_trial_index",
+_SCOPE_KEYS = ("coverage", "bytes_read", "trials_read", "stopped_early", "stop_trial_index",
                "ended_by", "follow")
 _ENDINGS = ("end-of-log", "decision", "idle-timeout", "declared-trials")
 
@@ -292,11 +299,12 @@ _ENDINGS = ("end-of-log", "decision", "idle-timeout", "declared-trials")
 def _scope_of(body: Mapping[str, Any], trials: int, size_bytes: Any) -> dict:
     """The log-scope members of a record, checked for consistency (legacy records: whole)."""
     log = _get(body, "log")
-    if "scope" not in log:
+    if "coverage" not in log:
         return {"scope": "whole", "bytes_read": size_bytes, "trials_read": trials}
     vals = {k: _get(body, f"log.{k}") for k in _SCOPE_KEYS}
+    vals["scope"] = vals.pop("coverage")  # the LogScan field
     scope, ended = vals["scope"], vals["ended_by"]
-    _require(scope in ("whole", "prefix"), "log.scope", f"unknown scope {scope!r}")
+    _require(scope in ("whole", "prefix"), "log.coverage", f"unknown coverage {scope!r}")
     _require(ended in _ENDINGS, "log.ended_by", f"unknown value {ended!r}")
     _require(vals["trials_read"] == trials, "log.trials_read",
              f"recorded {vals['trials_read']!r}, log.trials is {trials!r}")
@@ -352,7 +360,7 @@ def _scan_from_record(body: Mapping[str, Any], protocol: Protocol):
     scope = _scope_of(body, trials, size_bytes)
     if scope["scope"] == "prefix":
         _require(protocol.method == "pef" or scope.get("ended_by") == "declared-trials",
-                 "log.scope", "only method pef stops reading a log early")
+                 "log.coverage", "only method pef stops reading a log early")
     if scope.get("ended_by") == "declared-trials":
         from dicert.design import declared_trials
 
@@ -456,8 +464,8 @@ def _finite_from_record(body: Mapping[str, Any]):
     try:
         return FiniteSizeResult(
             method=fs["method"], side_information=fs["side_information"],
-            accepted=fs["accepted"], min_entropy_bits=fs["min_entropy_bits"],
-            eps=dict(fs["eps"]), smoothing_eps=fs["smoothing_eps"],
+            accepted=fs["accepted"], min_entropy_bits=fs["certified_min_entropy_bits"],
+            eps=dict(fs["error_parameters"]), smoothing_eps=fs["smoothing_eps"],
             entropy_error=fs["entropy_error"], assumptions=tuple(fs["assumptions"]),
             references=tuple(fs["references"]), details=fs["details"])
     except (KeyError, TypeError, ValueError) as exc:
