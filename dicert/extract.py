@@ -166,7 +166,7 @@ class ExtractionResult:
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("m_bits", self.m_bits), ("n_bits", self.n_bits), ("method", self.method),
-                ("output_sha256", self.output_sha256[:16] + "...")]
+                ("output_sha256", self.output_sha256)]
         if full:
             rows[-1] = ("output_sha256", self.output_sha256)
             rows += [("seed_bits_used", self.seed_bits_used), ("blocks", self.blocks),

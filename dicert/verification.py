@@ -272,7 +272,7 @@ def recheck_record(body: Mapping[str, Any], found: Findings, *, log_given: bool)
     if body.get("protocol_change") is not None:
         pc = body["protocol_change"]
         notes.append(f"the record declares a protocol change (previous protocol "
-                     f"{pc['previous_protocol_sha256'][:16]}...): {pc['reason']}; check it "
+                     f"{pc['previous_protocol_sha256']}): {pc['reason']}; check it "
                      "along the chain with verify --chain")
     return RecordFacts(body=body, protocol=protocol, scan=rec_scan, seed_sha256=seed_sha,
                        seed_bytes=seed_bytes_n, output_sha256=output_sha, status=status,

@@ -255,14 +255,14 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     say(f"writing into {out}")
 
     keys = write_keypair(out / "operator-key.pem")
-    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint[:16]}...)")
+    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint})")
     chain = out / "chain"
     pulses = _certify_pulses(out, sc, rng_stream, protocol, keys, chain, say)
     chain_report = verify_chain(chain, public_key=keys.public_key_file)
     head = chain_report.head_sha256
     verify_chain(chain, public_key=keys.public_key_file, head=head)
     say(f"chain of {len(pulses)} pulses: {chain_report.result} against the operator's key "
-        f"(head {head[:16]}...): {chain}")
+        f"(head {head}): {chain}")
     # Without a trusted key a record's integrity can be checked, not who made it.
     anon = verify(pulses[0]["record_file"])
     say(f"the same record checked without the operator's key: {anon.result} (authenticity "
@@ -275,7 +275,7 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
                       title=_site_title(sc["title"]))
     site_check = check_site(site.site_dir, keys.public_key_file)
     say(f"beacon site built and checked ({site_check.pulses} pulses, head "
-        f"{site_check.head_sha256[:16]}...): {site.index_file}")
+        f"{site_check.head_sha256}): {site.index_file}")
 
     # Tampering: each must make verification fail.
     checks = _tamper_checks(out, pulses[0], chain, head, keys, say)

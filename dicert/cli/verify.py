@@ -95,45 +95,53 @@ def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool
 
     rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
                  trusted_keys=trusted_keys, strict=strict, scheduler=scheduler)
+    from dicert.cli._rows import Row, record_json, record_rows, render, to_json
+
+    rec = _read_record(rep.record_file)
+    rows = [Row("result", "result", rep.result),
+            Row("authenticity", "authenticated", rep.authenticated, "flag",
+                note="established by a trusted key" if rep.authenticated
+                else "no trusted key given, or unsigned"),
+            Row("verification scope", "scope", rep.scope)]
+    rows += [r for r in record_rows(rec) if r.key != "key_fingerprint"]
+    rows += [Row("signature", "signature", rep.signature),
+             Row("key fingerprint", "key_fingerprint", rep.key_fingerprint, "digest",
+                 record="signature.key_fingerprint"),
+             Row("record file", "record_file", rep.record_file),
+             Row("checked", None, "; ".join(rep.checked))]
+    if rep.bits_file:
+        rows.append(Row("bits file", "bits_file", rep.bits_file))
+    if rep.not_checked:
+        rows.append(Row("NOT checked", None, ", ".join(rep.not_checked)))
+    for n in rep.notes:
+        rows.append(Row("note", None, n))
     if as_json:
-        emit_json({
+        emit_json(to_json(rows, {
+            **record_json(rec, rows),
             "verified": rep.authenticated,
-            "result": rep.result,
-            "authenticated": rep.authenticated,
             "exit_code": rep.exit_code,
-            "record_file": rep.record_file,
-            "record_sha256": rep.record_sha256,
-            "status": rep.status,
-            "output_bits": rep.output_bits,
-            "signature": rep.signature,
-            "key_fingerprint": rep.key_fingerprint,
-            "scope": rep.scope,
-            "bits_file": rep.bits_file,
+            "record_format": rec.get("format"),
             "checked": list(rep.checked),
             "not_checked": list(rep.not_checked),
             "notes": list(rep.notes),
             "message": rep.message,
-        })
+            "bits_file": rep.bits_file,
+        }))
         return rep.exit_code
-    rows = [
-        ("result", rep.result),
-        ("authenticity", "established (trusted key)" if rep.authenticated
-         else "NOT established"),
-        ("record status", rep.status),
-        ("output bits", rep.output_bits),
-        ("record SHA-256", rep.record_sha256),
-        ("signature", rep.signature),
-        ("scope", rep.scope),
-        ("checked", "; ".join(rep.checked)),
-    ]
-    if rep.not_checked:
-        rows.append(("NOT checked", ", ".join(rep.not_checked)))
-    for n in rep.notes:
-        rows.append(("note", n))
     console = stdout_console()
-    console.print(kv_table("dicert verify", rows))
-    console.print(rep.message)
+    render(console, "dicert verify", rows)
+    console.print(rep.message, highlight=False)
     return rep.exit_code
+
+
+def _read_record(path) -> dict:
+    """The verified record, under today's member names (records of earlier formats too)."""
+    import json
+
+    from dicert.stages.record_compat import upgrade_body
+
+    with open(path, "rb") as fh:
+        return upgrade_body(json.loads(fh.read().decode("utf-8")))
 
 
 def _chain(chain, pubkey, trusted_keys, head, strict, as_json: bool) -> int:
