@@ -10,6 +10,9 @@ kind       for                                               written
                                                              rounded UP
 ``bits``   entropy, bits, rates (larger looks better)        6 significant digits,
                                                              rounded DOWN
+``bits_short`` the same in a narrow column               whole bits below 1e6, else
+                                                             3 significant digits
+                                                             (2.34e6), rounded DOWN
 ``chsh``   CHSH point estimates                              4 decimals, to nearest
 ``lower``  lower confidence bounds (CHSH lower bound)        4 decimals, rounded DOWN
 ``upper``  upper confidence bounds                           4 decimals, rounded UP
@@ -33,7 +36,7 @@ import math
 from decimal import ROUND_CEILING, ROUND_FLOOR, ROUND_HALF_EVEN, Decimal
 from typing import Any
 
-KINDS = ("error", "bits", "chsh", "lower", "upper", "count", "number", "exact", "digest",
+KINDS = ("error", "bits", "bits_short", "chsh", "lower", "upper", "count", "number", "exact", "digest",
          "text", "flag")
 
 #: Written for a missing value (None).
@@ -46,7 +49,7 @@ CHSH_DECIMALS = 4
 NUMBER_DIGITS = 6
 
 #: Rounding direction of each numeric kind (what the tests check).
-DIRECTION = {"error": "up", "bits": "down", "lower": "down", "upper": "up", "chsh": "nearest",
+DIRECTION = {"error": "up", "bits": "down", "bits_short": "down", "lower": "down", "upper": "up", "chsh": "nearest",
              "number": "nearest", "count": "exact", "exact": "exact"}
 
 
@@ -117,6 +120,13 @@ def fmt(value: Any, kind: str) -> str:
         return _plain(_significant(value, ERROR_DIGITS, ROUND_CEILING), group=False)
     if kind == "bits":
         return _plain(_significant(value, BITS_DIGITS, ROUND_FLOOR), group=True)
+    if kind == "bits_short":
+        if abs(value) < 10**6:
+            return str(math.floor(value))
+        q = _significant(value, 3, ROUND_FLOOR)
+        adj = q.adjusted()
+        m = f"{q.scaleb(-adj):f}"
+        return (m.rstrip("0").rstrip(".") if "." in m else m) + f"e{adj}"
     if kind == "number":
         return _plain(_significant(value, NUMBER_DIGITS, ROUND_HALF_EVEN), group=False)
     rounding = {"chsh": ROUND_HALF_EVEN, "lower": ROUND_FLOOR, "upper": ROUND_CEILING}[kind]
