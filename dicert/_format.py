@@ -169,6 +169,11 @@ def consistent(text: str, value: Any, kind: str) -> bool:
     if kind in ("count", "exact"):
         return shown == value
     step = resolution(text)
+    digits = {"error": ERROR_DIGITS, "bits": BITS_DIGITS, "number": NUMBER_DIGITS,
+              "bits_short": 3 if abs(shown) >= 10**6 else None}.get(kind)
+    if digits is not None and shown != 0:
+        # significant digits: "1030" written at 3 digits is a step of 10, not 1
+        step = max(step, 10.0 ** (math.floor(math.log10(abs(shown))) - digits + 1))
     slack = 1e-12 * max(abs(v), 1e-300)
     direction = DIRECTION[kind]
     if direction == "up":

@@ -250,9 +250,7 @@ def record_rows(rec: dict) -> list[Row]:
                              ("record SHA-256", "record_sha256", "record_sha256"),
                              ("key fingerprint", "key_fingerprint",
                               "signature.key_fingerprint")):
-        v = get_path(rec, path)
-        if v is not None:
-            rows.append(Row(label, key, v, "digest", record=path))
+        rows.append(Row(label, key, get_path(rec, path), "digest", record=path))
     return rows
 
 
