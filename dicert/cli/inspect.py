@@ -1,4 +1,4 @@
-"""``dicert inspect``: counts, correlators, CHSH value and its finite-statistics bound."""
+"""``dicert inspect``: counts, correlators, the CHSH estimate and its CHSH lower bound."""
 
 from __future__ import annotations
 
@@ -31,8 +31,9 @@ def inspect_cmd(
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: count and hash the log's files on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
-    """Read a trial log (streaming) and report counts, correlators, the CHSH value, its lower
-    confidence bound valid for devices with memory, and the p-value of local realism."""
+    """Read a trial log (streaming) and report trials, test rounds, correlators, the CHSH
+    estimate (weighted) and the ratio estimate, the CHSH lower bound at eps_est (valid for
+    devices with memory), the p-value (local devices) and a per-block summary."""
     from dicert.estimate import block_estimates
     from dicert.errors import ParameterError
     from dicert.logspec import choose_source

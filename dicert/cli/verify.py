@@ -11,7 +11,6 @@ from dicert.cli._common import (
     JsonFlag,
     emit_json,
     handle_errors,
-    kv_table,
     stdout_console,
 )
 
@@ -157,19 +156,24 @@ def _chain(chain, pubkey, trusted_keys, head, strict, as_json: bool) -> int:
                    "authenticated": rep.authenticated, "exit_code": code, "chain": str(chain),
                    "head_sha256": rep.head_sha256, "report": data})
         return code
-    rows = [("result", rep.result), ("chain", str(chain))]
-    for k in ("pulses", "first_index", "last_index", "head_sha256", "signed_pulses",
-              "signer_trusted"):
-        rows.append((k.replace("_", " "), str(data[k])))
+    from dicert.cli._rows import Row, render
+
+    rows = [Row("result", "result", rep.result), Row("chain", "chain", str(chain)),
+            Row("pulses", "report.pulses", data["pulses"], "count"),
+            Row("first index", "report.first_index", data["first_index"], "count"),
+            Row("last index", "report.last_index", data["last_index"], "count"),
+            Row("head SHA-256", "head_sha256", data["head_sha256"], "digest"),
+            Row("signed pulses", "report.signed_pulses", data["signed_pulses"], "count"),
+            Row("signer trusted", "report.signer_trusted", data["signer_trusted"], "flag")]
     if head is not None:
-        rows.append(("published head", f"pulse {rep.head_pulse}"))
-    for fp in data.get("key_fingerprints") or []:
-        rows.append(("signing key", str(fp)))
+        rows.append(Row("published head", None, f"pulse {rep.head_pulse}"))
+    for i, fp in enumerate(data.get("key_fingerprints") or []):
+        rows.append(Row("key fingerprint", f"report.key_fingerprints.{i}", fp, "digest"))
     for f in data.get("findings") or []:
-        rows.append((f"{f.get('severity', '')}: {f.get('kind', '')}",
-                     f"{f.get('file') or ''} {f.get('message', '')}".strip()))
+        rows.append(Row(f"{f.get('severity', '')}: {f.get('kind', '')}", None,
+                        f"{f.get('file') or ''} {f.get('message', '')}".strip()))
     console = stdout_console()
-    console.print(kv_table("dicert verify --chain", rows))
+    render(console, "dicert verify --chain", rows)
     if not rep.authenticated:
         console.print("Integrity checked, authenticity NOT established: signatures were "
                       "checked against the keys embedded in the records; pass --pubkey or "
