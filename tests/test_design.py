@@ -196,10 +196,10 @@ def honest(tmp_path_factory):
 
     d = tmp_path_factory.mktemp("honest")
     simulate_to_file(d / "u.btl", 200_000, device_model("quantum", visibility=0.97),
-                     rng_seed=11)
+                     rng_stream=11)
     simulate_to_file(d / "s.btl", 1_000_000, device_model("quantum", visibility=0.97),
-                     gamma=0.05, rng_seed=12)
-    simulate_to_file(d / "p.btl", 3_000_000, device_model("photonic"), rng_seed=13)
+                     gamma=0.05, rng_stream=12)
+    simulate_to_file(d / "p.btl", 3_000_000, device_model("photonic"), rng_stream=13)
     (d / "seed.bin").write_bytes(np.random.default_rng(5).bytes(600_000))
     return d
 
@@ -699,7 +699,7 @@ def test_declared_trial_count_with_streaming_probability_estimation(tmp_path):
     from dicert.verify import verify
 
     log = tmp_path / "ph.btl"
-    simulate_to_file(log, 500_000, device_model("photonic"), rng_seed=5)
+    simulate_to_file(log, 500_000, device_model("photonic"), rng_stream=5)
     seed = _seed(tmp_path)
     d = tomllib.loads((PROTOS / "ch-photonic.toml").read_text())
     d["analysis"].update(calibration_trials=200_000, sigma_target_bits=128, n_max=2_000_000)
