@@ -61,6 +61,15 @@ class SimulationSummary:
     rng_seed = property(lambda self: self.rng_stream)
 
 
+def _stream(rng_stream: int | None, rng_seed: int | None) -> int | None:
+    """The stream number, also when given under its former name ``rng_seed``."""
+    if rng_seed is None:
+        return rng_stream
+    if rng_stream is not None and rng_stream != rng_seed:
+        raise ParameterError("give rng_stream only (rng_seed is its former name)")
+    return rng_seed
+
+
 def simulate_to_file(
     path: str | os.PathLike[str],
     n: int,
@@ -95,11 +104,7 @@ def simulate_to_file(
         fmt_label = "csv.gz"
     else:
         fmt_label = fmt
-    if rng_seed is not None:
-        if rng_stream is not None and rng_stream != rng_seed:
-            raise ParameterError("give rng_stream only (rng_seed is its former name)")
-        rng_stream = rng_seed
-    rng, seed = make_rng(rng_stream)
+    rng, seed = make_rng(_stream(rng_stream, rng_seed))
     n = _check_n(n)
     chunks = iter_trial_chunks(n, model, gamma=gamma, generation=generation, settings_bias=settings_bias,
                                include_t=include_t, rng=rng, chunk=chunk)
