@@ -88,10 +88,9 @@ def simulate_to_file(
     """Simulate ``n`` trials of ``model`` and write them to ``path`` (atomically, streaming).
 
     The format comes from ``format`` or the extension (see :func:`dicert.logs.write_log`).
-    ``rng_stream`` numbers the simulator's pseudo-random stream (``SeedSequence(rng_stream)``);
-    without it fresh entropy is drawn and reported as ``rng_stream`` so that the run can be
-    replayed. The same stream and parameters give a byte-identical file. (``rng_seed`` is the
-    name of earlier versions, still accepted; "seed" is reserved for the extractor seed.)
+    ``rng_stream`` numbers the simulator's pseudo-random stream (``SeedSequence(rng_stream)``;
+    fresh entropy, reported, if omitted; ``rng_seed`` is its former name): the same stream and
+    parameters give a byte-identical file.
     """
     from dicert._io import sha256_file
     from dicert._kernels import count_blocks
