@@ -172,10 +172,8 @@ def record_rows(rec: dict) -> list[Row]:
     by ``record_compat``), in glossary names; ``Row.record`` names each one's record path."""
     est = rec.get("estimate") or {}
     log = rec.get("log") or {}
-    ext = rec.get("extractor") or {}
     fin = (rec.get("entropy") or {}).get("finite_size") or {}
     det = fin.get("details") or {}
-    sig = rec.get("signature") or {}
     rows = [Row("status", "status", rec.get("status"), "text", record="status")]
     if fin.get("method"):
         rows.append(Row("method", "method", fin["method"], "text",
@@ -227,12 +225,18 @@ def record_rows(rec: dict) -> list[Row]:
     if _num(cme) is not None and isinstance(trials, int) and trials > 0:
         rows.append(Row("certified rate (bits per trial)", "certified_rate_bits_per_trial",
                         float(cme) / trials, "bits"))
-    rows += [Row("raw bits", "raw_bits", ext.get("raw_bits"), "count",
-                 record="extractor.raw_bits"),
-             Row("output bits", "output_bits", ext.get("output_bits"), "count",
-                 record="extractor.output_bits"),
-             Row("seed bits", "seed_bits", ext.get("seed_bits"), "count",
-                 record="extractor.seed_bits", note="raw bits + output bits - 1 used")]
+    return rows + _output_rows(rec)
+
+
+def _output_rows(rec: dict) -> list[Row]:
+    """Raw, output and seed bits, the error budget term by term and every digest."""
+    ext = rec.get("extractor") or {}
+    rows = [Row("raw bits", "raw_bits", ext.get("raw_bits"), "count",
+                record="extractor.raw_bits"),
+            Row("output bits", "output_bits", ext.get("output_bits"), "count",
+                record="extractor.output_bits"),
+            Row("seed bits", "seed_bits", ext.get("seed_bits"), "count",
+                record="extractor.seed_bits", note="raw bits + output bits - 1 used")]
     budget = rec.get("error_budget") or {}
     for i, term in enumerate(budget.get("terms") or []):
         if isinstance(term, dict):

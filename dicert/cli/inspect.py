@@ -80,7 +80,7 @@ def inspect_cmd(
     settings_ok = all(c.passed for c in report.checks
                       if c.name.startswith(("test_settings", "serial", "generation")))
     blocks = block_estimates(summary.block_counts, summary.block_trials, design, eps=block_error)
-    lower_shown, lower_note = _clip(est.chsh_lower)
+    lower_shown, lower_note = _clip(est.chsh_lower_bound)
     declared = proto is not None or gamma is not None
     p_refused = None if settings_ok or not declared else (
         "refused: the settings frequencies or sequence contradict the declared design")
@@ -88,7 +88,7 @@ def inspect_cmd(
         from dicert.plotting import plot_chsh_blocks
 
         threshold, threshold_label = _protocol_threshold(proto)
-        plot_chsh_blocks(blocks, plot, eps=block_error, overall=est.chsh,
+        plot_chsh_blocks(blocks, plot, eps=block_error, overall=est.chsh_estimate,
                          overall_lower=lower_shown, threshold=threshold,
                          threshold_label=threshold_label)
     rows = _rows(summary, est, design, source, report, blocks, eps, block_error, p_refused)
@@ -117,8 +117,8 @@ def inspect_cmd(
             "p_value_method": est.p_value_method,
             "blocks": [
                 {"index": b.index, "first_trial": b.first_trial, "trials": b.trials,
-                 "chsh_estimate": b.chsh, "chsh_lower_bound": b.chsh_lower,
-                 "chsh_upper_bound": b.chsh_upper}
+                 "chsh_estimate": b.chsh_estimate, "chsh_lower_bound": b.chsh_lower_bound,
+                 "chsh_upper_bound": b.chsh_upper_bound}
                 for b in blocks
             ],
             "plot": str(plot) if plot else None,
@@ -154,16 +154,16 @@ def _rows(summary, est, design, source, report, blocks, eps, block_error, p_refu
 
     rows = [
         Row("trials", "trials", summary.trials, "count"),
-        Row("test rounds", "test_rounds", est.test_trials, "count"),
+        Row("test rounds", "test_rounds", est.test_rounds, "count"),
         Row("gamma", "gamma", design.gamma, "number", note=source),
-        Row("CHSH estimate", "chsh_estimate", est.chsh_martingale, "chsh",
-            note="weighted, martingale" + _range_note(est.chsh_martingale)),
-        Row("CHSH ratio estimate", "chsh_ratio_estimate", est.chsh, "chsh",
-            note="ratio of counts" + _range_note(est.chsh)),
+        Row("CHSH estimate", "chsh_estimate", est.chsh_estimate, "chsh",
+            note="weighted, martingale" + _range_note(est.chsh_estimate)),
+        Row("CHSH ratio estimate", "chsh_ratio_estimate", est.chsh_ratio_estimate, "chsh",
+            note="ratio of counts" + _range_note(est.chsh_ratio_estimate)),
         Row("CHSH ratio estimate std. error", "chsh_stderr", est.chsh_stderr, "upper",
             note="i.i.d."),
-        Row("CHSH lower bound", "chsh_lower_bound", est.chsh_lower, "lower",
-            note="at eps_est, valid with memory" + _range_note(est.chsh_lower)),
+        Row("CHSH lower bound", "chsh_lower_bound", est.chsh_lower_bound, "lower",
+            note="at eps_est, valid with memory" + _range_note(est.chsh_lower_bound)),
         Row("eps_est", "eps_est", eps, "error"),
         Row("CHSH lower bound margin", "margin", est.margin, "upper",
             note="CHSH estimate - CHSH lower bound"),
@@ -190,11 +190,11 @@ def _rows(summary, est, design, source, report, blocks, eps, block_error, p_refu
             Row("trials per block", "block_trials", summary.block_trials, "count"),
             Row("block eps per side", "block_eps_per_side", block_error, "error"),
             Row("block CHSH estimate, lowest", "block_chsh_estimate_min",
-                min(b.chsh for b in blocks), "chsh"),
+                min(b.chsh_estimate for b in blocks), "chsh"),
             Row("block CHSH estimate, highest", "block_chsh_estimate_max",
-                max(b.chsh for b in blocks), "chsh"),
+                max(b.chsh_estimate for b in blocks), "chsh"),
             Row("block CHSH lower bound, lowest", "block_chsh_lower_bound_min",
-                min(b.chsh_lower for b in blocks), "lower"),
+                min(b.chsh_lower_bound for b in blocks), "lower"),
         ]
     return rows
 
