@@ -194,8 +194,18 @@ def runs(tmp_path_factory):
     keys = write_keypair(d / "op.pem")
     classical = d / "classical.btl"
     write_log(classical, sim_trials(20_000, seed=5, model="classical"))
+    # Settings far from the declared uniform design: aborted by a design check, before the
+    # acceptance test.
+    import numpy as np
+
+    from dicert.simulate import device_model, simulate_trials
+
+    biased = d / "biased.btl"
+    write_log(biased, simulate_trials(20_000, device_model("quantum"), settings_bias=(0.1, 0.1),
+                                      rng=np.random.default_rng(1)))
     out = {}
-    for name, log in (("certified", FIXTURE / "log.btl"), ("aborted", classical)):
+    for name, log in (("certified", FIXTURE / "log.btl"), ("aborted", classical),
+                      ("design", biased)):
         base = ["certify", str(log), "--protocol", UNIFORM, "--seed", str(FIXTURE / "seed.bin"),
                 "--key", str(keys.private_key_file)]
         t = _run([*base, "--out", str(d / f"{name}-t")])
@@ -212,7 +222,7 @@ def runs(tmp_path_factory):
     return out
 
 
-@pytest.mark.parametrize("name", ["certified", "aborted"])
+@pytest.mark.parametrize("name", ["certified", "aborted", "design"])
 def test_certify_table_json_and_record_agree(runs, name):
     run = runs[name]
     rows = record_rows(run["record_j"])
@@ -236,6 +246,10 @@ def test_certify_table_json_and_record_agree(runs, name):
     # The error budget's terms sum to the soundness error (README glossary: error budget).
     assert math.isclose(sum(t["value"] for t in js["error_budget"]["terms"]),
                         js["soundness_error"], rel_tol=1e-12)
+    if name == "design":  # the acceptance test was not reached; the run is not accepted
+        assert js["acceptance_statistic"] is None and js["accepted"] is False
+        assert js["output_bits"] == 0 and js["certified_min_entropy_bits"] == 0
+        return
     # Acceptance: the martingale test accepts when the estimate reaches the declared
     # threshold (protocols/chsh-uniform.toml [analysis] chsh_threshold).
     assert js["acceptance_limit"] == 2.6
@@ -247,7 +261,7 @@ def test_certify_table_json_and_record_agree(runs, name):
         assert js["seed_bits"] == js["raw_bits"] + js["output_bits"] - 1
 
 
-@pytest.mark.parametrize("name", ["certified", "aborted"])
+@pytest.mark.parametrize("name", ["certified", "aborted", "design"])
 def test_certify_digests_whole_at_80_columns(runs, name):
     rec = runs[name]["record_80"]
     digests = [rec["log"]["sha256"], rec["record_sha256"], rec["extractor"]["seed_sha256"],

@@ -213,12 +213,21 @@ def record_rows(rec: dict) -> list[Row]:
             Row("accepted", "accepted", acc["accepted"], "flag",
                 record="entropy.finite_size.accepted"),
         ]
-    for k in _SINGLE_ROUND:
-        if _num(det.get(k)) is not None:
-            rows.append(Row("single-round bound (bits)", "single_round_bound_bits", det[k],
-                            "bits", record=f"entropy.finite_size.details.{k}",
-                            note="per trial"))
-            break
+    else:  # aborted before the acceptance test (e.g. a failed design check)
+        rows += [Row("acceptance statistic", "acceptance_statistic", None, "exact",
+                     note="acceptance test not reached"),
+                 Row("acceptance limit", "acceptance_limit", None, "exact"),
+                 Row("accepted", "accepted", fin.get("accepted")
+                     if isinstance(fin.get("accepted"), bool) else None, "flag",
+                     record="entropy.finite_size.accepted"
+                     if isinstance(fin.get("accepted"), bool) else None)]
+    single = next((k for k in _SINGLE_ROUND if _num(det.get(k)) is not None), None)
+    rows.append(Row("single-round bound (bits)", "single_round_bound_bits",
+                    det[single] if single else None, "bits",
+                    record=f"entropy.finite_size.details.{single}" if single else None,
+                    note="per trial" if single
+                    else "not reached" if det.get("not_run") or not fin.get("method")
+                    else "none: the method certifies without a single-round bound"))
     cme = rec.get("certified_min_entropy_bits")
     rows.append(Row("certified min-entropy (bits)", "certified_min_entropy_bits", cme, "bits",
                     record="certified_min_entropy_bits"))
@@ -236,7 +245,8 @@ def _output_rows(rec: dict) -> list[Row]:
             Row("output bits", "output_bits", ext.get("output_bits"), "count",
                 record="extractor.output_bits"),
             Row("seed bits", "seed_bits", ext.get("seed_bits"), "count",
-                record="extractor.seed_bits", note="raw bits + output bits - 1 used")]
+                record="extractor.seed_bits", note="raw bits + output bits - 1 used"
+                if ext.get("output_bits") else "none: no output")]
     budget = rec.get("error_budget") or {}
     for i, term in enumerate(budget.get("terms") or []):
         if isinstance(term, dict):

@@ -90,21 +90,25 @@ def entropy_cmd(
             doc["correlators"] = to_jsonable(correlators)
         emit_json(doc)
         return
+    from dicert._format import fmt
+
     rows = [
-        (f"single-round bound, {label} (bits per trial)", result.single_round_bound_bits),
+        # bits round down, probability bounds up (dicert._format): never optimistic
+        (f"single-round bound, {label} (bits per trial)",
+         fmt(result.single_round_bound_bits, "bits")),
         ("parties", result.parties),
         ("method", result.method),
     ]
     if result.chsh_input is not None:
         rows.append(("CHSH (as given / used)", f"{result.chsh_input:.6g} / {result.chsh_used:.6g}"))
     if result.guessing_probability is not None:
-        rows.append(("guessing probability <=", result.guessing_probability))
+        rows.append(("guessing probability <=", fmt(result.guessing_probability, "error")))
     if result.level is not None:
         rows.append(("NPA level", result.level))
     cert = result.certificate
     if cert is not None:
         rows += [
-            ("certified bound (dual)", cert.upper_bound),
+            ("certified bound (dual)", fmt(cert.upper_bound, "error")),
             ("solver value", cert.solver_value),
             ("certificate margin", cert.margin),
             ("solver / status", f"{cert.solver} / {cert.status}"),
