@@ -116,8 +116,9 @@ def assert_digests_whole(text: str, digests: list[str]) -> None:
     """At 80 columns: nothing cut ("..." or the ellipsis character) and each digest whole in
     its row's value cell (folded pieces joined)."""
     assert "..." not in text and "\u2026" not in text
-    table = parse_table(text)
-    joined = "\n".join("".join(v.split()) for cells in table.values() for v in cells)
+    cells = [line.split("\u2502")[2] for line in text.splitlines()
+             if line.startswith("\u2502") and len(line.split("\u2502")) == 4]
+    joined = "".join("".join(c.split()) for c in cells)  # folded pieces, in order
     for d in digests:
         assert d in joined, f"digest {d} not shown whole"
     for line in text.splitlines():
@@ -408,3 +409,29 @@ def test_plan_table_and_json_agree():
                     "extractor_seed_bits"):
             assert old not in md
     assert "chsh" not in doc and "win_probability" not in doc
+
+
+# --------------------------------------------------------------------------- demo
+
+
+def test_demo_table_and_json_agree(tmp_path):
+    from dicert.cli.demo import demo_rows
+
+    t = _run(["demo", "--out", str(tmp_path / "t")])
+    t80 = _run(["demo", "--out", str(tmp_path / "t80")], columns=80)
+    j = _run(["demo", "--out", str(tmp_path / "j"), "--json"])
+    assert t.exit_code == t80.exit_code == j.exit_code == 0, t.output
+    doc = json.loads(j.stdout)
+    # Same invented scenario, same numbers (each run makes its own key, hence its own
+    # digests: those are checked at 80 columns against the run's own records).
+    rows = [r for r in demo_rows(doc) if r.kind != "digest"]
+    assert assert_rows_match(rows, parse_table(t.stdout), doc) >= 10
+    for p in doc["pulses"]:
+        assert p["chsh_estimate"] == get_path(
+            json.loads(Path(p["record_file"]).read_text()),
+            weighted_estimate_path(json.loads(Path(p["record_file"]).read_text())))
+    records = sorted((tmp_path / "t80").glob("pulse-*/certified/record.json"))
+    digests = [json.loads(r.read_text())["record_sha256"] for r in records]
+    digests.append(json.loads(records[0].read_text())["signature"]["key_fingerprint"])
+    table_part = t80.stdout[t80.stdout.index("dicert demo:"):t80.stdout.index("Open the beacon")]
+    assert_digests_whole(table_part, digests)
