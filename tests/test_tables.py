@@ -435,3 +435,31 @@ def test_demo_table_and_json_agree(tmp_path):
     digests.append(json.loads(records[0].read_text())["signature"]["key_fingerprint"])
     table_part = t80.stdout[t80.stdout.index("dicert demo:"):t80.stdout.index("Open the beacon")]
     assert_digests_whole(table_part, digests)
+
+
+# --------------------------------------------------------------------------- reprs, messages
+
+
+def test_reprs_show_digests_whole():
+    # README glossary: a SHA-256 (64 hex digits) or key fingerprint is never cut.
+    from dicert.extract import extract_toeplitz
+
+    res = extract_toeplitz(bytes(range(8)), bytes(range(16)), 8)
+    assert HEX64.search(repr(res)).group(0) == res.output_sha256
+    from dicert.logs import summarize_log
+
+    s = summarize_log(FIXTURE / "log.btl")
+    assert s.sha256 in repr(s) and "..." not in repr(s)
+
+
+def test_error_messages_show_digests_whole(runs, tmp_path):
+    rec_file = runs["certified"]["dir"] / "record.json"
+    doc = json.loads(rec_file.read_text())
+    stored = doc["record_sha256"]
+    bad = tmp_path / "record.json"
+    bad.write_text(rec_file.read_text().replace(stored, "0" * 64))  # a wrong stored digest
+    r = _run(["verify", str(bad)])
+    assert r.exit_code == 1
+    line = r.stderr.strip()
+    assert "\n" not in line and "..." not in line
+    assert "0" * 64 in line and len(HEX64.findall(line)) == 2  # stored and recomputed, whole
