@@ -3,28 +3,19 @@
 The rounding direction of each kind is chosen so that a printed number is never more
 favourable than the computed one:
 
-========== ================================================= =========================
-kind       for                                               written
-========== ================================================= =========================
-``error``  errors, p-values (smaller looks better)           3 significant digits,
-                                                             rounded UP
-``bits``   entropy, bits, rates (larger looks better)        6 significant digits,
-                                                             rounded DOWN
-``bits_short`` the same in a narrow column               whole bits below 1e6, else
-                                                             3 significant digits
-                                                             (2.34e6), rounded DOWN
-``chsh``   CHSH point estimates                              4 decimals, to nearest
-``lower``  lower confidence bounds (CHSH lower bound)        4 decimals, rounded DOWN
-``upper``  upper confidence bounds                           4 decimals, rounded UP
-``count``  counts (trials, test rounds, raw / output bits)   integer, thousands
-                                                             separators ","
-``number`` other values (gamma, a win probability)           6 significant digits,
-                                                             to nearest
-``exact``  a value compared against a limit                  shortest round-trip form
-``digest`` SHA-256 digests, key fingerprints                 in full, never cut
-``text``   words                                             as they are
-``flag``   yes / no                                          ``yes`` / ``no``
-========== ================================================= =========================
+- ``error``: errors, p-values (smaller looks better): 3 significant digits, rounded UP;
+- ``bits``: entropy, bits, rates (larger looks better): 6 significant digits, rounded DOWN;
+- ``bits_short``: the same in a narrow column: whole bits below 1e6, else 3 significant
+  digits (2.34e6), rounded DOWN;
+- ``chsh``: CHSH point estimates: 4 decimals, to nearest;
+- ``lower`` / ``upper``: lower / upper confidence bounds: 4 decimals, rounded DOWN / UP;
+- ``count``: counts (trials, test rounds, raw / output / seed bits): integers with thousands
+  separators ",";
+- ``number``: other values (gamma, a win probability, expected trials): 6 significant
+  digits, to nearest, thousands separators;
+- ``exact``: a value compared against a limit: shortest round-trip form, in full;
+- ``digest``: SHA-256 digests, key fingerprints: in full, never cut;
+- ``text``: words as they are; ``flag``: ``yes`` / ``no``.
 
 :func:`fmt` writes one value; :func:`parse` reads a written value back (used by the tests
 to check a table against the JSON object and the record).
@@ -36,8 +27,8 @@ import math
 from decimal import ROUND_CEILING, ROUND_FLOOR, ROUND_HALF_EVEN, Decimal
 from typing import Any
 
-KINDS = ("error", "bits", "bits_short", "chsh", "lower", "upper", "count", "number", "exact", "digest",
-         "text", "flag")
+KINDS = ("error", "bits", "bits_short", "chsh", "lower", "upper", "count", "number", "exact",
+         "digest", "text", "flag")
 
 #: Written for a missing value (None).
 MISSING = "-"
@@ -49,7 +40,8 @@ CHSH_DECIMALS = 4
 NUMBER_DIGITS = 6
 
 #: Rounding direction of each numeric kind (what the tests check).
-DIRECTION = {"error": "up", "bits": "down", "bits_short": "down", "lower": "down", "upper": "up", "chsh": "nearest",
+DIRECTION = {"error": "up", "bits": "down", "bits_short": "down", "lower": "down", "upper": "up",
+             "chsh": "nearest",
              "number": "nearest", "count": "exact", "exact": "exact"}
 
 
@@ -128,7 +120,7 @@ def fmt(value: Any, kind: str) -> str:
         m = f"{q.scaleb(-adj):f}"
         return (m.rstrip("0").rstrip(".") if "." in m else m) + f"e{adj}"
     if kind == "number":
-        return _plain(_significant(value, NUMBER_DIGITS, ROUND_HALF_EVEN), group=False)
+        return _plain(_significant(value, NUMBER_DIGITS, ROUND_HALF_EVEN), group=True)
     rounding = {"chsh": ROUND_HALF_EVEN, "lower": ROUND_FLOOR, "upper": ROUND_CEILING}[kind]
     return _decimals(value, CHSH_DECIMALS, rounding)
 

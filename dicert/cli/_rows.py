@@ -87,28 +87,22 @@ def to_json(rows: list[Row], extra: dict | None = None) -> dict:
 
 
 def table(title: str, rows: list[Row]):
-    """A two-column rich table of ``rows``; both columns fold, so nothing is cut."""
+    """A two-column rich table of ``rows``; both columns fold, so nothing is cut. Cells are
+    plain text (no markup, no highlighting): values verbatim."""
     from rich.table import Table
+    from rich.text import Text
 
-    tab = Table(title=title, show_header=False, title_justify="left")
-    tab.add_column("quantity", style="bold", overflow="fold", ratio=2)
-    tab.add_column("value", overflow="fold", ratio=3)
+    tab = Table(title=Text(title), show_header=False, title_justify="left")
+    tab.add_column("quantity", style="bold", overflow="fold")
+    tab.add_column("value", overflow="fold")
     for r in rows:
-        tab.add_row(r.label, r.text)
+        tab.add_row(Text(r.label, style="bold"), Text(r.text))
     return tab
 
 
 def render(console: Any, title: str, rows: list[Row]) -> None:
-    """Print ``rows`` as a table on ``console`` (markup and highlighting off: values verbatim)."""
-    from rich.text import Text
-
-    tab = table(title, [])
-    for r in rows:
-        tab.add_row(Text(r.label, style="bold"), Text(r.text))
-    console.print(tab)
-
-
-__all__ = ["Row", "get_path", "to_json", "table", "render"]
+    """Print ``rows`` as a table on ``console``."""
+    console.print(table(title, rows))
 
 
 # --------------------------------------------------------------------------- record rows
