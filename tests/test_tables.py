@@ -464,3 +464,45 @@ def test_error_messages_show_digests_whole(runs, tmp_path):
     line = r.stderr.strip()
     assert "\n" not in line and "..." not in line
     assert "0" * 64 in line and len(HEX64.findall(line)) == 2  # stored and recomputed, whole
+
+
+# --------------------------------------------------------------------------- vocabulary
+
+
+def _retired_keys() -> set[str]:
+    """The former names of the README glossary ("formerly" column) that are plain keys."""
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    gloss = text[text.index("## Glossary"):]
+    gloss = gloss[:gloss.index("\n## ", 5)]
+    names = set()
+    for line in gloss.splitlines():
+        cells = [c.strip() for c in line.strip().strip("|").split("|")]
+        if line.startswith("|") and not line.startswith("|---") and len(cells) >= 4:
+            names.update(re.findall(r"`([A-Za-z_]+)`", cells[-1]))
+    # members of the former error dict that the error budget keeps (terms, total)
+    return names - {"terms", "total", "form"}
+
+
+def _keys(obj, path=""):
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            yield f"{path}.{k}".lstrip("."), k
+            yield from _keys(v, f"{path}.{k}")
+    elif isinstance(obj, list):
+        for i, v in enumerate(obj):
+            yield from _keys(v, f"{path}.{i}")
+
+
+def test_json_of_the_tables_uses_no_retired_name(runs):
+    retired = _retired_keys()
+    assert {"chsh", "chsh_lower", "test_trials", "min_entropy_bits", "error"} <= retired
+    docs = {"certify": runs["certified"]["json"], "certify aborted": runs["aborted"]["json"]}
+    log = str(FIXTURE / "log.btl")
+    docs["inspect"] = json.loads(_run(["inspect", log, "--protocol", UNIFORM, "--json"]).stdout)
+    docs["verify"] = json.loads(_run(["verify", str(runs["certified"]["dir"] / "record.json"),
+                                      "--json"]).stdout)
+    docs["plan"] = json.loads(_run(["plan", "--protocol", UNIFORM, "--trials", "2e5",
+                                    "--json"]).stdout)
+    for name, doc in docs.items():
+        bad = [p for p, k in _keys(doc) if k in retired]
+        assert not bad, f"{name} --json uses retired names: {bad}"
