@@ -88,7 +88,7 @@ def extract_cmd(
     for key, value in (
         ("input bits n", f"{res.n_bits:,}"),
         ("output bits m", f"{res.m_bits:,}"),
-        ("seed bits used", f"{res.seed_bits_used:,} of {8 * res.seed_bytes:,}"),
+        ("seed bits (used of given)", f"{res.seed_bits:,} of {8 * res.seed_bytes:,}"),
         ("input SHA-256", res.input_sha256),
         ("seed SHA-256", res.seed_sha256),
         ("output SHA-256", res.output_sha256),
