@@ -263,8 +263,16 @@ def _output_rows(rec: dict) -> list[Row]:
 
 
 def record_json(rec: dict, rows: list[Row]) -> dict:
-    """The JSON members that go with :func:`record_rows`: the error budget whole."""
-    budget = rec.get("error_budget")
+    """The JSON members that go with :func:`record_rows` besides the rows' numbers: the
+    error budget whole and the acceptance test's words (what the table's notes say)."""
     import copy
 
-    return {"error_budget": copy.deepcopy(budget)} if isinstance(budget, dict) else {}
+    out: dict = {}
+    budget = rec.get("error_budget")
+    if isinstance(budget, dict):
+        out["error_budget"] = copy.deepcopy(budget)
+    acc = acceptance(rec)
+    out["acceptance_test"] = None if acc is None else {
+        "statistic_name": acc["name"], "relation": acc["relation"],
+        "statistic_key": acc["statistic_path"], "limit_key": acc["limit_path"]}
+    return out
