@@ -555,11 +555,16 @@ def test_example_certify_and_verify_rerun_join(example, tmp_path):
 
     assert spec["content"] == text
     assert spec["sha256"] == hashlib.sha256(text.encode()).hexdigest()
+    charge = spec["join"].pop("charge")
     assert spec["join"] == {"matched": 3997, "missing_at_a": 0, "missing_at_b": 3,
                             "duplicated_keys": 0, "out_of_order_keys": 0, "max_missing": 3,
                             "first_key": 100007, "last_key": 128000}
-    # Dropped trials are not charged: the record states the untestable assumption instead.
-    assert any("Trials dropped by the station join (3," in a for a in rec["assumptions"])
+    # Dropped trials are charged, not assumed (tests/test_logspec_charge.py checks the values).
+    assert (charge["dropped_trials"], charge["lost_test_rounds_charged"],
+            charge["raw_bits_subtracted"]) == (3, 3, 6)
+    assert any("Trials dropped by the station join (3," in a and "checked / charged" in a
+               for a in rec["assumptions"])
+    assert not any("NOT charged" in a for a in rec["assumptions"])
     assert [f["name"] for f in rec["log"]["files"]] == ["station-a.csv", "station-b.csv"]
     for f in rec["log"]["files"]:
         data = (example / f["name"]).read_bytes()

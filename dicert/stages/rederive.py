@@ -205,7 +205,8 @@ def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None
 def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.stages.analysis import analyse_counts, design_report, log_end_note, withhold
+    from dicert.stages.analysis import (analyse_counts, design_report, join_report_of,
+                                        log_end_note, withhold)
     from dicert.stages.record import build_body
     from dicert.extract import seed_bits_required
 
@@ -221,7 +222,8 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
     else:
         design = design_report(scan, protocol)
     analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite,
-                              log_end=log_end_note(scan), design=design)
+                              log_end=log_end_note(scan), design=design,
+                              join=join_report_of(scan), source="log.spec.join")
     screens = body.get("output_screens") if isinstance(body.get("output_screens"), Mapping) \
         else None
     analysis = withhold(analysis, screens)
