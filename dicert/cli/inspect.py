@@ -124,6 +124,10 @@ def inspect_cmd(
                 ],
                 "plot": str(plot) if plot else None,
                 "log_spec": summary.log_spec,
+                "join_charge": None if look.charge is None else {
+                    **look.charge.to_dict(), "chsh_lower_charged": look.charged_estimate.chsh_lower,
+                    "chsh_martingale_charged": look.charged_estimate.chsh_martingale,
+                    "p_value_local_charged": look.charged_estimate.p_value_local},
             }
         )
         return
@@ -148,6 +152,9 @@ def inspect_cmd(
         rows.append(("station join", f"{j['matched']:,} trials matched; missing at A "
                      f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
                      f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
+    if look.charge is not None:
+        ch, ce = look.charge, look.charged_estimate
+        rows.append(("charged: dropped = lost test rounds", f"S (martingale) {ce.chsh_martingale:.5f}, lower bound {_clip(ce.chsh_lower)[0]:.5f} (uncharged {lower_shown:.5f}); certify also subtracts {ch.raw_bits_subtracted:,} raw bits + {ch.pattern_bits:.6g} drop-pattern bits"))
     con.print(kv_table(f"Bell test summary: {log}", rows))
     from rich.table import Table
 

@@ -81,6 +81,7 @@ from dicert.logspec._readers import (  # noqa: F401
 )
 from dicert.logspec._charge import (  # noqa: F401
     JoinCharge,
+    charge_for_log,
     charged_counts,
     join_charge,
     join_of,
@@ -104,6 +105,6 @@ from dicert.logspec._join import (  # noqa: F401
 )
 
 
-__all__ = ["JoinCharge", "JoinReport", "charged_counts", "join_charge", "pattern_bits",
+__all__ = ["JoinCharge", "JoinReport", "charge_for_log", "charged_counts", "join_charge", "pattern_bits",
            "pattern_count", "LogSpec", "SPEC_FORMAT", "SpecLog", "SourceSpec", "is_spec_file",
            "load_spec", "open_spec_log"]

@@ -141,6 +141,16 @@ def log2_up(value: int) -> float:
     return _up(v * (1 + 1e-15) + 1e-15)
 
 
+def _sum_up(a: int, b: float) -> float:
+    """The smallest float >= a + b (exact rational comparison)."""
+    from fractions import Fraction
+
+    t = float(a) + b
+    while Fraction(t) < Fraction(a) + Fraction(b):
+        t = math.nextafter(t, math.inf)
+    return t
+
+
 def _up(v: float) -> float:
     for _ in range(4):
         v = math.nextafter(v, math.inf)
@@ -194,8 +204,19 @@ def join_charge(join: Any, bits_per_trial: int, *, method: str | None = None,
                       missing_at_b=vals["missing_at_b"], max_missing=vals["max_missing"],
                       matched_trials=vals["matched"], lost_test_rounds_charged=dropped,
                       bits_per_trial=bpt, raw_bits_subtracted=raw, pattern_bits=pbits,
-                      total_bits=_up(raw + pbits) if pbits else float(raw),
+                      total_bits=_sum_up(raw, pbits),
                       pattern_count_method=how)
+
+
+def charge_for_log(log_spec: Any, counts: Any, bits_per_trial: int, *,
+                   method: str | None = None, source: Any = "log spec") -> tuple[Any, Any]:
+    """(charge, counts to analyse) for a log read through a log spec: without a station join
+    that may drop trials (join.max_missing = 0, or no join) (None, counts) unchanged; else the
+    :class:`JoinCharge` and the counts with the dropped trials as lost test rounds."""
+    charge = join_charge(join_of(log_spec), bits_per_trial, method=method, source=source)
+    if charge is None or (charge.max_missing == 0 and charge.dropped_trials == 0):
+        return None, counts
+    return charge, charged_counts(counts, charge.lost_test_rounds_charged)
 
 
 def join_of(log_spec: Any) -> Mapping | None:
@@ -207,5 +228,5 @@ def join_of(log_spec: Any) -> Mapping | None:
 
 
 __all__ = ["CHARGE_METHOD", "CHARGE_REFERENCES", "EXACT_PATTERN_LIMIT", "JoinCharge",
-           "charged_counts", "join_charge", "join_of", "log2_up", "pattern_bits",
+           "charge_for_log", "charged_counts", "join_charge", "join_of", "log2_up", "pattern_bits",
            "pattern_count"]
