@@ -125,9 +125,10 @@ def inspect_cmd(
                 "plot": str(plot) if plot else None,
                 "log_spec": summary.log_spec,
                 "join_charge": None if look.charge is None else {
-                    **look.charge.to_dict(), "chsh_lower_charged": look.charged_estimate.chsh_lower,
-                    "chsh_martingale_charged": look.charged_estimate.chsh_martingale,
-                    "p_value_local_charged": look.charged_estimate.p_value_local},
+                    **look.charge.to_dict(),
+                    "charged_chsh_estimate": look.charged_estimate.chsh_martingale,
+                    "charged_chsh_lower_bound": look.charged_estimate.chsh_lower,
+                    "charged_p_value_local": look.charged_estimate.p_value_local},
             }
         )
         return
