@@ -22,12 +22,15 @@ pass a Bell test. So dropped trials are charged, never assumed harmless:
    which station, so the pattern P is side information it may hold; conditioning on a
    classical register costs at most log2 of the number of values it can take:
    H_min^eps(X|E P) >= H_min^eps(X|E) - log2 |P|. With n matched trials and at most N
-   dropped, a pattern is a number j <= N of dropped trials, their places among the n + j
-   trials and, for each, the station that lost it: |P| = sum_{j<=N} C(n + j, j) 2^j
-   (:func:`pattern_count`). This is charged whenever N > 0, also when nothing was dropped
-   (the empty pattern is one the adversary chose). It is computed exactly with integers and
-   rounded UP to a float (:func:`pattern_bits`); for N above :data:`EXACT_PATTERN_LIMIT`
-   the bound log2 |P| <= log2 C(n + N, N) + N + 1 (the terms at least double with j) is
+   dropped, the charged analysis runs on T = n + d trials (d <= N dropped); a pattern is a
+   set of j <= N of the T trials with, for each, the station that lost it:
+   |P| <= sum_{j<=N} C(T, j) 2^j <= sum_{j<=N} C(n + N, j) 2^j (:func:`pattern_count`). The
+   last sum also covers a run whose trial count is not fixed (j trials dropped around the n
+   matched ones: C(n + j, j) <= C(n + N, j)) and exceeds the count for T = n + d, or for n
+   matched, by less than one bit (its largest terms are the same). It is charged whenever
+   N > 0, also when nothing was dropped (the empty pattern is one the adversary chose). It is
+   computed exactly with integers and rounded UP to a float (:func:`pattern_bits`); for N
+   above :data:`EXACT_PATTERN_LIMIT` the bound log2(N + 1) + max_j log2(C(n + N, j) 2^j) is
    evaluated with lgamma and a safety margin, again rounded up.
 
 A probability-estimation (``pef``) analysis multiplies trial-wise factors in log order and
@@ -61,8 +64,9 @@ CHARGE_METHOD = (
     "the finite-size method runs on these charged counts. From its certified min-entropy are "
     "subtracted the raw bits of the dropped trials (bits per trial x dropped trials; "
     "H_min^eps(X_kept|E) >= H_min^eps(X_all|E) - |X_dropped|) and the drop pattern, side "
-    "information the adversary may choose: log2 sum_{j<=max_missing} C(n+j, j) 2^j bits for "
-    "n matched trials (which trials, and at which station; H_min^eps(X|E P) >= "
+    "information the adversary may choose: log2 sum_{j<=N} C(n+N, j) 2^j bits for n matched "
+    "trials and N = max_missing (which trials, and at which station, among at most n + N; "
+    "H_min^eps(X|E P) >= "
     "H_min^eps(X|E) - log2|P| for a classical P), rounded up")
 
 CHARGE_REFERENCES = (
@@ -103,28 +107,37 @@ class JoinCharge:
 
 
 def pattern_count(n: int, max_missing: int) -> int:
-    """|P| = sum_{j=0}^{max_missing} C(n + j, j) 2^j, exactly (n matched trials)."""
+    """|P| bound sum_{j=0}^{N} C(n + N, j) 2^j, exactly (n matched trials, N = max_missing)."""
     n, big_n = _nonneg(n, "matched trials"), _nonneg(max_missing, "max_missing")
+    m = n + big_n
     total = term = 1  # j = 0
     for j in range(big_n):
-        term = term * 2 * (n + j + 1) // (j + 1)  # C(n+j+1, j+1) 2^(j+1), exact
+        term = term * 2 * (m - j) // (j + 1)  # C(m, j+1) 2^(j+1), exact
         total += term
     return total
 
 
 def pattern_bits(n: int, max_missing: int) -> tuple[float, str]:
-    """log2 |P| of :func:`pattern_count`, rounded UP, and how it was computed."""
+    """log2 of :func:`pattern_count`, rounded UP, and how it was computed."""
     n, big_n = _nonneg(n, "matched trials"), _nonneg(max_missing, "max_missing")
     if big_n == 0:
         return 0.0, "exact: no trial may be dropped (one pattern)"
     if big_n <= EXACT_PATTERN_LIMIT:
         return log2_up(pattern_count(n, big_n)), "exact integer sum, log2 rounded up"
-    # terms at least double with j, so the sum is < 2 C(n+N, N) 2^N
-    nats = math.lgamma(n + big_n + 1) - math.lgamma(big_n + 1) - math.lgamma(n + 1)
-    scale = math.lgamma(n + big_n + 1) + math.lgamma(big_n + 1) + math.lgamma(n + 1)
-    nats += 1e-12 * scale + 1e-9  # lgamma's rounding, taken up
-    bits = nats / math.log(2) * (1 + 1e-15) + big_n + 1
-    return _up(bits), "upper bound log2 C(n+N, N) + N + 1 (lgamma with a margin), rounded up"
+    # at most N + 1 terms, each at most the largest; log C(m, j) 2^j is unimodal in j with its
+    # peak at j = floor((2m - 1) / 3) + 1 (the ratio of successive terms is 2 (m - j) / (j + 1))
+    m = n + big_n
+    peak = min(big_n, (2 * m - 1) // 3 + 1)
+    best = -math.inf
+    for j in {max(0, peak - 1), peak, min(big_n, peak + 1)}:
+        nats = math.lgamma(m + 1) - math.lgamma(j + 1) - math.lgamma(m - j + 1)
+        scale = math.lgamma(m + 1) + math.lgamma(j + 1) + math.lgamma(m - j + 1)
+        nats += 1e-12 * scale + 1e-9  # lgamma's rounding, taken up
+        best = max(best, nats / math.log(2) * (1 + 1e-15) + j)
+    bits = best + math.log2(big_n + 1) * (1 + 1e-15) + 1e-12
+    bits = min(bits, m * math.log2(3) * (1 + 1e-15) + 1e-12)  # the sum is < 3^m
+    return _up(bits), ("upper bound min(log2(N + 1) + max_j log2(C(n+N, j) 2^j), (n+N) log2 3) "
+                       "(lgamma with a margin), rounded up")
 
 
 def log2_up(value: int) -> float:
