@@ -459,7 +459,12 @@ class _ParquetFile:
         maps = {r: _ValueMap(r, src.columns[r], m) for r, m in src.values.items()}
         row = 0
         try:
-            for batch in f.iter_batches(batch_size=chunk_trials, columns=sorted(set(cols.values()))):
+            # A station's file: the two stations are already decoded in parallel threads
+            # (dicert.logspec._join._prefetched), and pyarrow's own pool on top oversubscribes
+            # the cores; a table's file uses pyarrow's pool.
+            threads = src.label == "table"
+            for batch in f.iter_batches(batch_size=chunk_trials, use_threads=threads,
+                                        columns=sorted(set(cols.values()))):
                 out = {}
                 for role, c in cols.items():
                     arr = batch.column(c)
