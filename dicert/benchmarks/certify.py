@@ -25,7 +25,7 @@ def _make_inputs(tmp: Path, n: int) -> tuple[Path, Path]:
     from dicert.simulate import device_model, simulate_to_file
 
     log = tmp / "bench.btl"
-    simulate_to_file(log, n, device_model("quantum", visibility=0.97), rng_seed=2026)
+    simulate_to_file(log, n, device_model("quantum", visibility=0.97), rng_stream=2026)
     seed = tmp / "seed.bin"
     seed.write_bytes(np.random.default_rng(7).bytes((4 * n) // 8 + 8))
     return log, seed

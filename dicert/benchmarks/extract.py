@@ -165,7 +165,7 @@ def _certify_end_to_end(tmp: Path) -> list[BenchResult]:
     rss_seen = []
     for trials in (10**7, 2 * 10**8):
         log, seed, out = tmp / f"c{trials}.btl", tmp / f"c{trials}.seed", tmp / f"c{trials}"
-        simulate_to_file(log, trials, device_model("quantum", visibility=0.97), rng_seed=2026)
+        simulate_to_file(log, trials, device_model("quantum", visibility=0.97), rng_stream=2026)
         seed.write_bytes(np.random.default_rng(7).bytes((4 * trials) // 8 + 8))
         cmd = [sys.executable, "-m", "dicert.cli.app", "certify", str(log), "--protocol",
                str(proto), "--seed", str(seed), "--out", str(out), "--json"]

@@ -209,6 +209,7 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
                                         log_end_note, withhold)
     from dicert.stages.record import build_body
     from dicert.extract import seed_bits_required
+    from dicert.stages.record_compat import drop_added_members
 
     legacy = body.get("format") == "dicert-record/1"
     if legacy:
@@ -262,6 +263,7 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
             for k in ("p_value_local", "log10_p_value_local", "p_value_method"):
                 if k in rest:
                     est[k] = rest[k]
+    drop_added_members(exp, body.get("format"))  # what older formats never wrote
     # A record written by another version is compared on its numbers, not its version string;
     # the volatile section (timestamps, timings) is the one part allowed to differ.
     exp["tool"] = body.get("tool", exp["tool"])
