@@ -401,3 +401,42 @@ def test_inspect_and_entropy_show_the_charge(run):
     assert r.exit_code == 0, r.output
     doc = json.loads(r.output)
     assert doc["log"]["join_charge"]["lost_test_rounds_charged"] == 5
+
+
+def test_record_from_before_the_charge_verifies_with_a_note(run, tmp_path, monkeypatch):
+    """A dicert-record/3 record (before the join charge) with dropped trials re-derives as
+    written, uncharged, and verify says its drops were not charged."""
+    from dicert.audit.record import seal_record, write_record
+    from dicert.stages import analysis as stage
+    from dicert.stages.record import LEGACY_DROP_ASSUMPTION
+
+    with monkeypatch.context() as m:  # certify as before the charge
+        m.setattr(stage, "join_charge_for", lambda *a, **k: None)
+        body = _certify(run["spec"], tmp_path, "old").record
+    body = {k: v for k, v in body.items() if k not in ("signature", "record_sha256")}
+    assert "charge" not in body["log"]["spec"]["join"]
+    assert LEGACY_DROP_ASSUMPTION.format(dropped=5) in body["assumptions"]
+    # written as dicert-record/3: the /4 members out, the estimate names of /3
+    sr = body["entropy"]["single_round"]
+    for k in ("single_round_bound_bits_at_chsh_estimate",
+              "von_neumann_bound_bits_at_chsh_estimate"):
+        sr.pop(k)
+    for k in ("single_round_bound_bits", "von_neumann_bound_bits"):
+        sr[f"{k}_at_chsh_estimate"] = sr.pop(f"{k}_at_chsh_ratio_estimate")
+    est = body["estimate"]
+    est["chsh_martingale"] = est.pop("chsh_estimate")
+    est["chsh_estimate"] = est.pop("chsh_ratio_estimate")
+    body["format"] = "dicert-record/3"
+    write_record(tmp_path / "v3.json", seal_record(body))
+    r = _cli("verify", tmp_path / "v3.json", "--json")
+    assert r.exit_code == 4, r.output
+    notes = json.loads(r.output)["notes"]
+    assert any("predates the station-join charge: its 5 trials dropped by the join were NOT "
+               "charged" in n for n in notes), notes
+    r = _cli("verify", tmp_path / "v3.json", "--log-spec", run["spec"], "--seed",
+             _seed(tmp_path))
+    assert r.exit_code == 4, r.output
+    # the same body claimed as today's format must carry the charge: refused
+    body["format"] = "dicert-record/4"
+    write_record(tmp_path / "v4.json", seal_record(body))
+    assert _cli("verify", tmp_path / "v4.json").exit_code == 1

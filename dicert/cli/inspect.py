@@ -126,8 +126,8 @@ def inspect_cmd(
                 "log_spec": summary.log_spec,
                 "join_charge": None if look.charge is None else {
                     **look.charge.to_dict(),
-                    "charged_chsh_estimate": look.charged_estimate.chsh_martingale,
-                    "charged_chsh_lower_bound": look.charged_estimate.chsh_lower,
+                    "charged_chsh_estimate": look.charged_estimate.chsh_estimate,
+                    "charged_chsh_lower_bound": look.charged_estimate.chsh_lower_bound,
                     "charged_p_value_local": look.charged_estimate.p_value_local},
             }
         )
@@ -155,7 +155,7 @@ def inspect_cmd(
                      f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
     if look.charge is not None:
         ch, ce = look.charge, look.charged_estimate
-        rows.append(("charged: dropped = lost test rounds", f"S (martingale) {ce.chsh_martingale:.5f}, lower bound {_clip(ce.chsh_lower)[0]:.5f} (uncharged {lower_shown:.5f}); certify also subtracts {ch.raw_bits_subtracted:,} raw bits + {ch.pattern_bits:.6g} drop-pattern bits"))
+        rows.append(("charged: dropped = lost test rounds", f"S (martingale) {ce.chsh_estimate:.5f}, lower bound {_clip(ce.chsh_lower_bound)[0]:.5f} (uncharged {lower_shown:.5f}); certify also subtracts {ch.raw_bits_subtracted:,} raw bits + {ch.pattern_bits:.6g} drop-pattern bits"))
     con.print(kv_table(f"Bell test summary: {log}", rows))
     from rich.table import Table
 

@@ -266,11 +266,17 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
             f"trials plus {charge.pattern_bits:.6g} bits for the drop pattern (which trials, "
             "at which station: chosen by the adversary) subtracted from the certified "
             "min-entropy (log.spec.join.charge).")
-    elif _dropped_trials(scan):  # a record whose charge could not be derived
-        assumptions.append(
-            f"Trials dropped by the station join ({_dropped_trials(scan)}) went missing "
-            "independently of the settings and outcomes: NOT checked and NOT charged.")
+    elif _dropped_trials(scan):  # a record from before the join charge (format /3 or older)
+        assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=_dropped_trials(scan)))
     return assumptions
+
+
+#: What a record from before the station-join charge (dicert-record/3) assumed instead.
+LEGACY_DROP_ASSUMPTION = (
+    "Trials dropped by the station join ({dropped}, tolerated by the log spec's "
+    "join.max_missing) went missing independently of the settings and outcomes: "
+    "NOT checked, and nothing is charged for them; if the devices or the stations' "
+    "electronics can cause a trial to go missing, the certificate does not hold.")
 
 
 def _dropped_trials(scan: LogScan) -> int:
