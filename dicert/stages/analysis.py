@@ -193,6 +193,26 @@ def join_charge_for(join: Any, protocol: Protocol, source: Any = "log spec") -> 
     return charge
 
 
+def charged_for(join: Any, counts: np.ndarray, protocol: Protocol, eps_est: float,
+                source: Any) -> tuple[Any, np.ndarray, Any]:
+    """(charge, counts to analyse, uncharged estimate) for a station-join report.
+
+    When the log spec tolerates missing trials they are charged (:mod:`dicert.logspec._charge`):
+    the estimate and the finite-size method run on the counts with every dropped trial counted
+    as a lost test round, and :func:`analyse_counts` subtracts the dropped raw bits and the
+    drop-pattern bits from the certified min-entropy; method pef refuses a join that dropped
+    trials. The design checks stay on the trials read. Without a charge: (None, counts, None).
+    """
+    charge = join_charge_for(join, protocol, source)
+    if charge is None:
+        return None, counts, None
+    from dicert.estimate import estimate_chsh
+    from dicert.logspec._charge import charged_counts
+
+    uncharged = estimate_chsh(counts, design=protocol.design, eps=eps_est)
+    return charge, charged_counts(counts, charge.lost_test_rounds_charged), uncharged
+
+
 def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
                    finite: Any = None, log_end: str | None = None,
                    design: Any = None, join: Any = None, source: Any = "log spec") -> Analysis:
@@ -203,13 +223,8 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
     order and not only on the counts. ``log_end`` (see :func:`log_end_note`) is appended to the
     abort reason. ``design`` is the :class:`dicert.design.DesignReport` of the log (default:
     the checks the counts alone allow); when a check fails the run aborts with that reason and
-    no finite-size method is run (a streaming pef result is kept, but not used). ``join`` is
-    the station-join report of a log read through a log spec (``log.spec.join``): when the
-    spec tolerates missing trials they are charged (:mod:`dicert.logspec._charge`): the
-    estimate and the finite-size method run on the counts with every dropped trial counted as
-    a lost test round, and the dropped raw bits and the drop-pattern bits are subtracted from
-    the certified min-entropy; method pef refuses a join that dropped trials. The design
-    checks stay on the trials read.
+    no finite-size method is run (a streaming pef result is kept, but not used). ``join``, the
+    station-join report (``log.spec.join``), is charged as :func:`charged_for` says.
     """
     from dicert.design import check_design
     from dicert.estimate import estimate_chsh
@@ -217,15 +232,9 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
 
     counts = np.asarray(counts, dtype=np.int64)
     eps_est = _estimate_eps(protocol)
-    charge = join_charge_for(join, protocol, source)
-    uncharged = None
     if design is None:
         design = check_design(counts, protocol, eps=eps_est)
-    if charge is not None:
-        from dicert.logspec._charge import charged_counts
-
-        uncharged = estimate_chsh(counts, design=protocol.design, eps=eps_est)
-        counts = charged_counts(counts, charge.lost_test_rounds_charged)
+    charge, counts, uncharged = charged_for(join, counts, protocol, eps_est, source)
     estimate = estimate_chsh(counts, design=protocol.design, eps=eps_est)
     if not design.passed:
         if finite is None:

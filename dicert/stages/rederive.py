@@ -205,28 +205,15 @@ def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None
 def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.stages.analysis import (analyse_counts, design_report, join_report_of,
-                                        log_end_note, withhold)
+    from dicert.stages.analysis import analyse_counts, log_end_note, withhold
     from dicert.stages.record import build_body
     from dicert.extract import seed_bits_required
     from dicert.stages.record_compat import drop_added_members
 
     legacy = body.get("format") == "dicert-record/1"
-    if legacy:
-        from dicert.design import DesignReport, spec_of
-
-        # A /1 record predates the design stage: its numbers are re-derived without it.
-        spec = spec_of(protocol)
-        design = DesignReport(significance=spec.significance, block_trials=spec.block_trials,
-                              trials=scan.trials, trials_in_log=scan.trials,
-                              declared_trials=None, checks=())
-    else:
-        design = design_report(scan, protocol)
-    # Records from before the station-join charge re-derive as written (verify notes it).
-    join = None if body.get("format") in UNCHARGED_FORMATS else join_report_of(scan)
     analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite,
-                              log_end=log_end_note(scan), design=design,
-                              join=join, source="log.spec.join")
+                              log_end=log_end_note(scan), design=_design_for(body, protocol, scan),
+                              join=_charged_join(body, scan), source="log.spec.join")
     screens = body.get("output_screens") if isinstance(body.get("output_screens"), Mapping) \
         else None
     analysis = withhold(analysis, screens)
@@ -286,6 +273,29 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
         for k in _SCOPE_KEYS:
             exp["log"].pop(k, None)
     return exp
+
+
+def _design_for(body: Mapping[str, Any], protocol: Protocol, scan: Any) -> Any:
+    """The design report to re-derive with: a /1 record predates the design stage, so its
+    numbers are re-derived without it."""
+    from dicert.stages.analysis import design_report
+
+    if body.get("format") != "dicert-record/1":
+        return design_report(scan, protocol)
+    from dicert.design import DesignReport, spec_of
+
+    spec = spec_of(protocol)
+    return DesignReport(significance=spec.significance, block_trials=spec.block_trials,
+                        trials=scan.trials, trials_in_log=scan.trials, declared_trials=None,
+                        checks=())
+
+
+def _charged_join(body: Mapping[str, Any], scan: Any) -> Any:
+    """The station-join report to charge; records from before the join charge re-derive as
+    written, uncharged (verify notes it)."""
+    from dicert.stages.analysis import join_report_of
+
+    return None if body.get("format") in UNCHARGED_FORMATS else join_report_of(scan)
 
 
 #: Record formats from before trials dropped by a station join were charged
