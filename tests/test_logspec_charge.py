@@ -440,3 +440,25 @@ def test_record_from_before_the_charge_verifies_with_a_note(run, tmp_path, monke
     body["format"] = "dicert-record/4"
     write_record(tmp_path / "v4.json", seal_record(body))
     assert _cli("verify", tmp_path / "v4.json").exit_code == 1
+
+
+def test_pef_without_drops_is_charged_the_pattern():
+    """A pef run whose join tolerated drops but dropped none: only the pattern bits come off
+    its certified min-entropy (the pef result itself is taken as given here)."""
+    from types import SimpleNamespace
+
+    from dicert.finite.result import FiniteSizeResult
+    from dicert.protocol import load_protocol
+    from dicert.stages.analysis import analyse_counts
+
+    proto = load_protocol(ROOT / "protocols" / "ch-photonic.toml")
+    fin = FiniteSizeResult(method="pef", side_information="quantum", accepted=True,
+                           min_entropy_bits=5000.0, eps={"eps_pe": 1e-6})
+    c = np.zeros((2,) * 5, np.int64)
+    c[1, 0, 0, 0, 0] = 10**5
+    join = {"matched": 10**5, "missing_at_a": 0, "missing_at_b": 0, "max_missing": 4}
+    ok = SimpleNamespace(passed=True, abort_reason=None)
+    res = analyse_counts(c, proto, 2 * 10**5, finite=fin, design=ok, join=join)
+    pb = pattern_bits(10**5, 4)[0]
+    assert res.charge.total_bits == pb and res.min_entropy_bits == 5000.0 - pb
+    assert analyse_counts(c, proto, 2 * 10**5, finite=fin, design=ok).min_entropy_bits == 5000.0

@@ -240,7 +240,10 @@ def _charge_section(analysis: Analysis, counts: Any = None) -> dict:
     if counts is not None:
         from dicert.logspec._charge import charged_counts
 
-        sec["uncharged_counts_layout"] = "counts.values (the trials the join kept)"
+        sec["note"] = ("the record's estimate, entropy and certified_min_entropy_bits come from "
+                       "charged_counts (counts.values plus the lost test rounds charged), less "
+                       "total_bits; counts.values and uncharged_estimate are the trials the join "
+                       "kept")
         sec["charged_counts"] = charged_counts(
             counts, analysis.charge.lost_test_rounds_charged).tolist()
     return sec
