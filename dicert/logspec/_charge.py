@@ -12,6 +12,12 @@ pass a Bell test. So dropped trials are charged, never assumed harmless:
    value a term can take, so the charged statistic never exceeds the statistic of the run
    whatever the dropped trials' settings and outcomes were; for the win/loss counts of entropy
    accumulation a lost test round is likewise the worst case (one more loss, no more wins).
+   Why this is sound: complete each dropped trial by giving the missing station a fixed
+   outcome (a local assignment, so the completed run is a run of legitimate two-outcome
+   devices, of n + d trials). Its statistic is at least the charged one, so the event "the
+   charged test accepts" lies inside "the completed run's test accepts", and the finite-size
+   guarantees (stated for the event of acceptance, or for any event implying it) carry over;
+   the kept raw bits are a part of the completed run's raw bits (point 2).
    The charged rounds are put on the four test settings pairs in turn, (0,0), (0,1), (1,0),
    (1,1), (0,0), ... with the losing outcomes (0,1) for x y = 0 and (0,0) for x = y = 1
    (:func:`charged_counts`); the finite-size method then runs on the charged counts.
@@ -60,8 +66,9 @@ CHARGE_SETTINGS = ((0, 0), (0, 1), (1, 0), (1, 1))
 CHARGE_METHOD = (
     "each dropped trial is counted as a lost test round (t = 1, a XOR b != x AND y; settings "
     "pairs (0,0), (0,1), (1,0), (1,1) in turn): the smallest martingale-estimator term and one "
-    "more CHSH-game loss, so the acceptance test and the CHSH lower bound can only get worse; "
-    "the finite-size method runs on these charged counts. From its certified min-entropy are "
+    "more CHSH-game loss, so the acceptance test and the CHSH lower bound can only get worse "
+    "(they are at most those of the run completed by a fixed outcome at the missing station, "
+    "a local assignment); the finite-size method runs on these charged counts. From its certified min-entropy are "
     "subtracted the raw bits of the dropped trials (bits per trial x dropped trials; "
     "H_min^eps(X_kept|E) >= H_min^eps(X_all|E) - |X_dropped|) and the drop pattern, side "
     "information the adversary may choose: log2 sum_{j<=N} C(n+N, j) 2^j bits for n matched "
