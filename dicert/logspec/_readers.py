@@ -117,6 +117,9 @@ class _ValueMap:
         """Bits of integer values through a lookup table (255 = not in the map), or None when
         the values span too wide a range for a table."""
         ints = {int(k): b for k, b in self.numeric.items() if float(k).is_integer()}
+        two = self._two_values(arr, ints)
+        if two is not None:
+            return two
         if arr.dtype.itemsize == 1:  # int8, uint8, bool: a 256-entry table on the raw byte
             lut = np.full(256, 255, np.uint8)
             signed = arr.dtype.kind == "i"
@@ -132,6 +135,22 @@ class _ValueMap:
             if lo <= k <= hi:
                 lut[k - lo] = b
         return lut[np.subtract(arr, lo, dtype=np.int64)]
+
+    @staticmethod
+    def _two_values(arr: np.ndarray, ints: Mapping[int, int]) -> np.ndarray | None:
+        """Bits by two comparisons when the map is {k0: 0, k1: 1} and every value is k0 or
+        k1 (the common 1/2 and +1/-1 codes; no table look-up), else None."""
+        if len(ints) != 2 or sorted(ints.values()) != [0, 1]:
+            return None
+        k1 = next(k for k, b in ints.items() if b == 1)
+        k0 = next(k for k, b in ints.items() if b == 0)
+        try:
+            hit1 = arr == k1
+            if not (hit1 | (arr == k0)).all():
+                return None  # the table path marks the values outside the map
+        except (OverflowError, TypeError):  # a key outside the column's integer type
+            return None
+        return hit1.view(np.uint8)
 
     def map_strings(self, arr, path: Path, row0: int) -> np.ndarray:
         arr = np.asarray(arr)
