@@ -31,7 +31,7 @@ _ABS_TOL = 1e-15
 
 @dataclasses.dataclass(frozen=True, slots=True)
 class _ExtractionStandIn:
-    seed_bits_used: int
+    seed_bits: int
     output_sha256: str | None
     method: str | None
 
@@ -220,7 +220,7 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
     extraction = None
     if analysis.status in ("certified", "withheld"):
         extraction = _ExtractionStandIn(
-            seed_bits_used=int(seed_bits_required(scan.raw_bits, analysis.output_bits)),
+            seed_bits=int(seed_bits_required(scan.raw_bits, analysis.output_bits)),
             output_sha256=output_sha256,
             method=body.get("extractor", {}).get("method") if isinstance(
                 body.get("extractor"), Mapping) else None,
