@@ -371,7 +371,8 @@ def test_verify_round_trip_and_tampered_charge(run, tmp_path):
     for path, value in ((("charge", "pattern_bits"), 0.0),
                         (("charge", "raw_bits_subtracted"), 0),
                         (("charge", "lost_test_rounds_charged"), 0),
-                        (("missing_at_b",), 0)):
+                        (("missing_at_b",), 0), (("missing_at_b",), 9),
+                        (("missing_at_b",), "x"), (("max_missing",), 4)):
         b = json.loads(json.dumps(body))
         node = b["log"]["spec"]["join"]
         for k in path[:-1]:

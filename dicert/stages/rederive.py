@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from dicert.errors import DicertError, VerificationError
+from dicert.errors import DicertError, ParameterError, VerificationError
 
 if TYPE_CHECKING:
     from dicert.protocol import Protocol
@@ -213,7 +213,7 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
     legacy = body.get("format") == "dicert-record/1"
     analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite,
                               log_end=log_end_note(scan), design=_design_for(body, protocol, scan),
-                              join=_charged_join(body, scan), source="log.spec.join")
+                              join=_charged_join(body, scan, protocol), source="log.spec.join")
     screens = body.get("output_screens") if isinstance(body.get("output_screens"), Mapping) \
         else None
     analysis = withhold(analysis, screens)
@@ -290,12 +290,19 @@ def _design_for(body: Mapping[str, Any], protocol: Protocol, scan: Any) -> Any:
                         checks=())
 
 
-def _charged_join(body: Mapping[str, Any], scan: Any) -> Any:
+def _charged_join(body: Mapping[str, Any], scan: Any, protocol: Protocol) -> Any:
     """The station-join report to charge; records from before the join charge re-derive as
     written, uncharged (verify notes it)."""
+    from dicert.logspec._charge import join_charge
     from dicert.stages.analysis import join_report_of
 
-    return None if body.get("format") in UNCHARGED_FORMATS else join_report_of(scan)
+    join = None if body.get("format") in UNCHARGED_FORMATS else join_report_of(scan)
+    if join is not None:  # an inconsistent report is a verification failure, not bad input
+        try:
+            join_charge(join, 2, method=protocol.method, source="the recorded join report")
+        except ParameterError as exc:
+            _require(False, "log.spec.join", str(exc))
+    return join
 
 
 #: Record formats from before trials dropped by a station join were charged
