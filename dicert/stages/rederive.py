@@ -298,11 +298,26 @@ def _charged_join(body: Mapping[str, Any], scan: Any, protocol: Protocol) -> Any
 
     join = None if body.get("format") in UNCHARGED_FORMATS else join_report_of(scan)
     if join is not None:  # an inconsistent report is a verification failure, not bad input
+        _require(join.get("max_missing") == _spec_max_missing(scan.log_spec),
+                 "log.spec.join.max_missing", "differs from the recorded spec's "
+                 "[join] max_missing")
         try:
             join_charge(join, 2, method=protocol.method, source="the recorded join report")
         except ParameterError as exc:
             _require(False, "log.spec.join", str(exc))
     return join
+
+
+def _spec_max_missing(log_spec: Any) -> Any:
+    """``[join] max_missing`` of a recorded spec's content (0 when absent; None if unreadable)."""
+    import tomllib
+
+    try:
+        doc = tomllib.loads(str(log_spec.get("content")))
+    except (tomllib.TOMLDecodeError, AttributeError):
+        return None
+    join = doc.get("join", {})
+    return join.get("max_missing", 0) if isinstance(join, dict) else None
 
 
 #: Record formats from before trials dropped by a station join were charged
