@@ -268,7 +268,8 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
             f"and the acceptance test, and {charge.raw_bits_subtracted} raw bits of dropped "
             f"trials plus {charge.pattern_bits:.6g} bits for the drop pattern (which trials, "
             "at which station: chosen by the adversary) subtracted from the certified "
-            "min-entropy (log.spec.join.charge).")
+            "min-entropy (log.spec.join.charge). A trial missing at both stations leaves no "
+            "row for the join to see: that every trial is logged stays assumed (above).")
     elif _dropped_trials(scan):  # a record from before the join charge (format /3 or older)
         assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=_dropped_trials(scan)))
     return assumptions
