@@ -78,6 +78,17 @@ def _write_csv(path: Path, n: int, rng) -> None:
             fh.write(b"\n".join(b",".join(r) for r in zip(key, s, o)) + b"\n")
 
 
+def _cpu_of(cmd: list[str]) -> float:
+    """CPU seconds (user + system) of a child process running ``cmd``."""
+    import resource
+    import subprocess
+
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=True)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+
+
 def run(quick: bool = False) -> list[BenchResult]:
     import importlib.util
 
@@ -113,6 +124,13 @@ def run(quick: bool = False) -> list[BenchResult]:
                                f"{n / t_join / 1e6:.1f} M trials/s"))
         out.append(BenchResult(suite=SUITE, name=f"peak memory of the join ({n:.0e} trials)",
                                value=rss, unit="MB", target=300.0, higher_is_better=False))
+        c_base, c_join = min(_cpu_of(base_cmd) for _ in range(2)), _cpu_of(join_cmd)
+        out.append(BenchResult(suite=SUITE, name=f"two-station join, Parquet ({n:.0e} trials): "
+                               "CPU time of the inspect process / of the numpy pass",
+                               value=c_join / c_base, unit="x", higher_is_better=False,
+                               note=f"{c_join:.2f} s vs {c_base:.2f} s of CPU (user + system); "
+                               "informational: CPU time depends less on the other load of a "
+                               "shared machine than wall time"))
         dig_cmd = [py, "-c", "import sys; from dicert.logs import summarize_log; "
                    "summarize_log(sys.argv[1], digest=True)", str(spec)]
         t_dig = min(peak_rss_mb_of(dig_cmd)[0] for _ in range(1 if not quick else 2))
