@@ -123,6 +123,11 @@ def inspect_cmd(
             ],
             "plot": str(plot) if plot else None,
             "log_spec": summary.log_spec,
+            "join_charge": None if look.charge is None else {
+                **look.charge.to_dict(),
+                "charged_chsh_estimate": look.charged_estimate.chsh_estimate,
+                "charged_chsh_lower_bound": look.charged_estimate.chsh_lower_bound,
+                "charged_p_value_local": look.charged_estimate.p_value_local},
         }))
         return
     con = stdout_console()
@@ -133,6 +138,13 @@ def inspect_cmd(
         rows.append(Row("station join", None, f"{j['matched']:,} trials matched; missing at A "
                         f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
                         f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
+    if look.charge is not None:
+        ch, ce = look.charge, look.charged_estimate
+        rows.append(Row("charged: dropped = lost test rounds", None,
+                        f"CHSH estimate {ce.chsh_estimate:.5f}, lower bound "
+                        f"{_clip(ce.chsh_lower_bound)[0]:.5f} (uncharged {lower_shown:.5f}); "
+                        f"certify also subtracts {ch.raw_bits_subtracted:,} raw bits + "
+                        f"{ch.pattern_bits:.6g} drop-pattern bits"))
     render(con, f"Bell test summary: {log}", rows)
     from rich.table import Table
 
