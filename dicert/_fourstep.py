@@ -463,7 +463,7 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
     # Q(-k) = -conj(Q(k)) for the stored Q = 4i x (spectrum of a real sequence), hence for the
     # row inverse transforms E: E[N2 - k2, j1] = -exp(-2 pi i j1 / N1) conj(E[k2, j1]).
     if N2 - 1 > H:
-        f = -np.exp((-2j * np.pi / N1) * np.arange(c0, c1))
+        f = -_roots(np.arange(c0, c1), N1, -1)
         t[H + 1:] = f[None, :] * np.conj(t[1: N2 - H][::-1])
     vals = np.empty((J, c1 - c0), dtype=np.float64)  # position j2*N1 + c0 + col
     for q in range(0, c1 - c0, _TILE):  # tiles of columns, as in columns_first

@@ -517,8 +517,12 @@ def _certify_locked(*, log: Any, run: RunInputs, state: Any, protocol_change: st
     t1 = time.perf_counter()
     spill = outputs.new_spill_dir(out)  # private (0700): raw bits never sit in --out
     try:
+        from dicert.cluster import scheduler_from_env
+
+        scheduler = scheduler_from_env(scheduler)
         scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.select,
-                              spill_dir=spill, progress=progress, protocol=proto, follow=spec)
+                              spill_dir=spill, progress=progress, protocol=proto, follow=spec,
+                              scheduler=scheduler)
         timings["scan"] = time.perf_counter() - t1
         outputs.fault_point("after-scan")
         try:

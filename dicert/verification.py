@@ -318,8 +318,9 @@ def recheck_seed(seed: bytes | str | os.PathLike[str] | None, facts: RecordFacts
     return seed_in
 
 
-def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
-    """The read-and-scan stage again, over exactly what the record covers."""
+def rescan_log(log: Any, facts: RecordFacts, *, scheduler: Any = None) -> tuple[Any, Any]:
+    """The read-and-scan stage again, over exactly what the record covers (a multi-file log
+    on the cluster's workers with ``scheduler``, see :func:`dicert.stages.scan.scan_log`)."""
     import tempfile
 
     from dicert.errors import LogFormatError
@@ -342,7 +343,8 @@ def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
             scan, sink = _scan_whole(log, parties, rounds, spill_dir=spill, progress=None,
                                      protocol=protocol)
         else:
-            scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol)
+            scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol,
+                                  scheduler=scheduler)
     except LogFormatError as exc:
         # A log that no longer reads is not the log that was certified.
         raise VerificationError(f"the given log does not read as a trial log ({exc})",
@@ -364,7 +366,9 @@ def recheck_log(log: Any, facts: RecordFacts, found: Findings, seed_data: Any, *
     """Re-read the log, re-derive the body from it, and with the seed re-run the extraction
     and the output screens. Returns the recomputed output (or None)."""
     body, protocol = facts.body, facts.protocol
-    scan, sink = rescan_log(log, facts)
+    from dicert.cluster import scheduler_from_env
+
+    scan, sink = rescan_log(log, facts, scheduler=scheduler_from_env(scheduler))
     try:
         if not (body.get("format") == "dicert-record/1" and len(scan.file_entries) > 1) \
                 and isinstance(body.get("inputs"), Mapping):
