@@ -280,7 +280,7 @@ def certify(log: Any, protocol: Protocol | str | os.PathLike[str], seed: bytes |
     outcome is decided, and the record's ``log`` section covers exactly the bytes read
     (``scope`` "prefix", ``bytes_read``, ``trials_read``, ``stopped_early``,
     ``stop_trial_index``); see :func:`scan_log`. Stopping at a data-dependent time is sound
-    for PEFs (Knill, Zhang & Bierhorst 2020; methods note section 2).
+    for PEFs (Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)).
 
     Soundness: with the protocol's method the record's ``eps.total`` bounds
     P(accept) x (trace distance of the output, together with seed, settings and the

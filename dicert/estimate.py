@@ -89,23 +89,27 @@ class SettingsDesign:
 class ChshEstimate:
     """CHSH estimates and finite-statistics bounds from one log.
 
-    Fields ending in ``_stderr`` assume i.i.d. trials (descriptive only); ``chsh_lower`` and
-    ``p_value_local`` hold for devices with memory.
+    ``chsh_estimate`` is the weighted (martingale) estimate with the settings probabilities of
+    the design, and ``chsh_lower_bound`` its lower confidence bound at error ``eps_est``; both and
+    ``p_value_local`` hold for devices with memory. ``chsh_ratio_estimate`` (the sum of the four
+    correlators) and the fields ending in ``_stderr`` assume i.i.d. trials (descriptive only).
+    The names of earlier versions (``chsh`` for the ratio estimate, ``chsh_martingale``,
+    ``chsh_lower``, ``eps``, ``test_trials``) remain as read-only aliases.
     """
 
     trials: int
-    test_trials: int
+    test_rounds: int
     counts_xyab: np.ndarray
     correlators: np.ndarray  # E[x, y]; NaN where a setting pair was never tested
     correlator_stderr: np.ndarray
-    chsh: float  # ratio estimator
-    chsh_stderr: float
+    chsh_ratio_estimate: float  # sum of the four correlators (ratio estimator)
+    chsh_stderr: float  # i.i.d. standard error of the ratio estimate (descriptive)
     win_probability: float  # among test rounds
     wins: int
-    chsh_martingale: float  # I_hat with known settings probabilities
-    chsh_lower: float  # I_hat - margin, valid at error eps
+    chsh_estimate: float  # weighted (martingale) estimate, known settings probabilities
+    chsh_lower_bound: float  # chsh_estimate - margin, valid at error eps_est
     margin: float
-    eps: float
+    eps_est: float
     gamma: float
     p_value_local: float
     log10_p_value_local: float
@@ -115,14 +119,22 @@ class ChshEstimate:
     local_win_bound: float = 0.75  # best local win probability at the observed settings frequencies
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
-        rows = [("chsh", self.chsh), ("chsh_lower", self.chsh_lower), ("eps", self.eps),
-                ("test_trials", self.test_trials), ("p_value_local", self.p_value_local)]
+        rows = [("chsh_estimate", self.chsh_estimate), ("chsh_lower_bound", self.chsh_lower_bound),
+                ("eps_est", self.eps_est), ("test_rounds", self.test_rounds),
+                ("p_value_local", self.p_value_local)]
         if full:
-            rows += [("trials", self.trials), ("chsh_stderr", self.chsh_stderr),
-                     ("chsh_martingale", self.chsh_martingale), ("margin", self.margin),
+            rows += [("trials", self.trials), ("chsh_ratio_estimate", self.chsh_ratio_estimate),
+                     ("chsh_stderr", self.chsh_stderr), ("margin", self.margin),
                      ("gamma", self.gamma), ("win_probability", self.win_probability),
                      ("log10_p_value_local", self.log10_p_value_local)]
         return rows
+
+    # Names of earlier versions (read-only).
+    chsh = property(lambda self: self.chsh_ratio_estimate)
+    chsh_martingale = property(lambda self: self.chsh_estimate)
+    chsh_lower = property(lambda self: self.chsh_lower_bound)
+    eps = property(lambda self: self.eps_est)
+    test_trials = property(lambda self: self.test_rounds)
 
 
 def azuma_margin(n: int, width: float, eps: float) -> float:
@@ -329,18 +341,18 @@ def estimate_chsh(counts: np.ndarray, design: SettingsDesign | None = None, eps:
     margin = azuma_margin(n, design.estimator_width, eps)
     return ChshEstimate(
         trials=n,
-        test_trials=n_test,
+        test_rounds=n_test,
         counts_xyab=tc,
         correlators=corr,
         correlator_stderr=se,
-        chsh=chsh,
+        chsh_ratio_estimate=chsh,
         chsh_stderr=chsh_se,
         win_probability=wins / n_test if n_test else math.nan,
         wins=wins,
-        chsh_martingale=i_hat,
-        chsh_lower=i_hat - margin,
+        chsh_estimate=i_hat,
+        chsh_lower_bound=i_hat - margin,
         margin=margin,
-        eps=eps,
+        eps_est=eps,
         gamma=design.gamma,
         p_value_local=10.0 ** (lp := binomial_log10_p_value(wins, n_test, p_loc := local_win_bound(tc.sum(axis=(2, 3))))),
         log10_p_value_local=lp,
@@ -389,9 +401,14 @@ class BlockEstimate:
     index: int
     first_trial: int
     trials: int
-    chsh: float  # martingale estimator of the block
-    chsh_lower: float
-    chsh_upper: float
+    chsh_estimate: float  # weighted (martingale) estimate of the block
+    chsh_lower_bound: float
+    chsh_upper_bound: float
+
+    # Names of earlier versions (read-only).
+    chsh = property(lambda self: self.chsh_estimate)
+    chsh_lower = property(lambda self: self.chsh_lower_bound)
+    chsh_upper = property(lambda self: self.chsh_upper_bound)
 
 
 def block_estimates(
@@ -408,8 +425,8 @@ def block_estimates(
         m = azuma_margin(n, design.estimator_width, eps)
         out.append(
             BlockEstimate(
-                index=k, first_trial=k * block_trials, trials=n, chsh=i_hat,
-                chsh_lower=i_hat - m, chsh_upper=i_hat + m,
+                index=k, first_trial=k * block_trials, trials=n, chsh_estimate=i_hat,
+                chsh_lower_bound=i_hat - m, chsh_upper_bound=i_hat + m,
             )
         )
     return out

@@ -136,7 +136,7 @@ class ExtractionResult:
     output: bytes
     m_bits: int
     n_bits: int
-    seed_bits_used: int
+    seed_bits: int
     seed_bytes: int
     seed_sha256: str
     input_sha256: str
@@ -152,6 +152,9 @@ class ExtractionResult:
     fallback_blocks: int
     convention: str = CONVENTION
     bit_order: str = "big-endian within bytes"
+
+    #: Name of earlier versions (read-only).
+    seed_bits_used = property(lambda self: self.seed_bits)
 
     def summary(self) -> dict[str, Any]:
         """All fields except the output bytes (for JSON and audit records)."""
@@ -169,7 +172,7 @@ class ExtractionResult:
                 ("output_sha256", self.output_sha256[:16] + "...")]
         if full:
             rows[-1] = ("output_sha256", self.output_sha256)
-            rows += [("seed_bits_used", self.seed_bits_used), ("blocks", self.blocks),
+            rows += [("seed_bits", self.seed_bits), ("blocks", self.blocks),
                      ("max_rounding_error", self.max_rounding_error),
                      ("fallback_blocks", self.fallback_blocks)]
         return rows
@@ -456,7 +459,7 @@ def extract_toeplitz(
         output=output,
         m_bits=m,
         n_bits=n,
-        seed_bits_used=need_bits,
+        seed_bits=need_bits,
         seed_bytes=s.size,
         seed_sha256=seed_sha,
         input_sha256=input_sha,
@@ -498,7 +501,7 @@ def _four_step(x: _Bits, s: _Bits, n: int, m: int, budget: int, thr: float, work
         output=output,
         m_bits=m,
         n_bits=n,
-        seed_bits_used=n + m - 1,
+        seed_bits=n + m - 1,
         seed_bytes=s.size,
         seed_sha256=s.sha256(),
         input_sha256=x.sha256(-(-n // 8)),

@@ -107,6 +107,41 @@ class HealthReport:
 # --------------------------------------------------------------------------- input
 
 
+#: Largest bits file screened whole (its bits take 8 bytes each in memory while screened);
+#: a longer file is screened on a prefix chosen with ``n_bits`` (``--input-bits``).
+MAX_SCREEN_BYTES = 64 << 20
+
+
+def read_bits_file(path: str | os.PathLike[str], n_bits: int | None = None) -> bytes:
+    """The bytes of a bits file: the first ceil(n_bits / 8) with ``n_bits``, else the whole file
+    if it is a regular file of at most :data:`MAX_SCREEN_BYTES` (a device or pipe such as
+    /dev/zero, or a larger file, is refused with one line naming it)."""
+    import stat
+
+    p = Path(path)
+    try:
+        with open(p, "rb") as fh:
+            if n_bits is not None and isinstance(n_bits, (int, np.integer)) and n_bits >= 1:
+                return fh.read((int(n_bits) + 7) // 8)  # a prefix: bounded whatever the file
+            st = os.fstat(fh.fileno())
+            if not stat.S_ISREG(st.st_mode):
+                raise ParameterError(f"{p}: not a regular file; save the bits to a file, or "
+                                     "screen a prefix with --input-bits N")
+            if st.st_size > MAX_SCREEN_BYTES:
+                raise ParameterError(
+                    f"{p}: {st.st_size} bytes; the screen reads at most {MAX_SCREEN_BYTES} "
+                    "bytes at once: screen a prefix with --input-bits N")
+            return fh.read(MAX_SCREEN_BYTES + 1)[:MAX_SCREEN_BYTES]
+    except FileNotFoundError:
+        raise ParameterError(f"{p}: no such file") from None
+    except IsADirectoryError:
+        raise ParameterError(f"{p}: is a directory, expected a file of packed bits") from None
+    except PermissionError:
+        raise ParameterError(f"{p}: permission denied") from None
+    except OSError as exc:
+        raise ParameterError(f"{p}: cannot read ({exc.strerror})") from None
+
+
 def as_bits(bits: Any, n_bits: int | None = None) -> np.ndarray:
     """Return a uint8 array of 0/1 values.
 
@@ -114,13 +149,7 @@ def as_bits(bits: Any, n_bits: int | None = None) -> np.ndarray:
     numpy array (or list) holds one bit per element. ``n_bits`` keeps the first n bits.
     """
     if isinstance(bits, (str, os.PathLike)):
-        p = Path(bits)
-        try:
-            bits = p.read_bytes()
-        except FileNotFoundError:
-            raise ParameterError(f"{p}: no such file") from None
-        except IsADirectoryError:
-            raise ParameterError(f"{p}: is a directory, expected a file of packed bits") from None
+        bits = read_bits_file(bits, n_bits)
     if isinstance(bits, (bytes, bytearray, memoryview)):
         arr = np.unpackbits(np.frombuffer(bytes(bits), dtype=np.uint8))
     else:

@@ -44,18 +44,27 @@ class LogInspection:
         return int(self.log.trials)
 
     @property
-    def chsh(self) -> float:
-        return float(self.estimate.chsh)
+    def chsh_estimate(self) -> float:
+        """The weighted (martingale) CHSH estimate."""
+        return float(self.estimate.chsh_estimate)
 
     @property
-    def chsh_lower(self) -> float:
-        return float(self.estimate.chsh_lower)
+    def chsh_lower_bound(self) -> float:
+        """Its lower confidence bound at error ``eps_est``."""
+        return float(self.estimate.chsh_lower_bound)
+
+    # Names of earlier versions (read-only): ``chsh`` was the ratio estimate.
+    chsh = property(lambda self: float(self.estimate.chsh_ratio_estimate))
+    chsh_lower = property(lambda self: self.chsh_lower_bound)
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
-        rows = [("trials", self.trials), ("chsh", self.chsh), ("chsh_lower", self.chsh_lower),
-                ("eps", self.estimate.eps), ("design_passed", self.design_report.passed)]
+        rows = [("trials", self.trials), ("chsh_estimate", self.chsh_estimate),
+                ("chsh_lower_bound", self.chsh_lower_bound),
+                ("eps_est", self.estimate.eps_est), ("design_passed", self.design_report.passed)]
         if full:
-            rows += [("test_trials", self.estimate.test_trials), ("gamma", self.design.gamma),
+            rows += [("test_rounds", self.estimate.test_rounds),
+                     ("chsh_ratio_estimate", self.estimate.chsh_ratio_estimate),
+                     ("gamma", self.design.gamma),
                      ("gamma_source", self.design_source),
                      ("p_value_local", self.estimate.p_value_local),
                      ("sha256", self.log.sha256)]

@@ -394,7 +394,7 @@ class _PefModel:
 
     def _outcome(self, n: float, gamma: float, sigma: float, beta: float) -> tuple[_Eval, float]:
         mu, _, lmgf = self._stats(gamma, beta)
-        k = max(0.0, sigma - 1.0)  # extractor min-entropy sigma_target - 1 (methods note 2(ii))
+        k = max(0.0, sigma - 1.0)  # extractor min-entropy sigma_target - 1 (Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020))
         m = _output_bits(k, self.eps_ext) if k > 0 else 0
         thr = beta * sigma + self.log2_inv_eps
         expected = thr / mu if mu > 0 else math.inf

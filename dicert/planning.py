@@ -38,8 +38,8 @@ Probability estimation factors (PEFs, method "pef", classical side information)
   last factor); seed and ``rate_per_trial`` are per trial consumed.
 - The protocol's own PEF row ("declared") uses its beta and target; ``pef.beta_chosen`` is the
   beta minimising the expected trials for that target (:func:`dicert.finite.pef.plan_pef`), with
-  its expected trials and the trials for 99% completeness (normal approximation, methods note
-  section 2). For CHSH protocols a PEF row is added with DERIVED parameters: model "ns", the
+  its expected trials and the trials for 99% completeness (normal approximation;
+  Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)). For CHSH protocols a PEF row is added with DERIVED parameters: model "ns", the
   protocol's settings distribution, and the largest target whose honest abort probability
   within ``trials`` is at most eps_comp (Chernoff bound), beta chosen for it on a log grid.
   The plotted curve, the smallest numbers of trials and the best gamma of every PEF row use

@@ -84,12 +84,12 @@ def plot_chsh_blocks(blocks: Sequence, path, *, eps: float, title: str = "CHSH v
     plt = _figure()
     fig, ax = plt.subplots(figsize=(8, 4.2))
     mids = [b.first_trial + b.trials / 2 for b in blocks]
-    vals = [min(hi_b, max(lo_b, b.chsh)) for b in blocks]
-    lows = [max(lo_b, b.chsh_lower) for b in blocks]
-    highs = [min(hi_b, b.chsh_upper) for b in blocks]
+    vals = [min(hi_b, max(lo_b, b.chsh_estimate)) for b in blocks]
+    lows = [max(lo_b, b.chsh_lower_bound) for b in blocks]
+    highs = [min(hi_b, b.chsh_upper_bound) for b in blocks]
     lo = [max(0.0, v - x) for v, x in zip(vals, lows)]
     hi = [max(0.0, x - v) for v, x in zip(vals, highs)]
-    clipped = any(b.chsh_lower < lo_b or b.chsh_upper > hi_b for b in blocks)
+    clipped = any(b.chsh_lower_bound < lo_b or b.chsh_upper_bound > hi_b for b in blocks)
     ax.errorbar(mids, vals, yerr=[lo, hi], fmt="o", ms=3, capsize=2,
                 label=f"block estimate, interval at eps={eps:g} per side"
                       + (" (clipped to [-4, 4])" if clipped else ""))

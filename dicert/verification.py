@@ -30,6 +30,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import os
+import stat
 from collections.abc import Mapping
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -441,20 +442,38 @@ def recheck_bits(bits: str | os.PathLike[str] | None, facts: RecordFacts, found:
             found.not_checked.append("bits")
         return
     bpath = Path(bits)
+    want = (output_bits + 7) // 8 if status == "certified" else 0
     try:
-        data = bpath.read_bytes()
+        with open(bpath, "rb") as fh:
+            # The size is checked before anything is read: a device (/dev/zero) or a file of
+            # the wrong length is refused at once, and the bytes are then hashed in chunks.
+            st = os.fstat(fh.fileno())
+            _require(stat.S_ISREG(st.st_mode), "bits", f"{bpath}: not a regular file")
+            if status != "certified":
+                _require(st.st_size == 0, "bits",
+                         "the record is an abort but the bits file is not empty")
+            _require(st.st_size == want, "bits",
+                     f"{bpath}: {st.st_size} bytes, the record claims {output_bits} bits "
+                     f"({want} bytes)")
+            h, same, pos = hashlib.sha256(), True, 0
+            while block := fh.read(1 << 22):
+                h.update(block)
+                if recomputed_output is not None:
+                    same = same and block == recomputed_output[pos:pos + len(block)]
+                pos += len(block)
     except FileNotFoundError:
         raise VerificationError(f"{bpath}: no such file", "bits") from None
-    if status != "certified":
-        _require(len(data) == 0, "bits", "the record is an abort but the bits file is not empty")
-    else:
-        _require(len(data) == (output_bits + 7) // 8, "bits",
-                 f"{bpath}: {len(data)} bytes, the record claims {output_bits} bits "
-                 f"({(output_bits + 7) // 8} bytes)")
-        _require(hashlib.sha256(data).hexdigest() == facts.output_sha256, "bits",
+    except IsADirectoryError:
+        raise VerificationError(f"{bpath}: is a directory, expected the bits file", "bits") from None
+    except OSError as exc:
+        raise VerificationError(f"{bpath}: cannot read ({exc.strerror})", "bits") from None
+    _require(pos == want, "bits", f"{bpath}: changed while being read ({pos} bytes read)")
+    if status == "certified":
+        _require(h.hexdigest() == facts.output_sha256, "bits",
                  f"{bpath}: SHA-256 does not match extractor.output_sha256")
         if recomputed_output is not None:
-            _require(data == recomputed_output, "bits", "differs from the recomputed output")
+            _require(same and len(recomputed_output) == want, "bits",
+                     "differs from the recomputed output")
     found.checked.append("bits file length and digest")
 
 

@@ -34,7 +34,7 @@ def main(out: Path) -> int:
 
     # 2. One pulse: one million trials from honest devices with visibility 0.97 (simulated).
     log = out / "pulse.btl"
-    simulate_to_file(log, 1_000_000, device_model("quantum", visibility=0.97), rng_seed=1201)
+    simulate_to_file(log, 1_000_000, device_model("quantum", visibility=0.97), rng_stream=1201)
 
     # 3. The extractor seed. DEMO ONLY: reproducible, not secret. A real beacon draws it from a
     #    trusted uniform source; it must hold n + m - 1 bits (raw bits + output bits - 1).

@@ -110,8 +110,8 @@ def _results(run):
                  ["trials=1000000", "chsh=2.74"]),
         "protocol": (proto, [f"name='{proto.name}'", "method='martingale'"]),
         "log": (summarize_log(log), ["trials=20000", "has_test_flag=False"]),
-        "inspect": (look, ["trials=20000", f"chsh={look.chsh:.6g}"]),
-        "estimate": (look.estimate, [f"chsh_lower={look.estimate.chsh_lower:.6g}"]),
+        "inspect": (look, ["trials=20000", f"chsh_estimate={look.chsh_estimate:.6g}"]),
+        "estimate": (look.estimate, [f"chsh_lower_bound={look.estimate.chsh_lower_bound:.6g}"]),
         "finite": (dicert.certify_counts(counts, proto), ["accepted=True"]),
         "entropy": (dicert.entropy_bound(chsh=2.5), ["measure='min'", "parties='A'"]),
         "health": (dicert.run_health_checks(bits), [f"n_bits={bits.size}"]),
@@ -165,8 +165,10 @@ def test_summary_to_dict_and_html(run):
 def test_entropy_bound_is_the_published_formula():
     # Pironio et al., Nature 464, 1021 (2010), eq. (3): f(S) = 1 - log2(1 + sqrt(2 - S^2/4)).
     b = dicert.entropy_bound(chsh=2.5)
-    assert b.entropy_bits == pytest.approx(1 - math.log2(1 + math.sqrt(2 - 2.5**2 / 4)), rel=1e-12)
-    assert f"entropy_bits={b.entropy_bits:.6g}" in repr(b)
+    assert b.single_round_bound_bits == pytest.approx(1 - math.log2(1 + math.sqrt(2 - 2.5**2 / 4)),
+                                                      rel=1e-12)
+    assert f"single_round_bound_bits={b.single_round_bound_bits:.6g}" in repr(b)
+    assert b.entropy_bits == b.h_min_bits == b.single_round_bound_bits  # former names, read-only
 
 
 # --------------------------------------------------------------------------- plain inputs

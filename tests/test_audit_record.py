@@ -116,7 +116,7 @@ def test_wrong_key_named(key):
         (lambda r: r.__setitem__("record_sha256", "00" * 32), "record_sha256"),
         (lambda r: r.pop("record_sha256"), "record_sha256"),
         (lambda r: r.pop("signature"), "signature"),
-        (lambda r: r.__setitem__("format", "dicert-record/4"), "format"),
+        (lambda r: r.__setitem__("format", "dicert-record/5"), "format"),
         (lambda r: r.__setitem__("format", "something-else"), "format"),
         (lambda r: r.pop("format"), "format"),
         (lambda r: r["signature"].__setitem__("algorithm", "RSA"), "signature.algorithm"),
@@ -152,7 +152,7 @@ def test_forward_format_refused_with_upgrade_hint(key):
     # Reader policy: an unknown major version is refused with a message naming it.
     record = seal_record(_body(), key)
     body = record_body(record)
-    body["format"] = "dicert-record/4"
+    body["format"] = "dicert-record/5"
     import hashlib as h
 
     record2 = {**body, "record_sha256": h.sha256(canonicalize(body)).hexdigest(),

@@ -293,8 +293,8 @@ def spot_logs(tmp_path_factory):
     from dicert.simulate import device_model, simulate_to_file
 
     simulate_to_file(d / "q.btl", 1_000_000, device_model("quantum", visibility=0.97),
-                     gamma=0.05, rng_seed=41)
-    simulate_to_file(d / "c.btl", 1_000_000, device_model("classical"), gamma=0.05, rng_seed=42)
+                     gamma=0.05, rng_stream=41)
+    simulate_to_file(d / "c.btl", 1_000_000, device_model("classical"), gamma=0.05, rng_stream=42)
     (d / "seed.bin").write_bytes(np.random.default_rng(6).bytes(300_000))
     return d
 
@@ -341,7 +341,7 @@ def test_pef_streaming_harvests_analysed_trials_up_to_success(tmp_path):
     from dicert.verify import verify
 
     log = tmp_path / "ph.btl"
-    simulate_to_file(log, 800_000, device_model("photonic"), rng_seed=5)
+    simulate_to_file(log, 800_000, device_model("photonic"), rng_stream=5)
     seed = tmp_path / "s.bin"
     seed.write_bytes(np.random.default_rng(1).bytes(200_000))
     proto = _pef_protocol()

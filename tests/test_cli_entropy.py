@@ -25,9 +25,11 @@ def test_chsh_min_one_party_json():
     assert r.exit_code == 0, r.output
     doc = json.loads(r.stdout)
     # f(2.5) = 0.267568 (Pironio et al. 2010 formula; regression value of methods note A2)
-    assert doc["h_min"] == pytest.approx(0.267568, abs=1e-6)
+    assert doc["single_round_bound_bits"] == pytest.approx(0.267568, abs=1e-6)
     assert doc["method"] == "analytic"
-    assert "h_vn" not in doc and doc["h_vn_bits"] is None
+    assert doc["measure"] == "min" and doc["units"] == "bits per trial"
+    # one name per quantity (README glossary): the retired keys are gone
+    assert not {"h_min", "h_vn", "h_min_bits", "h_vn_bits", "entropy_bits", "chsh"} & set(doc)
 
 
 def test_chsh_pair_npa_certificate_details():
@@ -35,7 +37,7 @@ def test_chsh_pair_npa_certificate_details():
     assert r.exit_code == 0, r.output
     doc = json.loads(r.stdout)
     # clamped to Tsirelson; pair at maximal violation 1.228447 bits (Pironio et al. 2010)
-    assert PAIR_MAX_BITS - 1e-3 <= doc["h_min"] <= PAIR_MAX_BITS
+    assert PAIR_MAX_BITS - 1e-3 <= doc["single_round_bound_bits"] <= PAIR_MAX_BITS
     cert = doc["certificate"]
     assert cert["solver"] in ("CLARABEL", "SCS")
     assert cert["upper_bound"] >= cert["solver_value"] - 1e-9
@@ -49,15 +51,15 @@ def test_vn_key_and_value():
     # Acin et al. PRL 2007 / Pironio et al. NJP 2009 formula
     p = 0.5 + 0.5 * math.sqrt(2.7**2 / 4 - 1)
     ref = 1 + p * math.log2(p) + (1 - p) * math.log2(1 - p)
-    assert doc["h_vn"] == pytest.approx(ref, abs=1e-12)
+    assert doc["single_round_bound_bits"] == pytest.approx(ref, abs=1e-12)
 
 
 def test_zero_below_local_bound_and_table_output():
     r = _run("--chsh", "1.8", "--parties", "AB", "--method", "table", "--json")
     assert r.exit_code == 0, r.output
-    assert json.loads(r.stdout)["h_min"] == 0.0  # S <= 2 certifies nothing (common practice)
+    assert json.loads(r.stdout)["single_round_bound_bits"] == 0.0  # S <= 2 certifies nothing (common practice)
     r = _run("--chsh", "2.6", "--parties", "AB", "--method", "table")
-    assert r.exit_code == 0 and "h_min" in r.stdout and "table" in r.stdout
+    assert r.exit_code == 0 and "single-round bound" in r.stdout and "table" in r.stdout
 
 
 @pytest.mark.parametrize(
@@ -113,7 +115,7 @@ def test_from_log_uses_correlators(tmp_path):
     assert s == pytest.approx(0.9 * 2 * SQRT2, abs=5e-3)
     # full statistics certify at least what the CHSH value alone does (Nieto-Silleras, Pironio,
     # Silman, NJP 16, 013035 (2014)): the extra constraints can only lower the guessing bound.
-    assert doc["h_min"] >= an.min_entropy_single(s) - 1e-6
+    assert doc["single_round_bound_bits"] >= an.min_entropy_single(s) - 1e-6
     assert 3990 <= doc["log"]["trials"] <= 4010  # 1000 per setting pair, up to rounding
 
 

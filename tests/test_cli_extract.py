@@ -46,7 +46,7 @@ def test_extract_json_and_output(files):
     assert out == dense(raw, seed, 2397, 1001)
     assert len(out) == 126 == info["output_bytes"]
     assert info["m_bits"] == 1001 and info["n_bits"] == 2397
-    assert info["seed_bits_used"] == 2397 + 1001 - 1
+    assert info["seed_bits"] == 2397 + 1001 - 1
     assert info["output_sha256"] == hashlib.sha256(out).hexdigest()
     assert info["input_sha256"] == hashlib.sha256(raw).hexdigest()  # ceil(2397/8) = 300 bytes
     assert info["seed_sha256"] == hashlib.sha256(seed).hexdigest()

@@ -1,5 +1,5 @@
 """CLI contract of ``dicert simulate``: files written through the log writers, JSON summary,
-reproducibility with --rng-seed, and one-line errors with exit code 2."""
+reproducibility with --rng-stream, and one-line errors with exit code 2."""
 
 from __future__ import annotations
 
@@ -24,10 +24,10 @@ def run(*args: str):
 def test_simulate_json_and_file(tmp_path, fmt, name):
     out = tmp_path / name
     res = run("--trials", "20000", "--visibility", "0.9", "--gamma", "0.5", "--format", fmt,
-              "--out", str(out), "--rng-seed", "7", "--json")
+              "--out", str(out), "--rng-stream", "7", "--json")
     assert res.exit_code == 0, res.output
     js = json.loads(res.stdout)
-    assert js["trials"] == 20000 and js["format"] == fmt and js["rng_seed"] == 7
+    assert js["trials"] == 20000 and js["format"] == fmt and js["rng_stream"] == 7
     assert js["model"] == "quantum" and js["has_test_flag"] is True
     # Theory of the simulated box: S = 2 sqrt(2) v, win = 1/2 + S/8 (common practice).
     assert js["chsh"] == pytest.approx(0.9 * 2 * math.sqrt(2), abs=1e-12)
@@ -39,7 +39,7 @@ def test_simulate_json_and_file(tmp_path, fmt, name):
 
 
 def test_simulate_readable_table(tmp_path):
-    res = run("-n", "1e4", "-o", str(tmp_path / "s.btl"), "--model", "classical", "--rng-seed", "1")
+    res = run("-n", "1e4", "-o", str(tmp_path / "s.btl"), "--model", "classical", "--rng-stream", "1")
     assert res.exit_code == 0, res.output
     assert "simulated log" in res.stdout and "invented" in res.stdout
 
@@ -47,7 +47,7 @@ def test_simulate_readable_table(tmp_path):
 def test_same_seed_same_bytes_and_inspect_agrees(tmp_path):
     a, b = tmp_path / "a.btl", tmp_path / "b.btl"
     for p in (a, b):
-        res = run("--trials", "200000", "--out", str(p), "--rng-seed", "11", "--model", "classical")
+        res = run("--trials", "200000", "--out", str(p), "--rng-stream", "11", "--model", "classical")
         assert res.exit_code == 0, res.output
     assert a.read_bytes() == b.read_bytes()
     res = runner.invoke(app, ["inspect", str(a), "--json"])
@@ -58,7 +58,7 @@ def test_same_seed_same_bytes_and_inspect_agrees(tmp_path):
 
 def test_photonic_model_json(tmp_path):
     res = run("--trials", "50000", "--model", "photonic", "--out", str(tmp_path / "p.npz"),
-              "--rng-seed", "2", "--json")
+              "--rng-stream", "2", "--json")
     assert res.exit_code == 0, res.output
     js = json.loads(res.stdout)
     # S = 2 + 4J (Clauser-Horne 1974; methods note D) and J = 0.0084 (regression value
@@ -71,7 +71,7 @@ def test_photonic_model_json(tmp_path):
 def test_generation_and_bias_options(tmp_path):
     out = tmp_path / "g.csv"
     res = run("-n", "5000", "-o", str(out), "--gamma", "0.2", "--generation", "1,1",
-              "--bias-x", "0.25", "--rng-seed", "4", "--json")
+              "--bias-x", "0.25", "--rng-stream", "4", "--json")
     assert res.exit_code == 0, res.output
     js = json.loads(res.stdout)
     assert js["generation"] == [1, 1] and js["settings_bias"] == [0.25, 0.5]
@@ -91,7 +91,8 @@ def test_generation_and_bias_options(tmp_path):
         (["--trials", "100", "--generation", "2,0"], "--generation"),
         (["--trials", "100", "--model", "classical", "--efficiency", "0.5"], "efficiency"),
         (["--trials", "100", "--model", "photonic", "--state-ratio", "-2"], "r must"),
-        (["--trials", "100", "--rng-seed", "-3"], "seed"),
+        (["--trials", "100", "--rng-stream", "-3"], "--rng-stream"),
+        (["--trials", "100", "--rng-stream", "3", "--rng-seed", "3"], "former name"),
     ],
 )
 def test_bad_input_one_line_exit_2(tmp_path, args, needle):
@@ -106,3 +107,15 @@ def test_bad_input_one_line_exit_2(tmp_path, args, needle):
 def test_unknown_extension_is_one_line_error(tmp_path):
     res = run("--trials", "10", "--out", str(tmp_path / "log.dat"))
     assert res.exit_code == 2 and "extension" in res.stderr and res.stderr.strip().count("\n") == 0
+
+
+def test_former_rng_option_still_replays_the_same_stream(tmp_path):
+    # --rng-seed is the hidden former name of --rng-stream ("seed" now means only the extractor
+    # seed, README glossary): the same number gives the same bytes, with a note on stderr.
+    a, b = tmp_path / "a.btl", tmp_path / "b.btl"
+    assert run("-n", "5000", "-o", str(a), "--rng-stream", "9").exit_code == 0
+    res = run("-n", "5000", "-o", str(b), "--rng-seed", "9")
+    assert res.exit_code == 0, res.output
+    assert "now called --rng-stream" in res.stderr
+    assert a.read_bytes() == b.read_bytes()
+    assert "--rng-seed" not in run("--help").stdout

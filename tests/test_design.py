@@ -196,10 +196,10 @@ def honest(tmp_path_factory):
 
     d = tmp_path_factory.mktemp("honest")
     simulate_to_file(d / "u.btl", 200_000, device_model("quantum", visibility=0.97),
-                     rng_seed=11)
+                     rng_stream=11)
     simulate_to_file(d / "s.btl", 1_000_000, device_model("quantum", visibility=0.97),
-                     gamma=0.05, rng_seed=12)
-    simulate_to_file(d / "p.btl", 3_000_000, device_model("photonic"), rng_seed=13)
+                     gamma=0.05, rng_stream=12)
+    simulate_to_file(d / "p.btl", 3_000_000, device_model("photonic"), rng_stream=13)
     (d / "seed.bin").write_bytes(np.random.default_rng(5).bytes(600_000))
     return d
 
@@ -214,7 +214,7 @@ def test_honest_runs_of_every_shipped_protocol_certify(honest, tmp_path, log, pr
     res = certify(honest / log, PROTOS / proto, honest / "seed.bin", tmp_path / "out")
     assert res.status == "certified", res.abort_reason
     rec = res.record
-    assert rec["format"] == "dicert-record/3"
+    assert rec["format"] == "dicert-record/4"
     # The error budget's terms sum to the soundness error, for every method (union bound over
     # the failure events; composable security, Tomamichel, Schaffner, Smith & Renner, IEEE
     # Trans. Inf. Theory 57, 5524 (2011)), and the total is the method's published sum.
@@ -514,6 +514,8 @@ def test_verify_reruns_design_checks_and_reads_old_records(tmp_path):
     old["log"]["files"] = [f["name"] for f in old["log"]["files"]]
     for k in ("gamma_source", "local_win_bound"):
         old["estimate"].pop(k)
+    for k in ("single_round_bound_bits_at_chsh_estimate", "von_neumann_bound_bits_at_chsh_estimate"):
+        old["entropy"]["single_round"].pop(k)  # added by dicert-record/4
     p1 = tmp_path / "old.json"
     p1.write_bytes(record_bytes(seal_record(old, None)))
     rep = verify(p1, log=log, seed=seed, bits=res.bits_file)
@@ -697,7 +699,7 @@ def test_declared_trial_count_with_streaming_probability_estimation(tmp_path):
     from dicert.verify import verify
 
     log = tmp_path / "ph.btl"
-    simulate_to_file(log, 500_000, device_model("photonic"), rng_seed=5)
+    simulate_to_file(log, 500_000, device_model("photonic"), rng_stream=5)
     seed = _seed(tmp_path)
     d = tomllib.loads((PROTOS / "ch-photonic.toml").read_text())
     d["analysis"].update(calibration_trials=200_000, sigma_target_bits=128, n_max=2_000_000)
@@ -746,6 +748,8 @@ def test_old_multi_file_record_keeps_its_concatenated_digest(tmp_path):
                                           + (d / "b.btl").read_bytes()).hexdigest()
     for k in ("gamma_source", "local_win_bound"):
         old["estimate"].pop(k)
+    for k in ("single_round_bound_bits_at_chsh_estimate", "von_neumann_bound_bits_at_chsh_estimate"):
+        old["entropy"]["single_round"].pop(k)  # added by dicert-record/4
     p = tmp_path / "old.json"
     p.write_bytes(record_bytes(seal_record(old, None)))
     assert verify(p, log=d, seed=seed, bits=res.bits_file).scope == "full"

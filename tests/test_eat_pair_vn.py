@@ -123,7 +123,7 @@ def test_shipped_pair_protocol_certifies_simulated_run_as_planned(tmp_path):
     proto = load_protocol(ROOT / "protocols" / "chsh-spotcheck-pair.toml")
     n = 1_000_000
     simulate_to_file(tmp_path / "q.btl", n, device_model("quantum", visibility=0.97),
-                     gamma=0.05, rng_seed=41)
+                     gamma=0.05, rng_stream=41)
     (tmp_path / "seed.bin").write_bytes(np.random.default_rng(6).bytes(300_000))
     res = certify(tmp_path / "q.btl", proto, tmp_path / "seed.bin", tmp_path / "out")
     assert res.status == "certified" and res.output_bits > 0

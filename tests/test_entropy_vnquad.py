@@ -238,7 +238,7 @@ def test_recipe_and_cli_pair_vn():
                                  "vn", "--json"])
     assert r.exit_code == 0, r.output
     doc = json.loads(r.stdout)
-    assert doc["h_vn"] == b.h_vn_bits and doc["quadrature"]["nodes"] == tab.nodes
+    assert doc["single_round_bound_bits"] == b.h_vn_bits and doc["quadrature"]["nodes"] == tab.nodes
     assert bound_entropy(chsh=2.0, parties="AB", measure="vn").h_vn_bits == 0.0
     # the quadrature methods are for the von Neumann entropy only (bad input, exit code 2)
     r = CliRunner().invoke(app, ["entropy", "--chsh", "2.8", "--method", "radau-table"])

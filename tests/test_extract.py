@@ -70,7 +70,7 @@ def test_matches_dense_toeplitz_oracle(n, m, block_bits, extra, rng):
     assert res.output == oracle(x, s, n, m)
     assert len(res.output) == math.ceil(m / 8)
     assert res.m_bits == m and res.n_bits == n
-    assert res.seed_bits_used == n + m - 1
+    assert res.seed_bits == n + m - 1 and res.seed_bits_used == res.seed_bits
     assert res.output_sha256 == hashlib.sha256(res.output).hexdigest()
     assert res.input_sha256 == hashlib.sha256(x[: math.ceil(n / 8)]).hexdigest()
     assert res.seed_sha256 == hashlib.sha256(s).hexdigest()

@@ -216,9 +216,48 @@ def test_inputs_and_n_bits(tmp_path):
         longest_run_test(np.ones(100, dtype=np.uint8))
 
 
+def test_bits_files_are_read_bounded(tmp_path):
+    # Hostile input: a device (/dev/zero) or an oversized file is refused with one line, never
+    # read whole; --input-bits screens a prefix of any of them.
+    import os
+
+    from dicert.health import MAX_SCREEN_BYTES, read_bits_file
+
+    big = tmp_path / "big.bits"
+    with open(big, "wb") as fh:
+        fh.truncate(MAX_SCREEN_BYTES + 1)
+    with pytest.raises(ParameterError, match="--input-bits"):
+        as_bits(big)
+    assert as_bits(big, 1000).tolist() == [0] * 1000
+    assert len(read_bits_file(big, 9)) == 2
+    if os.path.exists("/dev/zero"):
+        with pytest.raises(ParameterError, match="not a regular file"):
+            as_bits("/dev/zero")
+        assert as_bits("/dev/zero", 64).sum() == 0
+    with pytest.raises(ParameterError, match="directory"):
+        as_bits(tmp_path)
+
+
 def test_agreed_interface_name_in_extract_module():
     # The pipeline imports run_health_checks from dicert.extract (cross-helper interface).
     from dicert import extract, health
 
     assert extract.run_health_checks is health.run_health_checks
     assert extract.HealthReport is health.HealthReport
+
+
+def test_cli_refuses_a_device_in_one_line_with_exit_2():
+    import os
+
+    from typer.testing import CliRunner
+
+    from dicert.cli.app import app
+
+    if not os.path.exists("/dev/zero"):
+        pytest.skip("no /dev/zero")
+    r = CliRunner().invoke(app, ["health", "/dev/zero"])
+    assert r.exit_code == 2
+    err = r.stderr.strip()
+    assert err.splitlines() == [err] and "/dev/zero" in err and "Traceback" not in r.output
+    r = CliRunner().invoke(app, ["health", "/dev/zero", "--input-bits", "4096", "--json"])
+    assert r.exit_code == 1  # all zeros: the frequency test fails (SP 800-22 section 2.1)

@@ -478,6 +478,18 @@ def test_an_aborted_pulses_seed_is_not_reused_either(tmp_path, inputs):
                 key=keys.private_key_file)
 
 
+def test_seeds_used_by_current_records_are_found(inputs, two_pulses):
+    # The chain's used-seed list reads today's record name (extractor.seed_bits); it read only
+    # the /1-/2 name (seed_bits_used) before, so it found nothing in a /3 or /4 chain.
+    import hashlib
+
+    from dicert.stages.analysis import _chain_seed_digests
+
+    d, _keys = inputs
+    assert hashlib.sha256((d / "seed0.bin").read_bytes()).hexdigest() in \
+        _chain_seed_digests(two_pulses)
+
+
 def test_leftovers_of_an_active_run_are_not_swept(tmp_path, inputs):
     import fcntl
 

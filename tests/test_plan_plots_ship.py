@@ -75,8 +75,8 @@ def test_block_plot_lines_clipping_and_legend_outside(monkeypatch):
     from dicert.estimate import BlockEstimate
     from dicert.plotting import plot_chsh_blocks
 
-    blocks = [BlockEstimate(index=i, first_trial=i * 1000, trials=1000, chsh=2.6 + 0.01 * i,
-                            chsh_lower=-1.0, chsh_upper=5.1) for i in range(5)]
+    blocks = [BlockEstimate(index=i, first_trial=i * 1000, trials=1000, chsh_estimate=2.6 + 0.01 * i,
+                            chsh_lower_bound=-1.0, chsh_upper_bound=5.1) for i in range(5)]
     seen = _captured_figure(monkeypatch)
     plot_chsh_blocks(blocks, "unused.png", eps=1e-3, overall=2.62, overall_lower=2.41,
                      threshold=2.624, threshold_label="protocol acceptance")

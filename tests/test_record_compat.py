@@ -1,6 +1,6 @@
-"""Records of earlier formats (stored fixtures written by dicert-record/1 and /2, see
+"""Records of earlier formats (stored fixtures written by dicert-record/1, /2 and /3, see
 tests/fixtures/records/README.md) keep verifying, alone and in a chain that continues with
-dicert-record/3 pulses; report and the beacon site read them under today's names, mapped in
+dicert-record/4 pulses; report and the beacon site read them under today's names, mapped in
 one place (dicert.stages.record_compat)."""
 
 from __future__ import annotations
@@ -131,9 +131,9 @@ def test_chain_mixing_v2_and_v3_pulses_verifies(tmp_path):
         certify(log, uniform, seed, tmp_path / "out0", key=KEY, chain=chain)
     res = certify(log, uniform, seed, tmp_path / "out", key=KEY, chain=chain,
                   protocol_change="protocol keys renamed ([harvest] select)")
-    assert res.status == "certified" and res.record["format"] == "dicert-record/3"
+    assert res.status == "certified" and res.record["format"] == "dicert-record/4"
     formats = [_rec(p)["format"] for p in sorted(chain.glob("pulse-*.json"))]
-    assert formats == ["dicert-record/2", "dicert-record/2", "dicert-record/3"]
+    assert formats == ["dicert-record/2", "dicert-record/2", "dicert-record/4"]
     rep = verify_chain(chain, public_key=PUB)
     assert rep.pulses == 3 and rep.authenticated
 
@@ -160,10 +160,100 @@ def test_report_and_site_read_v2_records(tmp_path):
     assert "CHSH estimate per block" in page
 
 
-def test_upgrade_of_a_v3_record_is_the_identity():
+def test_upgrade_of_a_v4_record_is_the_identity():
     from dicert.stages.record_compat import upgrade_body
 
-    old = _rec(FIX / "v2" / "martingale" / "record.json")
+    old = _rec(FIX / "v3" / "martingale" / "record.json")
     new = upgrade_body(old)
-    new["format"] = "dicert-record/3"
+    new["format"] = "dicert-record/4"
     assert upgrade_body(new) == new
+
+
+# --------------------------------------------------------------------------- dicert-record/3
+
+V3 = V2
+
+
+@pytest.mark.parametrize("name", V3)
+def test_stored_v3_records_verify_authenticated(name):
+    from dicert.verification import verify
+
+    rec_path = FIX / "v3" / name / "record.json"
+    assert _rec(rec_path)["format"] == "dicert-record/3"
+    rep = verify(rec_path, public_key=PUB)
+    assert rep.authenticated and rep.result in ("VERIFIED", "VERIFIED-PARTIAL")
+
+
+@pytest.mark.parametrize("name", ("martingale", "pef"))
+def test_stored_v3_records_verify_in_full_with_log_and_seed(name):
+    from dicert.verification import verify
+
+    d = FIX / "v3" / name
+    rep = verify(d / "record.json", log=d / "log.btl", seed=d / "seed.bin",
+                 bits=d / "random.bits", public_key=PUB)
+    assert rep.result == "VERIFIED" and rep.scope == "full"
+
+
+def test_v3_estimate_names_are_swapped_to_the_glossary_meaning():
+    # /3 wrote the ratio estimate as estimate.chsh_estimate and the weighted one as
+    # chsh_martingale; /4 (and the glossary) call the weighted one chsh_estimate. External
+    # check: with every trial a test round and uniform settings, the weighted estimate is the
+    # CHSH-game relation S = 8 P(win) - 4 (Clauser, Horne, Shimony & Holt 1969, rewritten as a
+    # nonlocal game; common practice).
+    from dicert.stages.record_compat import upgrade_body
+
+    old = _rec(FIX / "v3" / "martingale" / "record.json")
+    new = upgrade_body(old)
+    est = new["estimate"]
+    assert est["chsh_estimate"] == old["estimate"]["chsh_martingale"]
+    assert est["chsh_ratio_estimate"] == old["estimate"]["chsh_estimate"]
+    assert "chsh_martingale" not in est
+    assert est["chsh_estimate"] == pytest.approx(8 * est["wins"] / est["test_rounds"] - 4,
+                                                 abs=1e-12)
+    # the lower bound belongs to the weighted estimate: estimate - margin
+    assert est["chsh_lower_bound"] == pytest.approx(est["chsh_estimate"] - est["margin"],
+                                                    abs=1e-12)
+    sr = new["entropy"]["single_round"]
+    assert "single_round_bound_bits_at_chsh_ratio_estimate" in sr
+    assert "single_round_bound_bits_at_chsh_estimate" not in sr
+
+
+@pytest.mark.parametrize("edit,field", [
+    (lambda r: r["estimate"].__setitem__("chsh_martingale", 2.9), "estimate.chsh_estimate"),
+    (lambda r: r["estimate"].__setitem__("chsh_estimate", 2.9), "estimate.chsh_ratio_estimate"),
+    (lambda r: r["entropy"]["finite_size"].__setitem__("certified_min_entropy_bits", 1e9),
+     "entropy.finite_size.certified_min_entropy_bits"),
+])
+def test_a_changed_v3_record_fails_under_the_new_name(tmp_path, edit, field):
+    from dicert.audit.record import record_bytes, seal_record
+    from dicert.errors import VerificationError
+    from dicert.verification import verify
+
+    rec = _rec(FIX / "v3" / "martingale" / "record.json")
+    body = {k: v for k, v in rec.items() if k not in ("record_sha256", "signature")}
+    edit(body)
+    p = tmp_path / "forged.json"
+    p.write_bytes(record_bytes(seal_record(body, None)))
+    with pytest.raises(VerificationError) as info:
+        verify(p)
+    assert info.value.field == field
+
+
+def test_new_record_pairs_the_weighted_estimate_with_its_bound(tmp_path):
+    from dicert.certification import certify
+    from dicert.logs import write_log
+
+    d = FIX / "v3" / "martingale"
+    res = certify(d / "log.btl", ROOT / "protocols" / "chsh-uniform.toml", d / "seed.bin",
+                  tmp_path / "out")
+    est = res.record["estimate"]
+    old = _rec(d / "record.json")["estimate"]
+    assert res.record["format"] == "dicert-record/4"
+    assert est["chsh_estimate"] == old["chsh_martingale"]
+    assert est["chsh_ratio_estimate"] == old["chsh_estimate"]
+    assert est["chsh_lower_bound"] == pytest.approx(est["chsh_estimate"] - est["margin"])
+    sr = res.record["entropy"]["single_round"]
+    assert {"single_round_bound_bits_at_chsh_estimate",
+            "single_round_bound_bits_at_chsh_ratio_estimate",
+            "single_round_bound_bits_at_chsh_lower_bound"} <= set(sr)
+    assert "chsh_martingale" not in est and "chsh" not in est

@@ -420,7 +420,7 @@ def test_simulate_to_file_round_trip(tmp_path, name):
 
     model = sim.device_model("quantum", visibility=0.95)
     path = tmp_path / name
-    s = sim.simulate_to_file(path, 20_001, model, gamma=0.25, rng_seed=5, chunk=4_096)
+    s = sim.simulate_to_file(path, 20_001, model, gamma=0.25, rng_stream=5, chunk=4_096)
     back = read_trials(path)
     again = sim.simulate_trials(20_001, model, gamma=0.25, rng=sim.make_rng(5)[0])
     assert np.array_equal(back.codes(), again.codes())
@@ -428,14 +428,14 @@ def test_simulate_to_file_round_trip(tmp_path, name):
     assert np.array_equal(summ.counts, s.counts)
     assert s.trials == summ.trials == 20_001
     assert s.test_rounds == int(back.t.sum())
-    assert s.rng_seed == 5 and s.sha256 == summ.sha256
+    assert s.rng_stream == 5 and s.sha256 == summ.sha256
     assert s.format == ("csv.gz" if name.endswith(".gz") else {"btl": "binary"}.get(name.split(".")[-1], name.split(".")[-1]))
 
 
 def test_simulate_to_file_is_byte_identical_and_chunk_independent(tmp_path):
     model = sim.device_model("photonic")
-    a = sim.simulate_to_file(tmp_path / "a.btl", 50_000, model, rng_seed=3, chunk=1_000)
-    b = sim.simulate_to_file(tmp_path / "b.btl", 50_000, model, rng_seed=3, chunk=50_000)
+    a = sim.simulate_to_file(tmp_path / "a.btl", 50_000, model, rng_stream=3, chunk=1_000)
+    b = sim.simulate_to_file(tmp_path / "b.btl", 50_000, model, rng_stream=3, chunk=50_000)
     assert a.sha256 == b.sha256
     # No t column without spot-checking: counts are filed under t = 1 (logs convention).
     assert a.counts[0].sum() == 0 and a.counts[1].sum() == 50_000
@@ -444,7 +444,7 @@ def test_simulate_to_file_is_byte_identical_and_chunk_independent(tmp_path):
 def test_fresh_seed_is_reported_for_replay(tmp_path):
     model = sim.device_model("classical-random")
     a = sim.simulate_to_file(tmp_path / "a.btl", 1_000, model)
-    b = sim.simulate_to_file(tmp_path / "b.btl", 1_000, model, rng_seed=a.rng_seed)
+    b = sim.simulate_to_file(tmp_path / "b.btl", 1_000, model, rng_stream=a.rng_stream)
     assert a.sha256 == b.sha256
 
 

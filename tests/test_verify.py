@@ -170,6 +170,24 @@ def test_tampered_bits_fail_at_every_byte(run, tmp_path):
         verify(run["record"], bits=tmp_path / "short.bits")
 
 
+def test_bits_that_are_not_a_regular_file_are_refused_before_reading(run, tmp_path):
+    # Hostile input: an endless device must not be read (its size is checked first), and a
+    # folder or a file of the wrong size is refused with one line naming it.
+    import os
+
+    if os.path.exists("/dev/zero"):
+        with pytest.raises(VerificationError, match="not a regular file") as info:
+            verify(run["record"], bits="/dev/zero")
+        assert info.value.field == "bits"
+    with pytest.raises(VerificationError, match="directory"):
+        verify(run["record"], bits=tmp_path)
+    big = tmp_path / "big.bits"
+    with open(big, "wb") as fh:  # sparse: the size is refused before any byte is read
+        fh.truncate(1 << 34)
+    with pytest.raises(VerificationError, match=f"{1 << 34} bytes"):
+        verify(run["record"], bits=big)
+
+
 def test_tampered_record_fails_at_every_byte(run, tmp_path):
     # Every byte of the file: the canonical file form (RFC 8785) plus the SHA-256 digest and
     # Ed25519 signature (RFC 8032) leave no byte whose change goes unnoticed.

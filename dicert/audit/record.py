@@ -1,7 +1,7 @@
 """Sealed audit records: an RFC 8785 body, its SHA-256 digest and an Ed25519 signature.
 
-Layout (format ``dicert-record/3``; ``/1`` and ``/2`` records are still read)
------------------------------------------------------------------------
+Layout (format ``dicert-record/4``; ``/1``, ``/2`` and ``/3`` records are still read)
+-----------------------------------------------------------------------------------
 A record is one JSON object. Two members are reserved for the seal; every other member is the
 *body*:
 
@@ -11,8 +11,9 @@ A record is one JSON object. Two members are reserved for the seal; every other 
   ``{"algorithm": "Ed25519", "public_key": <64 hex, raw key>, "key_fingerprint": <hex SHA-256 of
   the raw key>, "value": <128 hex>}`` where ``value`` signs the same canonical body bytes.
 
-The body must carry ``"format": "dicert-record/3"`` (or ``/1``, ``/2`` for records written
-before; ``/3`` renamed members to one name per quantity, and
+The body must carry ``"format": "dicert-record/4"`` (or ``/1``, ``/2``, ``/3`` for records
+written before; ``/3`` renamed members to one name per quantity, ``/4`` gave
+``estimate.chsh_estimate`` its glossary meaning (the weighted estimate), and
 :mod:`dicert.stages.record_compat` maps older names for every reader). Chains add ``pulse_index`` and
 ``previous_record_sha256`` to the body (see :mod:`dicert.audit.chain`); a volatile section
 (``volatile``: timestamps, timings) is part of the body and so is sealed too, but it is the only
@@ -74,10 +75,13 @@ __all__ = [
 ]
 
 #: Format written by this version.
-RECORD_FORMAT = "dicert-record/3"
+RECORD_FORMAT = "dicert-record/4"
 #: Formats this version reads. /2 added the ``design`` section (conformance checks), per-file
-#: digests in ``log.files``, the ``inputs`` section and ``output_screens``.
-SUPPORTED_FORMATS = ("dicert-record/1", "dicert-record/2", "dicert-record/3")
+#: digests in ``log.files``, the ``inputs`` section and ``output_screens``; /3 renamed members
+#: (one name per quantity); /4 names the weighted CHSH estimate ``estimate.chsh_estimate`` and
+#: the ratio estimate ``estimate.chsh_ratio_estimate`` (/3 wrote ``chsh_estimate`` for the ratio
+#: estimate and ``chsh_martingale`` for the weighted one).
+SUPPORTED_FORMATS = ("dicert-record/1", "dicert-record/2", "dicert-record/3", "dicert-record/4")
 #: Reserved member holding the body digest.
 DIGEST_FIELD = "record_sha256"
 #: Reserved member holding the signature block (or null).

@@ -109,7 +109,7 @@ class SiteInfo:
 
 
 def _today(record: Mapping[str, Any]) -> dict:
-    """A record of any format under today's member names (dicert-record/3)."""
+    """A record of any format under today's member names (dicert-record/4)."""
     from dicert.stages.record_compat import upgrade_body
 
     return upgrade_body(record)

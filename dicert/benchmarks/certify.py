@@ -36,7 +36,7 @@ def _make_inputs(tmp: Path, n: int) -> tuple[Path, Path]:
     from dicert.simulate import device_model, simulate_to_file
 
     log = tmp / "bench.btl"
-    simulate_to_file(log, n, device_model("quantum", visibility=0.97), rng_seed=2026)
+    simulate_to_file(log, n, device_model("quantum", visibility=0.97), rng_stream=2026)
     seed = tmp / "seed.bin"
     seed.write_bytes(np.random.default_rng(7).bytes((4 * n) // 8 + 8))
     return log, seed
@@ -148,7 +148,7 @@ def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[Be
     d.mkdir()
     for i in range(files):
         simulate_to_file(d / f"part{i:02d}.btl", per_file,
-                         device_model("quantum", visibility=0.97), rng_seed=2026 + i)
+                         device_model("quantum", visibility=0.97), rng_stream=2026 + i)
     seed = tmp / "multi.seed"
     seed.write_bytes(np.random.default_rng(7).bytes((4 * files * per_file) // 8 + 8))
     proto = shipped_protocol_path("chsh-uniform")

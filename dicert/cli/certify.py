@@ -26,7 +26,7 @@ HELP = (
     "too little entropy) is a normal outcome: 0 bits, the record is still written.\n\n"
     "Method pef on a single binary (.btl) log: reading stops at the trial where the outcome is "
     "decided (target reached, n_max, or a trial outside the settings model); the record then "
-    "covers exactly the bytes read (log.scope = prefix) and the stopping trial is reported. "
+    "covers exactly the bytes read (log.coverage = prefix) and the stopping trial is reported. "
     "With --follow the command waits for a growing binary log (written with a streamed "
     "writer) until the target is reached, n_max, the log's trailer arrives (then it decides "
     "with what there is), or no new trial arrives for --idle-timeout seconds (then it aborts "

@@ -81,23 +81,22 @@ def entropy_cmd(
         chsh=chsh, correlators=correlators, parties=parties, measure=measure, level=level,
         method=method, tolerance=tolerance,
     )
-    key = "h_min" if measure == "min" else "h_vn"
+    label = "min-entropy" if measure == "min" else "von Neumann entropy"
     if as_json:
         doc = to_jsonable(result)
-        doc[key] = result.entropy_bits
-        doc["units"] = "bits per round"
+        doc["units"] = "bits per trial"
         if log_info is not None:
             doc["log"] = log_info
             doc["correlators"] = to_jsonable(correlators)
         emit_json(doc)
         return
     rows = [
-        (key + " (bits/round)", result.entropy_bits),
+        (f"single-round bound, {label} (bits per trial)", result.single_round_bound_bits),
         ("parties", result.parties),
         ("method", result.method),
     ]
     if result.chsh_input is not None:
-        rows.append(("CHSH (as given / used)", f"{result.chsh_input:.6g} / {result.chsh:.6g}"))
+        rows.append(("CHSH (as given / used)", f"{result.chsh_input:.6g} / {result.chsh_used:.6g}"))
     if result.guessing_probability is not None:
         rows.append(("guessing probability <=", result.guessing_probability))
     if result.level is not None:

@@ -88,7 +88,7 @@ def extract_cmd(
     for key, value in (
         ("input bits n", str(res.n_bits)),
         ("output bits m", str(res.m_bits)),
-        ("seed bits used", f"{res.seed_bits_used} of {8 * res.seed_bytes}"),
+        ("seed bits (used of given)", f"{res.seed_bits} of {8 * res.seed_bytes}"),
         ("input sha256", res.input_sha256),
         ("seed sha256", res.seed_sha256),
         ("output sha256", res.output_sha256),

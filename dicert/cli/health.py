@@ -30,10 +30,6 @@ def health_cmd(
     from dicert.errors import ParameterError
     from dicert.health import run_health_checks
 
-    if not bits_path.exists():
-        raise ParameterError(f"{bits_path}: no such file")
-    if bits_path.is_dir():
-        raise ParameterError(f"{bits_path}: is a directory, expected a file of packed bits")
     if n_bits is not None and n_bits < 1:
         raise ParameterError(f"--input-bits must be a positive integer, got {n_bits}")
     if not 0.0 < alpha < 1.0:

@@ -6,7 +6,9 @@ from typing import Annotated, Optional
 
 import typer
 
-from dicert.cli._common import JsonFlag, emit_json, handle_errors, kv_table, progress_bar, stdout_console, to_jsonable
+from dicert.cli._common import (JsonFlag, emit_json, stderr_console, handle_errors, kv_table, progress_bar,
+                                stdout_console, to_jsonable)
+from dicert.errors import ParameterError
 
 NOTE = "simulated devices: the data are invented"
 
@@ -24,7 +26,8 @@ def simulate_cmd(
     gamma: Annotated[float, typer.Option("--gamma", help="Test-round probability (spot-checking); below 1 a t column is written.")] = 1.0,
     model: Annotated[str, typer.Option("--model", help="quantum | classical | classical-random | photonic.")] = "quantum",
     fmt: Annotated[Optional[str], typer.Option("--format", help="csv | csv.gz | binary | npz; default from the extension.")] = None,
-    rng_seed: Annotated[Optional[int], typer.Option("--rng-seed", help="Seed for reproducible runs (fresh entropy, reported, if omitted).")] = None,
+    rng_stream: Annotated[Optional[int], typer.Option("--rng-stream", help="Number of the simulator's pseudo-random stream, for reproducible runs (fresh entropy, reported, if omitted).")] = None,
+    rng_old: Annotated[Optional[int], typer.Option("--rng-seed", hidden=True, help="Former name of --rng-stream.")] = None,
     generation: Annotated[str, typer.Option("--generation", help="Settings x,y of generation rounds (with --gamma < 1).")] = "0,0",
     bias_x: Annotated[Optional[float], typer.Option("--bias-x", help="P(x = 1) on test rounds (default 0.5).")] = None,
     bias_y: Annotated[Optional[float], typer.Option("--bias-y", help="P(y = 1) on test rounds (default 0.5).")] = None,
@@ -42,6 +45,12 @@ def simulate_cmd(
     """
     from dicert import simulate as sim
 
+    if rng_old is not None:
+        if rng_stream is not None:
+            raise ParameterError("--rng-seed is the former name of --rng-stream: give --rng-stream only")
+        stderr_console().print("note: --rng-seed is now called --rng-stream")
+        rng_stream = rng_old
+
     n = sim.parse_trial_count(trials)
     gen = sim.parse_setting_pair(generation, "--generation")
     bias = None
@@ -58,7 +67,7 @@ def simulate_cmd(
         task = bar.add_task("simulating", total=n)
         summary = sim.simulate_to_file(
             out, n, dev, format=fmt, gamma=gamma, generation=gen, settings_bias=bias,
-            include_t=True if test_column else None, rng_seed=rng_seed,
+            include_t=True if test_column else None, rng_stream=rng_stream,
             progress=lambda done, total: bar.update(task, completed=done, total=total),
         )
     if as_json:
@@ -76,7 +85,7 @@ def simulate_cmd(
         ("CHSH S of the box", summary.chsh),
         ("win probability (uniform settings)", summary.win_probability),
         ("CH-Eberhard J (1 = click)", summary.ch_eberhard_j),
-        ("rng seed", str(summary.rng_seed)),
+        ("simulator stream (--rng-stream)", str(summary.rng_stream)),
         ("sha256", summary.sha256),
     ]
     console = stdout_console()

@@ -61,13 +61,12 @@ class EntropyBound:
     ------
     measure, parties : str
         ``"min"`` or ``"vn"``; ``"A"`` (Alice's outcome) or ``"AB"`` (the pair).
-    entropy_bits : float
-        The bound (bits per round); equals ``h_min_bits`` or ``h_vn_bits``.
-    h_min_bits, h_vn_bits : float or None
-        Whichever the measure asks for (the other is None).
+    single_round_bound_bits : float
+        The single-round bound, in bits per trial, of the entropy ``measure`` asks for (min-
+        or von Neumann entropy).
     guessing_probability : float or None
         Certified upper bound on the adversary's guessing probability (min measure).
-    chsh, chsh_input : float or None
+    chsh_used, chsh_input : float or None
         CHSH value used (after clamping to [2, 2*sqrt(2)] where it enters) and as given.
     method : str
         ``"analytic"``, ``"npa-dual-certified"``, ``"table"``, ``"analytic-fallback"``, or
@@ -86,15 +85,16 @@ class EntropyBound:
         Gauss-Radau quadrature bound (methods "radau", "radau-table"): the certified line
         ``offset + slope * w`` (bits, valid for every w), nodes, relaxation, per-node duals.
     assumptions, references : tuple of str
+
+    The names of earlier versions (``entropy_bits``, ``h_min_bits``, ``h_vn_bits``, ``chsh``)
+    remain as read-only aliases.
     """
 
     measure: str
     parties: str
-    entropy_bits: float
-    h_min_bits: float | None
-    h_vn_bits: float | None
+    single_round_bound_bits: float
     guessing_probability: float | None
-    chsh: float | None
+    chsh_used: float | None
     chsh_input: float | None
     method: str
     level: str | None
@@ -107,24 +107,27 @@ class EntropyBound:
     quadrature: dict | None = None
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
-        rows = [("entropy_bits", self.entropy_bits), ("measure", self.measure),
-                ("parties", self.parties), ("chsh", self.chsh), ("method", self.method)]
+        rows = [("single_round_bound_bits", self.single_round_bound_bits),
+                ("measure", self.measure), ("parties", self.parties),
+                ("chsh_used", self.chsh_used), ("method", self.method)]
         if full:
             rows += [("guessing_probability", self.guessing_probability),
                      ("level", self.level), ("inputs", self.inputs),
                      ("fallback_reason", self.fallback_reason)]
         return rows
 
+    # Names of earlier versions (read-only).
+    entropy_bits = property(lambda self: self.single_round_bound_bits)
+    h_min_bits = property(lambda self: self.single_round_bound_bits
+                          if self.measure == "min" else None)
+    h_vn_bits = property(lambda self: self.single_round_bound_bits
+                         if self.measure == "vn" else None)
+    chsh = property(lambda self: self.chsh_used)
 
-def _make(measure, parties, value, **kw) -> EntropyBound:
-    return EntropyBound(
-        measure=measure,
-        parties=parties,
-        entropy_bits=value,
-        h_min_bits=value if measure == "min" else None,
-        h_vn_bits=value if measure == "vn" else None,
-        **kw,
-    )
+
+def _make(measure, parties, value, *, chsh=None, **kw) -> EntropyBound:
+    return EntropyBound(measure=measure, parties=parties, single_round_bound_bits=value,
+                        chsh_used=chsh, **kw)
 
 
 def _clamped(chsh: float | None) -> float | None:
@@ -354,7 +357,7 @@ def _bound_vn(*, chsh, chsh_input, parties, level, correlators, bell, inputs, to
         bell=bell, inputs=inputs, tolerance=tolerance,
         method="table" if method == "table" else "npa", fallback=fallback,
     )
-    h = max(h_a, pair_min.entropy_bits)
+    h = max(h_a, pair_min.single_round_bound_bits)
     return _make(
         "vn", parties, h, guessing_probability=None,
         method=f"max(analytic-vn-A, {pair_min.method}-min-AB)", level=pair_min.level,

@@ -30,7 +30,7 @@ is also re-derived here, "[D]", and tested numerically on random states in the t
    projector (M_a N_b for the pair), Z_a on Eve's system.
 4. The node t_m = 1 is dropped (as in [BFF]'s statement of the bound). Valid because its term is
    >= 0 [D]: it equals w_m (1 - sum_a Tr rho_E^-1 rho_a^2) and rho_a <= rho_E gives
-   Tr rho_E^-1 rho_a^2 <= Tr rho_a. Hence (the formula of the methods note)
+   Tr rho_E^-1 rho_a^2 <= Tr rho_a. Hence (Brown, Fawzi & Fawzi, Quantum 8, 1445 (2024))
 
        H ln 2 >= sum_{i<m} (w_i / t_i) (1 + inf_i),
 

@@ -1,6 +1,7 @@
 r"""Entropy accumulation on the spot-checking CHSH protocol (quantum side information).
 
-Protocol (methods note "entropy-accumulation", section 1): n rounds fixed in advance; each
+Protocol (spot-checking CHSH as in Arnon-Friedman, Renner & Vidick, SIAM J. Comput. 48, 181
+(2019) and Brown, Ragy & Colbeck, IEEE Trans. Inf. Theory 66, 2964 (2020)): n rounds fixed in advance; each
 round is a test round with probability gamma (uniform, independent test settings) or a
 generation round with fixed settings; the score of a test round is a CHSH-game win
 (a XOR b = x AND y) or a loss. The acceptance test, fixed before the run, is
@@ -92,7 +93,8 @@ CONSERVATIVE_CONSTANTS = (
 LEGACY_CONSERVATIVE_CONSTANTS = ("conservative: log2(2 d^2 + 1) in V and the full K_alpha "
                                  "term (constants flagged uncertain in the methods note)")
 
-#: Smallest and largest alpha - 1 searched (methods note, section 4).
+#: Smallest and largest alpha - 1 searched (the Renyi order of the entropy accumulation bound,
+#: Dupuis & Fawzi, IEEE Trans. Inf. Theory 65, 7596 (2019); the range is our choice).
 ALPHA_M1_MIN, ALPHA_M1_MAX = 1e-12, 0.49
 
 REFERENCES_DF = (
@@ -115,7 +117,7 @@ REFERENCES_DFR = (
 def g_smooth(eps: float) -> float:
     """g(eps) = -log2(1 - sqrt(1 - eps^2)) in the stable form log2((1 + sqrt(1 - eps^2))/eps^2).
 
-    The naive form loses all precision for eps below ~1e-8 (methods note, pitfall 6).
+    The naive form loses all precision for eps below ~1e-8 (common practice: compute with log1p/expm1).
     """
     if not (0.0 < eps < 1.0):
         raise ParameterError(f"eps_s must be in (0, 1), got {eps!r}")
@@ -133,7 +135,9 @@ def tangent(w_t):
 def df_variance(a, gamma: float):
     """Var(f) of the DF form maximised over achievable distributions: (a^2/gamma) u (1 - gamma u).
 
-    u* = clip(1/(2 gamma), 1 - w*, w*) (methods note, section 2.3).
+    u* = clip(1/(2 gamma), 1 - w*, w*): the concave quadratic u (1 - gamma u) peaks at
+    u = 1/(2 gamma), clipped to the achievable losses [1 - w*, w*] (our derivation; the variance
+    term of Dupuis & Fawzi, IEEE Trans. Inf. Theory 65, 7596 (2019)).
     """
     u = min(max(1.0 / (2.0 * gamma), 1.0 - W_QUANTUM), W_QUANTUM)
     return np.asarray(a, dtype=float) ** 2 / gamma * u * (1.0 - gamma * u)
@@ -318,7 +322,9 @@ def optimise_lines(variant: str, lines, w_c: float, n: float, gamma: float, eps_
     """Best rate over a finite set of certified affine bounds (w0, b, a) (and alpha for DF).
 
     Every line is a valid single-round bound for all w, so choosing the line after the data
-    is allowed exactly like choosing the tangent point (methods note, section 4).
+    is allowed exactly like choosing the tangent point (Dupuis, Fawzi & Renner, Commun. Math.
+    Phys. 379, 867 (2020): any min-tradeoff function fixed before the data is valid; ours are
+    all valid simultaneously).
     """
     from scipy.optimize import minimize_scalar
 
@@ -469,7 +475,7 @@ def abort_probability(params_or_threshold: Any, n: int, gamma: float, win_probab
 def chernoff_tolerance(n: float, gamma: float, w_exp: float, eps_comp: float) -> float:
     """delta = sqrt(3 (1 - w_exp) ln(1/eps_comp) / (n gamma)) (multiplicative Chernoff bound).
 
-    Used by the methods note's rate tables; the exact binomial tail is tighter.
+    A Chernoff-type approximation used for rate tables; the exact binomial tail is tighter.
     """
     return math.sqrt(3.0 * (1.0 - w_exp) * math.log(1.0 / eps_comp) / (n * gamma))
 

@@ -400,9 +400,10 @@ def box_photonic(
 
     Notes
     -----
-    The methods note's table of rho(c|z) (r = 2.918, efficiency 0.76, J = 0.0084) is
-    reproduced to about 2e-6 with r = 2.918 exactly and to about 1e-7 with the J-optimal
-    r = 2.91802 (``r=None``); the note's r is that optimum rounded to three decimals.
+    A reference table of rho(c|z) (r = 2.918, efficiency 0.76, J = 0.0084; from memory, the
+    Eberhard-type setting of Eberhard, Phys. Rev. A 47, R747 (1993)) is reproduced to about 2e-6
+    with r = 2.918 exactly and to about 1e-7 with the J-optimal r = 2.91802 (``r=None``); the
+    table's r is that optimum rounded to three decimals.
 
     References
     ----------

@@ -44,7 +44,7 @@ class SimulationSummary:
     gamma: float
     generation: tuple[int, int]
     settings_bias: tuple[float, float] | None
-    rng_seed: int
+    rng_stream: int
     sampler: str
     model: str
     parameters: dict
@@ -57,6 +57,18 @@ class SimulationSummary:
     sha256: str
     size_bytes: int
 
+    #: Name of earlier versions (read-only): the simulator's stream number.
+    rng_seed = property(lambda self: self.rng_stream)
+
+
+def _stream(rng_stream: int | None, rng_seed: int | None) -> int | None:
+    """The stream number, also when given under its former name ``rng_seed``."""
+    if rng_seed is None:
+        return rng_stream
+    if rng_stream is not None and rng_stream != rng_seed:
+        raise ParameterError("give rng_stream only (rng_seed is its former name)")
+    return rng_seed
+
 
 def simulate_to_file(
     path: str | os.PathLike[str],
@@ -68,6 +80,7 @@ def simulate_to_file(
     generation: tuple[int, int] = (0, 0),
     settings_bias: tuple[float, float] | None = None,
     include_t: bool | None = None,
+    rng_stream: int | None = None,
     rng_seed: int | None = None,
     chunk: int = DEFAULT_CHUNK_TRIALS,
     progress: Callable[[int, int], object] | None = None,
@@ -75,8 +88,9 @@ def simulate_to_file(
     """Simulate ``n`` trials of ``model`` and write them to ``path`` (atomically, streaming).
 
     The format comes from ``format`` or the extension (see :func:`dicert.logs.write_log`).
-    Without ``rng_seed`` fresh entropy is drawn and reported as ``rng_seed`` so that the run can
-    be replayed. Same seed and parameters give a byte-identical file.
+    ``rng_stream`` numbers the simulator's pseudo-random stream (``SeedSequence(rng_stream)``;
+    fresh entropy, reported, if omitted; ``rng_seed`` is its former name): the same stream and
+    parameters give a byte-identical file.
     """
     from dicert._io import sha256_file
     from dicert._kernels import count_blocks
@@ -89,7 +103,7 @@ def simulate_to_file(
         fmt_label = "csv.gz"
     else:
         fmt_label = fmt
-    rng, seed = make_rng(rng_seed)
+    rng, seed = make_rng(_stream(rng_stream, rng_seed))
     n = _check_n(n)
     chunks = iter_trial_chunks(n, model, gamma=gamma, generation=generation, settings_bias=settings_bias,
                                include_t=include_t, rng=rng, chunk=chunk)
@@ -123,7 +137,7 @@ def simulate_to_file(
         gamma=g,
         generation=gen,
         settings_bias=bias,
-        rng_seed=seed,
+        rng_stream=seed,
         sampler=sampler_name(),
         model=model.name,
         parameters=dict(model.parameters),

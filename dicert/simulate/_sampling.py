@@ -277,8 +277,8 @@ def simulate_trials(
 
 
 def make_rng(seed: int | None = None) -> tuple[np.random.Generator, int]:
-    """A PCG64 generator from ``SeedSequence(seed)``; returns it and the seed's entropy (for replay)."""
+    """A PCG64 generator from ``SeedSequence(stream)``; returns it and the stream number (for replay)."""
     if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0):
-        raise ParameterError(f"rng seed must be a nonnegative integer, got {seed!r}")
+        raise ParameterError(f"--rng-stream must be a nonnegative integer, got {seed!r}")
     ss = np.random.SeedSequence(seed)
     return np.random.Generator(np.random.PCG64(ss)), int(ss.entropy)

@@ -140,7 +140,7 @@ def _chain_seed_digests(chain_dir: Path) -> tuple[str, ...]:
             continue  # verify --chain reports unreadable pulses
         ex = rec.get("extractor") if isinstance(rec, dict) else None
         if isinstance(ex, dict) and isinstance(ex.get("seed_sha256"), str) \
-                and (ex.get("seed_bits_used") or 0) > 0:
+                and (ex.get("seed_bits", ex.get("seed_bits_used")) or 0) > 0:  # /3-/4, /1-/2
             out.append(ex["seed_sha256"])
     return tuple(out)
 

@@ -56,7 +56,9 @@ def _single_round(estimate: Any) -> dict:
         "bound_min_entropy": "f(S) = 1 - log2(1 + sqrt(2 - S^2/4)) (Pironio et al. 2010)",
         "bound_von_neumann": "1 - h(1/2 + 1/2 sqrt(S^2/4 - 1)) (Pironio et al. 2009)",
     }
-    for attr, label in (("chsh", "chsh_estimate"), ("chsh_lower", "chsh_lower_bound")):
+    for attr, label in (("chsh_estimate", "chsh_estimate"),
+                        ("chsh_ratio_estimate", "chsh_ratio_estimate"),
+                        ("chsh_lower_bound", "chsh_lower_bound")):
         s = getattr(estimate, attr, None)
         if s is None or not math.isfinite(float(s)):
             continue
@@ -66,11 +68,8 @@ def _single_round(estimate: Any) -> dict:
 
 
 def _estimate_section(estimate: Any) -> dict:
-    """The CHSH estimate under the record's names (:data:`record_compat.ESTIMATE_KEYS`)."""
-    est = plain(estimate)
-    if not isinstance(est, dict):
-        return est
-    return {_compat.ESTIMATE_KEYS.get(k, k): v for k, v in est.items()}
+    """The CHSH estimate; its field names are the record's (the README glossary's)."""
+    return plain(estimate)
 
 
 def _split_timing(details: Any) -> tuple[Any, float | None]:
@@ -209,7 +208,7 @@ def _extractor_section(protocol: Protocol, scan: LogScan, analysis: Analysis,
         "eps_ext": float(protocol.extractor.eps_ext),
         "seed_sha256": seed_sha256,
         "seed_bytes": int(seed_bytes),
-        "seed_bits": int(extraction.seed_bits_used) if extraction is not None else 0,
+        "seed_bits": int(extraction.seed_bits) if extraction is not None else 0,
         "raw_sha256": scan.raw_sha256,
         "raw_bits": int(scan.raw_bits),
         "output_bits": int(analysis.output_bits),

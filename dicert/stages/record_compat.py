@@ -1,9 +1,12 @@
 """Reading records of earlier formats: the one place that maps the member names of a
-``dicert-record/1`` or ``/2`` record to today's (``dicert-record/3``) vocabulary.
+``dicert-record/1``, ``/2`` or ``/3`` record to today's (``dicert-record/4``) vocabulary.
 
 ``dicert-record/3`` renamed record members so that each quantity has one name (see the
-README's glossary): :data:`RENAMED` lists every moved member, :func:`upgrade_body` applies it
-(and rebuilds the error budget) to a record body. The record's digest and signature are always
+README's glossary): :data:`RENAMED` lists every member moved since ``/1`` and ``/2``,
+:func:`upgrade_body` applies it (and rebuilds the error budget) to a record body.
+``dicert-record/4`` gave ``estimate.chsh_estimate`` its glossary meaning, the weighted
+(martingale) estimate that the lower bound belongs to; ``/3`` had written the ratio estimate
+under that name and the weighted one as ``chsh_martingale`` (:data:`RENAMED_FROM_3`). The record's digest and signature are always
 checked on the record as written; only the numbers are then compared under today's names.
 verify, ``verify --chain``, ``report``, ``publish`` and the demo read records through
 :func:`upgrade_body`; the beacon site's browser checker needs only the digest members, whose
@@ -18,12 +21,13 @@ from collections.abc import Mapping
 from typing import Any
 
 #: Record format written today.
-CURRENT_FORMAT = "dicert-record/3"
+CURRENT_FORMAT = "dicert-record/4"
 
-#: Members moved by dicert-record/3: old dotted path -> new name (same parent). Paths under
-#: ``estimate_blocks.blocks`` apply to every block.
+#: Members moved since dicert-record/1 and /2: old dotted path -> new name (same parent).
+#: Paths under ``estimate_blocks.blocks`` apply to every block.
 RENAMED = {
-    "estimate.chsh": "chsh_estimate",
+    "estimate.chsh": "chsh_ratio_estimate",
+    "estimate.chsh_martingale": "chsh_estimate",
     "estimate.chsh_lower": "chsh_lower_bound",
     "estimate.eps": "eps_est",
     "estimate.test_trials": "test_rounds",
@@ -31,11 +35,11 @@ RENAMED = {
     "estimate_blocks.blocks.chsh_lower": "chsh_lower_bound",
     "estimate_blocks.blocks.chsh_upper": "chsh_upper_bound",
     "entropy.single_round.min_entropy_per_round_at_chsh":
-        "single_round_bound_bits_at_chsh_estimate",
+        "single_round_bound_bits_at_chsh_ratio_estimate",
     "entropy.single_round.min_entropy_per_round_at_chsh_lower":
         "single_round_bound_bits_at_chsh_lower_bound",
     "entropy.single_round.von_neumann_per_round_at_chsh":
-        "von_neumann_bound_bits_at_chsh_estimate",
+        "von_neumann_bound_bits_at_chsh_ratio_estimate",
     "entropy.single_round.von_neumann_per_round_at_chsh_lower":
         "von_neumann_bound_bits_at_chsh_lower_bound",
     "entropy.finite_size.min_entropy_bits": "certified_min_entropy_bits",
@@ -46,12 +50,21 @@ RENAMED = {
     "extractor.seed_bits_used": "seed_bits",
 }
 
-#: Estimate members renamed when the record is written (ChshEstimate field -> record key).
-ESTIMATE_KEYS = {old.split(".", 1)[1]: new for old, new in RENAMED.items()
-                 if old.count(".") == 1 and old.startswith("estimate.")}
-#: Per-block members renamed (block dict key -> record key).
-BLOCK_KEYS = {old.rsplit(".", 1)[1]: new for old, new in RENAMED.items()
-              if old.startswith("estimate_blocks.blocks.")}
+#: Members moved by dicert-record/4, applied to a /3 record in this order (the ratio estimate
+#: first leaves ``chsh_estimate`` free for the weighted one).
+RENAMED_FROM_3 = {
+    "estimate.chsh_estimate": "chsh_ratio_estimate",
+    "estimate.chsh_martingale": "chsh_estimate",
+    "entropy.single_round.single_round_bound_bits_at_chsh_estimate":
+        "single_round_bound_bits_at_chsh_ratio_estimate",
+    "entropy.single_round.von_neumann_bound_bits_at_chsh_estimate":
+        "von_neumann_bound_bits_at_chsh_ratio_estimate",
+}
+
+#: Members a record of an earlier format lacks (recomputed values verify leaves out for it):
+#: the single-round values at the weighted estimate, added by /4.
+ADDED_BY_4 = ("entropy.single_round.single_round_bound_bits_at_chsh_estimate",
+              "entropy.single_round.von_neumann_bound_bits_at_chsh_estimate")
 
 #: Texts the record states in words: what /1 and /2 wrote -> what /3 writes (no number moves).
 SINGLE_ROUND_NOTE = ("informational values at the estimated CHSH value; the certified quantity "
@@ -156,14 +169,32 @@ def _legacy_budget(body: dict) -> None:
     body["soundness_error"] = eps.get("total")
 
 
+def drop_added_members(expected: dict, fmt: Any) -> None:
+    """Remove from a recomputed body (in place) the members a record of format ``fmt`` lacks
+    because a later format added them (:data:`ADDED_BY_4`)."""
+    if fmt == CURRENT_FORMAT:
+        return
+    for dotted in ADDED_BY_4:
+        parent, _, leaf = dotted.rpartition(".")
+        sub: Any = expected
+        for part in parent.split("."):
+            sub = sub.get(part) if isinstance(sub, dict) else None
+        if isinstance(sub, dict):
+            sub.pop(leaf, None)
+
+
 def upgrade_body(record: Mapping[str, Any]) -> dict:
     """A record (or body) of any supported format, with today's member names.
 
-    ``format`` stays as written (verify says what older formats lack); a ``dicert-record/3``
+    ``format`` stays as written (verify says what older formats lack); a ``dicert-record/4``
     record is returned as a copy, unchanged.
     """
     body = copy.deepcopy(dict(record))
     if body.get("format") == CURRENT_FORMAT:
+        return body
+    if body.get("format") == "dicert-record/3":
+        for old, new in RENAMED_FROM_3.items():
+            _move(body, old.split("."), new)
         return body
     for old, new in RENAMED.items():
         _move(body, old.split("."), new)
@@ -178,5 +209,6 @@ def upgrade_body(record: Mapping[str, Any]) -> dict:
     return body
 
 
-__all__ = ["BLOCK_KEYS", "CURRENT_FORMAT", "ESTIMATE_KEYS", "RENAMED", "budget_terms",
+__all__ = ["ADDED_BY_4", "CURRENT_FORMAT", "RENAMED", "RENAMED_FROM_3", "budget_terms",
+           "drop_added_members",
            "error_budget", "upgrade_body"]

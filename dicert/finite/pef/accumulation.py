@@ -322,7 +322,7 @@ class PefAccumulator:
         the analysed trials ``harvest_first_trial .. harvest_last_trial`` (inclusive, 0-based
         trial indices of the log), 2 bits per trial, with min-entropy ``min_entropy_bits`` =
         sigma_target - 1 (the -1 makes the sub-normalised success branch a normalised source
-        for any extractor, methods note section 2 (ii)).
+        for any extractor, Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)).
 
         Under calibration = "adaptive" the details also hold ``blocks``: per block its
         ``index``, ``first_trial``, ``trials``, ``source`` (how its PEF was fixed),

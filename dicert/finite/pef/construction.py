@@ -182,7 +182,7 @@ def make_valid(factors: Any, beta: float, model: str, settings: SettingsModel, *
                lam: float = 0.0, rho: Any = None, solver: dict | None = None) -> Pef:
     """Turn candidate factors into a valid PEF, independently of how they were obtained.
 
-    Steps (methods note, pitfalls 1 and 3): clip negatives; evaluate every vertex row in
+    Steps (numerical safety, our choice; the PEF condition of Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)): clip negatives; evaluate every vertex row in
     float64 and divide by the largest (the rows are homogeneous in F, so this is exact); mix with
     the trivial PEF, F' = (1 - lam) F + lam (the PEFs of a given power form a convex set and
     F = 1 is one); divide by the float64 row maximum times (1 + ROW_MARGIN); re-check every row
@@ -264,7 +264,7 @@ def build_pef(rho: Any, settings: SettingsModel | None = None, beta: float = 0.0
 
 def trivial_pef(settings: SettingsModel | None = None, beta: float = 0.01, *,
                 model: str = "ns") -> Pef:
-    """The trivial PEF F = 1 (every vertex row is at most 1, fact (b) of the methods note),
+    """The trivial PEF F = 1 (every vertex row is at most 1, Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)),
     passed through :func:`make_valid` like any other, hence shrunk by the row margin.
 
     Scoring a trial with it leaves log2 T unchanged (up to the ~1e-12 bit margin), so under

@@ -151,7 +151,7 @@ def box_model(name: str) -> BoxModel:
 
     The Tsirelson polytope is NS intersected with the eight constraints CHSH <= 2 sqrt 2; its
     vertices are enumerated with Qhull's half-space intersection and snapped to the exact values
-    0, (sqrt2-1)/2, 2-sqrt2, (3-sqrt2)/2, 1 (the list in the methods note); each snapped vertex
+    0, (sqrt2-1)/2, 2-sqrt2, (3-sqrt2)/2, 1 (from our own enumeration, checked again below); each snapped vertex
     is then re-checked (no-signalling, positivity, every CHSH bound) and the count must be 80.
 
     References
@@ -371,8 +371,8 @@ def counts_by_setting(counts: Any) -> np.ndarray:
 def fit_box(counts_zc: Any, model: str = "ns") -> np.ndarray:
     """Maximum-likelihood box inside the model's polytope for counts n[z, c].
 
-    Raw frequencies signal slightly and make rate predictions optimistic; the methods note
-    recommends fitting into the model by minimising the KL divergence from the frequencies.
+    Raw frequencies signal slightly and make rate predictions optimistic; Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)
+    recommend fitting into the model by minimising the KL divergence from the frequencies.
     Settings with no trials get the uniform box's row (only the objective is affected).
     """
     import cvxpy as cp
