@@ -43,6 +43,8 @@ import numpy as np
 _C = 16
 #: Target size in bytes of one block of rows or columns (a pass holds about six at once).
 _PIECE = 32 << 20
+#: Columns per cache-sized tile of the column FFTs (a multiple of 8).
+_TILE = 16
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -156,16 +158,21 @@ class FileStore:
         return q * self.N2 * self.w * _C
 
     def rows(self, r0: int, r1: int) -> np.ndarray:
-        S, w = self.N1 // self.w, self.w
-        buf = np.empty((S, r1 - r0, w), dtype=np.complex128)
-        for q in range(S):
-            self._read(buf[q], self._slab_offset(q) + r0 * w * _C)
-        return np.ascontiguousarray(buf.transpose(1, 0, 2)).reshape(r1 - r0, self.N1)
+        # Each row's piece of a slab is contiguous in the file and in the result: one
+        # vectored read per slab straight into the rows (no transposing copy).
+        w = self.w
+        out = np.empty((r1 - r0, self.N1), dtype=np.complex128)
+        for q in range(self.N1 // w):
+            _preadv_all(self.fd, [out[i, q * w:(q + 1) * w] for i in range(r1 - r0)],
+                        self._slab_offset(q) + r0 * w * _C)
+        return out
 
     def put_rows(self, r0: int, v: np.ndarray) -> None:
         w = self.w
+        v = np.ascontiguousarray(v)
         for q in range(self.N1 // w):
-            self._write(v[:, q * w:(q + 1) * w], self._slab_offset(q) + r0 * w * _C)
+            _pwritev_all(self.fd, [v[i, q * w:(q + 1) * w] for i in range(v.shape[0])],
+                         self._slab_offset(q) + r0 * w * _C)
 
     def cols(self, c0: int, c1: int, nrows: int | None = None) -> np.ndarray:
         """Columns [c0, c1) (one whole slab), rows 0 .. nrows - 1 (default all)."""
@@ -174,6 +181,10 @@ class FileStore:
         out = np.empty((self.N2 if nrows is None else nrows, self.w), dtype=np.complex128)
         self._read(out, self._slab_offset(c0 // self.w))
         return out
+
+    def cols_into(self, c0: int, out: np.ndarray) -> None:
+        """Rows 0 .. len(out) - 1 of the slab starting at column c0, read into ``out``."""
+        self._read(out, self._slab_offset(c0 // self.w))
 
     def put_cols(self, c0: int, v: np.ndarray) -> None:
         self._write(v, self._slab_offset(c0 // self.w))
@@ -286,6 +297,43 @@ def _pread_all(fd: int, buf: np.ndarray, off: int) -> None:
         pos += got
 
 
+def _iov_chunks(parts: list[np.ndarray]) -> list[list[memoryview]]:
+    views = [memoryview(p).cast("B") for p in parts]
+    step = max(1, min(512, os.sysconf("SC_IOV_MAX") if hasattr(os, "sysconf") else 512))
+    return [views[i:i + step] for i in range(0, len(views), step)]
+
+
+def _preadv_all(fd: int, parts: list[np.ndarray], off: int) -> None:
+    """Read consecutive bytes at ``off`` into the (contiguous) arrays ``parts`` in turn."""
+    for group in _iov_chunks(parts):
+        want = sum(len(v) for v in group)
+        got = os.preadv(fd, group, off)
+        if got != want:  # a short read: finish piece by piece
+            pos = 0
+            for v in group:
+                if pos + len(v) > got:
+                    start = max(0, got - pos)
+                    _pread_all(fd, np.frombuffer(v, dtype=np.uint8)[start:], off + pos + start)
+                pos += len(v)
+        off += want
+
+
+def _pwritev_all(fd: int, parts: list[np.ndarray], off: int) -> None:
+    """Write the (contiguous) arrays ``parts`` one after the other from ``off``."""
+    for group in _iov_chunks(parts):
+        want = sum(len(v) for v in group)
+        got = os.pwritev(fd, group, off)
+        if got != want:  # a short write: finish piece by piece
+            pos = 0
+            for v in group:
+                if pos + len(v) > got:
+                    start = max(0, got - pos)
+                    _pwrite_all(fd, np.frombuffer(v, dtype=np.uint8)[start:],
+                                off + pos + start)
+                pos += len(v)
+        off += want
+
+
 def _pwrite_all(fd: int, buf: np.ndarray, off: int) -> None:
     view = memoryview(np.ascontiguousarray(buf)).cast("B")
     pos = 0
@@ -318,20 +366,58 @@ def open_packed(plan: FourStepPlan, temp_dir: Any = None, *, named: bool = False
 # --------------------------------------------------------------------------- twiddles
 
 
-def _twiddle(t: np.ndarray, c0: int, L: int, sign: int) -> None:
-    """t[k2, j1 - c0] *= exp(sign * 2 pi i * (j1 * k2 mod L) / L), in place.
+def _roots(r: np.ndarray, L: int, sign: int) -> np.ndarray:
+    """exp(sign * 2 pi i r / L) for integers 0 <= r < L (L a multiple of 8), accurate to
+    about one unit in the last place.
 
-    With k2 = h * S + l the factor is the product of exp(.. (j1 * h * S mod L) ..) and
-    exp(.. (j1 * l mod L) ..), each from an exactly reduced integer angle (error ~2 ulp).
+    The angle is never formed as a float multiple of 2 pi / L up to 2 pi (whose rounding
+    error grows with the angle): r is split exactly into a quadrant and an angle in
+    [0, pi/4] (common practice: octant reduction by the symmetries of sine and cosine), whose
+    cosine and sine are exact to an ulp, and the quadrant is applied by exact swaps.
     """
-    N2, w = t.shape
-    S = min(64, N2 & -N2)  # a power of two dividing N2
-    j = np.arange(c0, c0 + w, dtype=np.int64)[None, :]
-    hi = np.arange(N2 // S, dtype=np.int64)[:, None] * S
-    lo = np.arange(S, dtype=np.int64)[:, None]
-    v = t.reshape(N2 // S, S, w)
-    v *= np.exp((sign * 2j * np.pi / L) * ((j * hi) % L))[:, None, :]
-    v *= np.exp((sign * 2j * np.pi / L) * ((j * lo) % L))[None, :, :]
+    r = np.asarray(r, dtype=np.int64)
+    Q = L // 4
+    k = r // Q  # quadrant 0 .. 3
+    rr = r - k * Q  # in [0, L/4)
+    far = 2 * rr > Q  # beyond the octant: use the complementary angle
+    a = (2 * np.pi / L) * np.where(far, Q - rr, rr)  # in [0, pi/4]
+    c, s = np.cos(a), np.sin(a)
+    c, s = np.where(far, s, c), np.where(far, c, s)  # cos, sin of 2 pi rr / L
+    # times i**k: (c + i s) -> (-s + i c) -> (-c - i s) -> (s - i c)
+    re = np.choose(k, (c, -s, -c, s))
+    im = np.choose(k, (s, c, -s, -c))
+    return re + (1j * sign) * im
+
+
+class _Twiddles:
+    """The twiddle factors exp(sign * 2 pi i * (j1 * k2 mod L) / L) of the columns
+    j1 in [c0, c0 + w), all rows k2, as two small tables: with k2 = h * S + l the factor is
+    the product of exp(.. (j1 * h * S mod L) ..) and exp(.. (j1 * l mod L) ..), each from an
+    exactly reduced integer (see :func:`_roots`; error ~1 ulp each, ~2 ulp for the product).
+    Computed once per slab, applied tile by tile."""
+
+    def __init__(self, N2: int, c0: int, w: int, L: int, sign: int) -> None:
+        self.S = S = min(64, N2 & -N2)  # a power of two dividing N2
+        self.c0 = c0
+        j = np.arange(c0, c0 + w, dtype=np.int64)[None, :]
+        hi = np.arange(N2 // S, dtype=np.int64)[:, None] * S
+        lo = np.arange(S, dtype=np.int64)[:, None]
+        self.hi = _roots((j * hi) % L, L, sign)
+        self.lo = _roots((j * lo) % L, L, sign)
+
+    def apply(self, t: np.ndarray, c: int) -> None:
+        """t (all rows, columns [c, c + t.shape[1]) of the slab's) *= the factors, in place."""
+        N2, w = t.shape
+        a, b = c - self.c0, c - self.c0 + w
+        v = t.reshape(N2 // self.S, self.S, w)
+        v *= self.hi[:, None, a:b]
+        v *= self.lo[None, :, a:b]
+
+
+def _twiddle(t: np.ndarray, c0: int, L: int, sign: int) -> None:
+    """t[k2, j1 - c0] *= exp(sign * 2 pi i * (j1 * k2 mod L) / L), in place (see
+    :class:`_Twiddles`)."""
+    _Twiddles(t.shape[0], c0, t.shape[1], L, sign).apply(t, c0)
 
 
 # --------------------------------------------------------------------------- passes
@@ -362,15 +448,25 @@ def _window(plan: FourStepPlan, x: Any, s: Any, P0: int, cnt: int) -> tuple[np.n
 def columns_first(plan: FourStepPlan, packed: PackedStore, dst: Any, c0: int, c1: int,
                   workers: int = 1) -> None:
     """Columns [c0, c1) (one slab) of z = s' + i x from the packed bits: length-N2 FFTs down
-    each column, times the twiddles w**(j1*k2)."""
+    each column, times the twiddles w**(j1*k2).
+
+    The slab is worked through in tiles of :data:`_TILE` columns: each tile (N2 x _TILE
+    values, a few hundred KB) stays in the cache through its unpacking, FFT and twiddles,
+    where FFTs down the whole slab at once would stream it through memory several times.
+    Each column's FFT is the same computation either way (the bits do not depend on it)."""
     import scipy.fft as sfft
 
     sp, xp = packed.slab(c0 // plan.slab)
     t = np.empty((plan.N2, c1 - c0), dtype=np.complex128)
-    t.real = np.unpackbits(sp, axis=1)
-    t.imag = np.unpackbits(xp, axis=1)
-    t = sfft.fft(t, axis=0, overwrite_x=True, workers=workers)
-    _twiddle(t, c0, plan.L, -1)
+    tw = _Twiddles(plan.N2, c0, c1 - c0, plan.L, -1)
+    tb = _TILE // 8
+    for q in range(0, (c1 - c0) // 8, tb):
+        u = np.empty((plan.N2, min(_TILE, c1 - c0 - 8 * q)), dtype=np.complex128)
+        u.real = np.unpackbits(sp[:, q:q + tb], axis=1)
+        u.imag = np.unpackbits(xp[:, q:q + tb], axis=1)
+        u = sfft.fft(u, axis=0, overwrite_x=True, workers=workers)
+        tw.apply(u, c0 + 8 * q)
+        t[:, 8 * q: 8 * q + u.shape[1]] = u
     dst.put_cols(c0, t)
 
 
@@ -424,15 +520,22 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
     J = -(-m // N1)
     N2, H = plan.N2, plan.H
     t = np.empty((N2, c1 - c0), dtype=np.complex128)
-    t[:H + 1] = src.cols(c0, c1, H + 1)
+    if hasattr(src, "cols_into"):
+        src.cols_into(c0, t[:H + 1])
+    else:
+        t[:H + 1] = src.cols(c0, c1, H + 1)
     # Q(-k) = -conj(Q(k)) for the stored Q = 4i x (spectrum of a real sequence), hence for the
     # row inverse transforms E: E[N2 - k2, j1] = -exp(-2 pi i j1 / N1) conj(E[k2, j1]).
     if N2 - 1 > H:
-        f = -np.exp((-2j * np.pi / N1) * np.arange(c0, c1))
+        f = -_roots(np.arange(c0, c1), N1, -1)
         t[H + 1:] = f[None, :] * np.conj(t[1: N2 - H][::-1])
-    _twiddle(t, c0, plan.L, +1)
-    t = sfft.ifft(t, axis=0, overwrite_x=True, workers=workers)
-    vals = 0.25 * t.imag[:J]  # (J, w): position j2*N1 + c0 + col
+    vals = np.empty((J, c1 - c0), dtype=np.float64)  # position j2*N1 + c0 + col
+    tw = _Twiddles(N2, c0, c1 - c0, plan.L, +1)
+    for q in range(0, c1 - c0, _TILE):  # tiles of columns, as in columns_first
+        u = np.ascontiguousarray(t[:, q:q + _TILE])
+        tw.apply(u, c0 + q)
+        u = sfft.ifft(u, axis=0, overwrite_x=True, workers=workers)
+        np.multiply(u.imag[:J], 0.25, out=vals[:, q:q + _TILE])
     del t
     pos = (np.arange(J, dtype=np.int64) * N1)[:, None] + np.arange(c0, c1)[None, :]
     wanted = pos < m

@@ -59,7 +59,6 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import hashlib
 import os
 import time
 from collections.abc import Iterator, Mapping
@@ -318,13 +317,20 @@ class RunInputs:
     """What certify has read and checked before it takes any lock."""
 
     proto: Protocol
-    seed_bytes: bytes
-    seed_label: str
-    seed_sha: str
+    seed: Any  # dicert._seed.SeedInput: opened and checked, read only in chunks
     signer: Any  # Ed25519 private key or None
     out: Path
     chain_dir: Path | None
     trust: Any  # dicert.audit.trust.TrustSet (with a chain) or None
+
+    @property
+    def seed_label(self) -> str:
+        return self.seed.label
+
+    @property
+    def seed_sha(self) -> str:
+        """SHA-256 of the whole seed (streamed on first use, then kept)."""
+        return self.seed.sha256
 
 
 def read_inputs(protocol: Protocol | str | os.PathLike[str], seed: bytes | str | os.PathLike[str],
@@ -332,9 +338,13 @@ def read_inputs(protocol: Protocol | str | os.PathLike[str], seed: bytes | str |
                 chain: str | os.PathLike[str] | None = None, trusted_keys: Any = None,
                 protocol_change: str | None = None) -> RunInputs:
     """Stage 0: load the protocol, seed and key, and check the output and chain paths."""
+    from dicert._seed import open_seed
+
     proto = _load(protocol)
-    seed_bytes, seed_label = read_seed(seed)
-    seed_sha = hashlib.sha256(seed_bytes).hexdigest()
+    # The seed file is only opened and checked here; it is hashed and screened after the log
+    # scan (or before, with a chain) by streaming, and the extractor reads only the bytes it
+    # uses, so memory does not grow with the seed.
+    seed_in = open_seed(seed)
     signer = _load_key(key)
     out = Path(out_dir)
     if out.name in ("", ".", ".."):  # the folder is replaced as a whole: name it
@@ -348,8 +358,7 @@ def read_inputs(protocol: Protocol | str | os.PathLike[str], seed: bytes | str |
             raise ParameterError(f"{out}: --out and --chain must be separate folders (neither "
                                  "inside the other)")
     trust = _operator_trust(signer, trusted_keys, chain_dir, protocol_change)
-    return RunInputs(proto=proto, seed_bytes=seed_bytes, seed_label=seed_label,
-                     seed_sha=seed_sha, signer=signer, out=out, chain_dir=chain_dir,
+    return RunInputs(proto=proto, seed=seed_in, signer=signer, out=out, chain_dir=chain_dir,
                      trust=trust)
 
 
@@ -403,14 +412,15 @@ def extract_stage(analysis: Analysis, scan: LogScan, sink: _BitSink, run: RunInp
     """Stage 4: Toeplitz extraction of a certified run (None otherwise)."""
     if analysis.status != "certified":
         return None
-    check_seed_length(run.seed_bytes, run.seed_label, scan.raw_bits, analysis.output_bits)
+    check_seed_length(run.seed, run.seed_label, scan.raw_bits, analysis.output_bits)
     from dicert.extract import extract_toeplitz
 
-    extraction = extract_toeplitz(sink.data(), run.seed_bytes, analysis.output_bits,
+    extraction = extract_toeplitz(sink.data(), run.seed.for_extractor(), analysis.output_bits,
                                   n_bits=scan.raw_bits, scheduler=scheduler,
                                   temp_dir=temp_dir)
     if extraction.m_bits != analysis.output_bits:  # pragma: no cover - defensive
         raise DicertError("extractor returned a different output length")
+    run.seed.check_unchanged(extraction)
     return extraction
 
 
@@ -424,7 +434,7 @@ def seal_stage(*, run: RunInputs, scan: LogScan, analysis: Analysis, extraction:
         link = state.next_link()
         chain_info = (int(link["pulse_index"]), link["previous_record_sha256"])
     body = build_body(protocol=run.proto, scan=scan, analysis=analysis,
-                      seed_sha256=run.seed_sha, seed_bytes=len(run.seed_bytes),
+                      seed_sha256=run.seed_sha, seed_bytes=len(run.seed),
                       extraction=extraction, chain_info=chain_info, volatile=volatile,
                       inputs=inputs, screens=screens)
     # The record names its bits file (next to it); verify checks it by default.
@@ -507,15 +517,19 @@ def _certify_locked(*, log: Any, run: RunInputs, state: Any, protocol_change: st
     t1 = time.perf_counter()
     spill = outputs.new_spill_dir(out)  # private (0700): raw bits never sit in --out
     try:
+        from dicert.cluster import scheduler_from_env
+
+        scheduler = scheduler_from_env(scheduler)
         scan, sink = scan_log(log, proto.harvest.parties, proto.harvest.select,
-                              spill_dir=spill, progress=progress, protocol=proto, follow=spec)
+                              spill_dir=spill, progress=progress, protocol=proto, follow=spec,
+                              scheduler=scheduler)
         timings["scan"] = time.perf_counter() - t1
         outputs.fault_point("after-scan")
         try:
             t2 = time.perf_counter()
             check_scan(scan, proto, log, state, run.chain_dir)
             analysis, inputs = checked_analysis(
-                scan, proto, log=log, seed_bytes=run.seed_bytes, seed_label=run.seed_label,
+                scan, proto, log=log, seed_bytes=run.seed, seed_label=run.seed_label,
                 chain_dir=run.chain_dir, allow_mixed_inputs=allow_mixed_inputs,
                 allow_seed_reuse=allow_seed_reuse)
             timings["analysis"] = time.perf_counter() - t2

@@ -249,22 +249,73 @@ def file_digests(paths: list[Any], *, scheduler: Any) -> list[tuple[int, str]]:
                         f"dicert-digest-{uuid.uuid4().hex[:12]}", lambda: None)
 
 
-def _task_summary(path: str, fmt: str, block_trials: int) -> tuple[Any, int, int]:
-    """The file's summary, and the settings symbols of its first and last trial (for the
-    pairs across file boundaries)."""
+def _task_summary(path: str, fmt: str, block_trials: int,
+                  harvest: tuple[str, str, str] | None = None) -> tuple[Any, int, int, int]:
+    """The file's summary, the settings symbols of its first and last trial (for the pairs
+    across file boundaries) and, with ``harvest`` = (parties, select, bits file), the number
+    of raw bits harvested from it, written packed to that file (0 without)."""
     from dicert.logs import summarize_log
 
     _fault_point()
     ends = [-1, -1]
+    sink = None
+    if harvest is not None:
+        from dicert.stages.scan import harvest_bits
+
+        parties, select, dest = harvest
+        sink = _FileBits(dest)
 
     def edge(chunk: Any) -> None:
         if chunk.codes.size:
             if ends[0] < 0:
                 ends[0] = int(chunk.codes[0] >> 2) & 7
             ends[1] = int(chunk.codes[-1] >> 2) & 7
+            if sink is not None:
+                sink.add(harvest_bits(chunk.codes, parties, select, bool(chunk.has_test_flag)))
 
-    s = summarize_log(path, format=fmt, block_trials=block_trials, digest=True, on_chunk=edge)
-    return s, ends[0], ends[1]
+    try:
+        s = summarize_log(path, format=fmt, block_trials=block_trials, digest=True,
+                          on_chunk=edge)
+        bits = sink.finish() if sink is not None else 0
+    finally:
+        if sink is not None:
+            sink.close()
+    return s, ends[0], ends[1], bits
+
+
+class _FileBits:
+    """0/1 values packed big-endian into a file (created or truncated; a retried task
+    rewrites the same file from the start)."""
+
+    def __init__(self, path: str) -> None:
+        import numpy as np
+
+        self._np = np
+        self._fh = open(path, "wb")  # noqa: SIM115 - closed by close()
+        os.fchmod(self._fh.fileno(), 0o600)
+        self._carry = np.zeros(0, dtype=np.uint8)
+        self.bits = 0
+
+    def add(self, bits: Any) -> None:
+        np = self._np
+        if not bits.size:
+            return
+        self.bits += int(bits.size)
+        if self._carry.size:
+            bits = np.concatenate([self._carry, bits])
+        whole = bits.size - bits.size % 8
+        self._fh.write(np.packbits(bits[:whole]).tobytes())
+        self._carry = bits[whole:].copy()
+
+    def finish(self) -> int:
+        if self._carry.size:
+            self._fh.write(self._np.packbits(self._carry).tobytes())
+            self._carry = self._carry[:0]
+        self._fh.flush()
+        return self.bits
+
+    def close(self) -> None:
+        self._fh.close()
 
 
 def _task_blocks(path: str, fmt: str, offset: int, block_trials: int) -> Any:
@@ -284,6 +335,30 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
     """:func:`dicert.logs.summarize_log` (with digest) with each file counted and hashed by a
     task on the cluster; counts, blocks, settings pairs, files and the log digest
     (:func:`dicert.logs.files_digest` for several files) are identical to the local pass."""
+    summary, _ = _summarize(source, scheduler=scheduler, block_trials=block_trials,
+                            format=format)
+    return summary
+
+
+def scan_files(source: Any, *, scheduler: Any, block_trials: int, parties: str, select: str,
+               work_dir: Any) -> tuple[Any, list[tuple[str, int]]]:
+    """:func:`summarize_log` and, in the same task per file, the harvest of each file's raw
+    outcome bits (:func:`dicert.stages.scan.harvest_bits`) into a packed file in
+    ``work_dir`` (a directory every worker sees). Returns the summary and, per file in log
+    order, (bits file, number of bits); the caller joins them in that order and removes them
+    (:func:`remove_bit_files`). On failure the files are removed here."""
+    return _summarize(source, scheduler=scheduler, block_trials=block_trials, format=None,
+                      harvest=(parties, select, os.fspath(Path(work_dir).resolve())))
+
+
+def remove_bit_files(parts: list[tuple[str, int]]) -> None:
+    for path, _ in parts:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(path)
+
+
+def _summarize(source: Any, *, scheduler: Any, block_trials: int, format: str | None,
+               harvest: tuple[str, str, str] | None = None) -> tuple[Any, list]:
     import uuid
 
     import numpy as np
@@ -300,31 +375,41 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
                              "file) is read locally, not on a cluster; run without --scheduler")
     files = [os.fspath(Path(f).resolve()) for f in log.files]
     tag = f"dicert-log-{uuid.uuid4().hex[:12]}"
-    with client_for(scheduler) as client:
-        got = _run_all(client, _task_summary,
-                       [(f, fmt, block_trials) for f, fmt in zip(files, log.formats, strict=True)],
-                       f"{tag}-files", lambda: None)
-        parts = [g[0] for g in got]
-        # Consecutive settings pairs: those inside each file, plus one across each boundary.
-        pairs = sum(np.asarray(p.pair_counts, dtype=np.int64) for p in parts)
-        for (_, _, last), (_, first, _) in zip(got[:-1], got[1:], strict=True):
-            pairs[last, first] += 1
-        trials = [int(p.trials) for p in parts]
-        offsets = np.concatenate([[0], np.cumsum(trials)[:-1]]).astype(np.int64)
-        nblocks = -(-sum(trials) // block_trials)
-        if all(int(o) % block_trials == 0 for o in offsets):
-            block_counts = np.concatenate([p.block_counts for p in parts], axis=0)
-        else:  # files do not end on block boundaries: count each file's global blocks again
-            raw = np.zeros((nblocks, 2, 2, 2, 2, 2), dtype=np.int64)
-            got = _run_all(client, _task_blocks,
-                           [(f, fmt, int(o), block_trials)
-                            for f, fmt, o in zip(files, log.formats, offsets, strict=True)],
-                           f"{tag}-blocks", lambda: None)
-            for first, counts in got:
-                raw[first: first + len(counts)] += counts
-            block_counts = raw
-            if not log.has_test_flag:
-                block_counts = np.stack([np.zeros_like(raw[:, 0]), raw.sum(axis=1)], axis=1)
+    # Named per file and fixed before any task runs, so a task that dies and is run again
+    # rewrites the same file, and every file is known here for the clean-up.
+    bit_files = ([os.path.join(harvest[2], f".{tag}-{i:05d}.bits") for i in range(len(files))]
+                 if harvest is not None else [])
+    jobs = [(f, fmt, block_trials) + ((harvest[0], harvest[1], bit_files[i]),)
+            if harvest is not None else (f, fmt, block_trials)
+            for i, (f, fmt) in enumerate(zip(files, log.formats, strict=True))]
+    try:
+        with client_for(scheduler) as client:
+            got = _run_all(client, _task_summary, jobs, f"{tag}-files", lambda: None)
+            parts = [g[0] for g in got]
+            # Consecutive settings pairs: those inside each file, plus one across each boundary.
+            pairs = sum(np.asarray(p.pair_counts, dtype=np.int64) for p in parts)
+            for (_, _, last, _), (_, first, _, _) in zip(got[:-1], got[1:], strict=True):
+                pairs[last, first] += 1
+            trials = [int(p.trials) for p in parts]
+            offsets = np.concatenate([[0], np.cumsum(trials)[:-1]]).astype(np.int64)
+            nblocks = -(-sum(trials) // block_trials)
+            if all(int(o) % block_trials == 0 for o in offsets):
+                block_counts = np.concatenate([p.block_counts for p in parts], axis=0)
+            else:  # files do not end on block boundaries: count each file's global blocks again
+                raw = np.zeros((nblocks, 2, 2, 2, 2, 2), dtype=np.int64)
+                blocks = _run_all(client, _task_blocks,
+                                  [(f, fmt, int(o), block_trials)
+                                   for f, fmt, o in zip(files, log.formats, offsets,
+                                                        strict=True)],
+                                  f"{tag}-blocks", lambda: None)
+                for first, counts in blocks:
+                    raw[first: first + len(counts)] += counts
+                block_counts = raw
+                if not log.has_test_flag:
+                    block_counts = np.stack([np.zeros_like(raw[:, 0]), raw.sum(axis=1)], axis=1)
+    except BaseException:
+        remove_bit_files([(f, 0) for f in bit_files])
+        raise
     infos = [FileInfo(path=str(orig), format=fi.format, size_bytes=fi.size_bytes,
                       sha256=fi.sha256, trials=fi.trials)
              for orig, p in zip(log.files, parts, strict=True) for fi in p.files]
@@ -332,7 +417,10 @@ def summarize_log(source: Any, *, scheduler: Any, block_trials: int = 1 << 20,
               else np.zeros((2,) * 5, dtype=np.int64))
     sha = infos[0].sha256 if len(infos) == 1 else files_digest(
         {"name": Path(f.path).name, "bytes": f.size_bytes, "sha256": f.sha256} for f in infos)
-    return LogSummary(trials=int(sum(trials)), counts=counts, block_trials=block_trials,
-                      block_counts=block_counts, has_test_flag=log.has_test_flag,
-                      sha256=sha, size_bytes=int(sum(p.size_bytes for p in parts)),
-                      files=tuple(infos), pair_counts=pairs, trials_in_log=int(sum(trials)))
+    summary = LogSummary(trials=int(sum(trials)), counts=counts, block_trials=block_trials,
+                         block_counts=block_counts, has_test_flag=log.has_test_flag,
+                         sha256=sha, size_bytes=int(sum(p.size_bytes for p in parts)),
+                         files=tuple(infos), pair_counts=pairs, trials_in_log=int(sum(trials)))
+    if harvest is None:
+        return summary, []
+    return summary, [(f, int(g[3])) for f, g in zip(bit_files, got, strict=True)]

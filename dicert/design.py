@@ -719,7 +719,7 @@ def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIG
 # --------------------------------------------------------------------------- seed sanity
 
 
-def seed_problems(seed: bytes, *, log_digests: tuple[str, ...] = (),
+def seed_problems(seed: Any, *, log_digests: tuple[str, ...] = (),
                   used_digests: tuple[str, ...] = ()) -> tuple[list[str], list[str]]:
     """(fatal, overridable) problems of an extractor seed.
 
@@ -728,22 +728,31 @@ def seed_problems(seed: bytes, *, log_digests: tuple[str, ...] = (),
     them, and the record says so): its SHA-256 equals the digest of the log or of one of its
     files (the log given as its own seed), or a seed with this digest was already used by an
     earlier record of the beacon chain.
-    """
-    import hashlib
 
+    ``seed`` is bytes or a :class:`dicert._seed.SeedInput` (a file, read in chunks, never
+    held whole).
+    """
+    from dicert._seed import open_seed
+
+    src = open_seed(seed)
     fatal: list[str] = []
     soft: list[str] = []
-    if seed:
-        arr = np.frombuffer(seed, dtype=np.uint8)
-        if arr.min() == arr.max():
-            fatal.append(f"the seed is constant (all {arr.size} bytes are 0x{int(arr[0]):02x})")
+    if src.size:
+        lo, hi = 255, 0
+        for block in src.chunks():
+            arr = np.frombuffer(block, dtype=np.uint8)
+            lo, hi = min(lo, int(arr.min())), max(hi, int(arr.max()))
+            if lo != hi:
+                break
+        if lo == hi:
+            fatal.append(f"the seed is constant (all {src.size} bytes are 0x{lo:02x})")
         else:
-            head = seed[: 1 << 20]
+            head = src.head(1 << 20)
             for p in range(1, min(65, len(head))):
                 if head[p:] == head[:-p]:
                     fatal.append(f"the seed repeats with a period of {p} bytes")
                     break
-    digest = hashlib.sha256(seed).hexdigest()
+    digest = src.sha256
     if digest in log_digests:
         soft.append("the seed has the same SHA-256 as the log (the log itself was given as "
                     "the seed?)")

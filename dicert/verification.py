@@ -323,24 +323,26 @@ def _design_findings(body: Mapping[str, Any], status: str, found: Findings) -> N
 
 
 def recheck_seed(seed: bytes | str | os.PathLike[str] | None, facts: RecordFacts,
-                 found: Findings) -> bytes | None:
-    """Compare the given seed's digest and length with the record's."""
+                 found: Findings) -> Any:
+    """Compare the given seed's digest and length with the record's. Returns the seed as a
+    :class:`dicert._seed.SeedInput` (a file is streamed, never held whole) or None."""
     if seed is None:
         found.not_checked.append("seed")
         return None
-    from dicert.stages.scan import read_seed
+    from dicert._seed import open_seed
 
-    seed_data, _label = read_seed(seed)
-    _require(hashlib.sha256(seed_data).hexdigest() == facts.seed_sha256,
+    seed_in = open_seed(seed)
+    _require(seed_in.sha256 == facts.seed_sha256,
              "extractor.seed_sha256", "the given seed is not the one recorded")
-    _require(len(seed_data) == facts.seed_bytes, "extractor.seed_bytes",
-             f"the given seed has {len(seed_data)} bytes")
+    _require(len(seed_in) == facts.seed_bytes, "extractor.seed_bytes",
+             f"the given seed has {len(seed_in)} bytes")
     found.checked.append("seed digest")
-    return seed_data
+    return seed_in
 
 
-def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
-    """The read-and-scan stage again, over exactly what the record covers."""
+def rescan_log(log: Any, facts: RecordFacts, *, scheduler: Any = None) -> tuple[Any, Any]:
+    """The read-and-scan stage again, over exactly what the record covers (a multi-file log
+    on the cluster's workers with ``scheduler``, see :func:`dicert.stages.scan.scan_log`)."""
     import tempfile
 
     from dicert.errors import LogFormatError
@@ -363,7 +365,8 @@ def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
             scan, sink = _scan_whole(log, parties, rounds, spill_dir=spill, progress=None,
                                      protocol=protocol)
         else:
-            scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol)
+            scan, sink = scan_log(log, parties, rounds, spill_dir=spill, protocol=protocol,
+                                  scheduler=scheduler)
     except LogFormatError as exc:
         # A log that no longer reads is not the log that was certified.
         raise VerificationError(f"the given log does not read as a trial log ({exc})",
@@ -380,12 +383,14 @@ def rescan_log(log: Any, facts: RecordFacts) -> tuple[Any, Any]:
     return scan, sink
 
 
-def recheck_log(log: Any, facts: RecordFacts, found: Findings, seed_data: bytes | None, *,
+def recheck_log(log: Any, facts: RecordFacts, found: Findings, seed_data: Any, *,
                 scheduler: Any = None) -> bytes | None:
     """Re-read the log, re-derive the body from it, and with the seed re-run the extraction
     and the output screens. Returns the recomputed output (or None)."""
     body, protocol = facts.body, facts.protocol
-    scan, sink = rescan_log(log, facts)
+    from dicert.cluster import scheduler_from_env
+
+    scan, sink = rescan_log(log, facts, scheduler=scheduler_from_env(scheduler))
     try:
         if not (body.get("format") == "dicert-record/1" and len(scan.file_entries) > 1) \
                 and isinstance(body.get("inputs"), Mapping):
@@ -419,13 +424,17 @@ def recheck_log(log: Any, facts: RecordFacts, found: Findings, seed_data: bytes 
 
 
 def _rerun_extraction(scan: Any, sink: Any, facts: RecordFacts, found: Findings,
-                      seed_data: bytes, *, scheduler: Any) -> bytes:
+                      seed_data: Any, *, scheduler: Any) -> bytes:
     """The extraction stage again, and the output screens on its result."""
     from dicert.extract import extract_toeplitz
 
     body, protocol, status = facts.body, facts.protocol, facts.status
-    res = extract_toeplitz(sink.data(), seed_data, facts.output_bits, n_bits=scan.raw_bits,
-                           scheduler=scheduler)
+    from dicert._seed import open_seed
+
+    seed_in = open_seed(seed_data)
+    res = extract_toeplitz(sink.data(), seed_in.for_extractor(), facts.output_bits,
+                           n_bits=scan.raw_bits, scheduler=scheduler)
+    seed_in.check_unchanged(res)
     _require(res.output_sha256 == facts.output_sha256, "extractor.output_sha256",
              "re-running the extractor on the log and seed gives other bits")
     recomputed_output = bytes(res.output)

@@ -170,6 +170,74 @@ def test_worker_death_without_retries_fails_cleanly(local_cluster, address, kill
     assert not out.exists() or os.listdir(out) == []
 
 
+def _no_volatile(record):
+    r = dict(record)
+    for key in ("volatile", "record_sha256"):
+        r.pop(key, None)
+    return r
+
+
+def test_certify_and_verify_scan_the_files_on_the_workers(address, tmp_path, monkeypatch):
+    # Each file of a multi-file log is counted, hashed and harvested by a task; the record
+    # and bits equal the single-process run (the reference is dicert's own local path, whose
+    # numbers test_certify checks against the published formulas). File lengths give raw-bit
+    # counts that are not multiples of 8, so the files' bits are joined at bit level.
+    from dicert.certify import certify
+    from dicert.verify import verify
+
+    calls = []
+    real = cluster.scan_files
+    monkeypatch.setattr(cluster, "scan_files", lambda *a, **k: calls.append(1) or real(*a, **k))
+    d = _split_log(tmp_path, n_files=4, trials=24001)
+    proto = uniform_protocol()
+    seed = tmp_path / "seed.bin"
+    seed.write_bytes(np.random.default_rng(5).bytes(24001 * 4 // 8 + 64))
+    clock = lambda: "2026-01-01T00:00:00Z"  # noqa: E731
+    a = certify(d, proto, seed, tmp_path / "a", clock=clock)
+    assert not calls
+    b = certify(d, proto, seed, tmp_path / "b", clock=clock, scheduler=address)
+    assert calls == [1]
+    assert a.status == b.status == "certified"
+    assert (tmp_path / "a" / "random.bits").read_bytes() == (
+        tmp_path / "b" / "random.bits").read_bytes()
+    assert _no_volatile(a.record) == _no_volatile(b.record)
+    rep = verify(tmp_path / "b" / "record.json", log=d, seed=seed, scheduler=address)
+    assert calls == [1, 1]
+    assert rep.scope == "full" and "extraction re-run from log and seed" in rep.checked
+    # Nothing of the cluster scan is left next to the outputs.
+    assert sorted(p.name for p in tmp_path.iterdir() if not p.name.endswith(".lock")) == \
+        ["a", "b", "log", "seed.bin"]
+
+
+def test_worker_killed_during_the_scan(local_cluster, address, kill_marker, tmp_path):
+    # Retried by the engine: same record. Not retried: a clean failure, nothing written.
+    from dicert.certify import certify
+
+    d = _split_log(tmp_path, n_files=3, trials=12000)
+    seed = np.random.default_rng(5).bytes(12000 * 4 // 8 + 64)
+    clock = lambda: "2026-01-01T00:00:00Z"  # noqa: E731
+    ref = certify(d, uniform_protocol(), seed, tmp_path / "ref", clock=clock)
+    kill_marker.unlink()
+    again = certify(d, uniform_protocol(), seed, tmp_path / "again", clock=clock,
+                    scheduler=address)
+    assert kill_marker.exists()  # a worker really died, and its task ran again
+    assert _no_volatile(again.record) == _no_volatile(ref.record)
+    sched = local_cluster.scheduler
+    old = sched.allowed_failures
+    sched.allowed_failures = 0
+    kill_marker.unlink()
+    out = tmp_path / "out"
+    try:
+        with pytest.raises(cluster.ClusterError, match="dask task"):
+            certify(d, uniform_protocol(), seed, out, scheduler=address)
+    finally:
+        sched.allowed_failures = old
+    assert kill_marker.exists()
+    assert not out.exists() or os.listdir(out) == []
+    assert sorted(p.name for p in tmp_path.iterdir() if not p.name.endswith(".lock")) == \
+        ["again", "log", "ref"]
+
+
 def test_missing_extra_names_it(monkeypatch):
     from dicert.errors import DicertError
 

@@ -168,3 +168,39 @@ def test_certify_with_spilled_bits_and_four_step_leaves_only_outputs(tmp_path, m
     assert res.record["extractor"]["method"] == "fft-four-step"
     assert (out / BITS_NAME).read_bytes() == (tmp_path / "plain" / BITS_NAME).read_bytes()
     assert sorted(p.name for p in out.iterdir()) == sorted([BITS_NAME, RECORD_NAME])
+
+
+def test_twiddles_follow_the_four_step_definition():
+    # Bailey, "FFTs in external or hierarchical memory", J. Supercomputing 4, 23-35 (1990),
+    # step 2 of the four-step FFT: entry (k2, j1) is multiplied by exp(-2 pi i j1 k2 / L),
+    # L = N1 * N2. Reference: the angle from the exactly reduced integer j1 * k2 mod L in
+    # 50-digit arithmetic (mpmath), at the largest indices of a long transform (where j1 * k2
+    # / L in float64 would lose digits); both signs, a slab not starting at column 0.
+    # Regression: the angle used to be formed as (2 pi / L) * r, whose absolute error grows
+    # with the angle (up to ~8e-16 here); with the octant reduction every factor is within
+    # an ulp or two of 1.
+    import mpmath
+
+    N1, N2 = 1 << 17, 3 * 5 * 1024
+    L, c0, w = N1 * N2, N1 - 16, 16
+    for sign in (-1, +1):
+        t = np.ones((N2, w), dtype=np.complex128)
+        _fourstep._twiddle(t, c0, L, sign)
+        for k2 in (0, 1, 63, 64, 1023, N2 // 2, N2 - 1):
+            for j in (0, 7, 15):
+                r = ((c0 + j) * k2) % L
+                with mpmath.workdps(50):
+                    ref = mpmath.expjpi(sign * 2 * mpmath.mpf(r) / L)
+                got = t[k2, j]
+                assert abs(got.real - float(ref.real)) <= 4e-16
+                assert abs(got.imag - float(ref.imag)) <= 4e-16
+
+    r = np.random.default_rng(3).integers(0, L, 500)
+    got = _fourstep._roots(r, L, -1)
+    for ri, g in zip(r, got, strict=True):
+        with mpmath.workdps(50):
+            ref = mpmath.expjpi(-2 * mpmath.mpf(int(ri)) / L)
+        # one ulp of values in [1/2, 1): glibc's cos and sin on [0, pi/4] are within an ulp
+        # (from memory), and the quadrant is applied exactly
+        assert abs(g.real - float(ref.real)) <= 1.2e-16
+        assert abs(g.imag - float(ref.imag)) <= 1.2e-16

@@ -5,13 +5,24 @@ memory. Reported with ratios against baselines measured in the same run: a child
 that only reads and hashes the same log bytes (the least any certification must do), and
 ``dicert inspect`` (one streaming pass without harvest, bound or extraction). The per-stage
 timings come from the record's ``volatile.timings_s`` section.
+
+Full size only, two series (issue 14):
+
+* scaling: whole-process ``certify`` of simulated (invented) binary logs of 1e7, 5e7, 1e8 and
+  2e8 trials: time (target <= 25 s at 2e8) and peak memory, whose largest / smallest ratio
+  shows that memory stays flat (target <= 1.2, and <= 1 GiB);
+* cluster: ``certify`` of a 16-file log in one process and with ``--scheduler`` on a
+  2-worker ``distributed.LocalCluster`` started here (or ``DICERT_BENCH_SCHEDULER``), when
+  the optional extra ``dicert[cluster]`` is installed: wall times and identical records.
 """
 
 from __future__ import annotations
 
 import json
+import os
 import sys
 import tempfile
+import time
 from pathlib import Path
 
 import numpy as np
@@ -74,4 +85,104 @@ def run(quick: bool = False) -> list[BenchResult]:
         for stage, sec in stages.items():
             out.append(BenchResult(suite=SUITE, name=f"stage {stage} (from the record)",
                                    value=float(sec), unit="s", higher_is_better=False))
+        if not quick:
+            out += scaling(tmp)
+            out += on_cluster(tmp)
     return out
+
+
+SCALING_TRIALS = (10**7, 5 * 10**7, 10**8, 2 * 10**8)
+
+
+def scaling(tmp: Path, sizes: tuple[int, ...] = SCALING_TRIALS) -> list[BenchResult]:
+    """Whole-process certify at each size: time, peak memory, and the memory's flatness."""
+    from dicert.protocol import shipped_protocol_path
+
+    proto = shipped_protocol_path("chsh-uniform")
+    res: list[BenchResult] = []
+    rss_seen: list[float] = []
+    for trials in sizes:
+        d = tmp / f"scale{trials}"
+        d.mkdir()
+        log, seed = _make_inputs(d, trials)
+        cmd = [sys.executable, "-m", "dicert.cli.app", "certify", str(log), "--protocol",
+               str(proto), "--seed", str(seed), "--out", str(d / "out"), "--json"]
+        wall, rss = peak_rss_mb_of(cmd)
+        rss_seen.append(rss)
+        rec = json.loads((d / "out" / "record.json").read_text())
+        ext = rec["extractor"]
+        big = trials == max(sizes)
+        res.append(BenchResult(
+            suite=SUITE, name=f"whole-process certify, {trials:.0e}-trial binary log",
+            value=wall, unit="s", target=25.0 if big and trials >= 2 * 10**8 else None,
+            higher_is_better=False,
+            note=f"{rec['status']}; n = {ext['raw_bits']:.2e} raw bits, m = "
+                 f"{ext['output_bits']:.2e}; extraction "
+                 f"{rec['volatile']['timings_s'].get('extraction', 0):.1f} s"))
+        res.append(BenchResult(
+            suite=SUITE, name=f"peak memory of certify, {trials:.0e} trials", value=rss,
+            unit="MB", target=1024.0, higher_is_better=False))
+        for p in (log, seed):
+            p.unlink()
+    if len(rss_seen) > 1:
+        res.append(BenchResult(
+            suite=SUITE, name=f"certify peak memory, largest / smallest over "
+                              f"{min(sizes):.0e} ... {max(sizes):.0e} trials",
+            value=max(rss_seen) / min(rss_seen), unit="x", target=1.2, higher_is_better=False,
+            note=" -> ".join(f"{r:.0f}" for r in rss_seen) + " MB"))
+    return res
+
+
+def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[BenchResult]:
+    """certify of a multi-file log in one process and on a dask cluster (scan and
+    extraction as tasks); skipped without the optional extra ``dicert[cluster]``."""
+    try:
+        import distributed
+    except ImportError:
+        return []
+    from dicert.certify import certify
+    from dicert.protocol import shipped_protocol_path
+    from dicert.simulate import device_model, simulate_to_file
+
+    d = tmp / "multi"
+    d.mkdir()
+    for i in range(files):
+        simulate_to_file(d / f"part{i:02d}.btl", per_file,
+                         device_model("quantum", visibility=0.97), rng_stream=2026 + i)
+    seed = tmp / "multi.seed"
+    seed.write_bytes(np.random.default_rng(7).bytes((4 * files * per_file) // 8 + 8))
+    proto = shipped_protocol_path("chsh-uniform")
+    clock = lambda: "2026-01-01T00:00:00Z"  # noqa: E731
+    t0 = time.perf_counter()
+    here = certify(d, proto, seed, tmp / "multi-here", clock=clock)
+    t_here = time.perf_counter() - t0
+    address = os.environ.get("DICERT_BENCH_SCHEDULER")
+    cluster = None
+    if address is None:
+        cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                           dashboard_address=None, memory_limit="2GiB")
+        address = cluster.scheduler_address
+    try:
+        t0 = time.perf_counter()
+        there = certify(d, proto, seed, tmp / "multi-there", clock=clock, scheduler=address)
+        t_there = time.perf_counter() - t0
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+    def body(rec: dict) -> dict:
+        return {k: v for k, v in rec.items() if k not in ("volatile", "record_sha256")}
+
+    same = body(here.record) == body(there.record)
+    trials = files * per_file
+    return [
+        BenchResult(suite=SUITE, name=f"certify of a {files}-file log, one process",
+                    value=t_here, unit="s", higher_is_better=False,
+                    note=f"{trials:.0e} trials, {here.status}"),
+        BenchResult(suite=SUITE, name=f"certify of a {files}-file log on the cluster",
+                    value=t_there, unit="s", higher_is_better=False,
+                    note=f"speedup {t_here / t_there:.2f}x "
+                         f"({'given scheduler' if cluster is None else '2-worker LocalCluster on this machine'})"),
+        BenchResult(suite=SUITE, name=f"{files}-file certify: identical record on the cluster",
+                    value=float(same), unit="bool", target=1.0),
+    ]

@@ -9,8 +9,8 @@ best of ``repeat``; their outputs must be byte-identical.
 The scaling series runs ``dicert extract`` for n = 2^20 ... 2^28 (quick: 2^20 ... 2^22) at
 m = n / 2 and fits the growth exponent of the time (least squares of log t on log n over
 n >= 2^22, where start-up no longer dominates). n = 2^30 runs when ``DICERT_BENCH_HUGE=1``
-(it writes about 26 GB of work files). Whole-process ``certify`` on simulated 1e7- and
-2e8-trial binary logs shows the end-to-end time and that peak memory stays flat. With
+(it writes about 26 GB of work files). (Whole-process ``certify`` from 1e7 to 2e8 trials is
+in the "certify" suite.) With
 ``DICERT_BENCH_SCHEDULER=ADDRESS`` (or the optional extra ``dicert[cluster]`` installed, on a
 2-worker LocalCluster started here) the n = 2^24 run is repeated on the cluster.
 
@@ -78,7 +78,6 @@ def run(quick: bool = False) -> list[BenchResult]:
         out += _versus_naive(tmp, quick)
         out += _scaling(tmp, quick)
         if not quick:
-            out += _certify_end_to_end(tmp)
             out += _cluster(tmp)
     return out
 
@@ -149,44 +148,6 @@ def _scaling(tmp: Path, quick: bool) -> list[BenchResult]:
             suite=SUITE, name=f"fitted growth exponent of extract time (n = 2^22 ... 2^{ks[-1]})",
             value=slope, unit="", target=1.2, higher_is_better=False,
             note="t ~ n^exponent at m = n/2; n log n over this range gives about 1.05-1.1"))
-    return res
-
-
-def _certify_end_to_end(tmp: Path) -> list[BenchResult]:
-    """Whole-process ``dicert certify`` on simulated (invented) binary logs of 1e7 and 2e8
-    trials: time and peak memory, whose ratio shows that memory stays flat."""
-    import json
-
-    from dicert.protocol import shipped_protocol_path
-    from dicert.simulate import device_model, simulate_to_file
-
-    proto = shipped_protocol_path("chsh-uniform")
-    res: list[BenchResult] = []
-    rss_seen = []
-    for trials in (10**7, 2 * 10**8):
-        log, seed, out = tmp / f"c{trials}.btl", tmp / f"c{trials}.seed", tmp / f"c{trials}"
-        simulate_to_file(log, trials, device_model("quantum", visibility=0.97), rng_stream=2026)
-        seed.write_bytes(np.random.default_rng(7).bytes((4 * trials) // 8 + 8))
-        cmd = [sys.executable, "-m", "dicert.cli.app", "certify", str(log), "--protocol",
-               str(proto), "--seed", str(seed), "--out", str(out), "--json"]
-        wall, rss = peak_rss_mb_of(cmd)
-        rss_seen.append(rss)
-        rec = json.loads((out / "record.json").read_text())
-        ext = rec["extractor"]
-        res.append(BenchResult(
-            suite=SUITE, name=f"whole-process certify, {trials:.0e}-trial binary log",
-            value=wall, unit="s", target=25.0 if trials > 10**7 else None,
-            higher_is_better=False,
-            note=f"{rec['status']}; n = {ext['raw_bits']:.2e} raw bits, m = "
-                 f"{ext['output_bits']:.2e}; extraction "
-                 f"{rec['volatile']['timings_s'].get('extraction', 0):.1f} s; peak {rss:.0f} MB"))
-        for p in (log, seed):
-            p.unlink()
-    res.append(BenchResult(suite=SUITE, name="certify peak memory, 2e8 / 1e7 trials",
-                           value=rss_seen[1] / rss_seen[0], unit="x", target=1.2,
-                           higher_is_better=False,
-                           note=f"{rss_seen[0]:.0f} MB -> {rss_seen[1]:.0f} MB (target: "
-                                f"<= 1024 MB)"))
     return res
 
 

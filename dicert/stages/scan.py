@@ -505,7 +505,8 @@ def _scan_binary_pef(path: Path, protocol: Protocol, sink: _BitSink, *,
 def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = None,
              progress: Progress | None = None, protocol: Protocol | None = None,
              follow: FollowSpec | None = None,
-             prefix_trials: int | None = None) -> tuple[LogScan, _BitSink]:
+             prefix_trials: int | None = None,
+             scheduler: Any = None) -> tuple[LogScan, _BitSink]:
     """Read a log once: counts, log digest, and the harvested raw bits.
 
     Returns the scan summary and the bit sink holding the packed raw bits (the caller must
@@ -528,6 +529,12 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
     ends at the trailer, at the header's count, or after the idle timeout (``ended_by``
     "idle-timeout", ``scope`` "prefix"). ``prefix_trials`` (used by verify) reads at most that
     many trials and ignores whatever follows them.
+
+    ``scheduler`` (a dask address or Client, see :mod:`dicert.cluster`): a multi-file log
+    read in one whole pass (methods other than "pef", no declared trial count) is counted,
+    hashed and harvested file by file on the cluster's workers (their bits files go to
+    ``spill_dir``, which they must see) and combined here in log order: the same scan and
+    bits as the local pass. Other logs are read here.
     """
     pef = protocol is not None and protocol.method == "pef"
     binary = _single_binary(log) if pef else None
@@ -562,15 +569,36 @@ def scan_log(log: Any, parties: str, rounds: str, *, spill_dir: Path | None = No
         if declared_limit and scan.ended_by == "limit":
             scan = dataclasses.replace(scan, ended_by="declared-trials")
         return dataclasses.replace(scan, raw_bits=sink.bits, raw_sha256=raw_sha), sink
+    if scheduler is not None and _cluster_scannable(log, protocol):
+        return _scan_whole(log, parties, rounds, spill_dir=spill_dir, progress=progress,
+                           protocol=protocol, scheduler=scheduler)
     return _scan_whole(log, parties, rounds, spill_dir=spill_dir, progress=progress,
                        protocol=protocol)
 
 
+def _cluster_scannable(log: Any, protocol: Protocol | None) -> bool:
+    """A log the cluster scan handles: several plain files (no log spec), read whole."""
+    from dicert.design import declared_trials
+    from dicert.logs import open_log
+
+    if protocol is None or protocol.method == "pef" or declared_trials(protocol) is not None:
+        return False
+    try:
+        opened = open_log(log)
+    except Exception:  # the local pass reports the problem with its usual message
+        return False
+    return getattr(opened, "spec", None) is None and len(opened.files) > 1
+
+
 def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
-                progress: Progress | None, protocol: Protocol) -> tuple[LogScan, _BitSink]:
-    from dicert.design import declared_trials, settings_symbol_counts, spec_of
+                progress: Progress | None, protocol: Protocol,
+                scheduler: Any = None) -> tuple[LogScan, _BitSink]:
+    from dicert.design import declared_trials, spec_of
     from dicert.logs import summarize_log
 
+    if scheduler is not None:
+        return _scan_on_cluster(log, parties, rounds, spill_dir=spill_dir, protocol=protocol,
+                                scheduler=scheduler)
     sink = _BitSink(spill_dir)
     feed: _PefFeed | None = None
     pef = protocol is not None and protocol.method == "pef"
@@ -606,9 +634,17 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
     except BaseException:
         sink.discard()
         raise
+    return _scan_of(summary, sink, raw_sha, finite, n_decl, block_trials), sink
+
+
+def _scan_of(summary: Any, sink: _BitSink, raw_sha: str, finite: Any, n_decl: int | None,
+             block_trials: int) -> LogScan:
+    """The :class:`LogScan` of a whole pass from its log summary and bit sink."""
+    from dicert.design import settings_symbol_counts
+
     in_log = int(summary.trials_in_log if summary.trials_in_log is not None else summary.trials)
     cut = n_decl is not None and in_log > n_decl
-    scan = LogScan(counts=np.asarray(summary.counts, dtype=np.int64), trials=int(summary.trials),
+    return LogScan(counts=np.asarray(summary.counts, dtype=np.int64), trials=int(summary.trials),
                    sha256=str(summary.sha256), size_bytes=int(summary.size_bytes),
                    files=tuple(Path(f.path).name for f in summary.files),
                    has_test_flag=bool(summary.has_test_flag), raw_bits=sink.bits,
@@ -623,7 +659,47 @@ def _scan_whole(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
                    formats=tuple(f.format for f in summary.files),
                    log_spec=summary.log_spec,
                    block_series=group_blocks(summary.block_counts, block_trials))
-    return scan, sink
+
+
+def _scan_on_cluster(log: Any, parties: str, rounds: str, *, spill_dir: Path | None,
+                     protocol: Protocol, scheduler: Any) -> tuple[LogScan, _BitSink]:
+    """The whole pass with each file counted, hashed and harvested by a task on the cluster
+    (:func:`dicert.cluster.scan_files`); the files' bits are joined here in log order, so
+    the sink's bytes and digest equal the local pass's."""
+    import tempfile
+
+    from dicert import cluster
+    from dicert.design import spec_of
+
+    block_trials = spec_of(protocol).block_trials
+    work = Path(spill_dir) if spill_dir is not None else Path(tempfile.gettempdir())
+    work.mkdir(parents=True, exist_ok=True)
+    summary, parts = cluster.scan_files(log, scheduler=scheduler, block_trials=block_trials,
+                                        parties=parties, select=rounds, work_dir=work)
+    sink = _BitSink(spill_dir)
+    try:
+        for path, nbits in parts:
+            _join_bits(sink, path, nbits)
+        raw_sha = sink.finish()
+    except BaseException:
+        sink.discard()
+        raise
+    finally:
+        cluster.remove_bit_files(parts)
+    return _scan_of(summary, sink, raw_sha, None, None, block_trials), sink
+
+
+def _join_bits(sink: _BitSink, path: str, nbits: int, chunk: int = 1 << 22) -> None:
+    """Append the first ``nbits`` bits of a packed bits file to ``sink``, in chunks."""
+    with open(path, "rb") as fh:
+        left = nbits
+        while left > 0:
+            raw = fh.read(min(chunk, -(-left // 8)))
+            if not raw:
+                raise DicertError(f"{path}: a cluster task's bits file is shorter than it said")
+            bits = np.unpackbits(np.frombuffer(raw, dtype=np.uint8))[:left]
+            sink.add(bits)
+            left -= bits.size
 
 
 #: At most this many points in a record's per-block CHSH series (consecutive blocks are
