@@ -115,28 +115,37 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
 MAX_STREAM_BYTES = 256 << 20
 
 
+@contextlib.contextmanager
+def reading_errors(path: str | os.PathLike[str], what: str,
+                   error: type[Exception]) -> Iterator[None]:
+    """Turn the OS errors of reading a user's input file into ``error`` with one line naming
+    the file and what it should be (not found, a directory, permission, any other OS error)."""
+    try:
+        yield
+    except FileNotFoundError:
+        raise error(f"{path}: {what} not found") from None
+    except IsADirectoryError:
+        raise error(f"{path}: is a directory, expected a {what}") from None
+    except OSError as exc:
+        raise error(f"{path}: cannot read {what} ({exc.strerror})") from None
+
+
 def read_user_file(path: str | os.PathLike[str], what: str, error: type[Exception],
                    max_bytes: int | None = None) -> bytes:
     """Bytes of an input file named by the user; problems become ``error`` with one line
     naming the file (e.g. ``read_user_file(p, "seed file", SeedError)``). With ``max_bytes``
     a longer file (or an endless device such as /dev/zero) is refused after that many bytes."""
     p = Path(path)
-    try:
+    with reading_errors(p, what, error):
         with open(p, "rb") as fh:
             cap = max_bytes
             if cap is None and not stat.S_ISREG(os.fstat(fh.fileno()).st_mode):
                 cap = MAX_STREAM_BYTES  # a pipe or device may never end (/dev/zero)
             data = fh.read() if cap is None else fh.read(cap + 1)
-        if cap is not None and len(data) > cap:
-            hint = "" if max_bytes is not None else " (not a regular file; save it to a file)"
-            raise error(f"{p}: larger than {cap} bytes; not a {what}{hint}")
-        return data
-    except FileNotFoundError:
-        raise error(f"{p}: {what} not found") from None
-    except IsADirectoryError:
-        raise error(f"{p}: is a directory, expected a {what}") from None
-    except OSError as exc:
-        raise error(f"{p}: cannot read {what} ({exc.strerror})") from None
+    if cap is not None and len(data) > cap:
+        hint = "" if max_bytes is not None else " (not a regular file; save it to a file)"
+        raise error(f"{p}: larger than {cap} bytes; not a {what}{hint}")
+    return data
 
 
 def sha256_file(path: str | os.PathLike[str], chunk: int = 1 << 22) -> str:

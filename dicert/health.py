@@ -118,8 +118,10 @@ def read_bits_file(path: str | os.PathLike[str], n_bits: int | None = None) -> b
     /dev/zero, or a larger file, is refused with one line naming it)."""
     import stat
 
+    from dicert._io import reading_errors
+
     p = Path(path)
-    try:
+    with reading_errors(p, "file of packed bits", ParameterError):
         with open(p, "rb") as fh:
             if n_bits is not None and isinstance(n_bits, (int, np.integer)) and n_bits >= 1:
                 return fh.read((int(n_bits) + 7) // 8)  # a prefix: bounded whatever the file
@@ -132,14 +134,6 @@ def read_bits_file(path: str | os.PathLike[str], n_bits: int | None = None) -> b
                     f"{p}: {st.st_size} bytes; the screen reads at most {MAX_SCREEN_BYTES} "
                     "bytes at once: screen a prefix with --input-bits N")
             return fh.read(MAX_SCREEN_BYTES + 1)[:MAX_SCREEN_BYTES]
-    except FileNotFoundError:
-        raise ParameterError(f"{p}: no such file") from None
-    except IsADirectoryError:
-        raise ParameterError(f"{p}: is a directory, expected a file of packed bits") from None
-    except PermissionError:
-        raise ParameterError(f"{p}: permission denied") from None
-    except OSError as exc:
-        raise ParameterError(f"{p}: cannot read ({exc.strerror})") from None
 
 
 def as_bits(bits: Any, n_bits: int | None = None) -> np.ndarray:

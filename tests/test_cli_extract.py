@@ -120,7 +120,7 @@ def test_health_pass_fail_and_json(tmp_path):
 
 def test_health_bad_input(tmp_path):
     r = run("health", tmp_path / "none.bin")
-    assert r.exit_code == 2 and r.stderr.strip() == f"dicert: error: {tmp_path / 'none.bin'}: no such file"
+    assert r.exit_code == 2 and r.stderr.strip() == f"dicert: error: {tmp_path / 'none.bin'}: file of packed bits not found"
     (tmp_path / "b.bin").write_bytes(b"\x00\x01")
     r = run("health", tmp_path / "b.bin", "--input-bits", 17)
     assert r.exit_code == 2 and "exceeds the 16 bits" in r.stderr

@@ -206,7 +206,7 @@ def test_inputs_and_n_bits(tmp_path):
         as_bits(np.array([0, 2, 1]))
     with pytest.raises(ParameterError, match="exceeds"):
         as_bits(data, 9)
-    with pytest.raises(ParameterError, match="no such file"):
+    with pytest.raises(ParameterError, match="missing: file of packed bits not found"):
         as_bits(tmp_path / "missing")
     with pytest.raises(ParameterError, match="at least 2 bits"):
         run_health_checks(np.array([1], dtype=np.uint8))
