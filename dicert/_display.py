@@ -19,9 +19,13 @@ from __future__ import annotations
 import html
 import math
 import os
+import re
 from typing import Any, TypeVar
 
 T = TypeVar("T", bound=type)
+
+#: A SHA-256 digest, key fingerprint or signature in hex: shown whole, never cut.
+_HEX = re.compile(r"[0-9a-f]{32,128}")
 
 
 def _fmt(v: Any) -> str:
@@ -36,6 +40,8 @@ def _fmt(v: Any) -> str:
     if isinstance(v, int):
         return repr(int(v))
     if isinstance(v, str):
+        if _HEX.fullmatch(v):  # a digest or key fingerprint: never cut
+            return repr(v)
         return repr(v if len(v) <= 40 else v[:37] + "...")
     if isinstance(v, dict):
         items = list(v.items())
@@ -100,8 +106,8 @@ def displayed(cls: T) -> T:
 
 
 def short_digest(d: str | None) -> str | None:
-    """The first 16 hex digits of a digest (enough to recognise it in a repr)."""
-    return None if d is None else d[:16] + "..."
+    """A digest as shown in a repr: in full (a digest is never cut; README glossary)."""
+    return d
 
 
 __all__ = ["displayed", "short_digest"]

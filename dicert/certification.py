@@ -402,7 +402,7 @@ def check_scan(scan: LogScan, proto: Protocol, log: Any, state: Any,
                              f"{generation_rounds} trials as generation rounds (t = 0)")
     if state is not None and scan.sha256 in state.logs_used:
         raise ParameterError(
-            f"{log}: this log (SHA-256 {scan.sha256[:16]}...) already fed pulse "
+            f"{log}: this log (SHA-256 {scan.sha256}) already fed pulse "
             f"{state.logs_used[scan.sha256]} of {chain_dir}; every pulse needs fresh "
             "trials")
 

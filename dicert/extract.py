@@ -169,9 +169,8 @@ class ExtractionResult:
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("m_bits", self.m_bits), ("n_bits", self.n_bits), ("method", self.method),
-                ("output_sha256", self.output_sha256[:16] + "...")]
+                ("output_sha256", self.output_sha256)]
         if full:
-            rows[-1] = ("output_sha256", self.output_sha256)
             rows += [("seed_bits", self.seed_bits), ("blocks", self.blocks),
                      ("max_rounding_error", self.max_rounding_error),
                      ("fallback_blocks", self.fallback_blocks)]

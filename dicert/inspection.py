@@ -31,6 +31,13 @@ class LogInspection:
         The design the bound assumes; ``design_source`` says where it came from.
     design_report : DesignReport
         Every design-conformance check of the log against that design.
+    charge : JoinCharge or None
+        For a station join whose spec tolerates missing trials (``join.max_missing`` > 0):
+        what certify charges for them (:mod:`dicert.logspec._charge`; raw bits per dropped
+        trial from the protocol's harvest, else 2, the most a trial holds).
+    charged_estimate : ChshEstimate or None
+        With ``charge``: the estimate with every dropped trial counted as a lost test round
+        (what certify uses); ``estimate`` is that of the trials read (uncharged).
     """
 
     log: Any
@@ -38,6 +45,8 @@ class LogInspection:
     design: Any
     design_source: str
     design_report: Any
+    charge: Any = None
+    charged_estimate: Any = None
 
     @property
     def trials(self) -> int:
@@ -158,8 +167,26 @@ def inspect_summary(summary: Any, *, protocol: Any = None, gamma: float | None =
     report = check_design(summary.counts, like, block_counts=summary.block_counts,
                           pair_counts=summary.pair_counts, eps=eps)
     est = estimate_chsh(summary.counts, design, eps=eps)
+    charge, charged = _join_charge(summary, proto, design, eps, source)
     return LogInspection(log=summary, estimate=est, design=design, design_source=how,
-                         design_report=report)
+                         design_report=report, charge=charge, charged_estimate=charged)
+
+
+def _join_charge(summary: Any, proto: Any, design: Any, eps: float,
+                 source: Any) -> tuple[Any, Any]:
+    """The station-join charge of a log read through a log spec and the charged estimate
+    (None, None without a join that may drop trials)."""
+    from dicert.logspec._charge import charge_for_log
+
+    bits = proto.harvest.bits_per_trial if proto is not None else 2
+    # descriptive: method pef is not refused here (certify refuses it)
+    charge, counts = charge_for_log(getattr(summary, "log_spec", None), summary.counts, bits,
+                                    source=source)
+    if charge is None:
+        return None, None
+    from dicert.estimate import estimate_chsh
+
+    return charge, estimate_chsh(counts, design, eps=eps)
 
 
 __all__ = ["LogInspection", "inspect_log", "inspect_summary"]

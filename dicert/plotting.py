@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 from collections.abc import Sequence
 
+from dicert._format import fmt
 from dicert._io import atomic_write_bytes
 
 
@@ -104,10 +105,10 @@ def plot_chsh_blocks(blocks: Sequence, path, *, eps: float, title: str = "CHSH v
             ax.axhline(level, color="grey", ls=style, lw=1, label=label)
     if overall is not None:
         ax.axhline(overall, color="tab:green", ls="-", lw=1.2,
-                   label=f"overall estimate S = {overall:.4f}")
+                   label=f"CHSH estimate {fmt(overall, 'chsh')}")
     if overall_lower is not None and lo_b <= overall_lower:
         ax.axhline(overall_lower, color="tab:green", ls="--", lw=1,
-                   label=f"overall lower bound {overall_lower:.4f}")
+                   label=f"CHSH lower bound {fmt(overall_lower, 'lower')}")
     if threshold is not None:
         ax.axhline(threshold, color="tab:red", ls="-.", lw=1.2,
                    label=threshold_label or f"protocol threshold {threshold:.4f}")

@@ -226,6 +226,21 @@ def read_and_authenticate(path: Path, public_key: Any,
     return record, found
 
 
+def _uncharged_drops(body: Mapping[str, Any]) -> int:
+    """Trials a station join dropped in a record from before the join charge (else 0)."""
+    from dicert.stages.rederive import UNCHARGED_FORMATS
+
+    if body.get("format") not in UNCHARGED_FORMATS:
+        return 0
+    log = body.get("log")
+    spec = log.get("spec") if isinstance(log, Mapping) else None
+    join = spec.get("join") if isinstance(spec, Mapping) else None
+    if not isinstance(join, Mapping):
+        return 0
+    n = [join.get(k) for k in ("missing_at_a", "missing_at_b")]
+    return sum(v for v in n if isinstance(v, int) and not isinstance(v, bool))
+
+
 def recheck_record(body: Mapping[str, Any], found: Findings, *, log_given: bool) -> RecordFacts:
     """Re-derive the analysis from the recorded counts and compare (analysis and design
     stages again, without the log)."""
@@ -260,6 +275,12 @@ def recheck_record(body: Mapping[str, Any], found: Findings, *, log_given: bool)
         _design_findings(body, status, found)
     checked.append("internal consistency (protocol digest, counts, estimate, finite-size "
                    "bound, acceptance, eps terms, output length, seed bits)")
+    dropped = _uncharged_drops(body)
+    if dropped:
+        notes.append(f"record format {body.get('format')} predates the station-join charge: "
+                     f"its {dropped} trials dropped by the join were NOT charged (it assumed "
+                     "they went missing independently of the settings and outcomes); "
+                     "certified today they count as lost test rounds and cost bits")
     if protocol.method == "pef" and not log_given:
         notes.append("method pef: the probability-estimation result depends on the trial order "
                      "and is re-derived only with --log")
@@ -273,7 +294,7 @@ def recheck_record(body: Mapping[str, Any], found: Findings, *, log_given: bool)
     if body.get("protocol_change") is not None:
         pc = body["protocol_change"]
         notes.append(f"the record declares a protocol change (previous protocol "
-                     f"{pc['previous_protocol_sha256'][:16]}...): {pc['reason']}; check it "
+                     f"{pc['previous_protocol_sha256']}): {pc['reason']}; check it "
                      "along the chain with verify --chain")
     return RecordFacts(body=body, protocol=protocol, scan=rec_scan, seed_sha256=seed_sha,
                        seed_bytes=seed_bytes_n, output_sha256=output_sha, status=status,

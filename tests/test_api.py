@@ -248,7 +248,7 @@ def test_inspect_log_agrees_with_the_command_line(run):
     r = CliRunner().invoke(app, ["inspect", str(log), "--json"])
     assert r.exit_code == 0, r.output
     cli = json.loads(r.stdout)
-    assert (cli["trials"], cli["chsh"], cli["chsh_lower"], cli["gamma_source"]) == (
+    assert (cli["trials"], cli["chsh_ratio_estimate"], cli["chsh_lower_bound"], cli["gamma_source"]) == (
         look.trials, look.chsh, look.chsh_lower, look.design_source)
     # The same refusal, with the same message, from both doors.
     with pytest.raises(dicert.DicertError) as lib:

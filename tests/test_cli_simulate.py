@@ -53,7 +53,7 @@ def test_same_seed_same_bytes_and_inspect_agrees(tmp_path):
     res = runner.invoke(app, ["inspect", str(a), "--json"])
     assert res.exit_code == 0, res.output
     # The best deterministic strategy gives S = 2 exactly (CHSH 1969; common practice).
-    assert json.loads(res.stdout)["chsh"] == pytest.approx(2.0, abs=1e-12)
+    assert json.loads(res.stdout)["chsh_ratio_estimate"] == pytest.approx(2.0, abs=1e-12)
 
 
 def test_photonic_model_json(tmp_path):

@@ -567,12 +567,12 @@ def test_inspect_defaults_and_refusals(tmp_path):
     assert r.exit_code == 0, r.output
     js = json.loads(r.stdout)
     assert js["gamma"] == pytest.approx(0.05, abs=0.005) and "OBSERVED" in js["gamma_source"]
-    assert js["chsh_martingale"] > 2.5  # not S x gamma
+    assert js["chsh_estimate"] > 2.5  # the weighted estimate, not S x gamma
     # A wrong gamma: the lower bound would exceed 4; it is shown clipped and labelled.
     r = runner.invoke(app, ["inspect", str(log), "--json", "--gamma", "0.01"])
     js = json.loads(r.stdout)
-    if js["chsh_lower"] > 4:
-        assert js["chsh_lower_shown"] == 4.0 and "CLIPPED" in js["chsh_lower_note"]
+    if js["chsh_lower_bound"] > 4:
+        assert js["chsh_lower_bound_shown"] == 4.0 and "CLIPPED" in js["chsh_lower_bound_note"]
     assert not js["design_checks"]["passed"]
     # gamma < 1 on a log without a t column is an error.
     plain = tmp_path / "u.btl"

@@ -555,11 +555,16 @@ def test_example_certify_and_verify_rerun_join(example, tmp_path):
 
     assert spec["content"] == text
     assert spec["sha256"] == hashlib.sha256(text.encode()).hexdigest()
+    charge = spec["join"].pop("charge")
     assert spec["join"] == {"matched": 3997, "missing_at_a": 0, "missing_at_b": 3,
                             "duplicated_keys": 0, "out_of_order_keys": 0, "max_missing": 3,
                             "first_key": 100007, "last_key": 128000}
-    # Dropped trials are not charged: the record states the untestable assumption instead.
-    assert any("Trials dropped by the station join (3," in a for a in rec["assumptions"])
+    # Dropped trials are charged, not assumed (tests/test_logspec_charge.py checks the values).
+    assert (charge["dropped_trials"], charge["lost_test_rounds_charged"],
+            charge["raw_bits_subtracted"]) == (3, 3, 6)
+    assert any("Trials dropped by the station join (3," in a and "checked / charged" in a
+               for a in rec["assumptions"])
+    assert not any("NOT charged" in a for a in rec["assumptions"])
     assert [f["name"] for f in rec["log"]["files"]] == ["station-a.csv", "station-b.csv"]
     for f in rec["log"]["files"]:
         data = (example / f["name"]).read_bytes()
@@ -763,3 +768,28 @@ def test_match_sorted_against_set_intersection(seed):
         for steps in (0, 2, 16):
             ia, ib = _match_sorted(ka, kb, max_steps=steps)
             assert ka[ia].tolist() == kb[ib].tolist() == sorted(set(ka.tolist()) & set(kb.tolist()))
+
+
+@pytest.mark.parametrize("dtype", [np.int8, np.int16, np.int64, np.uint8])
+def test_two_value_map_on_integer_columns(dtype):
+    """The two-value fast path (1/2 and +1/-1 codes) gives the table's bits and the same
+    error, naming the first value outside the map."""
+    from pathlib import Path as _P
+
+    from dicert.logspec import _ValueMap
+
+    vm = _ValueMap("setting", "basis", {"1": 0, "2": 1})
+    arr = np.array([1, 2, 2, 1, 1], dtype=dtype)
+    np.testing.assert_array_equal(vm.map_numbers(arr, _P("f.parquet"), 0), [0, 1, 1, 0, 0])
+    bad = np.array([1, 2, 3, 1], dtype=dtype)
+    with pytest.raises(LogFormatError, match=r"f\.parquet, row 12: column 'basis' \(setting\) "
+                       r"has value '3'"):
+        vm.map_numbers(bad, _P("f.parquet"), 10)
+    if np.dtype(dtype).kind == "i":
+        pm = _ValueMap("outcome", "result", {"+1": 0, "-1": 1})
+        np.testing.assert_array_equal(
+            pm.map_numbers(np.array([1, -1, -1], dtype=dtype), _P("f"), 0), [0, 1, 1])
+    else:  # a key outside the column's type (-1 in uint8) is never matched
+        pm = _ValueMap("outcome", "result", {"+1": 0, "-1": 1})
+        with pytest.raises(LogFormatError, match="row 1: column 'result'"):
+            pm.map_numbers(np.array([1, 255], dtype=dtype), _P("f"), 0)

@@ -156,8 +156,8 @@ def test_cli_json_keys_and_plot(tmp_path):
     for key in ("methods", "min_trials_positive", "best_gamma"):
         assert key in doc
     for m in doc["methods"]:
-        for key in ("name", "side_information", "certified_bits", "rate_per_trial",
-                    "seed_bits", "net_bits", "abort_probability"):
+        for key in ("name", "side_information", "output_bits", "output_bits_per_trial",
+                    "settings_randomness_bits", "seed_bits", "net_bits", "abort_probability"):
             assert key in m
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
 
@@ -336,8 +336,9 @@ def test_cli_photonic_protocol_json_and_table(tmp_path):
     assert doc["trials"] == 100_000_000 and doc["trials_source"] == "protocol"  # n_max
     assert doc["device"].startswith("photonic model")
     for m in doc["methods"]:
-        for key in ("name", "side_information", "certified_bits", "rate_per_trial",
-                    "seed_bits", "net_bits", "abort_probability", "pef"):
+        for key in ("name", "side_information", "output_bits", "output_bits_per_trial",
+                    "settings_randomness_bits", "seed_bits", "net_bits", "abort_probability",
+                    "pef"):
             assert key in m
     pef = [m for m in doc["methods"] if m["name"] == "pef-ns"]
     assert len(pef) == 1 and pef[0]["thresholds"] == "declared"

@@ -184,7 +184,7 @@ def test_plan_table_shows_seed_best_gamma_and_tradeoff():
     r = runner.invoke(app, ["plan", "--protocol", "chsh-spotcheck", "--win-probability", "0.84"],
                       env={"COLUMNS": "100"})
     assert r.exit_code == 0, r.output
-    for text in ("extractor seed needed n_raw + m - 1", "certified output there",
+    for text in ("seed bits to provision", "raw bits + output bits - 1", "output bits there",
                  "gamma trade-off", "*"):
         assert text in r.stdout
 

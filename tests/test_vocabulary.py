@@ -45,7 +45,7 @@ RETIRED_PHRASES = ("--rng-seed", "rng seed", "seed consumed", "total soundness e
 
 #: Commands whose --json still carries retired names, until their tables are rebuilt on the
 #: glossary (remove a command from here when it passes: the xfail is strict).
-PENDING: set[str] = {"inspect", "plan"}
+PENDING: set[str] = set()
 
 
 def _walk(obj, path=""):

@@ -430,11 +430,11 @@ class _Walk:
                 else:
                     if prev_fp is not None and prev_fp != fp:
                         add("key-rotation", "info", name, "signature.key_fingerprint",
-                            f"signing key changes to '{tk.label}' ({fp[:16]}...), allowed by "
+                            f"signing key changes to '{tk.label}' ({fp}), allowed by "
                             "the trusted keys", (index,))
             elif prev_fp is not None and prev_fp != fp:
                 add("key-change", "error", name, "signature.key_fingerprint",
-                    f"signed by key {fp[:16]}..., the previous pulse by {prev_fp[:16]}...; "
+                    f"signed by key {fp}, the previous pulse by {prev_fp}; "
                     "give a trusted-keys file that allows the rotation", (index,))
             self.prev_fp = fp
         else:
@@ -474,7 +474,7 @@ class _Walk:
             if prev in prev_claimed:
                 add("fork", "error", name, "previous_record_sha256",
                     f"{prev_claimed[prev]}, {name} all claim the same predecessor "
-                    f"{prev[:16]}...", (index,))
+                    f"{prev}", (index,))
             else:
                 prev_claimed[prev] = name
             if prev in digest_at and digest_at[prev] != index - 1:
@@ -483,7 +483,7 @@ class _Walk:
             elif this_prev_digest is not None and this_prev_digest != prev:
                 add("link", "error", name, "previous_record_sha256",
                     f"does not match the digest of pulse {index - 1} "
-                    f"({this_prev_digest[:16]}...)", (index,))
+                    f"({this_prev_digest})", (index,))
 
     def reuse(self, record: Mapping[str, Any], name: str, index: int) -> None:
         """Reuse of inputs: the extractor seed and the log."""
@@ -496,7 +496,7 @@ class _Walk:
         if seed is not None:
             if seed in seeds:
                 add("seed-reuse", "error", name, "extractor.seed_sha256",
-                    f"the same extractor seed ({seed[:16]}...) was used by pulses "
+                    f"the same extractor seed ({seed}) was used by pulses "
                     f"{seeds[seed]} and {index}; use a fresh seed for every pulse",
                     (seeds[seed], index))
             else:
@@ -505,7 +505,7 @@ class _Walk:
         if log is not None:
             if log in logs:
                 add("log-reuse", "error", name, "log.sha256",
-                    f"the same log ({log[:16]}...) feeds pulses {logs[log]} and {index}; "
+                    f"the same log ({log}) feeds pulses {logs[log]} and {index}; "
                     "every pulse needs fresh trials", (logs[log], index))
             else:
                 logs[log] = index
@@ -523,11 +523,11 @@ class _Walk:
             if proto_sha is not None and psha != proto_sha:
                 if change is not None and change["previous_protocol_sha256"] == proto_sha:
                     add("protocol-change", "info", name, "protocol_change",
-                        f"declared protocol change {proto_sha[:16]}... -> {psha[:16]}...: "
+                        f"declared protocol change {proto_sha} -> {psha}: "
                         f"{change['reason']}", (index,))
                 else:
                     add("protocol-change", "error", name, "protocol.sha256",
-                        f"the protocol changes ({proto_sha[:16]}... -> {psha[:16]}...) without "
+                        f"the protocol changes ({proto_sha} -> {psha}) without "
                         "a signed declaration (certify --protocol-change)", (index,))
             elif change is not None:
                 add("protocol-change", "error", name, "protocol_change",
@@ -612,7 +612,7 @@ def _walk_result(w: _Walk, directory: Path, pulses: list, head: str | None,
         top = pulses[-1][0] if pulses else None
         if head_pulse is None:
             add("truncated", "error", None, "head",
-                f"the published head {head[:16]}... is not a pulse of this chain (newest "
+                f"the published head {head} is not a pulse of this chain (newest "
                 "pulses removed, or another chain)", ())
         elif head_pulse != top:
             add("head", "info", None, "head",

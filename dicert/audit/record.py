@@ -125,6 +125,16 @@ class RecordCheck:
     notes: tuple[str, ...]
 
 
+def _shown(value: Any) -> str:
+    """A stored digest for a message: in full when it is hex of digest length (never cut),
+    else its repr, shortened only when it is not a digest at all."""
+    text = str(value)
+    if re.fullmatch(r"[0-9a-f]{64}", text):
+        return text
+    r = repr(value)
+    return r if len(r) <= 80 else r[:77] + "..."
+
+
 def record_body(record: Mapping[str, Any]) -> dict[str, Any]:
     """The body of a record: every member except ``record_sha256`` and ``signature``."""
     if not isinstance(record, Mapping):
@@ -269,7 +279,7 @@ def check_record(
         raise VerificationError("missing; the record is not sealed", DIGEST_FIELD)
     if stored != digest:
         raise VerificationError(
-            f"stored {str(stored)[:16]}... but the body hashes to {digest[:16]}...; "
+            f"stored {_shown(stored)} but the body hashes to {digest}; "
             "the record was altered after sealing",
             DIGEST_FIELD,
         )
@@ -304,8 +314,8 @@ def check_record(
         expected = signing.public_key_bytes(public_key)
         if expected != raw:
             raise VerificationError(
-                f"signed by key {hashlib.sha256(raw).hexdigest()[:16]}..., expected key "
-                f"{hashlib.sha256(expected).hexdigest()[:16]}...",
+                f"signed by key {hashlib.sha256(raw).hexdigest()}, expected key "
+                f"{hashlib.sha256(expected).hexdigest()}",
                 "signature.public_key",
             )
         trusted = True

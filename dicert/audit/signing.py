@@ -172,7 +172,7 @@ def verify_signature(public_key: Any, data: bytes, signature: bytes) -> None:
         key.verify(bytes(signature), bytes(data))
     except InvalidSignature:
         raise VerificationError(
-            f"Ed25519 signature does not verify under key {fingerprint(key)[:16]}...",
+            f"Ed25519 signature does not verify under key {fingerprint(key)}",
             "signature",
         ) from None
 

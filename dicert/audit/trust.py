@@ -108,9 +108,9 @@ class TrustSet:
                 why.append(reason)
         where = f" for pulse {pulse_index}" if isinstance(pulse_index, int) else ""
         if why:
-            raise VerificationError(f"signed by key {fingerprint[:16]}..., not trusted{where}: "
+            raise VerificationError(f"signed by key {fingerprint}, not trusted{where}: "
                                     + "; ".join(why), "signature.public_key")
-        raise VerificationError(f"signed by key {fingerprint[:16]}..., which is not among the "
+        raise VerificationError(f"signed by key {fingerprint}, which is not among the "
                                 f"trusted keys ({self.source})", "signature.public_key")
 
 

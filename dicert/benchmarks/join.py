@@ -6,7 +6,8 @@ The baseline is a whole numpy process making one pass over the same bytes (``np.
 of both files and one reduction), measured in the same run; a second, informational baseline
 is a whole process that only decodes the same Parquet files with pyarrow (Parquet decoding
 alone costs several numpy passes over the compressed bytes). A CSV run of the same trials
-(one tenth of the size) is timed too, informationally.
+(one tenth of the size) is timed too, informationally, and so is the join with the files'
+SHA-256 digests (as certify and verify read a log).
 """
 
 from __future__ import annotations
@@ -77,6 +78,17 @@ def _write_csv(path: Path, n: int, rng) -> None:
             fh.write(b"\n".join(b",".join(r) for r in zip(key, s, o)) + b"\n")
 
 
+def _cpu_of(cmd: list[str]) -> float:
+    """CPU seconds (user + system) of a child process running ``cmd``."""
+    import resource
+    import subprocess
+
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=True)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+
+
 def run(quick: bool = False) -> list[BenchResult]:
     import importlib.util
 
@@ -112,6 +124,21 @@ def run(quick: bool = False) -> list[BenchResult]:
                                f"{n / t_join / 1e6:.1f} M trials/s"))
         out.append(BenchResult(suite=SUITE, name=f"peak memory of the join ({n:.0e} trials)",
                                value=rss, unit="MB", target=300.0, higher_is_better=False))
+        c_base, c_join = min(_cpu_of(base_cmd) for _ in range(2)), _cpu_of(join_cmd)
+        out.append(BenchResult(suite=SUITE, name=f"two-station join, Parquet ({n:.0e} trials): "
+                               "CPU time of the inspect process / of the numpy pass",
+                               value=c_join / c_base, unit="x", higher_is_better=False,
+                               note=f"{c_join:.2f} s vs {c_base:.2f} s of CPU (user + system); "
+                               "informational: CPU time depends less on the other load of a "
+                               "shared machine than wall time"))
+        dig_cmd = [py, "-c", "import sys; from dicert.logs import summarize_log; "
+                   "summarize_log(sys.argv[1], digest=True)", str(spec)]
+        t_dig = min(peak_rss_mb_of(dig_cmd)[0] for _ in range(1 if not quick else 2))
+        out.append(BenchResult(suite=SUITE, name=f"two-station join with file digests, as "
+                               f"certify reads it ({n:.0e} trials) / numpy pass",
+                               value=t_dig / t_base, unit="x", higher_is_better=False,
+                               note=f"{t_dig:.2f} s (SHA-256 of each file computed in a worker "
+                               "thread while it is decoded; informational)"))
         dec_cmd = [py, "-c", "import sys, pyarrow.parquet as pq; "
                    "[[b.column(c).to_numpy() for b in pq.ParquetFile(p, buffer_size=1 << 20, "
                    "pre_buffer=False).iter_batches(batch_size=1 << 19) for c in range(3)] "

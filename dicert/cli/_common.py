@@ -134,12 +134,13 @@ def progress_bar(transient: bool = True):
 
 
 def kv_table(title: str, rows: list[tuple[str, Any]]):
-    """A two-column rich table of labelled values."""
+    """A two-column rich table of labelled values; both columns fold (wrap inside a word)
+    instead of cutting, so a digest or key fingerprint is always shown whole."""
     from rich.table import Table
 
     table = Table(title=title, show_header=False, title_justify="left")
-    table.add_column("quantity", style="bold")
-    table.add_column("value")
+    table.add_column("quantity", style="bold", overflow="fold", ratio=2)
+    table.add_column("value", overflow="fold", ratio=3)
     for key, value in rows:
         table.add_row(key, value if isinstance(value, str) else _fmt(value))
     return table

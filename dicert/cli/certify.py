@@ -12,7 +12,6 @@ from dicert.cli._common import (
     JsonFlag,
     emit_json,
     handle_errors,
-    kv_table,
     progress_bar,
     stdout_console,
 )
@@ -104,76 +103,70 @@ def certify_cmd(
         )
     rec = result.record
     lg = rec["log"]
+    from dicert.cli._rows import Row, record_json, record_rows, render, to_json
+
+    rows = record_rows(_upgraded(rec))
+    extra: list[Row] = []
+    if result.success_trial_index is not None:
+        extra.append(Row("success at trial", "success_trial_index", result.success_trial_index,
+                         "count"))
+    extra += [Row("log read", None, _read_text(lg)),
+              Row("bits file", "bits_file", str(result.bits_file) if result.bits_file else None),
+              Row("record", "record_file", str(result.record_file)),
+              Row("signed", "signed", rec.get("signature") is not None, "flag",
+                  note="" if rec.get("signature") else "pass --key to sign")]
+    if result.chain_file:
+        extra.append(Row("chain pulse", "chain_file", str(result.chain_file)))
+    if rec.get("protocol_change"):
+        extra.append(Row("protocol change", None, rec["protocol_change"]["reason"]))
+    des = rec.get("design") or {}
+    if des:
+        bad = [c["name"] for c in des.get("checks", []) if not c.get("passed")]
+        extra.append(Row("design checks", None, f"{len(des.get('checks', []))} run, "
+                         + (f"FAILED: {', '.join(bad)}" if bad else "all passed")
+                         + f" (significance {des.get('significance')})"))
+        extra.append(Row("trial count n", None, des.get("trials", {}).get("note", "")))
+    scr = rec.get("output_screens")
+    if scr:
+        extra.append(Row("output screens", None, "passed" if scr.get("passed")
+                         else f"FAILED: {scr.get('failure')}"))
+    if result.abort_reason:
+        extra.append(Row("abort reason", "abort_reason", result.abort_reason))
+    rows += extra
     if as_json:
-        emit_json({
+        emit_json(to_json(rows, {
+            **record_json(rec, rows),
             "status": result.status,
-            "output_bits": result.output_bits,
-            "bits_file": str(result.bits_file) if result.bits_file else None,
-            "record_file": str(result.record_file),
-            "record_sha256": result.record_sha256,
-            "chain_file": str(result.chain_file) if result.chain_file else None,
-            "certified_min_entropy_bits": result.certified_min_entropy_bits,
-            "soundness_error": result.soundness_error,
-            "trials": result.trials,
             "log_coverage": lg.get("coverage"),
             "bytes_read": lg.get("bytes_read"),
             "stopped_early": result.stopped_early,
             "stop_trial_index": result.stop_trial_index,
             "success_trial_index": result.success_trial_index,
             "ended_by": result.ended_by,
-            "raw_bits": result.raw_bits,
             "method": rec["entropy"]["finite_size"]["method"],
             "side_information": rec["entropy"]["finite_size"]["side_information"],
             "abort_reason": result.abort_reason,
             "design_checks": (rec.get("design") or {}).get("checks"),
             "trial_count_source": ((rec.get("design") or {}).get("trials") or {}).get("source"),
             "output_screens": rec.get("output_screens"),
-            "signed": rec.get("signature") is not None,
             "pulse_index": rec.get("pulse_index"),
             "protocol_change": rec.get("protocol_change"),
+            "chain_file": str(result.chain_file) if result.chain_file else None,
             "exit_code": result.exit_code,
-        })
+        }))
     else:
-        fin = rec["entropy"]["finite_size"]
-        rows = [
-            ("status", result.status.upper()),
-            ("trials", result.trials),
-            ("log read", _read_text(lg)),
-            ("CHSH estimate", rec["estimate"].get("chsh_estimate")),
-            ("method", f"{fin['method']} ({fin['side_information']} side information)"),
-            ("certified min-entropy (bits)", result.certified_min_entropy_bits),
-            ("raw bits", result.raw_bits),
-            ("output bits", result.output_bits),
-            ("soundness error", result.soundness_error),
-            ("bits file", str(result.bits_file) if result.bits_file else "-"),
-            ("record", str(result.record_file)),
-            ("record SHA-256", result.record_sha256),
-            ("signed", "yes" if rec.get("signature") else "no (pass --key to sign)"),
-        ]
-        if result.success_trial_index is not None:
-            rows.insert(2, ("success at trial", result.success_trial_index))
-        if result.chain_file:
-            rows.append(("chain pulse", str(result.chain_file)))
-        if rec.get("protocol_change"):
-            rows.append(("protocol change", rec["protocol_change"]["reason"]))
-        des = rec.get("design") or {}
-        if des:
-            bad = [c["name"] for c in des.get("checks", []) if not c.get("passed")]
-            rows.append(("design checks", f"{len(des.get('checks', []))} run, "
-                         + (f"FAILED: {', '.join(bad)}" if bad else "all passed")
-                         + f" (significance {des.get('significance')})"))
-            rows.append(("trial count n", des.get("trials", {}).get("note", "")))
-        scr = rec.get("output_screens")
-        if scr:
-            rows.append(("output screens", "passed" if scr.get("passed")
-                         else f"FAILED: {scr.get('failure')}"))
-        if result.abort_reason:
-            rows.append(("abort reason", result.abort_reason))
         console = stdout_console()
-        console.print(kv_table("dicert certify", rows))
-        console.print(f"CAUTION: {CAUTION}", style="dim")
+        render(console, "dicert certify", rows)
+        console.print(f"CAUTION: {CAUTION}", style="dim", highlight=False)
     if result.exit_code:
         raise typer.Exit(code=result.exit_code)
+
+
+def _upgraded(rec: dict) -> dict:
+    """The record under today's member names (a no-op for a record just written)."""
+    from dicert.stages.record_compat import upgrade_body
+
+    return upgrade_body(rec)
 
 
 def _read_text(lg: dict) -> str:

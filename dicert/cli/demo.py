@@ -21,7 +21,6 @@ from dicert.cli._common import (
     JsonFlag,
     emit_json,
     handle_errors,
-    kv_table,
     stdout_console,
 )
 
@@ -156,9 +155,11 @@ def _certify_pulses(out: Path, sc: dict, rng_stream: int, protocol: Any, keys: A
         atomic_write_bytes(seed_path, _demo_seed(rng_stream, i, (4 * int(p["trials"])) // 8 + 8))
         res = certify(log_path, protocol, seed_path, pdir / "certified", key=keys.private_key_file,
                       chain=chain)
-        say(f"{p['label']}: {res.status.upper()}, {res.output_bits} bits "
-            f"(certified min-entropy {res.certified_min_entropy_bits:.1f} bits, soundness error "
-            f"{res.soundness_error:.3g})")
+        from dicert._format import fmt
+
+        say(f"{p['label']}: {res.status.upper()}, {fmt(res.output_bits, 'count')} output bits "
+            f"(certified min-entropy {fmt(res.certified_min_entropy_bits, 'bits')} bits, "
+            f"soundness error {fmt(res.soundness_error, 'error')})")
         rep = verify(res.record_file, log=log_path, seed=seed_path,
                      public_key=keys.public_key_file)
         if rep.result != "VERIFIED":  # pragma: no cover - the demo's own check
@@ -170,13 +171,48 @@ def _certify_pulses(out: Path, sc: dict, rng_stream: int, protocol: Any, keys: A
             "status": res.status, "output_bits": res.output_bits,
             "certified_min_entropy_bits": res.certified_min_entropy_bits,
             "soundness_error": res.soundness_error,
-            "chsh_estimate": res.record["estimate"].get("chsh_estimate"),
+            "chsh_estimate": _weighted_estimate(res.record),
             "log_file": str(log_path), "seed_file": str(seed_path),
             "bits_file": str(res.bits_file) if res.bits_file else None,
             "record_file": str(res.record_file), "record_sha256": res.record_sha256,
             "verified": rep.scope, "result": rep.result,
         })
     return pulses
+
+
+def _weighted_estimate(record: dict) -> float | None:
+    """The record's CHSH estimate (the weighted one, in every record format)."""
+    from dicert.cli._rows import get_path, weighted_estimate_path
+
+    return get_path(record, weighted_estimate_path(record))
+
+
+def demo_rows(summary: dict) -> list:
+    """The demo's numbers as rows (the table and the --json object share them)."""
+    from dicert.cli._rows import Row
+
+    rows = []
+    for i, p in enumerate(summary["pulses"]):
+        k = f"pulses.{i}."
+        head = f"pulse {p['pulse']} ({p['model']})"
+        rows += [Row(f"{head}: status", k + "status", p["status"]),
+                 Row(f"{head}: trials", k + "trials", p["trials"], "count"),
+                 Row(f"{head}: CHSH estimate", k + "chsh_estimate", p["chsh_estimate"], "chsh"),
+                 Row(f"{head}: certified min-entropy (bits)", k + "certified_min_entropy_bits",
+                     p["certified_min_entropy_bits"], "bits"),
+                 Row(f"{head}: output bits", k + "output_bits", p["output_bits"], "count"),
+                 Row(f"{head}: soundness error", k + "soundness_error", p["soundness_error"],
+                     "error"),
+                 Row(f"{head}: record SHA-256", k + "record_sha256", p["record_sha256"],
+                     "digest")]
+    rows += [Row("key fingerprint", "key_fingerprint", summary["key_fingerprint"], "digest"),
+             Row("chain head SHA-256", "chain.head_sha256", summary["chain"]["head_sha256"],
+                 "digest")]
+    for i, c in enumerate(summary["tamper_checks"]):
+        rows.append(Row(f"tampered {c['tampered']}", None,
+                        f"detected ({c['field'] or 'error'})"))
+    rows.append(Row("outputs", "out_dir", summary["out_dir"]))
+    return rows
 
 
 def _tamper_checks(out: Path, first: dict, chain: Path, head: str, keys: Any, say) -> list[dict]:
@@ -255,14 +291,14 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
     say(f"writing into {out}")
 
     keys = write_keypair(out / "operator-key.pem")
-    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint[:16]}...)")
+    say(f"operator key pair: {keys.public_key_file} (fingerprint {keys.fingerprint})")
     chain = out / "chain"
     pulses = _certify_pulses(out, sc, rng_stream, protocol, keys, chain, say)
     chain_report = verify_chain(chain, public_key=keys.public_key_file)
     head = chain_report.head_sha256
     verify_chain(chain, public_key=keys.public_key_file, head=head)
     say(f"chain of {len(pulses)} pulses: {chain_report.result} against the operator's key "
-        f"(head {head[:16]}...): {chain}")
+        f"(head {head}): {chain}")
     # Without a trusted key a record's integrity can be checked, not who made it.
     anon = verify(pulses[0]["record_file"])
     say(f"the same record checked without the operator's key: {anon.result} (authenticity "
@@ -275,7 +311,7 @@ def _run_demo(out: Path, sc: dict, existed: bool, say) -> dict:
                       title=_site_title(sc["title"]))
     site_check = check_site(site.site_dir, keys.public_key_file)
     say(f"beacon site built and checked ({site_check.pulses} pulses, head "
-        f"{site_check.head_sha256[:16]}...): {site.index_file}")
+        f"{site_check.head_sha256}): {site.index_file}")
 
     # Tampering: each must make verification fail.
     checks = _tamper_checks(out, pulses[0], chain, head, keys, say)
@@ -312,20 +348,16 @@ def demo_cmd(
     """Run an INVENTED beacon scenario end to end: simulate -> certify -> verify -> tamper
     (verification must fail). Writes only inside --out."""
     if as_json:
+        from dicert.cli._rows import to_json
+
         summary = run_demo(out)
-        emit_json(summary)
+        emit_json(to_json(demo_rows(summary), summary))
         return
     console = stdout_console()
     summary = run_demo(out, say=lambda m: console.print(m, highlight=False, markup=False))
-    rows = []
-    for p in summary["pulses"]:
-        rows.append((f"pulse {p['pulse']} ({p['model']})",
-                     f"{p['status']}: {p['output_bits']} bits, CHSH estimate "
-                     f"{p['chsh_estimate']:.4f}"))
-    for c in summary["tamper_checks"]:
-        rows.append((f"tampered {c['tampered']}", f"detected ({c['field'] or 'error'})"))
-    rows.append(("outputs", summary["out_dir"]))
-    console.print(kv_table(f"dicert demo: {summary['scenario']}", rows))
+    from dicert.cli._rows import render
+
+    render(console, f"dicert demo: {summary['scenario']}", demo_rows(summary))
     console.print("Open the beacon site (its pages re-check the chain in your browser):\n"
                   f"  {summary['site']['serve']}\n  then visit http://127.0.0.1:8000/",
                   highlight=False, soft_wrap=True, markup=False)

@@ -71,12 +71,18 @@ def entropy_cmd(
         if not report.passed:
             raise ParameterError(f"{from_log}: refusing to bound entropy from this log: "
                                  f"{report.abort_reason}")
+        from dicert.logspec import charge_for_log
+
+        # trials dropped by a station join count as lost test rounds (as in certify)
+        charge, counts = charge_for_log(summary.log_spec, summary.counts,
+                                        len(parties), source=from_log)
         try:
-            correlators = correlators_from_counts(summary.counts)
+            correlators = correlators_from_counts(counts)
         except ParameterError as exc:
             raise ParameterError(f"{from_log}: {exc}") from None
         log_info = {"path": from_log, "sha256": summary.sha256, "trials": summary.trials,
-                    "design_checks": report.to_dict(), "log_spec": summary.log_spec}
+                    "design_checks": report.to_dict(), "log_spec": summary.log_spec,
+                    "join_charge": None if charge is None else charge.to_dict()}
     result = bound_entropy(
         chsh=chsh, correlators=correlators, parties=parties, measure=measure, level=level,
         method=method, tolerance=tolerance,
@@ -90,21 +96,25 @@ def entropy_cmd(
             doc["correlators"] = to_jsonable(correlators)
         emit_json(doc)
         return
+    from dicert._format import fmt
+
     rows = [
-        (f"single-round bound, {label} (bits per trial)", result.single_round_bound_bits),
+        # bits round down, probability bounds up (dicert._format): never optimistic
+        (f"single-round bound, {label} (bits per trial)",
+         fmt(result.single_round_bound_bits, "bits")),
         ("parties", result.parties),
         ("method", result.method),
     ]
     if result.chsh_input is not None:
         rows.append(("CHSH (as given / used)", f"{result.chsh_input:.6g} / {result.chsh_used:.6g}"))
     if result.guessing_probability is not None:
-        rows.append(("guessing probability <=", result.guessing_probability))
+        rows.append(("guessing probability <=", fmt(result.guessing_probability, "error")))
     if result.level is not None:
         rows.append(("NPA level", result.level))
     cert = result.certificate
     if cert is not None:
         rows += [
-            ("certified bound (dual)", cert.upper_bound),
+            ("certified bound (dual)", fmt(cert.upper_bound, "error")),
             ("solver value", cert.solver_value),
             ("certificate margin", cert.margin),
             ("solver / status", f"{cert.solver} / {cert.status}"),
@@ -119,6 +129,9 @@ def entropy_cmd(
         rows.append(("fallback reason", result.fallback_reason))
     if log_info is not None:
         rows.append(("log trials", log_info["trials"]))
+        if charge is not None:
+            rows.append(("station-join charge", f"{charge.dropped_trials} dropped trials counted "
+                         f"as lost test rounds; {charge.pattern_bits:.6g} drop-pattern bits"))
         dc = log_info["design_checks"]
         rows.append(("design checks", f"{len(dc['checks'])} run at significance "
                      f"{dc['significance']:g}: all passed"))

@@ -86,12 +86,12 @@ def extract_cmd(
     table.add_column("quantity", style="bold", no_wrap=True)
     table.add_column("value", overflow="fold")
     for key, value in (
-        ("input bits n", str(res.n_bits)),
-        ("output bits m", str(res.m_bits)),
-        ("seed bits (used of given)", f"{res.seed_bits} of {8 * res.seed_bytes}"),
-        ("input sha256", res.input_sha256),
-        ("seed sha256", res.seed_sha256),
-        ("output sha256", res.output_sha256),
+        ("input bits n", f"{res.n_bits:,}"),
+        ("output bits m", f"{res.m_bits:,}"),
+        ("seed bits (used of given)", f"{res.seed_bits:,} of {8 * res.seed_bytes:,}"),
+        ("input SHA-256", res.input_sha256),
+        ("seed SHA-256", res.seed_sha256),
+        ("output SHA-256", res.output_sha256),
         ("output file", f"{out} ({len(res.output)} bytes)"),
         ("method", res.method),
         ("max rounding error", f"{res.max_rounding_error:.3g} (guard {res.rounding_threshold})"),

@@ -41,19 +41,23 @@ def health_cmd(
     else:
         from rich.table import Table
 
+        from dicert._format import fmt
+
         con = stdout_console()
         table = Table(title=f"Health screen of {bits_path} ({rep.n_bits} bits)", title_justify="left")
         for col in ("test", "section", "statistic", "P-value", "result"):
             table.add_column(col)
         for t in rep.tests:
             result = ("n/a (too short)" if not t.applicable else "pass" if t.passed else "FAIL")
-            table.add_row(t.name, t.section, f"{t.statistic:.6g}", f"{t.p_value:.6f}", result)
+            # p-values round up (dicert._format): a small one never looks smaller
+            table.add_row(t.name, t.section, f"{t.statistic:.6g}", fmt(t.p_value, "error"), result)
         con.print(table)
         mcv = rep.mcv_per_bit
-        con.print(f"SP 800-90B 6.3.1 MCV estimate: {mcv.min_entropy_per_sample:.6f} bits per bit "
-                  f"(p_hat {mcv.p_hat:.6f}, upper bound {mcv.p_upper:.6f})")
+        con.print(f"SP 800-90B 6.3.1 MCV estimate: {fmt(mcv.min_entropy_per_sample, 'bits')} bits "
+                  f"per bit (p_hat {mcv.p_hat:.6f}, upper bound {fmt(mcv.p_upper, 'error')})")
         if rep.mcv_per_byte is not None:
-            con.print(f"  over bytes: {rep.mcv_per_byte.min_entropy_per_sample:.6f} bits per byte")
+            con.print(f"  over bytes: {fmt(rep.mcv_per_byte.min_entropy_per_sample, 'bits')} bits "
+                      "per byte")
         con.print(f"alpha = {rep.alpha}: " + ("an applicable test FAILED" if failed else
                   "no applicable test failed" if any(t.applicable for t in rep.tests) else
                   "sequence too short for every test"))

@@ -1,4 +1,4 @@
-"""``dicert inspect``: counts, correlators, CHSH value and its finite-statistics bound."""
+"""``dicert inspect``: counts, correlators, the CHSH estimate and its CHSH lower bound."""
 
 from __future__ import annotations
 
@@ -19,7 +19,8 @@ def register(app: typer.Typer) -> None:
 @handle_errors
 def inspect_cmd(
     log: Annotated[Optional[str], typer.Argument(help="Trial log: a file, a directory of files, a glob pattern, or a log spec (TOML).")] = None,
-    error: Annotated[float, typer.Option("--error", help="Error probability eps of the lower bound on S.")] = 1e-6,
+    eps_est: Annotated[Optional[float], typer.Option("--eps-est", help="eps_est: error probability of the CHSH lower bound [default: 1e-6].")] = None,
+    error: Annotated[Optional[float], typer.Option("--error", hidden=True, help="Former name of --eps-est.")] = None,
     gamma: Annotated[Optional[float], typer.Option("--gamma", help="Test-round probability of the design (1 = uniform settings every round). Default: the protocol's, else the observed fraction of test rounds of a log with a t column (labelled), else 1.")] = None,
     protocol: Annotated[Optional[Path], typer.Option("--protocol", help="Protocol file: use its declared design and run its design-conformance checks.")] = None,
     block_trials: Annotated[int, typer.Option("--block-trials", help="Trials per block for drift diagnostics.")] = 1 << 20,
@@ -30,11 +31,19 @@ def inspect_cmd(
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: count and hash the log's files on its workers (needs dicert[cluster]).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
-    """Read a trial log (streaming) and report counts, correlators, the CHSH value, its lower
-    confidence bound valid for devices with memory, and the p-value of local realism."""
+    """Read a trial log (streaming) and report trials, test rounds, correlators, the CHSH
+    estimate (weighted) and the ratio estimate, the CHSH lower bound at eps_est (valid for
+    devices with memory), the p-value (local devices) and a per-block summary."""
     from dicert.estimate import block_estimates
     from dicert.errors import ParameterError
     from dicert.logspec import choose_source
+
+    if eps_est is not None and error is not None and eps_est != error:
+        raise ParameterError(f"--eps-est {eps_est:g} and --error {error:g} (its former name) "
+                             "disagree; give --eps-est only")
+    eps = eps_est if eps_est is not None else error if error is not None else 1e-6
+    if not 0 < eps < 1:
+        raise ParameterError(f"--eps-est: expected a probability in (0, 1), got {eps:g}")
 
     if plot is not None:
         from dicert.plotting import check_plot_path
@@ -66,12 +75,12 @@ def inspect_cmd(
             )
     from dicert.inspection import inspect_summary
 
-    look = inspect_summary(summary, protocol=proto, gamma=gamma, eps=error, source=log)
+    look = inspect_summary(summary, protocol=proto, gamma=gamma, eps=eps, source=log)
     design, source, report, est = look.design, look.design_source, look.design_report, look.estimate
     settings_ok = all(c.passed for c in report.checks
                       if c.name.startswith(("test_settings", "serial", "generation")))
     blocks = block_estimates(summary.block_counts, summary.block_trials, design, eps=block_error)
-    lower_shown, lower_note = _clip(est.chsh_lower)
+    lower_shown, lower_note = _clip(est.chsh_lower_bound)
     declared = proto is not None or gamma is not None
     p_refused = None if settings_ok or not declared else (
         "refused: the settings frequencies or sequence contradict the declared design")
@@ -79,76 +88,64 @@ def inspect_cmd(
         from dicert.plotting import plot_chsh_blocks
 
         threshold, threshold_label = _protocol_threshold(proto)
-        plot_chsh_blocks(blocks, plot, eps=block_error, overall=est.chsh,
+        plot_chsh_blocks(blocks, plot, eps=block_error, overall=est.chsh_estimate,
                          overall_lower=lower_shown, threshold=threshold,
                          threshold_label=threshold_label)
+    rows = _rows(summary, est, design, source, report, blocks, eps, block_error, p_refused)
     if as_json:
-        emit_json(
-            {
-                "log": log,
-                "files": [f.path for f in summary.files],
-                "trials": summary.trials,
-                "test_trials": est.test_trials,
-                "has_test_flag": summary.has_test_flag,
-                "counts": {
-                    f"t{t}x{x}y{y}a{a}b{b}": int(summary.counts[t, x, y, a, b])
-                    for t in (0, 1) for x in (0, 1) for y in (0, 1) for a in (0, 1) for b in (0, 1)
-                },
-                "counts_layout": "counts[t][x][y][a][b]; logs without a t column count every trial as a test round (t=1)",
-                "counts_array": summary.counts,
-                "correlators": est.correlators,
-                "correlator_stderr": est.correlator_stderr,
-                "chsh": est.chsh,
-                "chsh_stderr": est.chsh_stderr,
-                "chsh_martingale": est.chsh_martingale,
-                "chsh_lower": est.chsh_lower,
-                "margin": est.margin,
-                "error": error,
-                "gamma": design.gamma,
-                "gamma_source": source,
-                "chsh_lower_shown": lower_shown,
-                "chsh_lower_note": lower_note,
-                "local_win_bound": est.local_win_bound,
-                "p_value_refused": p_refused,
-                "design_checks": report.to_dict(),
-                "bound_method": est.bound_method,
-                "win_probability": est.win_probability,
-                "wins": est.wins,
-                "p_value_local": None if p_refused else est.p_value_local,
-                "log10_p_value_local": None if p_refused else est.log10_p_value_local,
-                "p_value_method": est.p_value_method,
-                "blocks": [
-                    {"index": b.index, "first_trial": b.first_trial, "trials": b.trials,
-                     "chsh": b.chsh, "chsh_lower": b.chsh_lower, "chsh_upper": b.chsh_upper}
-                    for b in blocks
-                ],
-                "plot": str(plot) if plot else None,
-                "log_spec": summary.log_spec,
-            }
-        )
+        from dicert.cli._rows import to_json
+
+        emit_json(to_json(rows, {
+            "log": log,
+            "files": [f.path for f in summary.files],
+            "has_test_flag": summary.has_test_flag,
+            "counts": {
+                f"t{t}x{x}y{y}a{a}b{b}": int(summary.counts[t, x, y, a, b])
+                for t in (0, 1) for x in (0, 1) for y in (0, 1) for a in (0, 1) for b in (0, 1)
+            },
+            "counts_layout": "counts[t][x][y][a][b]; logs without a t column count every trial as a test round (t=1)",
+            "counts_array": summary.counts,
+            "correlators": est.correlators,
+            "correlator_stderr": est.correlator_stderr,
+            "gamma_source": source,
+            "chsh_lower_bound_shown": lower_shown,
+            "chsh_lower_bound_note": lower_note,
+            "p_value_refused": p_refused,
+            "design_checks": report.to_dict(),
+            "bound_method": est.bound_method,
+            "wins": est.wins,
+            "p_value_method": est.p_value_method,
+            "blocks": [
+                {"index": b.index, "first_trial": b.first_trial, "trials": b.trials,
+                 "chsh_estimate": b.chsh_estimate, "chsh_lower_bound": b.chsh_lower_bound,
+                 "chsh_upper_bound": b.chsh_upper_bound}
+                for b in blocks
+            ],
+            "plot": str(plot) if plot else None,
+            "log_spec": summary.log_spec,
+            "join_charge": None if look.charge is None else {
+                **look.charge.to_dict(),
+                "charged_chsh_estimate": look.charged_estimate.chsh_estimate,
+                "charged_chsh_lower_bound": look.charged_estimate.chsh_lower_bound,
+                "charged_p_value_local": look.charged_estimate.p_value_local},
+        }))
         return
     con = stdout_console()
-    rows = [
-        ("trials", f"{summary.trials:,}"),
-        ("test rounds", f"{est.test_trials:,}"),
-        ("CHSH S (ratio estimator)", f"{est.chsh:.5f} \u00b1 {est.chsh_stderr:.5f} (i.i.d. std. error)"),
-        ("CHSH S (martingale estimator)", (lambda v, note: f"{v:.5f}" + (f"  ({note})" if note else ""))(*_clip(est.chsh_martingale))),
-        ("gamma (test-round probability)", f"{design.gamma:.6g} ({source})"),
-        (f"lower bound on S at eps={error:g}", f"{lower_shown:.5f}  (margin {est.margin:.5f}; valid with memory{'; ' + lower_note if lower_note else ''})"),
-        ("CHSH-game win probability", f"{est.win_probability:.6f}"),
-        ("p-value of local realism", p_refused if p_refused else (
-            (f"{est.p_value_local:.3e}" if est.p_value_local > 0 else f"10^{est.log10_p_value_local:.1f}")
-            + f" (local win bound {est.local_win_bound:.4g} at the observed settings frequencies)")),
-    ]
-    bad = [c for c in report.checks if not c.passed]
-    rows.append(("design checks", f"{len(report.checks)} run at significance {report.significance:g}: "
-                 + ("all passed" if not bad else "FAILED: " + "; ".join(f"{c.name}: {c.detail}" for c in bad))))
+    from dicert.cli._rows import Row, render
+
     if summary.log_spec is not None and summary.log_spec.get("join") is not None:
         j = summary.log_spec["join"]
-        rows.append(("station join", f"{j['matched']:,} trials matched; missing at A "
-                     f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
-                     f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
-    con.print(kv_table(f"Bell test summary: {log}", rows))
+        rows.append(Row("station join", None, f"{j['matched']:,} trials matched; missing at A "
+                        f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
+                        f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
+    if look.charge is not None:
+        ch, ce = look.charge, look.charged_estimate
+        rows.append(Row("charged: dropped = lost test rounds", None,
+                        f"CHSH estimate {ce.chsh_estimate:.5f}, lower bound "
+                        f"{_clip(ce.chsh_lower_bound)[0]:.5f} (uncharged {lower_shown:.5f}); "
+                        f"certify also subtracts {ch.raw_bits_subtracted:,} raw bits + "
+                        f"{ch.pattern_bits:.6g} drop-pattern bits"))
+    render(con, f"Bell test summary: {log}", rows)
     from rich.table import Table
 
     tab = Table(title="Correlators E_xy = P(a=b) - P(a!=b) (test rounds)", title_justify="left")
@@ -159,13 +156,76 @@ def inspect_cmd(
             tab.add_row(str(x), str(y), f"{int(est.counts_xyab[x, y].sum()):,}",
                         f"{est.correlators[x, y]:.5f}", f"{est.correlator_stderr[x, y]:.5f}")
     con.print(tab)
-    if len(blocks) > 1:
-        lo, lo_note = _clip(min(b.chsh for b in blocks))
-        hi, hi_note = _clip(max(b.chsh for b in blocks))
-        note = " (values clipped to the physical range [-4, 4])" if lo_note or hi_note else ""
-        con.print(f"{len(blocks)} blocks of {summary.block_trials:,} trials: block S from {lo:.4f} to {hi:.4f}{note}")
     if plot is not None:
         con.print(f"plot written to {plot}")
+
+
+def _rows(summary, est, design, source, report, blocks, eps, block_error, p_refused):
+    """The estimate's numbers as rows (the table and the --json object), glossary names."""
+    from dicert.cli._rows import Row
+
+    rows = [
+        Row("trials", "trials", summary.trials, "count"),
+        Row("test rounds", "test_rounds", est.test_rounds, "count"),
+        Row("gamma", "gamma", design.gamma, "number", note=source),
+        Row("CHSH estimate", "chsh_estimate", est.chsh_estimate, "chsh",
+            note="weighted, martingale" + _range_note(est.chsh_estimate)),
+        Row("CHSH ratio estimate", "chsh_ratio_estimate", est.chsh_ratio_estimate, "chsh",
+            note="ratio of counts" + _range_note(est.chsh_ratio_estimate)),
+        Row("CHSH ratio estimate std. error", "chsh_stderr", est.chsh_stderr, "upper",
+            note="i.i.d."),
+        Row("CHSH lower bound", "chsh_lower_bound", est.chsh_lower_bound, "lower",
+            note="at eps_est, valid with memory" + _range_note(est.chsh_lower_bound)),
+        Row("eps_est", "eps_est", eps, "error"),
+        Row("CHSH lower bound margin", "margin", est.margin, "upper",
+            note="CHSH estimate - CHSH lower bound"),
+        Row("CHSH-game win probability", "win_probability", est.win_probability, "number"),
+    ]
+    if p_refused:
+        rows += [Row("p-value (local devices)", "p_value_local", None, "error", note=p_refused),
+                 Row("log10 p-value (local devices)", "log10_p_value_local", None, "upper")]
+    else:
+        rows += [Row("p-value (local devices)", "p_value_local", est.p_value_local, "error",
+                     note="below the smallest float" if est.p_value_local == 0 else ""),
+                 Row("log10 p-value (local devices)", "log10_p_value_local",
+                     est.log10_p_value_local, "upper")]
+    rows.append(Row("local win bound", "local_win_bound", est.local_win_bound, "number",
+                    note="at the observed settings frequencies"))
+    bad = [c for c in report.checks if not c.passed]
+    rows.append(Row("design checks", None,
+                    f"{len(report.checks)} run at significance {report.significance:g}: "
+                    + ("all passed" if not bad
+                       else "FAILED: " + "; ".join(f"{c.name}: {c.detail}" for c in bad))))
+    if blocks:
+        rows += [
+            Row("blocks", "block_count", len(blocks), "count"),
+            Row("trials per block", "block_trials", summary.block_trials, "count"),
+            Row("block eps per side", "block_eps_per_side", block_error, "error"),
+            Row("block CHSH estimate, lowest", "block_chsh_estimate_min",
+                min(b.chsh_estimate for b in blocks), "chsh"),
+            Row("block CHSH estimate, highest", "block_chsh_estimate_max",
+                max(b.chsh_estimate for b in blocks), "chsh"),
+            Row("block CHSH lower bound, lowest", "block_chsh_lower_bound_min",
+                min(b.chsh_lower_bound for b in blocks), "lower"),
+        ]
+    return rows
+
+
+def _range_note(value: float) -> str:
+    """Words for a CHSH value outside the physical range (the value itself is shown as is)."""
+    import math
+
+    if not math.isfinite(value):
+        return ""
+    if value > 4.0:
+        return ("; ABOVE the no-signalling maximum 4: likely a wrong gamma or settings design, "
+                "not a valid value")
+    if value < -4.0:
+        return "; below -4: too few test rounds to say more"
+    if value > 2.0 * math.sqrt(2.0):
+        return ("; above the quantum maximum 2 sqrt 2: impossible for quantum devices; check "
+                "gamma and the design")
+    return ""
 
 
 def _clip(value: float) -> tuple[float, str]:

@@ -7,13 +7,13 @@ from typing import Annotated, Optional
 
 import typer
 
-from dicert.cli._common import CAUTION, JsonFlag, emit_json, handle_errors, kv_table, stdout_console
+from dicert.cli._common import CAUTION, JsonFlag, emit_json, handle_errors, stdout_console
 
 HELP = (
     "Plan an experiment under a protocol: for honest devices of the given quality, the "
-    "certified output on acceptance, the seed the protocol consumes, the net expansion, the "
+    "output bits on acceptance, the settings randomness the protocol spends, the net bits, the "
     "probability that honest devices abort, the smallest number of trials with a positive "
-    "output and with a positive net expansion, and the test-round probability gamma that "
+    "output and with positive net bits, and the test-round probability gamma that "
     "maximises the net output. The protocol's own method uses its declared thresholds; the "
     "other methods use thresholds derived for this quality (labelled 'derived').\n\n"
     "Device quality: at most one of --chsh, --win-probability, --visibility, each meaning the "
@@ -24,7 +24,8 @@ HELP = (
     "target; --trials caps the analysis trials (default: the protocol's n_max). Shown: the "
     "beta used and the beta minimising the expected trials, the expected trials, the trials "
     "for 99% success, and the latency floor. CHSH protocols get a derived PEF row.\n\n"
-    "Each row also shows the extractor seed a beacon must provision (n_raw + m - 1 bits, "
+    "Each row also shows the extractor seed a beacon must provision (seed bits = raw bits + "
+    "output bits - 1, "
     "Toeplitz hashing) and the output at the best gamma; a gamma trade-off table follows. "
     "--eps-ext, --eps-est, --eps-s, --eps-ea and --eps-pe replace the protocol's error "
     "parameters of the same names for this plan only.\n\n"
@@ -103,58 +104,133 @@ def plan_cmd(
                          trials=_trials(trials), gamma=gamma, eps_comp=eps_comp)
     if plot is not None:
         plot_plan(result, plot)
+    groups = plan_rows(result)
     if as_json:
-        emit_json(result)
+        from dicert.cli._rows import to_json
+
+        emit_json(to_json([r for _, rows in groups for r in rows], plan_json(result)))
         return
+    from dicert.cli._rows import render
+
     console = stdout_console()
-    console.print(kv_table(f"plan for {result.protocol}", [
-        ("trials", f"{result.trials:.6g} ({result.trials_source})"),
-        ("gamma", result.gamma),
-        ("honest devices", result.device),
-        ("honest win probability", result.win_probability),
-        ("honest CHSH value", result.chsh),
-        ("eps_ext", result.eps_ext),
-        ("eps_comp (derived thresholds)", result.eps_comp),
-    ]))
-    for m in result.methods:
-        rows = [
-            ("certified output on acceptance (bits)", m.certified_bits),
-            ("smooth min-entropy (bits)", m.min_entropy_bits),
-            ("output per trial" + (" consumed" if m.pef else ""), m.rate_per_trial),
-            ("seed consumed (bits)", m.seed_bits),
-            ("net expansion (bits)", m.net_bits),
-            (f"honest abort probability ({m.abort_probability_kind})", m.abort_probability),
-            ("smallest n with output > 0", _opt(m.min_trials_positive)),
-            ("smallest n with net > 0", _opt(m.min_trials_net_positive)),
-            ("extractor seed needed n_raw + m - 1",
-             f"{m.extractor_seed_bits:,} bits = {m.extractor_seed_bytes:,} bytes "
-             f"(n_raw at most {m.raw_bits:,})" if m.certified_bits > 0 else "none (no output)"),
-            ("gamma maximising net output", _opt(m.best_gamma, "none in [1e-4, 1]")),
-        ]
-        if m.best_gamma is not None:
-            rows += [
-                ("  certified output there (bits)", m.best_gamma_certified_bits),
-                ("  net expansion there (bits)", m.best_gamma_net_bits),
-                ("  honest abort probability there", m.best_gamma_abort_probability),
-                ("  extractor seed needed there (bits)", m.best_gamma_extractor_seed_bits),
-            ]
-        if m.pef is not None:
-            rows = rows[:1] + _pef_rows(m.pef) + rows[1:]
-        console.print(kv_table(f"{m.name} ({m.side_information} side information, "
-                               f"{m.thresholds} {'parameters' if m.pef else 'thresholds'})",
-                               rows))
+    for title, rows in groups:
+        render(console, title, rows)
     if gammas > 0:
         console.print(_gamma_table(result, gammas))
     if plot is not None:
         typer.echo(f"plot written to {plot}", err=True)
 
 
+#: Method fields under their glossary names in ``plan --json`` (field -> key).
+_METHOD_KEYS = {
+    "name": "name", "side_information": "side_information", "thresholds": "thresholds",
+    "parameters": "parameters", "min_entropy_bits": "certified_min_entropy_bits",
+    "certified_bits": "output_bits", "rate_per_trial": "output_bits_per_trial",
+    "seed_bits": "settings_randomness_bits", "net_bits": "net_bits",
+    "abort_probability": "abort_probability", "abort_probability_kind": "abort_probability_kind",
+    "min_trials_positive": "min_trials_positive",
+    "min_trials_net_positive": "min_trials_net_positive", "raw_bits": "raw_bits",
+    "extractor_seed_bits": "seed_bits", "extractor_seed_bytes": "seed_bytes",
+    "best_gamma": "best_gamma", "best_gamma_certified_bits": "best_gamma_output_bits",
+    "best_gamma_net_bits": "best_gamma_net_bits",
+    "best_gamma_abort_probability": "best_gamma_abort_probability",
+    "best_gamma_extractor_seed_bits": "best_gamma_seed_bits",
+    "curve_trials": "curve_trials", "curve_certified_bits": "curve_output_bits",
+    "gamma_sweep": "gamma_sweep", "gamma_sweep_certified_bits": "gamma_sweep_output_bits",
+    "gamma_sweep_net_bits": "gamma_sweep_net_bits",
+    "gamma_sweep_abort_probability": "gamma_sweep_abort_probability", "pef": "pef",
+}
+
+
+def plan_json(result) -> dict:
+    """``plan --json``: the plan under the README glossary's names ("seed" is the extractor
+    seed only; the settings' random bits are ``settings_randomness_bits``)."""
+    from dicert.cli._common import to_jsonable
+
+    methods = []
+    for m in result.methods:
+        d = to_jsonable(m)
+        methods.append({new: d.get(old) for old, new in _METHOD_KEYS.items()})
+    return {
+        "protocol": result.protocol, "trials": result.trials,
+        "trials_source": result.trials_source, "gamma": result.gamma, "device": result.device,
+        "honest_win_probability": result.win_probability, "honest_chsh": result.chsh,
+        "eps_ext": result.eps_ext, "eps_comp": result.eps_comp, "methods": methods,
+        "min_trials_positive": dict(result.min_trials_positive),
+        "min_trials_net_positive": dict(result.min_trials_net_positive),
+        "best_gamma": dict(result.best_gamma), "notes": list(result.notes),
+    }
+
+
+def plan_rows(result) -> list:
+    """The plan's numbers as (table title, rows) groups: the same rows make the tables and
+    the ``--json`` object, keys as in :func:`plan_json`."""
+    from dicert.cli._rows import Row
+
+    groups = []
+    groups.append((f"plan for {result.protocol}", [
+        Row("trials", "trials", result.trials, "count", note=result.trials_source),
+        Row("gamma", "gamma", result.gamma, "number"),
+        Row("honest devices", "device", result.device),
+        Row("honest win probability", "honest_win_probability", result.win_probability,
+            "number"),
+        Row("honest CHSH", "honest_chsh", result.chsh, "chsh"),
+        Row("eps_ext", "eps_ext", result.eps_ext, "error"),
+        Row("eps_comp", "eps_comp", result.eps_comp, "error", note="derived thresholds"),
+    ]))
+    for i, m in enumerate(result.methods):
+        k = f"methods.{i}."
+        out = m.certified_bits > 0
+        mr = [
+            Row("output bits", k + "output_bits", m.certified_bits, "count",
+                note="on acceptance"),
+            Row("certified min-entropy (bits)", k + "certified_min_entropy_bits",
+                m.min_entropy_bits, "bits"),
+            Row("output bits per trial" + (" consumed" if m.pef else ""),
+                k + "output_bits_per_trial", m.rate_per_trial, "bits"),
+            Row("settings randomness (bits)", k + "settings_randomness_bits", m.seed_bits,
+                "bits", note="random bits spent on choosing settings"),
+            Row("net bits", k + "net_bits", m.net_bits, "bits",
+                note="output bits - settings randomness"),
+            Row("honest abort probability", k + "abort_probability", m.abort_probability,
+                "error", note=m.abort_probability_kind),
+            Row("smallest n with output > 0", k + "min_trials_positive", m.min_trials_positive,
+                "count", note="" if m.min_trials_positive is not None
+                else "none in [1e3, 1e14]"),
+            Row("smallest n with net bits > 0", k + "min_trials_net_positive",
+                m.min_trials_net_positive, "count",
+                note="" if m.min_trials_net_positive is not None else "none in [1e3, 1e14]"),
+            Row("raw bits", k + "raw_bits", m.raw_bits, "count", note="at most"),
+            Row("seed bits to provision", k + "seed_bits", m.extractor_seed_bits, "count",
+                note="raw bits + output bits - 1" if out else "none: no output"),
+            Row("seed bytes", k + "seed_bytes", m.extractor_seed_bytes, "count"),
+            Row("gamma maximising net bits", k + "best_gamma", m.best_gamma, "number",
+                note="" if m.best_gamma is not None else "none in [1e-4, 1]"),
+        ]
+        if m.best_gamma is not None:
+            mr += [
+                Row("  output bits there", k + "best_gamma_output_bits",
+                    m.best_gamma_certified_bits, "count"),
+                Row("  net bits there", k + "best_gamma_net_bits", m.best_gamma_net_bits,
+                    "bits"),
+                Row("  honest abort probability there", k + "best_gamma_abort_probability",
+                    m.best_gamma_abort_probability, "error"),
+                Row("  seed bits there", k + "best_gamma_seed_bits",
+                    m.best_gamma_extractor_seed_bits, "count"),
+            ]
+        if m.pef is not None:
+            mr = mr[:1] + _pef_rows(m.pef, k + "pef.") + mr[1:]
+        groups.append((f"{m.name} ({m.side_information} side information, "
+                       f"{m.thresholds} {'parameters' if m.pef else 'thresholds'})", mr))
+    return groups
+
+
 def _short(v: float) -> str:
-    """A number in at most ~7 characters (2.35e6, -1.7e6, 71466) for the trade-off table."""
-    if abs(v) < 1e6:
-        return f"{v:.0f}"
-    mant, exp = f"{v:.2e}".split("e")
-    return f"{mant.rstrip('0').rstrip('.')}e{int(exp)}"
+    """Net bits in at most ~7 characters (2.34e6, -1.71e6, 71466) for the trade-off table,
+    rounded DOWN like every bit count (dicert._format)."""
+    from dicert._format import fmt
+
+    return fmt(v, "bits_short")
 
 
 def _gamma_table(result, rows: int):
@@ -164,7 +240,7 @@ def _gamma_table(result, rows: int):
     from rich.table import Table
 
     tab = Table(title=f"gamma trade-off at n = {result.trials:.6g}: net bits after the "
-                      "protocol's seed ('-': no output, '*': best gamma)",
+                      "settings randomness ('-': no output, '*': best gamma)",
                 title_justify="left")
     tab.add_column("gamma", justify="right")
     for m in result.methods:
@@ -200,24 +276,32 @@ def _gamma_table(result, rows: int):
     return tab
 
 
-def _pef_rows(d) -> list[tuple[str, object]]:
+def _pef_rows(d, k: str) -> list:
+    from dicert.cli._rows import Row
+
+    pct = f"{d.completeness:.0%}"
     return [
-        (f"target min-entropy sigma_target ({d.target_source}, bits)", d.target_bits),
-        ("model / settings", f"{d.model} / {d.settings}"),
-        ("beta used", d.beta),
-        ("expected analysis trials to success", d.expected_trials),
-        (f"analysis trials for {d.completeness:.0%} success", d.trials_for_completeness),
-        ("beta chosen by the planner (log grid, least expected trials)", d.beta_chosen),
-        ("  expected trials there", d.expected_trials_at_beta_chosen),
-        (f"  trials for {d.completeness:.0%} success there",
-         d.trials_for_completeness_at_beta_chosen),
-        ("latency floor log2(1/eps_pe)/D_LR (trials)", d.latency_floor_trials),
-        ("log-prob rate at beta (bits/trial)", d.rate_bits_per_trial),
-        ("asymptotic rate h_inf (bits/trial)", d.asymptotic_rate_bits),
-        ("calibration trials (consumed, not analysed)", d.calibration_trials),
-        ("trials consumed (expected)", d.trials_consumed),
+        Row("target min-entropy sigma_target (bits)", k + "target_bits", d.target_bits, "bits",
+            note=d.target_source),
+        Row("model / settings", None, f"{d.model} / {d.settings}"),
+        Row("beta used", k + "beta", d.beta, "number"),
+        Row("expected analysis trials to success", k + "expected_trials", d.expected_trials,
+            "number"),
+        Row(f"analysis trials for {pct} success", k + "trials_for_completeness",
+            d.trials_for_completeness, "number"),
+        Row("beta chosen by the planner", k + "beta_chosen", d.beta_chosen, "number",
+            note="log grid, least expected trials"),
+        Row("  expected trials there", k + "expected_trials_at_beta_chosen",
+            d.expected_trials_at_beta_chosen, "number"),
+        Row(f"  trials for {pct} success there", k + "trials_for_completeness_at_beta_chosen",
+            d.trials_for_completeness_at_beta_chosen, "number"),
+        Row("latency floor (trials)", k + "latency_floor_trials", d.latency_floor_trials,
+            "number", note="log2(1/eps_pe)/D_LR"),
+        Row("log-prob rate at beta (bits per trial)", k + "rate_bits_per_trial",
+            d.rate_bits_per_trial, "bits"),
+        Row("asymptotic rate h_inf (bits per trial)", k + "asymptotic_rate_bits",
+            d.asymptotic_rate_bits, "bits"),
+        Row("calibration trials", k + "calibration_trials", d.calibration_trials, "count",
+            note="consumed, not analysed"),
+        Row("trials consumed (expected)", k + "trials_consumed", d.trials_consumed, "number"),
     ]
-
-
-def _opt(v, none: str = "none in [1e3, 1e14]"):
-    return none if v is None else v

@@ -11,7 +11,6 @@ from dicert.cli._common import (
     JsonFlag,
     emit_json,
     handle_errors,
-    kv_table,
     stdout_console,
 )
 
@@ -95,45 +94,53 @@ def _record(record, log, seed, bits, pubkey, trusted_keys, strict, as_json: bool
 
     rep = verify(record, log=log, seed=seed, bits=bits, public_key=pubkey,
                  trusted_keys=trusted_keys, strict=strict, scheduler=scheduler)
+    from dicert.cli._rows import Row, record_json, record_rows, render, to_json
+
+    rec = _read_record(rep.record_file)
+    rows = [Row("result", "result", rep.result),
+            Row("authenticity", "authenticated", rep.authenticated, "flag",
+                note="established by a trusted key" if rep.authenticated
+                else "no trusted key given, or unsigned"),
+            Row("verification scope", "scope", rep.scope)]
+    rows += [r for r in record_rows(rec) if r.key != "key_fingerprint"]
+    rows += [Row("signature", "signature", rep.signature),
+             Row("key fingerprint", "key_fingerprint", rep.key_fingerprint, "digest",
+                 record="signature.key_fingerprint"),
+             Row("record file", "record_file", rep.record_file),
+             Row("checked", None, "; ".join(rep.checked))]
+    if rep.bits_file:
+        rows.append(Row("bits file", "bits_file", rep.bits_file))
+    if rep.not_checked:
+        rows.append(Row("NOT checked", None, ", ".join(rep.not_checked)))
+    for n in rep.notes:
+        rows.append(Row("note", None, n))
     if as_json:
-        emit_json({
+        emit_json(to_json(rows, {
+            **record_json(rec, rows),
             "verified": rep.authenticated,
-            "result": rep.result,
-            "authenticated": rep.authenticated,
             "exit_code": rep.exit_code,
-            "record_file": rep.record_file,
-            "record_sha256": rep.record_sha256,
-            "status": rep.status,
-            "output_bits": rep.output_bits,
-            "signature": rep.signature,
-            "key_fingerprint": rep.key_fingerprint,
-            "scope": rep.scope,
-            "bits_file": rep.bits_file,
+            "record_format": rec.get("format"),
             "checked": list(rep.checked),
             "not_checked": list(rep.not_checked),
             "notes": list(rep.notes),
             "message": rep.message,
-        })
+            "bits_file": rep.bits_file,
+        }))
         return rep.exit_code
-    rows = [
-        ("result", rep.result),
-        ("authenticity", "established (trusted key)" if rep.authenticated
-         else "NOT established"),
-        ("record status", rep.status),
-        ("output bits", rep.output_bits),
-        ("record SHA-256", rep.record_sha256),
-        ("signature", rep.signature),
-        ("scope", rep.scope),
-        ("checked", "; ".join(rep.checked)),
-    ]
-    if rep.not_checked:
-        rows.append(("NOT checked", ", ".join(rep.not_checked)))
-    for n in rep.notes:
-        rows.append(("note", n))
     console = stdout_console()
-    console.print(kv_table("dicert verify", rows))
-    console.print(rep.message)
+    render(console, "dicert verify", rows)
+    console.print(rep.message, highlight=False)
     return rep.exit_code
+
+
+def _read_record(path) -> dict:
+    """The verified record, under today's member names (records of earlier formats too)."""
+    import json
+
+    from dicert.stages.record_compat import upgrade_body
+
+    with open(path, "rb") as fh:
+        return upgrade_body(json.loads(fh.read().decode("utf-8")))
 
 
 def _chain(chain, pubkey, trusted_keys, head, strict, as_json: bool) -> int:
@@ -149,19 +156,24 @@ def _chain(chain, pubkey, trusted_keys, head, strict, as_json: bool) -> int:
                    "authenticated": rep.authenticated, "exit_code": code, "chain": str(chain),
                    "head_sha256": rep.head_sha256, "report": data})
         return code
-    rows = [("result", rep.result), ("chain", str(chain))]
-    for k in ("pulses", "first_index", "last_index", "head_sha256", "signed_pulses",
-              "signer_trusted"):
-        rows.append((k.replace("_", " "), str(data[k])))
+    from dicert.cli._rows import Row, render
+
+    rows = [Row("result", "result", rep.result), Row("chain", "chain", str(chain)),
+            Row("pulses", "report.pulses", data["pulses"], "count"),
+            Row("first index", "report.first_index", data["first_index"], "count"),
+            Row("last index", "report.last_index", data["last_index"], "count"),
+            Row("head SHA-256", "head_sha256", data["head_sha256"], "digest"),
+            Row("signed pulses", "report.signed_pulses", data["signed_pulses"], "count"),
+            Row("signer trusted", "report.signer_trusted", data["signer_trusted"], "flag")]
     if head is not None:
-        rows.append(("published head", f"pulse {rep.head_pulse}"))
-    for fp in data.get("key_fingerprints") or []:
-        rows.append(("signing key", str(fp)))
+        rows.append(Row("published head", None, f"pulse {rep.head_pulse}"))
+    for i, fp in enumerate(data.get("key_fingerprints") or []):
+        rows.append(Row("key fingerprint", f"report.key_fingerprints.{i}", fp, "digest"))
     for f in data.get("findings") or []:
-        rows.append((f"{f.get('severity', '')}: {f.get('kind', '')}",
-                     f"{f.get('file') or ''} {f.get('message', '')}".strip()))
+        rows.append(Row(f"{f.get('severity', '')}: {f.get('kind', '')}", None,
+                        f"{f.get('file') or ''} {f.get('message', '')}".strip()))
     console = stdout_console()
-    console.print(kv_table("dicert verify --chain", rows))
+    render(console, "dicert verify --chain", rows)
     if not rep.authenticated:
         console.print("Integrity checked, authenticity NOT established: signatures were "
                       "checked against the keys embedded in the records; pass --pubkey or "

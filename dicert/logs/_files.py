@@ -161,7 +161,7 @@ def input_identity_problems(files: Iterable[Any], formats: Iterable[str] | None 
             if d is None:
                 continue
             if d in seen:
-                out.append(f"{p} has the same content (SHA-256 {d[:16]}...) as {seen[d]}")
+                out.append(f"{p} has the same content (SHA-256 {d}) as {seen[d]}")
             else:
                 seen[d] = p
     return out

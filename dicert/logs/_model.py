@@ -388,7 +388,7 @@ class LogSummary:
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("trials", self.trials), ("has_test_flag", self.has_test_flag),
                 ("files", len(self.files)), ("size_bytes", self.size_bytes),
-                ("sha256", None if self.sha256 is None else self.sha256[:16] + "...")]
+                ("sha256", self.sha256)]
         if full:
             rows[-1] = ("sha256", self.sha256)
             rows += [("trials_in_log", self.trials_in_log), ("block_trials", self.block_trials),

@@ -25,7 +25,10 @@ naming the file and the key; sort the station files first (for CSV, for example,
 is present at only one station is *missing* at the other; by default that is an error
 naming the file and the key, because silently dropping trials can bias the test (dropping
 the losing trials certifies local devices). ``[join] max_missing = N`` tolerates up to N
-such trials in all (dropped, and counted in the join report that the record carries).
+such trials in all (dropped, and counted in the join report that the record carries), and
+every analysis charges them (:mod:`dicert.logspec._charge`): each dropped trial counts as a
+lost test round, and its raw bits and the drop pattern are subtracted from the certified
+min-entropy; method ``pef`` refuses a join that dropped trials.
 """
 
 from __future__ import annotations
@@ -76,6 +79,15 @@ from dicert.logspec._readers import (  # noqa: F401
     delimiter_in,
     implicit_spec,
 )
+from dicert.logspec._charge import (  # noqa: F401
+    JoinCharge,
+    charge_for_log,
+    charged_counts,
+    join_charge,
+    join_of,
+    pattern_bits,
+    pattern_count,
+)
 from dicert.logspec._join import (  # noqa: F401
     JoinReport,
     SpecLog,
@@ -93,5 +105,6 @@ from dicert.logspec._join import (  # noqa: F401
 )
 
 
-__all__ = ["JoinReport", "LogSpec", "SPEC_FORMAT", "SpecLog", "SourceSpec", "is_spec_file",
+__all__ = ["JoinCharge", "JoinReport", "charge_for_log", "charged_counts", "join_charge", "pattern_bits",
+           "pattern_count", "LogSpec", "SPEC_FORMAT", "SpecLog", "SourceSpec", "is_spec_file",
            "load_spec", "open_spec_log"]

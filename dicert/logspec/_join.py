@@ -274,22 +274,25 @@ class _JoinState:
 _EMPTY = np.zeros(0, np.int64)
 
 
-def _match_sorted(ka: np.ndarray, kb: np.ndarray, max_steps: int = 16) -> tuple[np.ndarray,
-                                                                              np.ndarray]:
-    """Positions of the keys common to two strictly increasing arrays (``ka[ixa] ==
+def _match_runs(ka: np.ndarray, kb: np.ndarray, max_steps: int = 16) -> tuple[
+        list[tuple[int, int, int]], tuple[np.ndarray, np.ndarray] | None]:
+    """The keys common to two strictly increasing arrays, as aligned runs ``(i, j, d)``
+    (``ka[i:i+d] == kb[j:j+d]``) and, if any, index arrays of a remainder (``ka[ixa] ==
     kb[ixb]``). A few missing keys are stepped over with vectorised comparisons of the
-    aligned remainders; beyond ``max_steps`` the rest is matched by binary search."""
-    pa: list[np.ndarray] = []
-    pb: list[np.ndarray] = []
+    aligned remainders (runs are sliced later, never gathered); beyond ``max_steps`` the rest
+    is matched by binary search."""
+    runs: list[tuple[int, int, int]] = []
     i = j = 0
     for _ in range(max_steps):
         m = min(ka.size - i, kb.size - j)
         if m == 0:
             break
         diff = ka[i:i + m] != kb[j:j + m]
-        d = int(np.argmax(diff)) if diff.any() else m
-        pa.append(np.arange(i, i + d))
-        pb.append(np.arange(j, j + d))
+        d = int(np.argmax(diff))
+        if not diff[d]:
+            d = m
+        if d:
+            runs.append((i, j, d))
         i, j = i + d, j + d
         if d == m:
             break  # what is left of the longer array lies beyond the other's last key
@@ -303,11 +306,45 @@ def _match_sorted(ka: np.ndarray, kb: np.ndarray, max_steps: int = 16) -> tuple[
         posc = np.minimum(pos, max(rb.size - 1, 0))
         hit = (pos < rb.size) & (rb[posc] == ra) if rb.size else np.zeros(ra.size, bool)
         h = np.flatnonzero(hit)
-        pa.append(h + i)
-        pb.append(pos[h] + j)
+        return runs, (h + i, pos[h] + j)
+    return runs, None
+
+
+def _match_sorted(ka: np.ndarray, kb: np.ndarray, max_steps: int = 16) -> tuple[np.ndarray,
+                                                                              np.ndarray]:
+    """Positions of the keys common to two strictly increasing arrays (``ka[ixa] ==
+    kb[ixb]``), from :func:`_match_runs`."""
+    runs, tail = _match_runs(ka, kb, max_steps)
+    pa = [np.arange(i, i + d) for i, _, d in runs]
+    pb = [np.arange(j, j + d) for _, j, d in runs]
+    if tail is not None:
+        pa.append(tail[0])
+        pb.append(tail[1])
     if not pa:
         return _EMPTY, _EMPTY
     return np.concatenate(pa), np.concatenate(pb)
+
+
+def _joined_codes(ba: Mapping[str, np.ndarray], bb: Mapping[str, np.ndarray], sa: Any, sb: Any,
+                  ta: bool, tb: bool, keys: np.ndarray, pa: Path, pb: Path) -> np.ndarray:
+    """Trial codes of the matched rows ``sa`` of A and ``sb`` of B (slices or index arrays);
+    with a test flag at both stations, they must agree."""
+    codes = ((ba["setting"][sa] << 3) | (bb["setting"][sb] << 2)
+             | (ba["outcome"][sa] << 1) | bb["outcome"][sb])
+    if ta and tb:
+        t1, t2 = ba["test"][sa], bb["test"][sb]
+        if not np.array_equal(t1, t2):
+            i = int(np.argmax(t1 != t2))
+            k = int(keys[sa][i])
+            raise LogFormatError(pb, f"key {k}", "the stations disagree on whether "
+                                 f"this trial is a test round ({pa.name}: {int(t1[i])}, "
+                                 f"{pb.name}: {int(t2[i])})")
+        codes = codes | (t1 << 4)
+    elif ta:
+        codes = codes | (ba["test"][sa] << 4)
+    elif tb:
+        codes = codes | (bb["test"][sb] << 4)
+    return codes
 
 
 def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> Iterator[np.ndarray]:
@@ -347,36 +384,30 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
         nb = int(np.searchsorted(kb, cut, "right"))
         ka_, kb_ = ka[:na], kb[:nb]
         if na == nb and np.array_equal(ka_, kb_):
-            ixa = ixb = slice(0, na)
-            nm = na
+            runs, tail = [(0, 0, na)], None
         else:
-            ixa, ixb = _match_sorted(ka_, kb_)
-            nm = int(ixa.size)
-            miss_b = np.ones(na, bool)
-            miss_b[ixa] = False
+            runs, tail = _match_runs(ka_, kb_)
+            miss_b = np.ones(na, bool)  # rows of A not matched: missing at B
             miss_a = np.ones(nb, bool)
-            miss_a[ixb] = False
+            for i, j, d in runs:
+                miss_b[i:i + d] = False
+                miss_a[j:j + d] = False
+            if tail is not None:
+                miss_b[tail[0]] = False
+                miss_a[tail[1]] = False
             st.missing(kb_[miss_a], ka_[miss_b], pa, pb)
+        parts = [(slice(i, i + d), slice(j, j + d)) for i, j, d in runs]
+        if tail is not None and tail[0].size:
+            parts.append(tail)
+        pieces = [_joined_codes(ba, bb, sa, sb, ta, tb, ka_, pa, pb) for sa, sb in parts]
+        nm = sum(int(p.size) for p in pieces)
         if nm:
-            codes = ((ba["setting"][:na][ixa] << 3) | (bb["setting"][:nb][ixb] << 2)
-                     | (ba["outcome"][:na][ixa] << 1) | bb["outcome"][:nb][ixb])
-            if ta and tb:
-                t1, t2 = ba["test"][:na][ixa], bb["test"][:nb][ixb]
-                if not np.array_equal(t1, t2):
-                    i = int(np.argmax(t1 != t2))
-                    k = int(ka_[ixa][i])
-                    raise LogFormatError(pb, f"key {k}", "the stations disagree on whether "
-                                         f"this trial is a test round ({pa.name}: {int(t1[i])}, "
-                                         f"{pb.name}: {int(t2[i])})")
-                codes = codes | (t1 << 4)
-            elif ta:
-                codes = codes | (ba["test"][:na][ixa] << 4)
-            elif tb:
-                codes = codes | (bb["test"][:nb][ixb] << 4)
-            keys_m = ka_[ixa]
+            codes = pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
+            first = parts[0][0]
+            last = parts[-1][0]
             if st.first_key is None:
-                st.first_key = int(keys_m[0])
-            st.last_key = int(keys_m[-1])
+                st.first_key = int(ka_[first][0])
+            st.last_key = int(ka_[last][-1])
             st.matched += nm
             yield codes.astype(np.uint8, copy=False)
         ba = {k: v[na:] for k, v in ba.items()} if na < ka.size else None

@@ -117,6 +117,9 @@ class _ValueMap:
         """Bits of integer values through a lookup table (255 = not in the map), or None when
         the values span too wide a range for a table."""
         ints = {int(k): b for k, b in self.numeric.items() if float(k).is_integer()}
+        two = self._two_values(arr, ints)
+        if two is not None:
+            return two
         if arr.dtype.itemsize == 1:  # int8, uint8, bool: a 256-entry table on the raw byte
             lut = np.full(256, 255, np.uint8)
             signed = arr.dtype.kind == "i"
@@ -132,6 +135,22 @@ class _ValueMap:
             if lo <= k <= hi:
                 lut[k - lo] = b
         return lut[np.subtract(arr, lo, dtype=np.int64)]
+
+    @staticmethod
+    def _two_values(arr: np.ndarray, ints: Mapping[int, int]) -> np.ndarray | None:
+        """Bits by two comparisons when the map is {k0: 0, k1: 1} and every value is k0 or
+        k1 (the common 1/2 and +1/-1 codes; no table look-up), else None."""
+        if len(ints) != 2 or sorted(ints.values()) != [0, 1]:
+            return None
+        k1 = next(k for k, b in ints.items() if b == 1)
+        k0 = next(k for k, b in ints.items() if b == 0)
+        try:
+            hit1 = arr == k1
+            if not (hit1 | (arr == k0)).all():
+                return None  # the table path marks the values outside the map
+        except (OverflowError, TypeError):  # a key outside the column's integer type
+            return None
+        return hit1.view(np.uint8)
 
     def map_strings(self, arr, path: Path, row0: int) -> np.ndarray:
         arr = np.asarray(arr)
@@ -439,7 +458,14 @@ class _ParquetFile:
 
     def chunks(self, chunk_trials: int, hasher) -> Iterator[dict[str, np.ndarray]]:
         pq = _need_extra("Parquet files", "pyarrow.parquet")
-        _hash_file(self.path, hasher)
+        bg = _BackgroundHash(self.path, hasher)
+        try:
+            yield from self._chunks(chunk_trials, pq)
+            bg.wait()
+        finally:
+            bg.cancel()
+
+    def _chunks(self, chunk_trials: int, pq) -> Iterator[dict[str, np.ndarray]]:
         src, path = self.src, self.path
         try:
             # Buffered, not pre-buffered: column chunks are streamed, so memory stays near one
@@ -452,7 +478,12 @@ class _ParquetFile:
         maps = {r: _ValueMap(r, src.columns[r], m) for r, m in src.values.items()}
         row = 0
         try:
-            for batch in f.iter_batches(batch_size=chunk_trials, columns=sorted(set(cols.values()))):
+            # A station's file: the two stations are already decoded in parallel threads
+            # (dicert.logspec._join._prefetched), and pyarrow's own pool on top oversubscribes
+            # the cores; a table's file uses pyarrow's pool.
+            threads = src.label == "table"
+            for batch in f.iter_batches(batch_size=chunk_trials, use_threads=threads,
+                                        columns=sorted(set(cols.values()))):
                 out = {}
                 for role, c in cols.items():
                     arr = batch.column(c)
@@ -478,7 +509,14 @@ class _Hdf5File:
 
     def chunks(self, chunk_trials: int, hasher) -> Iterator[dict[str, np.ndarray]]:
         h5py = _need_extra("HDF5 files", "h5py")
-        _hash_file(self.path, hasher)
+        bg = _BackgroundHash(self.path, hasher)
+        try:
+            yield from self._chunks(chunk_trials, h5py)
+            bg.wait()
+        finally:
+            bg.cancel()
+
+    def _chunks(self, chunk_trials: int, h5py) -> Iterator[dict[str, np.ndarray]]:
         src, path = self.src, self.path
         try:
             f = h5py.File(str(path), "r")
@@ -602,6 +640,47 @@ def _convert(arr: np.ndarray, role: str, col: str, vmap: _ValueMap | None, path:
     if arr.dtype.kind in "biuf":
         return vmap.map_numbers(arr, path, row0)
     return vmap.map_strings(arr, path, row0)
+
+
+class _BackgroundHash:
+    """Feed every byte of a file to ``hasher`` in a worker thread, so that hashing overlaps
+    decoding (hashlib releases the GIL on large blocks, and so does the decoder). Formats
+    whose readers seek (Parquet, HDF5) are digested this way; :meth:`wait` re-raises a read
+    error in the caller, :meth:`cancel` stops the worker early. Memory: one 4 MiB block."""
+
+    def __init__(self, path: Path, hasher) -> None:
+        import threading
+
+        self.exc: BaseException | None = None
+        self.stop = threading.Event()
+        self.th = None
+        if hasher is not None:
+            self.th = threading.Thread(target=self._run, args=(path, hasher), daemon=True,
+                                       name="dicert-file-hash")
+            self.th.start()
+
+    def _run(self, path: Path, hasher) -> None:
+        from dicert.logs import _open_checked
+
+        try:
+            with _open_checked(path) as fh:
+                while not self.stop.is_set() and (block := fh.read(1 << 22)):
+                    hasher.update(block)
+        except BaseException as exc:  # re-raised by wait()
+            self.exc = exc
+
+    def wait(self) -> None:
+        if self.th is not None:
+            self.th.join()
+            self.th = None
+            if self.exc is not None:
+                raise self.exc
+
+    def cancel(self) -> None:
+        if self.th is not None:
+            self.stop.set()
+            self.th.join()
+            self.th = None
 
 
 def _hash_file(path: Path, hasher) -> None:

@@ -39,6 +39,11 @@ class Analysis:
     seed_bits_needed: int
     total_error: float
     design: DesignReport | None = None
+    # A station join that may drop trials (log spec join.max_missing > 0): what is charged
+    # (dicert.logspec.JoinCharge) and the estimate of the kept trials before the charge
+    # (``estimate`` is then that of the charged counts).
+    charge: Any = None
+    uncharged_estimate: ChshEstimate | None = None
 
 
 # --------------------------------------------------------------------------- analysis
@@ -78,7 +83,8 @@ def checked_analysis(scan: LogScan, proto: Protocol, *, log: Any, seed_bytes: by
                              "the same data twice or mix sources (pass --allow-mixed-inputs "
                              "if this is intended; it is then recorded)")
     analysis = analyse_counts(scan.counts, proto, scan.raw_bits, finite=scan.finite,
-                              log_end=log_end_note(scan), design=design_report(scan, proto))
+                              log_end=log_end_note(scan), design=design_report(scan, proto),
+                              join=join_report_of(scan), source=log)
     seed_issues: list[str] = []
     if analysis.status == "certified":
         from dicert.design import seed_problems
@@ -166,9 +172,50 @@ def _not_run(protocol: Protocol, reason: str) -> Any:
                             details={"not_run": reason})
 
 
+def join_report_of(scan: LogScan) -> Any:
+    """The station-join report of a scan read through a log spec (None without a join)."""
+    from dicert.logspec._charge import join_of
+
+    return join_of(scan.log_spec)
+
+
+def join_charge_for(join: Any, protocol: Protocol, source: Any = "log spec") -> Any:
+    """The :class:`dicert.logspec.JoinCharge` of a join report under a protocol: None without
+    a join or when the spec tolerates no missing trial (nothing can have been dropped)."""
+    if join is None:
+        return None
+    from dicert.logspec._charge import join_charge
+
+    charge = join_charge(join, protocol.harvest.bits_per_trial, method=protocol.method,
+                         source=source)
+    if charge is None or (charge.max_missing == 0 and charge.dropped_trials == 0):
+        return None
+    return charge
+
+
+def charged_for(join: Any, counts: np.ndarray, protocol: Protocol, eps_est: float,
+                source: Any) -> tuple[Any, np.ndarray, Any]:
+    """(charge, counts to analyse, uncharged estimate) for a station-join report.
+
+    When the log spec tolerates missing trials they are charged (:mod:`dicert.logspec._charge`):
+    the estimate and the finite-size method run on the counts with every dropped trial counted
+    as a lost test round, and :func:`analyse_counts` subtracts the dropped raw bits and the
+    drop-pattern bits from the certified min-entropy; method pef refuses a join that dropped
+    trials. The design checks stay on the trials read. Without a charge: (None, counts, None).
+    """
+    charge = join_charge_for(join, protocol, source)
+    if charge is None:
+        return None, counts, None
+    from dicert.estimate import estimate_chsh
+    from dicert.logspec._charge import charged_counts
+
+    uncharged = estimate_chsh(counts, design=protocol.design, eps=eps_est)
+    return charge, charged_counts(counts, charge.lost_test_rounds_charged), uncharged
+
+
 def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
                    finite: Any = None, log_end: str | None = None,
-                   design: Any = None) -> Analysis:
+                   design: Any = None, join: Any = None, source: Any = "log spec") -> Analysis:
     """Design checks, estimate, finite-size bound, accept/abort and output length.
 
     Deterministic in its inputs, so :func:`dicert.verification.verify` re-derives it from a record.
@@ -176,7 +223,8 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
     order and not only on the counts. ``log_end`` (see :func:`log_end_note`) is appended to the
     abort reason. ``design`` is the :class:`dicert.design.DesignReport` of the log (default:
     the checks the counts alone allow); when a check fails the run aborts with that reason and
-    no finite-size method is run (a streaming pef result is kept, but not used).
+    no finite-size method is run (a streaming pef result is kept, but not used). ``join``, the
+    station-join report (``log.spec.join``), is charged as :func:`charged_for` says.
     """
     from dicert.design import check_design
     from dicert.estimate import estimate_chsh
@@ -184,9 +232,10 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
 
     counts = np.asarray(counts, dtype=np.int64)
     eps_est = _estimate_eps(protocol)
-    estimate = estimate_chsh(counts, design=protocol.design, eps=eps_est)
     if design is None:
         design = check_design(counts, protocol, eps=eps_est)
+    charge, counts, uncharged = charged_for(join, counts, protocol, eps_est, source)
+    estimate = estimate_chsh(counts, design=protocol.design, eps=eps_est)
     if not design.passed:
         if finite is None:
             finite = _not_run(protocol, "the finite-size method was not run: " +
@@ -203,13 +252,15 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
                         abort_reason=reason, min_entropy_bits=0.0, output_bits=0,
                         seed_bits_needed=0,
                         total_error=float(finite.total_error(protocol.extractor.eps_ext)),
-                        design=design)
+                        design=design, charge=charge, uncharged_estimate=uncharged)
     if finite is None:
         finite = _certify_counts(counts, protocol)
     eps_ext = protocol.extractor.eps_ext
     k = float(finite.min_entropy_bits) if finite.accepted else 0.0
     if not math.isfinite(k) or k < 0:
         k = 0.0
+    if charge is not None:  # the dropped raw bits and the drop pattern (never below 0)
+        k = max(0.0, k - charge.total_bits)
     total_error = float(finite.total_error(eps_ext))
     m = int(lhl_output_length(k, eps_ext)) if finite.accepted else 0
     m = max(0, min(m, raw_bits))
@@ -221,8 +272,11 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
             reason = f"{reason}: {why}"
     elif m <= 0:
         status = "aborted"
-        reason = (f"accepted, but the certified min-entropy ({k:.6g} bits) leaves no output "
-                  f"at eps_ext = {eps_ext:g}")
+        after = "" if charge is None else (
+            f" after the station-join charge of {charge.total_bits:.6g} bits for "
+            f"{charge.dropped_trials} dropped trials and the drop pattern")
+        reason = (f"accepted, but the certified min-entropy ({k:.6g} bits{after}) leaves no "
+                  f"output at eps_ext = {eps_ext:g}")
     else:
         status, reason = "certified", None
     if reason is not None and log_end:
@@ -231,7 +285,8 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
     return Analysis(estimate=estimate, finite=finite, status=status, abort_reason=reason,
                     min_entropy_bits=k, output_bits=m if status == "certified" else 0,
                     seed_bits_needed=need if status == "certified" else 0,
-                    total_error=total_error, design=design)
+                    total_error=total_error, design=design, charge=charge,
+                    uncharged_estimate=uncharged)
 
 
 def _certify_counts(counts: np.ndarray, protocol: Protocol) -> Any:

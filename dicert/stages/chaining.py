@@ -66,14 +66,14 @@ def _check_chain(chain_dir: Path, trust: Any, signer: Any, seed_sha: str, seed_l
         raise ParameterError(f"--key: not trusted for pulse {link['pulse_index']} "
                              f"({exc})") from None
     if seed_sha in state.seeds_used:
-        raise SeedError(f"{seed_label}: this extractor seed (SHA-256 {seed_sha[:16]}...) was "
+        raise SeedError(f"{seed_label}: this extractor seed (SHA-256 {seed_sha}) was "
                         f"already used by pulse {state.seeds_used[seed_sha]} of {chain_dir}; "
                         "use a fresh seed for every pulse (an aborted pulse's seed included)")
     prev = state.protocol_sha256
     if prev is not None and proto.sha256 != prev and protocol_change is None:
         raise ParameterError(
-            f"{proto.name}: the protocol (SHA-256 {proto.sha256[:16]}...) differs from the "
-            f"chain's ({prev[:16]}...); pass --protocol-change REASON to record a deliberate "
+            f"{proto.name}: the protocol (SHA-256 {proto.sha256}) differs from the "
+            f"chain's ({prev}); pass --protocol-change REASON to record a deliberate "
             "change in the signed record")
     if protocol_change is not None and (prev is None or proto.sha256 == prev):
         raise ParameterError("--protocol-change: the protocol is the same as the chain's "

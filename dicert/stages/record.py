@@ -129,7 +129,7 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
         "abort_reason": analysis.abort_reason,
         "certified_min_entropy_bits": analysis.min_entropy_bits if published else 0.0,
         "soundness_error": analysis.total_error,
-        "assumptions": _assumptions(fin, scan),
+        "assumptions": _assumptions(fin, scan, analysis),
         "caution": CAUTION,
         "references": [str(r) for r in fin.references],
         "pulse_index": chain_info[0] if chain_info else None,
@@ -144,7 +144,7 @@ def build_body(*, protocol: Protocol, scan: LogScan, analysis: Analysis, seed_sh
     if screens is not None:
         body["output_screens"] = screens
     if scan.log_spec is not None:  # a log read through a log spec (dicert.logspec)
-        body["log"]["spec"] = dict(scan.log_spec)
+        body["log"]["spec"] = _spec_section(scan.log_spec, analysis, scan.counts)
     if scan.block_series is not None:
         section = _blocks_section(scan.block_series, protocol)
         if section is not None:
@@ -218,23 +218,69 @@ def _extractor_section(protocol: Protocol, scan: LogScan, analysis: Analysis,
     }
 
 
-def _assumptions(fin: Any, scan: LogScan) -> list[str]:
+def _spec_section(log_spec: Mapping, analysis: Analysis, counts: Any = None) -> dict:
+    """The record's ``log.spec``: the spec, its digest and the join report, which carries the
+    charge for dropped trials (``join.charge``, always re-derived from the report's counts)."""
+    spec = dict(log_spec)
+    join = spec.get("join")
+    if isinstance(join, Mapping):
+        join = {k: v for k, v in join.items() if k != "charge"}
+        if analysis.charge is not None:
+            join["charge"] = _charge_section(analysis, counts)
+        spec["join"] = join
+    return spec
+
+
+def _charge_section(analysis: Analysis, counts: Any = None) -> dict:
+    """``log.spec.join.charge``: what the dropped trials cost, with the uncharged and the
+    charged estimate (the record's ``estimate`` is the charged one)."""
+    sec = analysis.charge.to_dict()
+    if analysis.uncharged_estimate is not None:
+        sec["uncharged_estimate"] = _estimate_section(analysis.uncharged_estimate)
+    if counts is not None:
+        from dicert.logspec._charge import charged_counts
+
+        sec["note"] = ("the record's estimate, entropy and certified_min_entropy_bits come from "
+                       "charged_counts (counts.values plus the lost test rounds charged), less "
+                       "total_bits; counts.values and uncharged_estimate are the trials the join "
+                       "kept")
+        sec["charged_counts"] = charged_counts(
+            counts, analysis.charge.lost_test_rounds_charged).tolist()
+    return sec
+
+
+def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> list[str]:
     """The general assumptions, the method's side-information model, the method's own, and
-    what a station join that dropped trials adds."""
+    what a station join that may drop trials adds (charged, not assumed)."""
     assumptions = list(ASSUMPTIONS)
     assumptions.append(f"Side-information model of the method ({fin.method}): "
                        f"{fin.side_information} side information held by the adversary.")
     for a in fin.assumptions:
         if a not in assumptions:
             assumptions.append(str(a))
-    dropped = _dropped_trials(scan)
-    if dropped:
+    charge = analysis.charge if analysis is not None else None
+    if charge is not None:
         assumptions.append(
-            f"Trials dropped by the station join ({dropped}, tolerated by the log spec's "
-            "join.max_missing) went missing independently of the settings and outcomes: "
-            "NOT checked, and nothing is charged for them; if the devices or the stations' "
-            "electronics can cause a trial to go missing, the certificate does not hold.")
+            f"Trials dropped by the station join ({charge.dropped_trials}, at most "
+            f"{charge.max_missing} tolerated by the log spec's join.max_missing): checked / "
+            "charged, not assumed independent of the settings and outcomes: each counted as "
+            f"a lost test round ({charge.lost_test_rounds_charged} charged) in the estimate "
+            f"and the acceptance test, and {charge.raw_bits_subtracted} raw bits of dropped "
+            f"trials plus {charge.pattern_bits:.6g} bits for the drop pattern (which trials, "
+            "at which station: chosen by the adversary) subtracted from the certified "
+            "min-entropy (log.spec.join.charge). A trial missing at both stations leaves no "
+            "row for the join to see: that every trial is logged stays assumed (above).")
+    elif _dropped_trials(scan):  # a record from before the join charge (format /3 or older)
+        assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=_dropped_trials(scan)))
     return assumptions
+
+
+#: What a record from before the station-join charge (dicert-record/3) assumed instead.
+LEGACY_DROP_ASSUMPTION = (
+    "Trials dropped by the station join ({dropped}, tolerated by the log spec's "
+    "join.max_missing) went missing independently of the settings and outcomes: "
+    "NOT checked, and nothing is charged for them; if the devices or the stations' "
+    "electronics can cause a trial to go missing, the certificate does not hold.")
 
 
 def _dropped_trials(scan: LogScan) -> int:

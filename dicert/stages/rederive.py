@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from dicert.errors import DicertError, VerificationError
+from dicert.errors import DicertError, ParameterError, VerificationError
 
 if TYPE_CHECKING:
     from dicert.protocol import Protocol
@@ -205,24 +205,15 @@ def authenticate(record: Mapping[str, Any], trust: Any) -> tuple[str, str | None
 def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, seed_sha256: str,
                   seed_bytes: int, output_sha256: str | None) -> dict:
     """Recompute a record body from a protocol, a log scan and seed/output digests."""
-    from dicert.stages.analysis import analyse_counts, design_report, log_end_note, withhold
+    from dicert.stages.analysis import analyse_counts, log_end_note, withhold
     from dicert.stages.record import build_body
     from dicert.extract import seed_bits_required
     from dicert.stages.record_compat import drop_added_members
 
     legacy = body.get("format") == "dicert-record/1"
-    if legacy:
-        from dicert.design import DesignReport, spec_of
-
-        # A /1 record predates the design stage: its numbers are re-derived without it.
-        spec = spec_of(protocol)
-        design = DesignReport(significance=spec.significance, block_trials=spec.block_trials,
-                              trials=scan.trials, trials_in_log=scan.trials,
-                              declared_trials=None, checks=())
-    else:
-        design = design_report(scan, protocol)
     analysis = analyse_counts(scan.counts, protocol, scan.raw_bits, finite=scan.finite,
-                              log_end=log_end_note(scan), design=design)
+                              log_end=log_end_note(scan), design=_design_for(body, protocol, scan),
+                              join=_charged_join(body, scan, protocol), source="log.spec.join")
     screens = body.get("output_screens") if isinstance(body.get("output_screens"), Mapping) \
         else None
     analysis = withhold(analysis, screens)
@@ -283,6 +274,55 @@ def expected_body(body: Mapping[str, Any], protocol: Protocol, scan: Any, *, see
             exp["log"].pop(k, None)
     return exp
 
+
+def _design_for(body: Mapping[str, Any], protocol: Protocol, scan: Any) -> Any:
+    """The design report to re-derive with: a /1 record predates the design stage, so its
+    numbers are re-derived without it."""
+    from dicert.stages.analysis import design_report
+
+    if body.get("format") != "dicert-record/1":
+        return design_report(scan, protocol)
+    from dicert.design import DesignReport, spec_of
+
+    spec = spec_of(protocol)
+    return DesignReport(significance=spec.significance, block_trials=spec.block_trials,
+                        trials=scan.trials, trials_in_log=scan.trials, declared_trials=None,
+                        checks=())
+
+
+def _charged_join(body: Mapping[str, Any], scan: Any, protocol: Protocol) -> Any:
+    """The station-join report to charge; records from before the join charge re-derive as
+    written, uncharged (verify notes it)."""
+    from dicert.logspec._charge import join_charge
+    from dicert.stages.analysis import join_report_of
+
+    join = None if body.get("format") in UNCHARGED_FORMATS else join_report_of(scan)
+    if join is not None:  # an inconsistent report is a verification failure, not bad input
+        _require(join.get("max_missing") == _spec_max_missing(scan.log_spec),
+                 "log.spec.join.max_missing", "differs from the recorded spec's "
+                 "[join] max_missing")
+        try:
+            join_charge(join, 2, method=protocol.method, source="the recorded join report")
+        except ParameterError as exc:
+            _require(False, "log.spec.join", str(exc))
+    return join
+
+
+def _spec_max_missing(log_spec: Any) -> Any:
+    """``[join] max_missing`` of a recorded spec's content (0 when absent; None if unreadable)."""
+    import tomllib
+
+    try:
+        doc = tomllib.loads(str(log_spec.get("content")))
+    except (tomllib.TOMLDecodeError, AttributeError):
+        return None
+    join = doc.get("join", {})
+    return join.get("max_missing", 0) if isinstance(join, dict) else None
+
+
+#: Record formats from before trials dropped by a station join were charged
+#: (dicert.logspec._charge): they assumed such trials went missing independently.
+UNCHARGED_FORMATS = ("dicert-record/1", "dicert-record/2", "dicert-record/3")
 
 #: Top-level record members introduced by dicert-record/2.
 _V2_MEMBERS = ("design", "inputs", "output_screens", "estimate_blocks")
