@@ -209,6 +209,19 @@ def test_certify_and_verify_scan_the_files_on_the_workers(address, tmp_path, mon
         ["a", "b", "log", "seed.bin"]
 
 
+def test_certify_on_the_cluster_text_log(address, tmp_path):
+    # The same for a multi-file CSV log (each task reads its file with the text reader).
+    from dicert.certify import certify
+
+    d = _split_log(tmp_path, n_files=2, trials=6001, binary=False)
+    seed = np.random.default_rng(5).bytes(6001 * 4 // 8 + 64)
+    clock = lambda: "2026-01-01T00:00:00Z"  # noqa: E731
+    a = certify(d, uniform_protocol(), seed, tmp_path / "a", clock=clock)
+    b = certify(d, uniform_protocol(), seed, tmp_path / "b", clock=clock, scheduler=address)
+    assert _no_volatile(a.record) == _no_volatile(b.record)
+    assert a.raw_bits == b.raw_bits and a.raw_bits % 8  # joined at bit level
+
+
 def test_worker_killed_during_the_scan(local_cluster, address, kill_marker, tmp_path):
     # Retried by the engine: same record. Not retried: a clean failure, nothing written.
     from dicert.certify import certify

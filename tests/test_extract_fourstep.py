@@ -204,3 +204,27 @@ def test_twiddles_follow_the_four_step_definition():
         # (from memory), and the quadrant is applied exactly
         assert abs(g.real - float(ref.real)) <= 1.2e-16
         assert abs(g.imag - float(ref.imag)) <= 1.2e-16
+
+
+def test_short_reads_and_writes_of_the_work_file(rng, tmp_path, monkeypatch):
+    # POSIX allows preadv/pwritev to move fewer bytes than asked (IEEE Std 1003.1, read()
+    # and write()); the work file's I/O must finish the rest. Every call is cut to 1000 bytes.
+    n, m = 12000, 2500
+    x, s = random_case(rng, n, m, 1)
+    real_r, real_w, real_pw = os.preadv, os.pwritev, os.pwrite
+
+    def cut(views, limit=1000):
+        out, left = [], limit
+        for v in views:
+            if left <= 0:
+                break
+            out.append(v[:left])
+            left -= len(out[-1])
+        return out
+
+    monkeypatch.setattr(os, "preadv", lambda fd, views, off: real_r(fd, cut(views), off))
+    monkeypatch.setattr(os, "pwritev", lambda fd, views, off: real_w(fd, cut(views), off))
+    monkeypatch.setattr(os, "pwrite", lambda fd, data, off: real_pw(fd, data[:1000], off))
+    res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=500_000,
+                           temp_dir=tmp_path)
+    assert res.output == oracle(x, s, n, m)

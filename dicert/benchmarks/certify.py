@@ -174,6 +174,7 @@ def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[Be
         return {k: v for k, v in rec.items() if k not in ("volatile", "record_sha256")}
 
     same = body(here.record) == body(there.record)
+    where = "given scheduler" if cluster is None else "2-worker LocalCluster on this machine"
     trials = files * per_file
     return [
         BenchResult(suite=SUITE, name=f"certify of a {files}-file log, one process",
@@ -181,8 +182,7 @@ def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[Be
                     note=f"{trials:.0e} trials, {here.status}"),
         BenchResult(suite=SUITE, name=f"certify of a {files}-file log on the cluster",
                     value=t_there, unit="s", higher_is_better=False,
-                    note=f"speedup {t_here / t_there:.2f}x "
-                         f"({'given scheduler' if cluster is None else '2-worker LocalCluster on this machine'})"),
+                    note=f"speedup {t_here / t_there:.2f}x ({where})"),
         BenchResult(suite=SUITE, name=f"{files}-file certify: identical record on the cluster",
                     value=float(same), unit="bool", target=1.0),
     ]
