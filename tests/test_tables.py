@@ -506,3 +506,28 @@ def test_json_of_the_tables_uses_no_retired_name(runs):
     for name, doc in docs.items():
         bad = [p for p, k in _keys(doc) if k in retired]
         assert not bad, f"{name} --json uses retired names: {bad}"
+
+
+# --------------------------------------------------------------------------- join charge
+
+from test_logspec_charge import run as charge_run  # noqa: E402,F401  (module fixture)
+
+
+def test_inspect_join_charge_rows_match_json(charge_run):
+    from dicert.cli.inspect import _charge_rows  # noqa: F401  (the rows both outputs share)
+
+    args = ["inspect", "--log-spec", str(charge_run["spec"])]
+    t = _run(args)
+    j = _run([*args, "--json"])
+    assert t.exit_code == j.exit_code == 0, t.output
+    doc, table = json.loads(j.stdout), parse_table(t.stdout)
+    kinds = {"charged CHSH estimate": ("charged_chsh_estimate", "chsh"),
+             "charged CHSH lower bound": ("charged_chsh_lower_bound", "lower"),
+             "charged p-value (local devices)": ("charged_p_value_local", "error"),
+             "dropped trials": ("dropped_trials", "count"),
+             "raw bits certify subtracts": ("raw_bits_subtracted", "count"),
+             "drop-pattern bits certify subtracts": ("pattern_bits", "upper")}
+    for label, (key, kind) in kinds.items():
+        assert consistent(shown_number(table[label][0]), doc["join_charge"][key], kind), label
+    # Counting a dropped trial as a lost test round can only lower the bound.
+    assert doc["join_charge"]["charged_chsh_lower_bound"] <= doc["chsh_lower_bound"]

@@ -92,6 +92,8 @@ def inspect_cmd(
                          overall_lower=lower_shown, threshold=threshold,
                          threshold_label=threshold_label)
     rows = _rows(summary, est, design, source, report, blocks, eps, block_error, p_refused)
+    if look.charge is not None:
+        rows += _charge_rows(look.charge, look.charged_estimate)
     if as_json:
         from dicert.cli._rows import to_json
 
@@ -138,13 +140,6 @@ def inspect_cmd(
         rows.append(Row("station join", None, f"{j['matched']:,} trials matched; missing at A "
                         f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
                         f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
-    if look.charge is not None:
-        ch, ce = look.charge, look.charged_estimate
-        rows.append(Row("charged: dropped = lost test rounds", None,
-                        f"CHSH estimate {ce.chsh_estimate:.5f}, lower bound "
-                        f"{_clip(ce.chsh_lower_bound)[0]:.5f} (uncharged {lower_shown:.5f}); "
-                        f"certify also subtracts {ch.raw_bits_subtracted:,} raw bits + "
-                        f"{ch.pattern_bits:.6g} drop-pattern bits"))
     render(con, f"Bell test summary: {log}", rows)
     from rich.table import Table
 
@@ -209,6 +204,28 @@ def _rows(summary, est, design, source, report, blocks, eps, block_error, p_refu
                 min(b.chsh_lower_bound for b in blocks), "lower"),
         ]
     return rows
+
+
+def _charge_rows(ch, ce) -> list:
+    """A station join that dropped trials: the estimate with every dropped trial counted as a
+    lost test round (keys under join_charge in --json), and what certify subtracts."""
+    from dicert.cli._rows import Row
+
+    k = "join_charge."
+    return [
+        Row("charged CHSH estimate", k + "charged_chsh_estimate", ce.chsh_estimate, "chsh",
+            note="dropped trials counted as lost test rounds"),
+        Row("charged CHSH lower bound", k + "charged_chsh_lower_bound", ce.chsh_lower_bound,
+            "lower", note="at eps_est" + _range_note(ce.chsh_lower_bound)),
+        Row("charged p-value (local devices)", k + "charged_p_value_local", ce.p_value_local,
+            "error"),
+        Row("dropped trials", k + "dropped_trials", ch.dropped_trials, "count"),
+        Row("raw bits certify subtracts", k + "raw_bits_subtracted", ch.raw_bits_subtracted,
+            "count"),
+        # bits taken away: rounded up, so the charge never looks smaller than it is
+        Row("drop-pattern bits certify subtracts", k + "pattern_bits", ch.pattern_bits,
+            "upper"),
+    ]
 
 
 def _range_note(value: float) -> str:
