@@ -531,3 +531,20 @@ def test_inspect_join_charge_rows_match_json(charge_run):
         assert consistent(shown_number(table[label][0]), doc["join_charge"][key], kind), label
     # Counting a dropped trial as a lost test round can only lower the bound.
     assert doc["join_charge"]["charged_chsh_lower_bound"] <= doc["chsh_lower_bound"]
+
+
+def test_certify_join_charge_rows_match_json_and_record(charge_run, tmp_path):
+    base = ["certify", "--log-spec", str(charge_run["spec"]), "--protocol", UNIFORM, "--seed",
+            str(FIXTURE / "seed.bin")]
+    t = _run([*base, "--out", str(tmp_path / "t")])
+    j = _run([*base, "--out", str(tmp_path / "j"), "--json"])
+    assert t.exit_code == j.exit_code, t.output
+    doc = json.loads(j.stdout)
+    rec_t = json.loads((tmp_path / "t" / "record.json").read_text())
+    rec = json.loads((tmp_path / "j" / "record.json").read_text())
+    rows = record_rows(rec)
+    assert {r.key for r in rows} >= {"join_charge.dropped_trials",
+                                     "join_charge.raw_bits_subtracted",
+                                     "join_charge.pattern_bits"}
+    assert assert_rows_match(rows, parse_table(t.stdout), doc, rec, table_record=rec_t) >= 15
+    assert doc["join_charge"]["dropped_trials"] == 5  # the fixture drops 5 trials at B

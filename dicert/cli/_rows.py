@@ -241,6 +241,17 @@ def _output_rows(rec: dict) -> list[Row]:
             Row("seed bits", "seed_bits", ext.get("seed_bits"), "count",
                 record="extractor.seed_bits", note="raw bits + output bits - 1 used"
                 if ext.get("output_bits") else "none: no output")]
+    charge = get_path(rec, "log.spec.join.charge")
+    if isinstance(charge, dict):  # a station join that dropped trials: what they cost
+        c = "log.spec.join.charge."
+        rows += [Row("dropped trials (station join)", "join_charge.dropped_trials",
+                     charge.get("dropped_trials"), "count", record=c + "dropped_trials",
+                     note="each counted as a lost test round in the estimate above"),
+                 Row("raw bits subtracted", "join_charge.raw_bits_subtracted",
+                     charge.get("raw_bits_subtracted"), "count",
+                     record=c + "raw_bits_subtracted"),
+                 Row("drop-pattern bits subtracted", "join_charge.pattern_bits",
+                     charge.get("pattern_bits"), "upper", record=c + "pattern_bits")]
     budget = rec.get("error_budget") or {}
     for i, term in enumerate(budget.get("terms") or []):
         if isinstance(term, dict):
