@@ -194,7 +194,10 @@ def _rows(summary, est, design, source, report, blocks, eps, block_error, p_refu
     if blocks:
         rows += [
             Row("blocks", "block_count", len(blocks), "count"),
-            Row("trials per block", "block_trials", summary.block_trials, "count"),
+            Row("trials per block", "block_trials", summary.block_trials, "count",
+                note="one block: the whole log" if summary.trials <= summary.block_trials
+                else "the last block holds the rest" if summary.trials % summary.block_trials
+                else ""),
             Row("block eps per side", "block_eps_per_side", block_error, "error"),
             Row("block CHSH estimate, lowest", "block_chsh_estimate_min",
                 min(b.chsh_estimate for b in blocks), "chsh"),
