@@ -464,3 +464,22 @@ def test_pef_without_drops_is_charged_the_pattern():
     pb = pattern_bits(10**5, 4)[0]
     assert res.charge.total_bits == pb and res.min_entropy_bits == 5000.0 - pb
     assert analyse_counts(c, proto, 2 * 10**5, finite=fin, design=ok).min_entropy_bits == 5000.0
+
+
+def test_report_shows_the_charge(run, tmp_path):
+    """The report's entropy section lists the charge, each number tagged with its record key
+    and rounded in the safe direction (bits charged up, the CHSH bound down)."""
+    from dicert.reporting.content import _sections
+
+    rec = _certify(run["spec"], tmp_path, "rep").record
+    facts = {x.key: x for _, items in _sections(rec) for x in items}
+    ch = rec["log"]["spec"]["join"]["charge"]
+    key = "log.spec.join.charge"
+    assert facts[f"{key}.dropped_trials"].text == "5"
+    assert facts[f"{key}.raw_bits_subtracted"].text == "10"
+    for k in ("pattern_bits", "total_bits"):
+        assert float(facts[f"{key}.{k}"].text) >= ch[k] > float(facts[f"{key}.{k}"].text) - 1e-3
+    low = facts[f"{key}.uncharged_estimate.chsh_lower_bound"]
+    assert float(low.text) <= ch["uncharged_estimate"]["chsh_lower_bound"]
+    again = _certify(run["spec"], tmp_path, "rep2").record
+    assert again["log"]["spec"]["join"]["charge"] == ch  # deterministic

@@ -316,6 +316,7 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
                  "certified_min_entropy_bits / log.trials", "down", decimals=6),
                f("min-entropy if accepted, bits (rounded down)",
                  f"{fin}.details.min_entropy_if_accepted_bits", "down", decimals=3),
+               *_charge_facts(f),
                f("entropy error", f"{fin}.entropy_error", "exact"),
                f("smoothing parameter", f"{fin}.smoothing_eps", "exact"),
                f("single-round min-entropy bound", f"{sr}.bound_min_entropy", "text"),
@@ -345,6 +346,20 @@ def _sections(record: Mapping[str, Any]) -> list[tuple[str, list[Fact]]]:
             ("entropy", [x for x in entropy if x.value is not None
                          and not isinstance(x.value, Mapping)]),
             ("output", [x for x in output if x.value is not None])]
+
+
+def _charge_facts(f: Any) -> list[Fact]:
+    """What trials dropped by a station join cost (record ``log.spec.join.charge``)."""
+    ch = "log.spec.join.charge"
+    return [f("trials dropped by the station join, each charged as a lost test round",
+              f"{ch}.dropped_trials", "int"),
+            f("raw bits of the dropped trials, subtracted", f"{ch}.raw_bits_subtracted", "int"),
+            f("drop-pattern bits, subtracted (rounded up)", f"{ch}.pattern_bits", "up",
+              decimals=3),
+            f("station-join charge in total, bits (rounded up)", f"{ch}.total_bits", "up",
+              decimals=3),
+            f("CHSH lower bound of the trials kept, before the charge (rounded down)",
+              f"{ch}.uncharged_estimate.chsh_lower_bound", "down")]
 
 
 def _eps_facts(record: Mapping[str, Any]) -> tuple[list[tuple[Fact, str]], Fact | None, str]:
