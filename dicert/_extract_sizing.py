@@ -63,7 +63,7 @@ def _log2_inverse(eps: float) -> float | Any:
         return -mpmath.log(mpmath.mpf(eps), 2)
 
 
-def lhl_output_length(min_entropy_bits: float, eps_ext: float) -> int:
+def lhl_output_length(certified_min_entropy_bits: float, eps_ext: float) -> int:
     """Conservative leftover-hash output length m = floor(k - 2 log2(1/eps_ext)), never negative.
 
     With k the (smooth) min-entropy of the input conditioned on the adversary's (possibly
@@ -75,7 +75,7 @@ def lhl_output_length(min_entropy_bits: float, eps_ext: float) -> int:
 
     Parameters
     ----------
-    min_entropy_bits : float
+    certified_min_entropy_bits : float
         k >= 0, the smooth min-entropy in bits.
     eps_ext : float
         Extractor error, 0 < eps_ext < 1.
@@ -91,9 +91,9 @@ def lhl_output_length(min_entropy_bits: float, eps_ext: float) -> int:
        side information", IEEE Trans. Inf. Theory 57(8), 5524-5535 (2011).
     .. [2] R. Impagliazzo, L. A. Levin, M. Luby, STOC 1989 (classical leftover hash lemma).
     """
-    k = _finite_float(min_entropy_bits, "min_entropy_bits")
+    k = _finite_float(certified_min_entropy_bits, "certified_min_entropy_bits")
     if k < 0:
-        raise ParameterError(f"min_entropy_bits must be >= 0, got {k!r}")
+        raise ParameterError(f"certified_min_entropy_bits must be >= 0, got {k!r}")
     eps = _finite_float(eps_ext, "eps_ext")
     if not 0.0 < eps < 1.0:
         raise ParameterError(f"eps_ext must be in (0, 1), got {eps!r}")
@@ -119,7 +119,7 @@ class LhlSizing:
     """
 
     output_bits: int
-    min_entropy_bits: float
+    certified_min_entropy_bits: float
     eps_ext: float
     eps_smooth: float
     total_error: float
@@ -130,12 +130,12 @@ class LhlSizing:
     references: tuple[str, ...]
 
 
-def lhl_sizing(min_entropy_bits: float, eps_ext: float, eps_smooth: float = 0.0) -> LhlSizing:
+def lhl_sizing(certified_min_entropy_bits: float, eps_ext: float, eps_smooth: float = 0.0) -> LhlSizing:
     """Output length per :func:`lhl_output_length` plus the documented error accounting.
 
     Parameters
     ----------
-    min_entropy_bits : float
+    certified_min_entropy_bits : float
         Smooth min-entropy k = H_min^{eps_smooth}(X|E) in bits.
     eps_ext : float
         Extractor error parameter, 0 < eps_ext < 1.
@@ -151,13 +151,13 @@ def lhl_sizing(min_entropy_bits: float, eps_ext: float, eps_smooth: float = 0.0)
     .. [1] M. Tomamichel, C. Schaffner, A. Smith, R. Renner, IEEE Trans. Inf. Theory 57(8),
        5524-5535 (2011), Theorem 1 with delta = 2**-m (two-universal hashing).
     """
-    m = lhl_output_length(min_entropy_bits, eps_ext)
+    m = lhl_output_length(certified_min_entropy_bits, eps_ext)
     es = _finite_float(eps_smooth, "eps_smooth")
     if not 0.0 <= es < 1.0:
         raise ParameterError(f"eps_smooth must be in [0, 1), got {es!r}")
     return LhlSizing(
         output_bits=m,
-        min_entropy_bits=float(min_entropy_bits),
+        certified_min_entropy_bits=float(certified_min_entropy_bits),
         eps_ext=float(eps_ext),
         eps_smooth=es,
         total_error=2.0 * es + float(eps_ext),

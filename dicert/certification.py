@@ -559,7 +559,7 @@ def _certify_locked(*, log: Any, run: RunInputs, state: Any, protocol_change: st
         status=analysis.status, output_bits=analysis.output_bits,
         bits_file=out / BITS_NAME if publish else None,
         record_file=out / RECORD_NAME,
-        chain_file=chain_file, certified_min_entropy_bits=analysis.min_entropy_bits,
+        chain_file=chain_file, certified_min_entropy_bits=analysis.certified_min_entropy_bits,
         soundness_error=analysis.total_error, raw_bits=scan.raw_bits, trials=scan.trials,
         abort_reason=analysis.abort_reason, record_sha256=rec_sha, record=record,
         log_coverage=scan.scope, stopped_early=scan.stopped_early,

@@ -639,7 +639,7 @@ def longest_symbol_run(raw: Any, raw_bits: int, bits_per_symbol: int,
 
 
 def repetition_count_screen(raw: Any, raw_bits: int, bits_per_symbol: int,
-                            min_entropy_bits: float) -> dict:
+                            certified_min_entropy_bits: float) -> dict:
     """NIST SP 800-90B section 4.4.1 repetition count test on the harvested outcome symbols.
 
     Cutoff C = 1 + ceil(-log2(alpha) / H) with H = the certified min-entropy per symbol
@@ -652,7 +652,7 @@ def repetition_count_screen(raw: Any, raw_bits: int, bits_per_symbol: int,
     out: dict[str, Any] = {"name": "repetition count (raw outcomes)",
                            "section": "NIST SP 800-90B 4.4.1", "symbols": n_sym,
                            "bits_per_symbol": int(bits_per_symbol), "longest_run": longest}
-    h = float(min_entropy_bits) / n_sym if n_sym else 0.0
+    h = float(certified_min_entropy_bits) / n_sym if n_sym else 0.0
     if h <= 0 or n_sym < 2:
         out.update(applicable=False, cutoff=None, min_entropy_per_symbol=h, passed=True)
         return out
@@ -665,7 +665,7 @@ def repetition_count_screen(raw: Any, raw_bits: int, bits_per_symbol: int,
 
 def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIGNIFICANCE,
                    *, raw: Any = None, raw_bits: int = 0, bits_per_symbol: int = 2,
-                   min_entropy_bits: float = 0.0) -> dict:
+                   certified_min_entropy_bits: float = 0.0) -> dict:
     """Gross-failure screens on extractor output bits, as a record section.
 
     The NIST SP 800-22 rev. 1a frequency, block-frequency, runs and longest-run tests and the
@@ -694,7 +694,7 @@ def output_screens(output: bytes, m_bits: int, significance: float = DEFAULT_SIG
               "passed": t.passed} for t in rep.tests]
     rct = None
     if raw is not None:
-        rct = repetition_count_screen(raw, raw_bits, bits_per_symbol, min_entropy_bits)
+        rct = repetition_count_screen(raw, raw_bits, bits_per_symbol, certified_min_entropy_bits)
     failure = None
     if rct is not None and not rct["passed"]:
         failure = (f"stuck outcomes: {rct['longest_run']} identical raw outcome symbols in a "

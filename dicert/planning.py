@@ -35,7 +35,7 @@ Probability estimation factors (PEFs, method "pef", classical side information)
   the cap on analysis trials (the protocol's n_max by default). The trials consumed are the
   calibration prefix plus min(expected stopping trial, cap), with the expected stopping trial
   (beta sigma_target + log2(1/eps_pe)) / E[log2 F] (Wald's identity, up to the overshoot of the
-  last factor); seed and ``rate_per_trial`` are per trial consumed.
+  last factor); seed and ``output_bits_per_trial`` are per trial consumed.
 - The protocol's own PEF row ("declared") uses its beta and target; ``pef.beta_chosen`` is the
   beta minimising the expected trials for that target (:func:`dicert.finite.pef.plan_pef`), with
   its expected trials and the trials for 99% completeness (normal approximation;
@@ -116,17 +116,21 @@ GAMMA_SWEEP = (1e-4, 1.0)
 class PlanMethod:
     """One method's plan at the given number of trials and gamma.
 
-    ``pef`` carries the PEF specifics for method "pef" rows (None for the others).
+    ``pef`` carries the PEF specifics for method "pef" rows (None for the others). Field names
+    follow the README glossary: ``seed_bits`` is the extractor seed to provision (raw bits +
+    output bits - 1), ``settings_randomness_bits`` the random bits spent on choosing settings
+    (called ``seed_bits`` before version 0.2 of this class; the other former names remain as
+    read-only aliases).
     """
 
     name: str
     side_information: str
     thresholds: str  # "declared" | "derived"
     parameters: dict[str, Any]
-    min_entropy_bits: float
-    certified_bits: int  # extractable output on acceptance
-    rate_per_trial: float  # certified_bits / trials
-    seed_bits: float
+    certified_min_entropy_bits: float
+    output_bits: int  # extractable output on acceptance
+    output_bits_per_trial: float  # output_bits / trials
+    settings_randomness_bits: float  # random bits spent on choosing settings
     net_bits: float
     abort_probability: float
     abort_probability_kind: str
@@ -135,33 +139,45 @@ class PlanMethod:
     best_gamma: float | None
     best_gamma_net_bits: float | None
     curve_trials: tuple[float, ...]
-    curve_certified_bits: tuple[float, ...]
+    curve_output_bits: tuple[float, ...]
     pef: PefPlanDetails | None = None
     # Extractor input at these trials (at most; the raw bits the extractor may read) and the
     # Toeplitz seed it needs, n_raw + m - 1 bits (0 when m = 0); a beacon provisions this.
     raw_bits: int = 0
-    extractor_seed_bits: int = 0
-    extractor_seed_bytes: int = 0
+    seed_bits: int = 0
+    seed_bytes: int = 0
     # The output at best_gamma (same trials), and the gamma trade-off sweep behind it.
-    best_gamma_certified_bits: int | None = None
+    best_gamma_output_bits: int | None = None
     best_gamma_abort_probability: float | None = None
-    best_gamma_extractor_seed_bits: int | None = None
+    best_gamma_seed_bits: int | None = None
     gamma_sweep: tuple[float, ...] = ()
-    gamma_sweep_certified_bits: tuple[int, ...] = ()
+    gamma_sweep_output_bits: tuple[int, ...] = ()
     gamma_sweep_net_bits: tuple[float, ...] = ()
     gamma_sweep_abort_probability: tuple[float, ...] = ()
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
-        rows = [("name", self.name), ("certified_bits", self.certified_bits),
+        rows = [("name", self.name), ("output_bits", self.output_bits),
                 ("net_bits", self.net_bits), ("abort_probability", self.abort_probability)]
         if full:
             rows += [("side_information", self.side_information),
-                     ("min_entropy_bits", self.min_entropy_bits),
-                     ("rate_per_trial", self.rate_per_trial), ("seed_bits", self.seed_bits),
+                     ("certified_min_entropy_bits", self.certified_min_entropy_bits),
+                     ("output_bits_per_trial", self.output_bits_per_trial),
+                     ("settings_randomness_bits", self.settings_randomness_bits),
                      ("min_trials_positive", self.min_trials_positive),
                      ("min_trials_net_positive", self.min_trials_net_positive),
                      ("best_gamma", self.best_gamma)]
         return rows
+
+    # Names of earlier versions (read-only); ``seed_bits`` changed meaning (see above).
+    min_entropy_bits = property(lambda self: self.certified_min_entropy_bits)
+    certified_bits = property(lambda self: self.output_bits)
+    rate_per_trial = property(lambda self: self.output_bits_per_trial)
+    extractor_seed_bits = property(lambda self: self.seed_bits)
+    extractor_seed_bytes = property(lambda self: self.seed_bytes)
+    best_gamma_certified_bits = property(lambda self: self.best_gamma_output_bits)
+    best_gamma_extractor_seed_bits = property(lambda self: self.best_gamma_seed_bits)
+    curve_certified_bits = property(lambda self: self.curve_output_bits)
+    gamma_sweep_certified_bits = property(lambda self: self.gamma_sweep_output_bits)
 
 
 @displayed
@@ -187,12 +203,12 @@ class PlanResult:
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("protocol", self.protocol), ("trials", self.trials), ("gamma", self.gamma),
                 ("chsh", self.chsh),
-                ("certified_bits", {m.name: m.certified_bits for m in self.methods})]
+                ("output_bits", {m.name: m.output_bits for m in self.methods})]
         if full:
             rows[-1:] = [("device", self.device), ("trials_source", self.trials_source),
                          ("eps_ext", self.eps_ext)]
             for m in self.methods:
-                rows += [(f"{m.name}: certified bits", m.certified_bits),
+                rows += [(f"{m.name}: certified bits", m.output_bits),
                          (f"{m.name}: net bits (after seed)", m.net_bits),
                          (f"{m.name}: abort probability", m.abort_probability),
                          (f"{m.name}: min trials, net positive", m.min_trials_net_positive)]
@@ -374,26 +390,26 @@ def plan(protocol: Any, *, chsh: float | None = None, win_probability: float | N
         raw = _raw_bits(mdl, n)
         out.append(PlanMethod(
             name=mdl.name, side_information=mdl.side, thresholds=mdl.thresholds,
-            parameters=ev.params, min_entropy_bits=ev.k, certified_bits=ev.m,
-            rate_per_trial=ev.m / consumed if consumed > 0 else 0.0, seed_bits=ev.seed,
+            parameters=ev.params, certified_min_entropy_bits=ev.k, output_bits=ev.m,
+            output_bits_per_trial=ev.m / consumed if consumed > 0 else 0.0, settings_randomness_bits=ev.seed,
             net_bits=ev.net, abort_probability=ev.abort, abort_probability_kind=mdl.abort_kind,
             min_trials_positive=_min_trials(mdl, g, "m"),
             min_trials_net_positive=_min_trials(mdl, g, "net"),
             best_gamma=best_g, best_gamma_net_bits=float(nets[j]) if best_g else None,
-            curve_trials=tuple(float(x) for x in ns), curve_certified_bits=curve,
-            pef=details, raw_bits=raw, extractor_seed_bits=_toeplitz_seed(raw, ev.m),
-            extractor_seed_bytes=(_toeplitz_seed(raw, ev.m) + 7) // 8,
-            best_gamma_certified_bits=int(sweep[j].m) if best_g else None,
+            curve_trials=tuple(float(x) for x in ns), curve_output_bits=curve,
+            pef=details, raw_bits=raw, seed_bits=_toeplitz_seed(raw, ev.m),
+            seed_bytes=(_toeplitz_seed(raw, ev.m) + 7) // 8,
+            best_gamma_output_bits=int(sweep[j].m) if best_g else None,
             best_gamma_abort_probability=float(sweep[j].abort) if best_g else None,
-            best_gamma_extractor_seed_bits=_toeplitz_seed(raw, sweep[j].m) if best_g else None,
+            best_gamma_seed_bits=_toeplitz_seed(raw, sweep[j].m) if best_g else None,
             gamma_sweep=tuple(float(x) for x in gammas),
-            gamma_sweep_certified_bits=tuple(int(e.m) for e in sweep),
+            gamma_sweep_output_bits=tuple(int(e.m) for e in sweep),
             gamma_sweep_net_bits=tuple(float(e.net) for e in sweep),
             gamma_sweep_abort_probability=tuple(float(e.abort) for e in sweep)))
     notes = (
-        ("certified_bits is the extractable output on acceptance, "
+        ("output_bits is the extractable output on acceptance, "
          "floor(k - 2 log2(1/eps_ext)); multiply by 1 - abort_probability for the mean"),
-        ("seed_bits: n (h2(gamma) + 2 gamma) for spot-checking, 2n for uniform settings; the "
+        ("settings_randomness_bits: n (h2(gamma) + 2 gamma) for spot-checking, 2n for uniform settings; the "
          "extractor seed is returned and not counted"),
         ("'derived' methods use thresholds set for this device quality and eps_comp "
          f"= {eps_comp:g}; 'declared' ones use the protocol's"),
@@ -498,7 +514,7 @@ def plot_plan(result: PlanResult, path: Any) -> None:
     y_vals: list[float] = []
     for m in result.methods:
         xs = np.asarray(m.curve_trials)
-        ys = np.asarray(m.curve_certified_bits, dtype=float)
+        ys = np.asarray(m.curve_output_bits, dtype=float)
         ok = ys > 0
         if m.pef is not None:
             label = f"{m.name} ({m.side_information}, best target per n)"
@@ -513,13 +529,13 @@ def plot_plan(result: PlanResult, path: Any) -> None:
             (line,) = ax.loglog([], [], marker="o", ms=3, label=label + ": no output")
             color = line.get_color()
         d = m.pef
-        if d is not None and m.certified_bits > 0 and math.isfinite(d.expected_trials):
-            ax.loglog([d.expected_trials], [m.certified_bits], marker="*", ms=11, ls="none",
+        if d is not None and m.output_bits > 0 and math.isfinite(d.expected_trials):
+            ax.loglog([d.expected_trials], [m.output_bits], marker="*", ms=11, ls="none",
                       color=color, label=f"{m.name}: {d.target_source} target, expected trials")
         if m.gamma_sweep:
             gs = np.asarray(m.gamma_sweep)
             net = np.asarray(m.gamma_sweep_net_bits, dtype=float)
-            cert = np.asarray(m.gamma_sweep_certified_bits)
+            cert = np.asarray(m.gamma_sweep_output_bits)
             show = cert > 0
             if show.any():
                 bx.semilogx(gs[show], net[show], marker="o", ms=3, color=color)
@@ -537,7 +553,7 @@ def plot_plan(result: PlanResult, path: Any) -> None:
     bx.axhline(0.0, color="grey", lw=1)
     bx.axvline(result.gamma, color="grey", ls=":", lw=1)
     pos = [v for m in result.methods for v, c in zip(m.gamma_sweep_net_bits,
-                                                       m.gamma_sweep_certified_bits) if c > 0]
+                                                       m.gamma_sweep_output_bits) if c > 0]
     if pos:
         top = max(max(pos), 1.0)
         bx.set_ylim(max(min(pos), -top) * 1.1 if min(pos) < 0 else -0.05 * top, top * 1.15)

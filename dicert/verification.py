@@ -446,7 +446,7 @@ def _rerun_extraction(scan: Any, sink: Any, facts: RecordFacts, found: Findings,
             recomputed_output, facts.output_bits, spec_of(protocol).significance,
             raw=sink.data(), raw_bits=scan.raw_bits,
             bits_per_symbol=protocol.harvest.bits_per_trial,
-            min_entropy_bits=float(_get(body, "certified_min_entropy_bits"))
+            certified_min_entropy_bits=float(_get(body, "certified_min_entropy_bits"))
             if status == "certified" else float(
                 _get(body, "entropy.finite_size.certified_min_entropy_bits")))
         _compare({"output_screens": scr}, {"output_screens": body["output_screens"]})

@@ -311,7 +311,7 @@ def test_spotcheck_protocol_certifies_honest_devices(spot_logs, tmp_path):
     # The record carries exactly what the finite-size engine gives for the recorded counts.
     direct = certify_eat(np.array(rec["counts"]["values"]), proto.analysis, proto.design,
                          harvest=proto.harvest)
-    assert res.certified_min_entropy_bits == pytest.approx(direct.min_entropy_bits, rel=1e-12)
+    assert res.certified_min_entropy_bits == pytest.approx(direct.certified_min_entropy_bits, rel=1e-12)
     # Raw output A^n B^n of every round (entropy-accumulation methods note, section 1).
     assert res.raw_bits == 2 * 1_000_000
     # Error budget eps_EA + 2 eps_s + eps_ext (methods note, section 5; TSSR 2011 for 2 eps_s).

@@ -44,13 +44,13 @@ def test_plan_goal_rate_at_w085():
     rows = {m.name: m for m in res.methods}
     old = rows["eat-df-conservative"]
     new = rows["eat-df-conservative+radau-vn-AB"]
-    assert 0.8956 - 1e-4 <= old.rate_per_trial <= 0.8956 + 2e-3
-    assert new.rate_per_trial >= 1.10
+    assert 0.8956 - 1e-4 <= old.output_bits_per_trial <= 0.8956 + 2e-3
+    assert new.output_bits_per_trial >= 1.10
     assert new.side_information == "quantum" and new.parameters["single_round"] == "radau-vn-AB"
-    best_q = max(m.rate_per_trial for m in res.methods if m.side_information == "quantum")
-    assert best_q == new.rate_per_trial
+    best_q = max(m.output_bits_per_trial for m in res.methods if m.side_information == "quantum")
+    assert best_q == new.output_bits_per_trial
     # DFR row with the pair bound exists too and never beats DF (methods note 3(c))
-    assert rows["eat-dfr+radau-vn-AB"].rate_per_trial <= new.rate_per_trial
+    assert rows["eat-dfr+radau-vn-AB"].output_bits_per_trial <= new.output_bits_per_trial
 
 
 def test_rate_never_exceeds_the_single_round_bound():
@@ -87,11 +87,11 @@ def test_honest_counts_certify_the_planned_amount():
                     SettingsDesign(gamma=gamma, generation=(0, 0)))
     assert r.accepted and r.method == "eat-df-conservative+radau-vn-AB"
     planned, _, rate = eat_min_entropy(params, n, gamma)
-    assert r.min_entropy_bits == planned == pytest.approx(n * rate.rate_per_round)
+    assert r.certified_min_entropy_bits == planned == pytest.approx(n * rate.rate_per_round)
     old = certify_eat(_counts(np.random.default_rng(11), n, gamma, 0.843),
                       EatParams(expected_win_probability=0.84, tolerance=0.012, eps_s=EPS,
                                 eps_ea=EPS), SettingsDesign(gamma=gamma, generation=(0, 0)))
-    assert r.min_entropy_bits > old.min_entropy_bits
+    assert r.certified_min_entropy_bits > old.certified_min_entropy_bits
     sr = r.details["single_round"]
     assert sr["method"] == "radau-vn-AB" and "Brown" in sr["reference"]
     assert any("Brown" in ref for ref in r.references)
@@ -103,7 +103,7 @@ def test_classical_devices_never_certify_with_pair_bound():
                        single_round="radau-vn-AB")
     r = certify_eat(_counts(rng, 10**6, 0.05, 0.75), params,
                     SettingsDesign(gamma=0.05, generation=(0, 0)))
-    assert not r.accepted and r.min_entropy_bits == 0.0
+    assert not r.accepted and r.certified_min_entropy_bits == 0.0
 
 
 def test_params_key_validation():
@@ -130,8 +130,8 @@ def test_shipped_pair_protocol_certifies_simulated_run_as_planned(tmp_path):
     pl = plan(proto, trials=n, n_points=2, gamma_points=2)
     row = {m.name: m for m in pl.methods}["eat-df-conservative+radau-vn-AB"]
     assert row.thresholds == "declared"
-    assert res.min_entropy_bits == pytest.approx(row.min_entropy_bits, rel=1e-12)
-    assert res.output_bits == row.certified_bits
+    assert res.certified_min_entropy_bits == pytest.approx(row.certified_min_entropy_bits, rel=1e-12)
+    assert res.output_bits == row.output_bits
     fs = res.record["entropy"]["finite_size"]
     assert "radau" in fs["method"]
-    assert math.isfinite(res.min_entropy_bits)
+    assert math.isfinite(res.certified_min_entropy_bits)

@@ -316,7 +316,7 @@ def test_table_tangent_is_below():
     for s0 in (2.3, 2.6, 2.8):
         v, k = tab.tangent(s0)
         for s in np.linspace(2.0, TSIRELSON, 41):
-            assert v + k * (s - s0) <= tab.lookup(s, "AB").min_entropy_bits + 1e-15
+            assert v + k * (s - s0) <= tab.lookup(s, "AB").single_round_bound_bits + 1e-15
 
 
 def test_corrupt_table_rejected(tmp_path):

@@ -196,10 +196,10 @@ def test_honest_run_certifies_expected_amount():
     n, gamma = 10**7, 0.05
     params = EatParams(**SHIPPED)
     r = certify_eat(_counts(rng, n, gamma, 0.843), params, Design(gamma=gamma, generation=(0, 0)))
-    assert r.accepted and r.min_entropy_bits > 0
+    assert r.accepted and r.certified_min_entropy_bits > 0
     assert r.method == "eat-df-conservative" and r.side_information == "quantum"
-    assert r.min_entropy_bits == pytest.approx(n * r.details["rate_per_round_bits"])
-    assert r.min_entropy_bits < n * vn_entropy_win(0.84 - 0.012)
+    assert r.certified_min_entropy_bits == pytest.approx(n * r.details["rate_per_round_bits"])
+    assert r.certified_min_entropy_bits < n * vn_entropy_win(0.84 - 0.012)
     assert r.total_error(1e-8) == pytest.approx(1e-8 + 2e-8 + 1e-8)
     assert "conservative" in r.details["constants"]
 
@@ -219,7 +219,7 @@ def test_threshold_edge_is_inclusive_and_tight():
     c[1, 0, 0, 0, 1] += 1
     c[1, 0, 0, 0, 0] -= 1
     r = certify_eat(c, params, design)
-    assert not r.accepted and r.min_entropy_bits == 0 and "exceed" in r.details["abort_reason"]
+    assert not r.accepted and r.certified_min_entropy_bits == 0 and "exceed" in r.details["abort_reason"]
     del rng
 
 
@@ -230,7 +230,7 @@ def test_never_negative():
     params = EatParams(variant="dfr", expected_win_probability=0.85,
                        tolerance=chernoff_tolerance(n, gamma, 0.85, 1e-6), eps_s=EPS, eps_ea=EPS)
     r = certify_eat(_counts(rng, n, gamma, 0.853), params, Design(gamma=gamma, generation=(0, 0)))
-    assert r.accepted and r.min_entropy_bits == 0.0
+    assert r.accepted and r.certified_min_entropy_bits == 0.0
     assert r.details["rate_per_round_bits"] < 0
 
 
@@ -245,7 +245,7 @@ def test_classical_devices_never_certify():
             design = Design(gamma=gamma, generation=(0, 0))
             for _ in range(300):
                 r = certify_eat(_counts(rng, n, gamma, 0.75), params, design)
-                assert r.min_entropy_bits == 0.0 and not r.accepted
+                assert r.certified_min_entropy_bits == 0.0 and not r.accepted
 
 
 def test_classical_threshold_at_or_below_local_value_certifies_zero():
@@ -255,7 +255,7 @@ def test_classical_threshold_at_or_below_local_value_certifies_zero():
     params = EatParams(expected_win_probability=0.76, eps_comp=1e-6, eps_s=EPS, eps_ea=EPS)
     r = certify_eat(_counts(rng, 1000, 1.0, 0.85), params, Design(gamma=1.0, generation=(0, 0)))
     assert r.details["certified_win_rate"] <= 0.75
-    assert r.accepted and r.min_entropy_bits == 0.0
+    assert r.accepted and r.certified_min_entropy_bits == 0.0
 
 
 def test_dispatch_rounds_and_harvest_checks():

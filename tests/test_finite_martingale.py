@@ -78,7 +78,7 @@ def test_corrected_statement_does_not_depend_on_observed_value():
     lo = certify_martingale(counts_from_probs(singlet_behaviour(0.90), n_set), params)
     hi = certify_martingale(counts_from_probs(singlet_behaviour(0.99), n_set), params)
     assert lo.accepted and hi.accepted
-    assert lo.min_entropy_bits == hi.min_entropy_bits > 0
+    assert lo.certified_min_entropy_bits == hi.certified_min_entropy_bits > 0
 
 
 # ----------------------------------------------------------------- margin and estimator
@@ -169,7 +169,7 @@ def test_classical_devices_never_certify_at_shipped_threshold():
     for n in (100, 1000, 10**5):
         for c in _classical_counts(rng, n, 1.0, 300):
             r = certify_martingale(c, params)
-            assert r.min_entropy_bits == 0.0
+            assert r.certified_min_entropy_bits == 0.0
 
 
 def test_classical_devices_tight_threshold_respects_eps():
@@ -184,7 +184,7 @@ def test_classical_devices_tight_threshold_respects_eps():
     positives = 0
     runs = 2000
     for c in _classical_counts(rng, n, gamma, runs):
-        positives += certify_martingale(c, params, design).min_entropy_bits > 0
+        positives += certify_martingale(c, params, design).certified_min_entropy_bits > 0
     assert positives / runs <= eps + 4 * math.sqrt(eps * (1 - eps) / runs)
 
 
@@ -194,7 +194,7 @@ def test_classical_devices_tight_threshold_respects_eps():
 def test_abort_gives_zero_and_reason():
     c = counts_from_probs(singlet_behaviour(0.75), 10_000)  # S = 2.12 < 2.6
     r = certify_martingale(c, MartingaleParams(chsh_threshold=2.6, eps_est=1e-6))
-    assert not r.accepted and r.min_entropy_bits == 0.0
+    assert not r.accepted and r.certified_min_entropy_bits == 0.0
     assert "below the pre-declared threshold" in r.details["abort_reason"]
     assert r.side_information == "classical"
     assert r.total_error(1e-8) == pytest.approx(1e-6 + 1e-8)
@@ -204,7 +204,7 @@ def test_tiny_n_is_conservative():
     c = counts_from_probs(singlet_behaviour(1.0), 8)
     assert c.sum() < 40
     r = certify_martingale(c, MartingaleParams(chsh_threshold=2.8, eps_est=1e-6))
-    assert r.min_entropy_bits == 0.0  # margin far larger than the room above 2
+    assert r.certified_min_entropy_bits == 0.0  # margin far larger than the room above 2
 
 
 def test_dispatch_and_generation_harvest():
@@ -222,9 +222,9 @@ def test_dispatch_and_generation_harvest():
     r_all = certify_counts(c, proto)
     proto.harvest = Harvest(parties="AB", select="generation")
     r_gen = certify_counts(c, proto)
-    assert r_all.accepted and r_gen.accepted and r_gen.min_entropy_bits > 0
-    assert r_gen.min_entropy_bits == pytest.approx(
-        r_all.min_entropy_bits - n * math.log2(1 + 3 * gamma))
+    assert r_all.accepted and r_gen.accepted and r_gen.certified_min_entropy_bits > 0
+    assert r_gen.certified_min_entropy_bits == pytest.approx(
+        r_all.certified_min_entropy_bits - n * math.log2(1 + 3 * gamma))
 
 
 def test_bad_counts_and_designs_are_rejected():
@@ -280,6 +280,6 @@ def test_npa_pair_bound_route():
     pa = MartingaleParams(chsh_threshold=2.6, eps_est=1e-6)
     pn = MartingaleParams(chsh_threshold=2.6, eps_est=1e-6, single_round="npa-AB")
     ra, rn = certify_martingale(c, pa), certify_martingale(c, pn)
-    assert rn.accepted and rn.min_entropy_bits > ra.min_entropy_bits > 0
+    assert rn.accepted and rn.certified_min_entropy_bits > ra.certified_min_entropy_bits > 0
     with pytest.raises(ParameterError, match="npa-AB"):
         certify_martingale(c, pn, harvest=Harvest(parties="A", select="all"))

@@ -321,7 +321,7 @@ def test_eat_protocol_charges_losses(tmp_path):
     assert charged.finite.details["losses"] == ref.finite.details["losses"]
     assert charged.finite.details["losses"] == analyse_counts(
         c, proto, 2 * int(c.sum())).finite.details["losses"] + 4
-    assert charged.min_entropy_bits <= max(0.0, ref.min_entropy_bits
+    assert charged.certified_min_entropy_bits <= max(0.0, ref.certified_min_entropy_bits
                                            - charged.charge.total_bits) + 1e-9
 
 
@@ -455,15 +455,15 @@ def test_pef_without_drops_is_charged_the_pattern():
 
     proto = load_protocol(ROOT / "protocols" / "ch-photonic.toml")
     fin = FiniteSizeResult(method="pef", side_information="quantum", accepted=True,
-                           min_entropy_bits=5000.0, eps={"eps_pe": 1e-6})
+                           certified_min_entropy_bits=5000.0, eps={"eps_pe": 1e-6})
     c = np.zeros((2,) * 5, np.int64)
     c[1, 0, 0, 0, 0] = 10**5
     join = {"matched": 10**5, "missing_at_a": 0, "missing_at_b": 0, "max_missing": 4}
     ok = SimpleNamespace(passed=True, abort_reason=None)
     res = analyse_counts(c, proto, 2 * 10**5, finite=fin, design=ok, join=join)
     pb = pattern_bits(10**5, 4)[0]
-    assert res.charge.total_bits == pb and res.min_entropy_bits == 5000.0 - pb
-    assert analyse_counts(c, proto, 2 * 10**5, finite=fin, design=ok).min_entropy_bits == 5000.0
+    assert res.charge.total_bits == pb and res.certified_min_entropy_bits == 5000.0 - pb
+    assert analyse_counts(c, proto, 2 * 10**5, finite=fin, design=ok).certified_min_entropy_bits == 5000.0
 
 
 def test_report_shows_the_charge(run, tmp_path):

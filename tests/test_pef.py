@@ -308,7 +308,7 @@ def test_first_crossing_matches_per_trial_oracle():
     assert res.accepted and res.method == "pef" and res.side_information == "classical"
     assert res.details["success_trial_index"] == first
     assert res.details["harvest_bits"] == 2 * (first + 1)
-    assert res.min_entropy_bits == 511.0
+    assert res.certified_min_entropy_bits == 511.0
     assert res.total_error(1e-10) == pytest.approx(2.0 ** -64 + 1e-10)  # eps_PE + eps_ext [MN]
     # The methods note's planning value: ~3.2e3 trials for 512 bits at 2^-64 [MN].
     assert 2000 < first < 5000
@@ -344,7 +344,7 @@ def test_counts_variant_and_abort_paths():
     # n_max reached without success: aborted with 0 bits.
     small = _params(n_max=500)
     res = P.certify_pef(codes, small)
-    assert not res.accepted and res.min_entropy_bits == 0.0
+    assert not res.accepted and res.certified_min_entropy_bits == 0.0
     assert res.details["analysis_trials"] == 500
     # A generation-round trial (t = 0) under uniform settings is outside the model: factor 0.
     bad = codes.copy()

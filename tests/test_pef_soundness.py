@@ -116,7 +116,7 @@ def test_local_devices_never_succeed():
     c = box[z].argmax(axis=1)
     codes = ((1 << 4) | (4 * z + c)).astype(np.uint8)
     res = P.certify_pef(codes, params)
-    assert not res.accepted and res.min_entropy_bits == 0.0
+    assert not res.accepted and res.certified_min_entropy_bits == 0.0
 
 
 def test_quantum_device_reaches_target_and_estimate_holds():
@@ -174,7 +174,7 @@ def test_local_devices_never_succeed_with_adaptive_calibration():
                 acc.update(codes)
                 log2f.append(np.log2(acc.pef.factors[z, c]))  # the PEF that scored them
         res = acc.result()
-        assert not res.accepted and res.min_entropy_bits == 0.0
+        assert not res.accepted and res.certified_min_entropy_bits == 0.0
         assert res.details["blocks_total"] == n_blocks
         run = np.cumsum(np.concatenate(log2f))
         assert res.details["log2_t"] == pytest.approx(run[-1], abs=1e-9)

@@ -112,11 +112,11 @@ def test_plan_eat_protocol_entries():
     assert df.thresholds == "declared" and df.side_information == "quantum"
     # Consistent arithmetic: output = floor(k - 2 log2(1/eps_ext)) (leftover hash lemma,
     # Tomamichel et al., IEEE TIT 57, 5524 (2011)); net = output - seed.
-    assert df.certified_bits == math.floor(df.min_entropy_bits - 2 * math.log2(1e8))
-    assert df.net_bits == pytest.approx(df.certified_bits - df.seed_bits)
+    assert df.output_bits == math.floor(df.certified_min_entropy_bits - 2 * math.log2(1e8))
+    assert df.net_bits == pytest.approx(df.output_bits - df.settings_randomness_bits)
     assert df.abort_probability <= 1e-6  # tolerance derived from eps_comp by the exact tail
     # DF beats DFR (methods note 3(c)); the planner's smallest n are ordered.
-    assert df.certified_bits >= res.methods[2].certified_bits
+    assert df.output_bits >= res.methods[2].output_bits
     assert df.min_trials_positive <= df.min_trials_net_positive
     # Exact completeness gives a smaller tolerance than Chernoff, hence at most the note's
     # Chernoff-based smallest n (2.4e6 at gamma = 0.01, w = 0.85).
@@ -132,7 +132,7 @@ def test_plan_shipped_martingale_protocol_and_determinism():
     assert a == b
     mart = a.methods[0]
     assert mart.name == "martingale-azuma" and mart.thresholds == "declared"
-    assert mart.seed_bits == 2 * a.trials  # uniform settings every round
+    assert mart.settings_randomness_bits == 2 * a.trials  # uniform settings every round
     assert a.win_probability == pytest.approx(0.5 + 2.74 / 8)
 
 
@@ -186,7 +186,7 @@ def test_params_objects_accepted_directly():
                design=NS(gamma=1.0, generation=(0, 0)), harvest=NS(parties="A", select="all"),
                extractor=NS(eps_ext=1e-8))
     res = plan(proto, chsh=2.7, trials=10**6, n_points=4, gamma_points=4)
-    assert res.methods[0].certified_bits > 0
+    assert res.methods[0].output_bits > 0
 
 
 # ----------------------------------------------------------------- probability estimation (PEF)
@@ -246,9 +246,9 @@ def test_pef_plan_tsirelson_box_512_bits(tsirelson_plan):
     assert d.latency_floor_trials < d.expected_trials < d.trials_for_completeness
     # Output on success: floor(k - 2 log2(1/eps_ext)) with k = sigma_target - 1 (leftover hash
     # lemma, Tomamichel et al., IEEE TIT 57, 5524 (2011); the -1 from note section 2 (ii)).
-    assert row.certified_bits == math.floor(511 - 2 * math.log2(1e8))
-    assert row.seed_bits == pytest.approx(2 * d.expected_trials)  # uniform settings, 2 bits/trial
-    assert row.net_bits == pytest.approx(row.certified_bits - row.seed_bits)
+    assert row.output_bits == math.floor(511 - 2 * math.log2(1e8))
+    assert row.settings_randomness_bits == pytest.approx(2 * d.expected_trials)  # uniform settings, 2 bits/trial
+    assert row.net_bits == pytest.approx(row.output_bits - row.settings_randomness_bits)
     assert row.abort_probability < 1e-6  # cap 1e6 trials is ~300x the expected 3.4e3
 
 
@@ -303,10 +303,10 @@ def test_pef_classical_device_certifies_nothing():
     # section 1, fact (d); Knill, Zhang & Bierhorst 2020), so no target is ever expected.
     res = plan(load_protocol(PHOTONIC_PROTOCOL), chsh=2.0, n_points=5, gamma_points=2)
     row = _pef_row(res)
-    assert row.certified_bits == 0 and row.net_bits < 0 and row.rate_per_trial == 0
+    assert row.output_bits == 0 and row.net_bits < 0 and row.output_bits_per_trial == 0
     assert row.abort_probability == 1.0
     assert row.min_trials_positive is None and row.best_gamma is None
-    assert max(row.curve_certified_bits) == 0
+    assert max(row.curve_output_bits) == 0
     assert row.pef.expected_trials == math.inf and row.pef.latency_floor_trials == math.inf
     assert row.pef.expected_log2_factor <= 0
 
@@ -323,7 +323,7 @@ def test_pef_derived_row_for_chsh_protocols():
     assert row.thresholds == "derived" and d.target_source == "derived"
     assert d.model == "ns" and d.eps_pe == 1e-6  # the protocol's eps_est
     assert 0 < row.abort_probability <= res.eps_comp * (1 + 1e-9)
-    assert 0 < row.certified_bits < d.target_bits < 1e6 * (2.74 - 2) / 2
+    assert 0 < row.output_bits < d.target_bits < 1e6 * (2.74 - 2) / 2
     assert d.expected_trials < 1e6 <= d.trials_cap
 
 

@@ -134,24 +134,24 @@ def test_extractor_seed_is_n_raw_plus_m_minus_1(eat_plan):
     # n + m - 1 bits (Krawczyk, CRYPTO 1994; common practice).
     for m in eat_plan.methods:
         assert m.raw_bits == 2 * eat_plan.trials  # both stations' outcome bits, every trial
-        if m.certified_bits > 0:
-            assert m.extractor_seed_bits == m.raw_bits + m.certified_bits - 1
-            assert m.extractor_seed_bytes == math.ceil(m.extractor_seed_bits / 8)
+        if m.output_bits > 0:
+            assert m.seed_bits == m.raw_bits + m.output_bits - 1
+            assert m.seed_bytes == math.ceil(m.seed_bits / 8)
         else:
-            assert m.extractor_seed_bits == 0
+            assert m.seed_bits == 0
 
 
 def test_best_gamma_row_is_the_sweep_maximum(eat_plan):
     for m in eat_plan.methods:
         assert len(m.gamma_sweep) == len(m.gamma_sweep_net_bits) == len(
-            m.gamma_sweep_certified_bits)
+            m.gamma_sweep_output_bits)
         if m.best_gamma is None:
-            assert all(c <= 0 or n <= 0 for c, n in zip(m.gamma_sweep_certified_bits,
+            assert all(c <= 0 or n <= 0 for c, n in zip(m.gamma_sweep_output_bits,
                                                         m.gamma_sweep_net_bits))
             continue
         j = max(range(len(m.gamma_sweep)), key=lambda k: m.gamma_sweep_net_bits[k])
         assert m.gamma_sweep[j] == m.best_gamma
-        assert m.best_gamma_certified_bits == m.gamma_sweep_certified_bits[j]
+        assert m.best_gamma_output_bits == m.gamma_sweep_output_bits[j]
         assert m.best_gamma_net_bits == m.gamma_sweep_net_bits[j]
 
 
@@ -166,8 +166,8 @@ def test_eps_ext_option_shifts_the_output_by_the_leftover_hash_penalty():
              gamma_points=3)
     assert b.eps_ext == 1e-4
     ma, mb = a.methods[1], b.methods[1]
-    assert ma.name == mb.name and ma.min_entropy_bits == mb.min_entropy_bits
-    assert mb.certified_bits - ma.certified_bits in (26, 27)
+    assert ma.name == mb.name and ma.certified_min_entropy_bits == mb.certified_min_entropy_bits
+    assert mb.output_bits - ma.output_bits in (26, 27)
 
 
 def test_eps_options_name_the_keys_and_refuse_the_wrong_method():

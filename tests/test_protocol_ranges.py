@@ -129,7 +129,7 @@ def test_plan_refuses_trials_beyond_2_53_and_ends_at_the_limit():
     d["analysis"]["eps_comp"] = 1e-100  # derived threshold from the exact binomial tail
     res = plan(protocol_from_dict(d, "x"), trials=MAX_INTEGER, n_points=3, gamma_points=2)
     for m in res.methods:
-        assert math.isfinite(m.min_entropy_bits) and m.certified_bits >= 0
+        assert math.isfinite(m.certified_min_entropy_bits) and m.output_bits >= 0
         assert 0.0 <= m.abort_probability <= 1.0
 
 

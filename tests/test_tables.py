@@ -396,12 +396,12 @@ def test_plan_table_and_json_agree():
         assert_rows_match(rows, parse_table(chunk), doc)
     for m, md in zip(result.methods, doc["methods"]):
         # glossary: seed = the extractor seed, raw_bits + output_bits - 1 (Toeplitz, n + m - 1)
-        assert md["seed_bits"] == m.extractor_seed_bits
+        assert md["seed_bits"] == m.seed_bits
         if md["output_bits"] > 0:
             assert md["seed_bits"] == md["raw_bits"] + md["output_bits"] - 1
-        assert md["settings_randomness_bits"] == m.seed_bits
-        assert md["output_bits"] == m.certified_bits
-        assert md["certified_min_entropy_bits"] == m.min_entropy_bits
+        assert md["settings_randomness_bits"] == m.settings_randomness_bits
+        assert md["output_bits"] == m.output_bits
+        assert md["certified_min_entropy_bits"] == m.certified_min_entropy_bits
     # CHSH game: w = 1/2 + S/8 (Clauser, Horne, Shimony & Holt 1969; common practice).
     assert doc["honest_win_probability"] == pytest.approx(0.5 + doc["honest_chsh"] / 8)
     # Retired names are gone from plan --json (README glossary, "formerly" column).

@@ -121,25 +121,16 @@ def plan_cmd(
         typer.echo(f"plot written to {plot}", err=True)
 
 
-#: Method fields under their glossary names in ``plan --json`` (field -> key).
-_METHOD_KEYS = {
-    "name": "name", "side_information": "side_information", "thresholds": "thresholds",
-    "parameters": "parameters", "min_entropy_bits": "certified_min_entropy_bits",
-    "certified_bits": "output_bits", "rate_per_trial": "output_bits_per_trial",
-    "seed_bits": "settings_randomness_bits", "net_bits": "net_bits",
-    "abort_probability": "abort_probability", "abort_probability_kind": "abort_probability_kind",
-    "min_trials_positive": "min_trials_positive",
-    "min_trials_net_positive": "min_trials_net_positive", "raw_bits": "raw_bits",
-    "extractor_seed_bits": "seed_bits", "extractor_seed_bytes": "seed_bytes",
-    "best_gamma": "best_gamma", "best_gamma_certified_bits": "best_gamma_output_bits",
-    "best_gamma_net_bits": "best_gamma_net_bits",
-    "best_gamma_abort_probability": "best_gamma_abort_probability",
-    "best_gamma_extractor_seed_bits": "best_gamma_seed_bits",
-    "curve_trials": "curve_trials", "curve_certified_bits": "curve_output_bits",
-    "gamma_sweep": "gamma_sweep", "gamma_sweep_certified_bits": "gamma_sweep_output_bits",
-    "gamma_sweep_net_bits": "gamma_sweep_net_bits",
-    "gamma_sweep_abort_probability": "gamma_sweep_abort_probability", "pef": "pef",
-}
+#: Method fields in ``plan --json``, in this order (the field names are the glossary's).
+_METHOD_KEYS = (
+    "name", "side_information", "thresholds", "parameters", "certified_min_entropy_bits",
+    "output_bits", "output_bits_per_trial", "settings_randomness_bits", "net_bits",
+    "abort_probability", "abort_probability_kind", "min_trials_positive",
+    "min_trials_net_positive", "raw_bits", "seed_bits", "seed_bytes", "best_gamma",
+    "best_gamma_output_bits", "best_gamma_net_bits", "best_gamma_abort_probability",
+    "best_gamma_seed_bits", "curve_trials", "curve_output_bits", "gamma_sweep",
+    "gamma_sweep_output_bits", "gamma_sweep_net_bits", "gamma_sweep_abort_probability", "pef",
+)
 
 
 def plan_json(result) -> dict:
@@ -150,7 +141,7 @@ def plan_json(result) -> dict:
     methods = []
     for m in result.methods:
         d = to_jsonable(m)
-        methods.append({new: d.get(old) for old, new in _METHOD_KEYS.items()})
+        methods.append({k: d.get(k) for k in _METHOD_KEYS})
     return {
         "protocol": result.protocol, "trials": result.trials,
         "trials_source": result.trials_source, "gamma": result.gamma, "device": result.device,
@@ -180,15 +171,15 @@ def plan_rows(result) -> list:
     ]))
     for i, m in enumerate(result.methods):
         k = f"methods.{i}."
-        out = m.certified_bits > 0
+        out = m.output_bits > 0
         mr = [
-            Row("output bits", k + "output_bits", m.certified_bits, "count",
+            Row("output bits", k + "output_bits", m.output_bits, "count",
                 note="on acceptance"),
             Row("certified min-entropy (bits)", k + "certified_min_entropy_bits",
-                m.min_entropy_bits, "bits"),
+                m.certified_min_entropy_bits, "bits"),
             Row("output bits per trial" + (" consumed" if m.pef else ""),
-                k + "output_bits_per_trial", m.rate_per_trial, "bits"),
-            Row("settings randomness (bits)", k + "settings_randomness_bits", m.seed_bits,
+                k + "output_bits_per_trial", m.output_bits_per_trial, "bits"),
+            Row("settings randomness (bits)", k + "settings_randomness_bits", m.settings_randomness_bits,
                 "bits", note="random bits spent on choosing settings"),
             Row("net bits", k + "net_bits", m.net_bits, "bits",
                 note="output bits - settings randomness"),
@@ -201,22 +192,22 @@ def plan_rows(result) -> list:
                 m.min_trials_net_positive, "count",
                 note="" if m.min_trials_net_positive is not None else "none in [1e3, 1e14]"),
             Row("raw bits", k + "raw_bits", m.raw_bits, "count", note="at most"),
-            Row("seed bits to provision", k + "seed_bits", m.extractor_seed_bits, "count",
+            Row("seed bits to provision", k + "seed_bits", m.seed_bits, "count",
                 note="raw bits + output bits - 1" if out else "none: no output"),
-            Row("seed bytes", k + "seed_bytes", m.extractor_seed_bytes, "count"),
+            Row("seed bytes", k + "seed_bytes", m.seed_bytes, "count"),
             Row("gamma maximising net bits", k + "best_gamma", m.best_gamma, "number",
                 note="" if m.best_gamma is not None else "none in [1e-4, 1]"),
         ]
         if m.best_gamma is not None:
             mr += [
                 Row("  output bits there", k + "best_gamma_output_bits",
-                    m.best_gamma_certified_bits, "count"),
+                    m.best_gamma_output_bits, "count"),
                 Row("  net bits there", k + "best_gamma_net_bits", m.best_gamma_net_bits,
                     "bits"),
                 Row("  honest abort probability there", k + "best_gamma_abort_probability",
                     m.best_gamma_abort_probability, "error"),
                 Row("  seed bits there", k + "best_gamma_seed_bits",
-                    m.best_gamma_extractor_seed_bits, "count"),
+                    m.best_gamma_seed_bits, "count"),
             ]
         if m.pef is not None:
             mr = mr[:1] + _pef_rows(m.pef, k + "pef.") + mr[1:]
@@ -269,7 +260,7 @@ def _gamma_table(result, rows: int):
             if j is None:
                 cells.append("")
                 continue
-            cert, net = m.gamma_sweep_certified_bits[j], m.gamma_sweep_net_bits[j]
+            cert, net = m.gamma_sweep_output_bits[j], m.gamma_sweep_net_bits[j]
             best = m.best_gamma is not None and math.isclose(g, m.best_gamma, rel_tol=1e-9)
             cells.append(("-" if cert <= 0 else _short(float(net))) + ("*" if best else ""))
         tab.add_row(*cells)

@@ -272,7 +272,7 @@ def _bound_min(*, chsh, chsh_input, parties, level, correlators, bell, inputs, t
             raise ParameterError(f"level: the table is at level {tab.level!r}, got {level!r}")
         lk = tab.lookup(chsh, parties)
         return _make(
-            "min", parties, lk.min_entropy_bits,
+            "min", parties, lk.single_round_bound_bits,
             guessing_probability=lk.guessing_probability,
             chsh=lk.chsh, chsh_input=chsh, method="table", level=tab.level, inputs=inputs,
             table={"sha256": tab.sha256, "piece": lk.piece, "grid_chsh": lk.grid_chsh},

@@ -53,7 +53,7 @@ DEFAULT_POINTS = 121
 class TableLookup:
     """Result of a table lookup.
 
-    ``guessing_probability`` is the certified upper bound at ``chsh``; ``min_entropy_bits``
+    ``guessing_probability`` is the certified upper bound at ``chsh``; ``single_round_bound_bits``
     the matching lower bound (rounded down); ``piece`` the index of the active affine piece and
     ``grid_chsh`` its grid point.
     """
@@ -61,11 +61,14 @@ class TableLookup:
     chsh: float
     parties: str
     guessing_probability: float
-    min_entropy_bits: float
+    single_round_bound_bits: float
     piece: int
     grid_chsh: float
     level: str
     table_sha256: str
+
+    #: Name of earlier versions (read-only).
+    min_entropy_bits = property(lambda self: self.single_round_bound_bits)
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -109,7 +112,7 @@ class EntropyTable:
             chsh=min(float(chsh), self.chsh[-1]),
             parties=parties,
             guessing_probability=u,
-            min_entropy_bits=min_entropy_from_guessing(u),
+            single_round_bound_bits=min_entropy_from_guessing(u),
             piece=i,
             grid_chsh=self.chsh[i],
             level=self.level,
@@ -119,7 +122,7 @@ class EntropyTable:
     def min_entropy(self, chsh, parties: str = "AB"):
         """Vectorised certified min-entropy lower bound (bits) at one or many CHSH values."""
         s = np.asarray(chsh, dtype=float)
-        out = np.array([self.lookup(float(v), parties).min_entropy_bits for v in s.ravel()])
+        out = np.array([self.lookup(float(v), parties).single_round_bound_bits for v in s.ravel()])
         out = out.reshape(s.shape)
         return float(out) if out.ndim == 0 else out
 
@@ -248,12 +251,12 @@ def pair_min_entropy_bound(chsh: float) -> float:
     box with CHSH >= chsh against quantum side information; convex and non-decreasing in
     ``chsh`` (see the module docstring). 0 for chsh <= 2; clamped at the Tsirelson bound.
     """
-    return load_table().lookup(chsh, "AB").min_entropy_bits
+    return load_table().lookup(chsh, "AB").single_round_bound_bits
 
 
 def single_min_entropy_bound(chsh: float) -> float:
     """Table-based certified lower bound on H_min(A|E) per round (NPA level 1+AB, input 0)."""
-    return load_table().lookup(chsh, "A").min_entropy_bits
+    return load_table().lookup(chsh, "A").single_round_bound_bits
 
 
 __all__ = [

@@ -617,7 +617,7 @@ def certify_eat(counts: Any, params: EatParams, design: Any = None, *,
         refs = tuple(r for r in refs if not r.startswith("A. Acin")) + (_RADAU_REF,)
     return FiniteSizeResult(
         method=params.method_name, side_information="quantum", accepted=bool(accepted),
-        min_entropy_bits=bits if accepted else 0.0,
+        certified_min_entropy_bits=bits if accepted else 0.0,
         eps={"eps_s": params.eps_s, "eps_ea": params.eps_ea},
         smoothing_eps=params.eps_s, entropy_error=params.eps_ea, assumptions=assumptions,
         references=refs, details=details)

@@ -239,7 +239,7 @@ def certify_martingale(counts: Any, params: MartingaleParams, design: Any = None
     Returns
     -------
     FiniteSizeResult
-        side_information "classical"; min_entropy_bits = n f(S_th - mu) on acceptance (see
+        side_information "classical"; certified_min_entropy_bits = n f(S_th - mu) on acceptance (see
         the module docstring for the statement and its proof); entropy_error = eps_est.
 
     References
@@ -295,7 +295,7 @@ def certify_martingale(counts: Any, params: MartingaleParams, design: Any = None
     )
     return FiniteSizeResult(
         method="martingale-azuma", side_information="classical", accepted=bool(accepted),
-        min_entropy_bits=bits, eps={"eps_est": params.eps_est}, smoothing_eps=0.0,
+        certified_min_entropy_bits=bits, eps={"eps_est": params.eps_est}, smoothing_eps=0.0,
         entropy_error=params.eps_est, assumptions=assumptions, references=REFERENCES,
         details=details)
 

@@ -25,7 +25,7 @@ class FiniteSizeResult:
         Adversary model covered: "classical" or "quantum".
     accepted : bool
         Whether the pre-declared acceptance test passed.
-    min_entropy_bits : float
+    certified_min_entropy_bits : float
         Certified (smooth) min-entropy of the harvested raw string in bits; >= 0, and 0 when
         the run aborted or the bound is not positive.
     eps : dict[str, float]
@@ -45,7 +45,7 @@ class FiniteSizeResult:
     method: str
     side_information: str
     accepted: bool
-    min_entropy_bits: float
+    certified_min_entropy_bits: float
     eps: dict[str, float]
     smoothing_eps: float = 0.0
     entropy_error: float = 0.0
@@ -55,20 +55,25 @@ class FiniteSizeResult:
 
     def _headline(self, full: bool) -> list[tuple[str, object]]:
         rows = [("method", self.method), ("accepted", self.accepted),
-                ("min_entropy_bits", self.min_entropy_bits),
+                ("certified_min_entropy_bits", self.certified_min_entropy_bits),
                 ("side_information", self.side_information)]
         if full:
             rows += [(name, val) for name, val in self.eps.items()]
             rows += [("smoothing_eps", self.smoothing_eps), ("entropy_error", self.entropy_error)]
         return rows
 
+    #: The error parameters by protocol key, under the record's (the glossary's) name.
+    error_parameters = property(lambda self: self.eps)
+    #: Name of earlier versions (read-only).
+    min_entropy_bits = property(lambda self: self.certified_min_entropy_bits)
+
     def __post_init__(self) -> None:
         if self.side_information not in SIDE_INFORMATION:
             raise ValueError(f"side_information must be one of {SIDE_INFORMATION}, "
                              f"got {self.side_information!r}")
-        k = float(self.min_entropy_bits)
+        k = float(self.certified_min_entropy_bits)
         if not math.isfinite(k) or k < 0.0:
-            raise ValueError(f"min_entropy_bits must be finite and >= 0, got {k!r}")
+            raise ValueError(f"certified_min_entropy_bits must be finite and >= 0, got {k!r}")
         if not self.accepted and k != 0.0:
             raise ValueError("an aborted run certifies 0 bits")
         for name, val in (("smoothing_eps", self.smoothing_eps),

@@ -196,7 +196,7 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
     run = (float(trials), float(out_bits)) if isinstance(out_bits, int) else None
     # the region around this run, as `dicert plan --plot` shows it (the sweep runs to 1e14)
     lo, hi = plan_plot_range(result)
-    curve = [(x, y) for x, y in zip(row.curve_trials, row.curve_certified_bits)
+    curve = [(x, y) for x, y in zip(row.curve_trials, row.curve_output_bits)
              if lo <= x <= hi]
     label = f"certified output bits against trials, planner row {row.name}"
     caption = (f"Planner (dicert.planning.plan) for this protocol, method {row.name}, honest "
@@ -204,7 +204,7 @@ def _plan_figure(record: Mapping[str, Any]) -> tuple[_Figure | None, str]:
                "(2, 2\u221a2)), "
                f"gamma {result.gamma:g}: certified output bits on acceptance against the number "
                f"of trials; at this run's {_fmt(trials)} trials the planner expects "
-               f"{_fmt(int(row.certified_bits))} bits; the marked point is this run's output "
+               f"{_fmt(int(row.output_bits))} bits; the marked point is this run's output "
                f"({_fmt(out_bits if isinstance(out_bits, int) else None)} bits). The curve is "
                "informational (a plan, not a certificate).")
     return _Figure(name="plan", title="Certified bits against trials (planner)", caption=caption,

@@ -34,7 +34,7 @@ class Analysis:
     finite: FiniteSizeResult
     status: str
     abort_reason: str | None
-    min_entropy_bits: float
+    certified_min_entropy_bits: float
     output_bits: int
     seed_bits_needed: int
     total_error: float
@@ -117,7 +117,7 @@ def screened(extraction: Any, analysis: Analysis, proto: Protocol, scan: LogScan
     screens = output_screens(extraction.output, analysis.output_bits,
                              spec_of(proto).significance, raw=raw, raw_bits=scan.raw_bits,
                              bits_per_symbol=proto.harvest.bits_per_trial,
-                             min_entropy_bits=analysis.min_entropy_bits)
+                             certified_min_entropy_bits=analysis.certified_min_entropy_bits)
     return withhold(analysis, screens), screens
 
 
@@ -168,7 +168,7 @@ def _not_run(protocol: Protocol, reason: str) -> Any:
     name = getattr(protocol.analysis, "method_name", None) or str(protocol.method)
     return FiniteSizeResult(method=str(name),
                             side_information="quantum" if protocol.method == "eat"
-                            else "classical", accepted=False, min_entropy_bits=0.0, eps={},
+                            else "classical", accepted=False, certified_min_entropy_bits=0.0, eps={},
                             details={"not_run": reason})
 
 
@@ -249,14 +249,14 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
         if log_end:
             reason = f"{reason} ({log_end})"
         return Analysis(estimate=estimate, finite=finite, status="aborted",
-                        abort_reason=reason, min_entropy_bits=0.0, output_bits=0,
+                        abort_reason=reason, certified_min_entropy_bits=0.0, output_bits=0,
                         seed_bits_needed=0,
                         total_error=float(finite.total_error(protocol.extractor.eps_ext)),
                         design=design, charge=charge, uncharged_estimate=uncharged)
     if finite is None:
         finite = _certify_counts(counts, protocol)
     eps_ext = protocol.extractor.eps_ext
-    k = float(finite.min_entropy_bits) if finite.accepted else 0.0
+    k = float(finite.certified_min_entropy_bits) if finite.accepted else 0.0
     if not math.isfinite(k) or k < 0:
         k = 0.0
     if charge is not None:  # the dropped raw bits and the drop pattern (never below 0)
@@ -283,7 +283,7 @@ def analyse_counts(counts: np.ndarray, protocol: Protocol, raw_bits: int, *,
         reason = f"{reason} ({log_end})"
     need = int(seed_bits_required(raw_bits, m)) if m > 0 else 0
     return Analysis(estimate=estimate, finite=finite, status=status, abort_reason=reason,
-                    min_entropy_bits=k, output_bits=m if status == "certified" else 0,
+                    certified_min_entropy_bits=k, output_bits=m if status == "certified" else 0,
                     seed_bits_needed=need if status == "certified" else 0,
                     total_error=total_error, design=design, charge=charge,
                     uncharged_estimate=uncharged)

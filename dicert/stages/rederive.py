@@ -506,7 +506,7 @@ def _finite_from_record(body: Mapping[str, Any]):
     try:
         return FiniteSizeResult(
             method=fs["method"], side_information=fs["side_information"],
-            accepted=fs["accepted"], min_entropy_bits=fs["certified_min_entropy_bits"],
+            accepted=fs["accepted"], certified_min_entropy_bits=fs["certified_min_entropy_bits"],
             eps=dict(fs["error_parameters"]), smoothing_eps=fs["smoothing_eps"],
             entropy_error=fs["entropy_error"], assumptions=tuple(fs["assumptions"]),
             references=tuple(fs["references"]), details=fs["details"])

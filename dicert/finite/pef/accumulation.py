@@ -320,7 +320,7 @@ class PefAccumulator:
 
         ``accepted`` only on success. The extractor must then be run on the outcomes (a, b) of
         the analysed trials ``harvest_first_trial .. harvest_last_trial`` (inclusive, 0-based
-        trial indices of the log), 2 bits per trial, with min-entropy ``min_entropy_bits`` =
+        trial indices of the log), 2 bits per trial, with min-entropy ``certified_min_entropy_bits`` =
         sigma_target - 1 (the -1 makes the sub-normalised success branch a normalised source
         for any extractor, Knill, Zhang & Bierhorst, Phys. Rev. Research 2, 033465 (2020)).
 
@@ -401,7 +401,7 @@ class PefAccumulator:
         ]
         return FiniteSizeResult(
             method="pef", side_information="classical", accepted=accepted,
-            min_entropy_bits=max(0.0, p.sigma_target_bits - 1.0) if accepted else 0.0,
+            certified_min_entropy_bits=max(0.0, p.sigma_target_bits - 1.0) if accepted else 0.0,
             eps={"eps_pe": p.eps_pe}, smoothing_eps=0.0, entropy_error=p.eps_pe,
             assumptions=tuple(assumptions), references=REFERENCES, details=details)
 
