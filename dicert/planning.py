@@ -208,7 +208,7 @@ class PlanResult:
             rows[-1:] = [("device", self.device), ("trials_source", self.trials_source),
                          ("eps_ext", self.eps_ext)]
             for m in self.methods:
-                rows += [(f"{m.name}: certified bits", m.output_bits),
+                rows += [(f"{m.name}: output_bits", m.output_bits),
                          (f"{m.name}: net bits (after seed)", m.net_bits),
                          (f"{m.name}: abort probability", m.abort_probability),
                          (f"{m.name}: min trials, net positive", m.min_trials_net_positive)]
