@@ -125,8 +125,8 @@ def test_cli_keygen(tmp_path):
     res = runner.invoke(app, ["keygen", "--out", str(out), "--json"])
     assert res.exit_code == 0, res.output
     info = json.loads(res.stdout)
-    assert set(info) == {"private_key_file", "public_key_file", "fingerprint"}
-    assert info["fingerprint"] == signing.fingerprint(signing.load_public_key(out.with_name("op.key.pub")))
+    assert set(info) == {"private_key_file", "public_key_file", "key_fingerprint"}
+    assert info["key_fingerprint"] == signing.fingerprint(signing.load_public_key(out.with_name("op.key.pub")))
     assert stat.S_IMODE(out.stat().st_mode) == 0o600
     # Refuses to overwrite: one line on stderr, exit code 2, files untouched.
     before = out.read_bytes()

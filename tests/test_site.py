@@ -74,7 +74,7 @@ def test_layout_and_head(site, beacon):
 
     assert chain_head(chain) == (3, result.head_sha256)
     m = _manifest(out)
-    assert m["format"] == "dicert-site/1"
+    assert m["format"] == "dicert-site/2"
     assert m["chain"] == {"pulses": 3, "head_index": 3, "head_sha256": result.head_sha256}
     assert [p["index"] for p in m["pulses"]] == [1, 2, 3]
     assert [p["status"] for p in m["pulses"]] == ["certified", "certified", "aborted"]
@@ -121,7 +121,7 @@ def test_signatures_cover_the_canonical_body_under_the_published_key(site):
     assert result.key_fingerprint == hashlib.sha256(raw).hexdigest()
     assert _manifest(out)["public_key"] == {
         "algorithm": "Ed25519", "file": "operator-key.pub", "raw_hex": raw.hex(),
-        "fingerprint": hashlib.sha256(raw).hexdigest()}
+        "key_fingerprint": hashlib.sha256(raw).hexdigest()}
     for p in sorted((out / "chain").iterdir()):
         record = json.loads(p.read_bytes())
         body = {k: v for k, v in record.items() if k not in ("record_sha256", "signature")}

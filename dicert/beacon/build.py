@@ -14,13 +14,13 @@ the build).
 
 Manifest (``manifest.json``, RFC 8785 canonical bytes + LF)
 -----------------------------------------------------------
-``format`` ``"dicert-site/1"``; ``title``; ``tool``; ``chain``: ``pulses``, ``head_index``,
+``format`` ``"dicert-site/2"``; ``title``; ``tool``; ``chain``: ``pulses``, ``head_index``,
 ``head_sha256``; ``pulses``: per pulse ``index``, ``record_file``, ``page_file``,
 ``record_sha256`` (the chain digest: SHA-256 of the record's canonical body),
 ``previous_record_sha256``, ``file_sha256`` and ``file_bytes`` (of the published file's exact
 bytes), ``status``, ``output_bits``; ``public_key``: null or ``algorithm``, ``file``,
-``raw_hex``, ``fingerprint``; ``build_check``: what the build checked; ``volatile``:
-``generated_at``.
+``raw_hex``, ``key_fingerprint`` (``fingerprint`` in ``dicert-site/1``); ``build_check``:
+what the build checked; ``volatile``: ``generated_at``.
 """
 
 from __future__ import annotations
@@ -43,8 +43,11 @@ from dicert.stages.record import _now  # the one UTC timestamp format of records
 
 __all__ = ["SITE_FORMAT", "SiteBuild", "SiteCheck", "build_site", "check_site"]
 
-#: Format of ``manifest.json``.
-SITE_FORMAT = "dicert-site/1"
+#: Format of ``manifest.json`` written today; /2 renamed ``public_key.fingerprint`` to
+#: ``key_fingerprint`` (the README glossary's name).
+SITE_FORMAT = "dicert-site/2"
+#: Formats :func:`check_site` reads (it does not use the renamed member).
+SITE_FORMATS = ("dicert-site/1", SITE_FORMAT)
 MANIFEST_NAME = "manifest.json"
 KEY_NAME = "operator-key.pub"
 CHAIN_SUBDIR = "chain"
@@ -257,7 +260,7 @@ def build_site(chain_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str
         ],
         "public_key": None if key is None else {
             "algorithm": "Ed25519", "file": KEY_NAME, "raw_hex": key[0].hex(),
-            "fingerprint": fingerprint},
+            "key_fingerprint": fingerprint},
         "build_check": {"notes": notes, "warnings": list(warnings),
                         "signer_trusted": key is not None},
         "volatile": {"generated_at": _now(clock)},
@@ -332,7 +335,7 @@ def check_site(site_dir: str | os.PathLike[str], public_key: Any = None) -> Site
     if not mpath.is_file():
         raise ParameterError(f"{site}: no {MANIFEST_NAME}; not a site built by dicert publish")
     manifest = parse_json(mpath.read_bytes(), source=str(mpath))
-    if not isinstance(manifest, Mapping) or manifest.get("format") != SITE_FORMAT:
+    if not isinstance(manifest, Mapping) or manifest.get("format") not in SITE_FORMATS:
         raise VerificationError(f"{mpath}: not a {SITE_FORMAT} manifest", "format")
     published = manifest.get("public_key")
     notes = []

@@ -35,7 +35,7 @@ def keygen(
             {
                 "private_key_file": files.private_key_file,
                 "public_key_file": files.public_key_file,
-                "fingerprint": files.fingerprint,
+                "key_fingerprint": files.fingerprint,
             }
         )
         return
@@ -46,7 +46,7 @@ def keygen(
             [
                 ("private key", files.private_key_file),
                 ("public key", files.public_key_file),
-                ("fingerprint", files.fingerprint),
+                ("key fingerprint", files.fingerprint),
             ],
         )
     )

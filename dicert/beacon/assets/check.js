@@ -117,7 +117,7 @@
     var rawHex = toHex(raw);
     var fp = await sha256Hex(raw);
     if (rawHex !== pk.raw_hex) throw new Error('the operator key file differs from manifest.json');
-    if (fp !== pk.fingerprint) throw new Error('manifest.json gives a wrong key fingerprint');
+    if (fp !== pk.key_fingerprint) throw new Error('manifest.json gives a wrong key fingerprint');
     var key = null;
     try {
       key = await crypto.subtle.importKey('spki', der, { name: SIG_ALGORITHM }, false, ['verify']);
