@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import stat
+import os
 from pathlib import Path
 
 import pytest
@@ -89,6 +90,48 @@ def test_write_keypair_refuses_overwrite(tmp_path):
     with pytest.raises(ParameterError, match=r"other\.pub"):
         signing.write_keypair(lone)
     assert not lone.exists()
+
+
+def test_a_mixed_up_pair_is_refused_and_a_race_never_clobbers(tmp_path, monkeypatch):
+    # keygen --force replaces the public half first: interrupted before the second rename, the
+    # old private key sits beside the new public key, and loading it for signing is refused
+    # (a record signed then would not verify under the published key).
+    path = tmp_path / "k"
+    first = signing.write_keypair(path)
+    real_replace = os.replace
+    calls = []
+
+    def interrupted(src, dst):
+        calls.append(dst)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return real_replace(src, dst)
+
+    monkeypatch.setattr(os, "replace", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        signing.write_keypair(path, force=True)
+    monkeypatch.setattr(os, "replace", real_replace)
+    assert [Path(c).name for c in calls] == ["k.pub", "k"]
+    with pytest.raises(ParameterError, match="pair is mixed up"):
+        signing.load_private_key(path)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["k", "k.pub"]  # no temporaries left
+    fixed = signing.write_keypair(path, force=True)  # running keygen again repairs the pair
+    assert signing.fingerprint(signing.load_private_key(path).public_key()) == fixed.fingerprint
+    assert fixed.fingerprint != first.fingerprint
+    # Without --force a file that appears after the check is not overwritten, and no lone
+    # private half stays behind.
+    other = tmp_path / "o"
+    real_link = os.link
+
+    def racing(src, dst):
+        if str(dst).endswith(".pub"):
+            Path(dst).write_text("someone else's key")
+        return real_link(src, dst)
+
+    monkeypatch.setattr(os, "link", racing)
+    with pytest.raises(ParameterError, match=r"o\.pub: already exists"):
+        signing.write_keypair(other)
+    assert not other.exists() and Path(str(other) + ".pub").read_text() == "someone else's key"
 
 
 def test_bad_key_files(tmp_path):

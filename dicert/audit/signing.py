@@ -209,7 +209,25 @@ def load_private_key(path: str | os.PathLike[str]) -> Any:
         ) from None
     if not isinstance(key, Ed25519PrivateKey):
         raise ParameterError(f"{p}: the private key is not an Ed25519 key")
+    _check_sibling_public_key(p, key)
     return key
+
+
+def _check_sibling_public_key(private_path: Path, key: Any) -> None:
+    """Refuse a private key whose ``.pub`` sibling (as keygen writes it) holds another key: the
+    pair was mixed up (e.g. a ``keygen --force`` interrupted between its two renames), and
+    records signed now would not verify under the published key."""
+    pub = private_path.with_name(private_path.name + ".pub")
+    if not pub.is_file():
+        return
+    try:
+        published = load_public_key(pub)
+    except ParameterError:
+        return  # not a key file of ours: nothing to compare
+    if fingerprint(published) != fingerprint(key.public_key()):
+        raise ParameterError(
+            f"{private_path}: its public half differs from {pub} (fingerprint "
+            f"{fingerprint(published)}); the pair is mixed up: run keygen again")
 
 
 def load_public_key(path: str | os.PathLike[str]) -> Any:
@@ -236,6 +254,21 @@ def load_public_key(path: str | os.PathLike[str]) -> Any:
     if not isinstance(key, Ed25519PublicKey):
         raise ParameterError(f"{p}: the public key is not an Ed25519 key")
     return key
+
+
+def _place_new(tmp: Path, dest: Path) -> None:
+    """Move ``tmp`` to ``dest`` without clobbering: a hard link fails if ``dest`` appeared since
+    it was checked (file systems without hard links fall back to a checked rename)."""
+    try:
+        os.link(tmp, dest)
+    except FileExistsError:
+        raise ParameterError(f"{dest}: already exists; refusing to overwrite (use --force)") \
+            from None
+    except OSError:
+        if dest.exists():
+            raise ParameterError(f"{dest}: already exists; refusing to overwrite (use --force)") \
+                from None
+        os.replace(tmp, dest)
 
 
 def write_keypair(
@@ -279,8 +312,19 @@ def write_keypair(
     try:
         temps.append(write_temp_sibling(private_path, private_pem, 0o600))
         temps.append(write_temp_sibling(public_path, public_pem, 0o644))
-        os.replace(temps[0], private_path)
-        os.replace(temps[1], public_path)
+        if force:
+            # The public half first: an interruption between the renames leaves the old private
+            # key beside the new public one, which load_private_key refuses (never a silent
+            # mix-up).
+            os.replace(temps[1], public_path)
+            os.replace(temps[0], private_path)
+        else:
+            _place_new(temps[0], private_path)
+            try:
+                _place_new(temps[1], public_path)
+            except BaseException:
+                os.unlink(private_path)  # never a lone half of a pair
+                raise
     finally:
         for tmp in temps:
             with contextlib.suppress(FileNotFoundError):
