@@ -16,6 +16,22 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from dicert._docview import (  # shared with the report
+    _DASH,
+    CHSH_QUANTUM_BOUND,
+    _c,
+    _down,
+    _e,
+    _exact,
+    _fmt,
+    _fmt_axis,
+    _get,
+    _int,
+    _nice_ticks,
+    _num,
+    _str,
+)
+
 __all__ = [
     "BlockSeries",
     "PulseView",
@@ -34,9 +50,6 @@ CSP = ("default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self';
 
 #: Reference lines of a CHSH plot: the local bound and Tsirelson's bound (common practice).
 CHSH_LOCAL_BOUND = 2.0
-CHSH_QUANTUM_BOUND = 2.0 * math.sqrt(2.0)
-
-_DASH = "\u2014"
 
 
 def pulse_page_name(index: int) -> str:
@@ -44,29 +57,12 @@ def pulse_page_name(index: int) -> str:
     return f"pulse-{index:06d}.html"
 
 
-def _get(record: Any, path: str) -> Any:
-    cur = record
-    for part in path.split("."):
-        if not isinstance(cur, Mapping) or part not in cur:
-            return None
-        cur = cur[part]
-    return cur
 
 
-def _num(value: Any) -> float | None:
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
-        return None
-    return float(value) if math.isfinite(value) else None
 
 
-def _int(value: Any) -> int | None:
-    if isinstance(value, bool) or not isinstance(value, int):
-        return None
-    return value
 
 
-def _str(value: Any) -> str | None:
-    return value if isinstance(value, str) else None
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -208,29 +204,10 @@ def block_series(record: Mapping[str, Any]) -> list[BlockSeries]:
     return series
 
 
-def _fmt_axis(v: float) -> str:
-    text = f"{v:.4g}"
-    return "0" if text == "-0" else text
 
 
-def _c(v: float) -> str:
-    """A coordinate, written with a fixed number of decimals (deterministic bytes)."""
-    text = f"{v:.2f}"
-    return "0.00" if text == "-0.00" else text
 
 
-def _nice_ticks(lo: float, hi: float, target: int = 6) -> list[float]:
-    """Tick values at 1, 2, 2.5 or 5 times a power of ten inside [lo, hi] (common practice)."""
-    raw = (hi - lo) / max(target - 1, 1)
-    mag = 10.0 ** math.floor(math.log10(raw))
-    step = next(m * mag for m in (1, 2, 2.5, 5, 10) if m * mag >= raw)
-    first = math.ceil(lo / step)
-    ticks = []
-    k = first
-    while k * step <= hi + 1e-12 * step:
-        ticks.append(round(k * step, 12))
-        k += 1
-    return ticks
 
 
 # long: one SVG document assembled element by element (axes, ticks, reference lines, points,
@@ -323,55 +300,14 @@ def svg_block_plot(series: BlockSeries, *, threshold: float | None = None,
 # --------------------------------------------------------------------------- HTML
 
 
-def _e(value: Any) -> str:
-    return html.escape(str(value), quote=True)
 
 
-def _fmt(value: Any, digits: int = 6) -> str:
-    if value is None:
-        return _DASH
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, int):
-        return f"{value:,}".replace(",", "\u202f")  # narrow no-break space groups digits
-    if isinstance(value, float):
-        if 1e3 <= abs(value) < 1e15:
-            return f"{value:,.1f}".replace(",", "\u202f")
-        if value == 0 or 1e-4 <= abs(value) < 1e3:
-            return f"{value:.{digits}g}"
-        return f"{value:.4e}"
-    return str(value)
 
 
-def _group(text: str) -> str:
-    head, dot, tail = text.partition(".")
-    sign = "-" if head.startswith("-") else ""
-    digits = head.lstrip("-")
-    groups = []
-    while len(digits) > 3:
-        groups.insert(0, digits[-3:])
-        digits = digits[:-3]
-    groups.insert(0, digits)
-    return sign + "\u202f".join(groups) + dot + tail
 
 
-def _down(value: float | None, decimals: int) -> str:
-    """A bound written rounded DOWN (never optimistic), e.g. a lower bound or certified bits."""
-    if value is None:
-        return _DASH
-    from decimal import ROUND_FLOOR, Decimal
-
-    q = Decimal(value).quantize(Decimal(1).scaleb(-decimals), rounding=ROUND_FLOOR)
-    return _group(f"{q:f}")
 
 
-def _exact(value: Any) -> str:
-    """A number written in full (shortest round-trip form, as in the record)."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
-        return _DASH if value is None else _e(value)
-    if isinstance(value, int):
-        return str(value)
-    return repr(value) if math.isfinite(value) else _e(value)
 
 
 def _code(value: str | None) -> str:

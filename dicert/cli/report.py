@@ -44,7 +44,7 @@ def report(
         return
     from rich.table import Table
 
-    from dicert.beacon.pages import _down
+    from dicert._docview import _down
 
     table = Table(title="certification report", show_header=False, title_justify="left")
     table.add_column("quantity", style="bold", no_wrap=True)

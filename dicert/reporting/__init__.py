@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from dicert._display import displayed
-from dicert.beacon.pages import _get, _num, _str
+from dicert._docview import _get, _num, _str
 from dicert.reporting.content import EPS_MEANING, FORMATS, Fact, ReportError, bibtex_entries
 from dicert.reporting.render import render_html, render_markdown
 

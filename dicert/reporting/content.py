@@ -10,7 +10,7 @@ from collections.abc import Mapping, Sequence
 from decimal import ROUND_CEILING, Decimal
 from typing import Any
 
-from dicert.beacon.pages import _down, _exact, _fmt, _get, _num, _str
+from dicert._docview import _down, _exact, _fmt, _get, _num, _str
 from dicert.errors import ParameterError
 
 FORMATS = {"html": (".html", ".htm"), "md": (".md", ".markdown")}

@@ -10,7 +10,7 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from dicert.beacon.pages import (
+from dicert._docview import (
     CHSH_QUANTUM_BOUND,
     _c,
     _fmt,
@@ -19,9 +19,8 @@ from dicert.beacon.pages import (
     _nice_ticks,
     _num,
     _str,
-    block_series,
-    svg_block_plot,
 )
+from dicert.beacon.pages import block_series, svg_block_plot
 from dicert.reporting.content import CHSH_MAX, _acceptance, _Acceptance
 
 # --------------------------------------------------------------------------- figures

@@ -9,7 +9,7 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from dicert.beacon.pages import _exact, _get, _num, _str
+from dicert._docview import _exact, _get, _num, _str
 from dicert.reporting.content import (
     _DASH,
     Fact,
