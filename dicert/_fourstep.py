@@ -303,35 +303,31 @@ def _iov_chunks(parts: list[np.ndarray]) -> list[list[memoryview]]:
     return [views[i:i + step] for i in range(0, len(views), step)]
 
 
-def _preadv_all(fd: int, parts: list[np.ndarray], off: int) -> None:
-    """Read consecutive bytes at ``off`` into the (contiguous) arrays ``parts`` in turn."""
+def _vectored_all(vectored, single, fd: int, parts: list[np.ndarray], off: int) -> None:
+    """Move consecutive bytes at ``off`` to or from the (contiguous) arrays ``parts`` in turn
+    with ``vectored`` (os.preadv / os.pwritev); a short transfer is finished piece by piece
+    with ``single`` (_pread_all / _pwrite_all)."""
     for group in _iov_chunks(parts):
         want = sum(len(v) for v in group)
-        got = os.preadv(fd, group, off)
-        if got != want:  # a short read: finish piece by piece
+        got = vectored(fd, group, off)
+        if got != want:
             pos = 0
             for v in group:
                 if pos + len(v) > got:
                     start = max(0, got - pos)
-                    _pread_all(fd, np.frombuffer(v, dtype=np.uint8)[start:], off + pos + start)
+                    single(fd, np.frombuffer(v, dtype=np.uint8)[start:], off + pos + start)
                 pos += len(v)
         off += want
+
+
+def _preadv_all(fd: int, parts: list[np.ndarray], off: int) -> None:
+    """Read consecutive bytes at ``off`` into the (contiguous) arrays ``parts`` in turn."""
+    _vectored_all(os.preadv, _pread_all, fd, parts, off)
 
 
 def _pwritev_all(fd: int, parts: list[np.ndarray], off: int) -> None:
     """Write the (contiguous) arrays ``parts`` one after the other from ``off``."""
-    for group in _iov_chunks(parts):
-        want = sum(len(v) for v in group)
-        got = os.pwritev(fd, group, off)
-        if got != want:  # a short write: finish piece by piece
-            pos = 0
-            for v in group:
-                if pos + len(v) > got:
-                    start = max(0, got - pos)
-                    _pwrite_all(fd, np.frombuffer(v, dtype=np.uint8)[start:],
-                                off + pos + start)
-                pos += len(v)
-        off += want
+    _vectored_all(os.pwritev, _pwrite_all, fd, parts, off)
 
 
 def _pwrite_all(fd: int, buf: np.ndarray, off: int) -> None:

@@ -7,9 +7,11 @@ throughputs for reference. Benchmarks are never part of the unit tests' pass/fai
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
+import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
 # Benchmark modules in the order ``dicert bench`` runs them.
 SUITES = ("logs", "join", "simulate", "entropy", "extract", "finite", "pef", "certify")
@@ -92,3 +94,18 @@ def peak_rss_mb_of(cmd: list[str]) -> tuple[float, float]:
     finally:
         os.unlink(out)
     return wall, kb / 1024.0
+
+
+@contextlib.contextmanager
+def bench_scheduler() -> Iterator[tuple[str, bool]]:
+    """(scheduler address, whether a local cluster was started): ``DICERT_BENCH_SCHEDULER`` if
+    set, else a 2-worker ``distributed.LocalCluster`` on this machine, closed afterwards."""
+    import distributed
+
+    address = os.environ.get("DICERT_BENCH_SCHEDULER")
+    if address is not None:
+        yield address, False
+        return
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None, memory_limit="2GiB") as cluster:
+        yield cluster.scheduler_address, True

@@ -27,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from dicert.benchmarks import BenchResult, peak_rss_mb_of
+from dicert.benchmarks import BenchResult, bench_scheduler, peak_rss_mb_of
 
 SUITE = "certify"
 
@@ -137,7 +137,7 @@ def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[Be
     """certify of a multi-file log in one process and on a dask cluster (scan and
     extraction as tasks); skipped without the optional extra ``dicert[cluster]``."""
     try:
-        import distributed
+        import distributed  # noqa: F401  (the optional extra is installed)
     except ImportError:
         return []
     from dicert.certify import certify
@@ -156,25 +156,16 @@ def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[Be
     t0 = time.perf_counter()
     here = certify(d, proto, seed, tmp / "multi-here", clock=clock)
     t_here = time.perf_counter() - t0
-    address = os.environ.get("DICERT_BENCH_SCHEDULER")
-    cluster = None
-    if address is None:
-        cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                           dashboard_address=None, memory_limit="2GiB")
-        address = cluster.scheduler_address
-    try:
+    with bench_scheduler() as (address, started):
         t0 = time.perf_counter()
         there = certify(d, proto, seed, tmp / "multi-there", clock=clock, scheduler=address)
         t_there = time.perf_counter() - t0
-    finally:
-        if cluster is not None:
-            cluster.close()
 
     def body(rec: dict) -> dict:
         return {k: v for k, v in rec.items() if k not in ("volatile", "record_sha256")}
 
     same = body(here.record) == body(there.record)
-    where = "given scheduler" if cluster is None else "2-worker LocalCluster on this machine"
+    where = "2-worker LocalCluster on this machine" if started else "given scheduler"
     trials = files * per_file
     return [
         BenchResult(suite=SUITE, name=f"certify of a {files}-file log, one process",

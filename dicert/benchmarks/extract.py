@@ -28,7 +28,7 @@ from pathlib import Path
 
 import numpy as np
 
-from dicert.benchmarks import BenchResult, peak_rss_mb_of
+from dicert.benchmarks import BenchResult, bench_scheduler, peak_rss_mb_of
 
 SUITE = "extract"
 
@@ -156,7 +156,7 @@ def _cluster(tmp: Path) -> list[BenchResult]:
     import time
 
     try:
-        import distributed
+        import distributed  # noqa: F401  (the optional extra is installed)
     except ImportError:
         return []
     from dicert.extract import extract_toeplitz
@@ -166,20 +166,11 @@ def _cluster(tmp: Path) -> list[BenchResult]:
     t0 = time.perf_counter()
     local = extract_toeplitz(raw, seed, m, workers=1)
     t_local = time.perf_counter() - t0
-    address = os.environ.get("DICERT_BENCH_SCHEDULER")
-    cluster = None
-    if address is None:
-        cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                           dashboard_address=None, memory_limit="2GiB")
-        address = cluster.scheduler_address
-    try:
+    with bench_scheduler() as (address, _started):
         t0 = time.perf_counter()
         remote = extract_toeplitz(raw, seed, m, scheduler=address, temp_dir=tmp)
         t_remote = time.perf_counter() - t0
         counting = _cluster_counting(tmp, address)
-    finally:
-        if cluster is not None:
-            cluster.close()
     return counting + [
         BenchResult(suite=SUITE, name="cluster extract n = 2^24: speedup over one process",
                     value=t_local / t_remote, unit="x",
