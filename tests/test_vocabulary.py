@@ -175,3 +175,23 @@ def test_glossary_lists_each_label_once():
     rows = [ln for ln in text[start:end].splitlines() if ln.startswith("| ") and "---" not in ln]
     labels = [r.split("|")[1].strip() for r in rows[1:]]
     assert len(labels) == len(set(labels)) and len(labels) >= 20
+
+
+def test_verify_failure_json_names_the_message_as_success_does(tmp_path):
+    # One name for the words a verification result carries: "message" (not "error", which the
+    # glossary retired as a name of the soundness error).
+    from dicert.certification import certify
+    from dicert.cli.app import app
+    from dicert.logs import write_log
+
+    log, seed = tmp_path / "log.btl", tmp_path / "seed.bin"
+    write_log(log, sim_trials(20_000, seed=23))
+    seed.write_bytes(np.random.default_rng(24).bytes(12_000))
+    res = certify(log, ROOT / "protocols" / "chsh-uniform.toml", seed, tmp_path / "out")
+    ok = json.loads(runner.invoke(app, ["verify", str(res.record_file), "--json"]).stdout)
+    Path(res.bits_file).write_bytes(Path(res.bits_file).read_bytes() + b"x")
+    r = runner.invoke(app, ["verify", str(res.record_file), "--json"])
+    assert r.exit_code == 1
+    bad = json.loads(r.stdout)
+    assert "message" in ok and "bits" in bad["message"] and bad["field"] == "bits"
+    assert "error" not in bad and bad["verified"] is False

@@ -81,7 +81,7 @@ def verify_cmd(
     except VerificationError as exc:
         if as_json:
             emit_json({"verified": False, "result": "FAILED", "authenticated": False,
-                       "field": exc.field, "error": " ".join(str(exc).split()),
+                       "field": exc.field, "message": " ".join(str(exc).split()),
                        "exit_code": 1})
         raise
     if code:
