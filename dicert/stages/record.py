@@ -267,7 +267,8 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
             f"a lost test round ({charge.lost_test_rounds_charged} charged) in the estimate "
             f"and the acceptance test, and {charge.raw_bits_subtracted} raw bits of dropped "
             f"trials plus {charge.pattern_bits:.6g} bits for the drop pattern (which trials, "
-            "at which station: chosen by the adversary) subtracted from the certified "
+            f"at which station{' or at both' if charge.keys else ''}: chosen by the "
+            "adversary) subtracted from the certified "
             "min-entropy (log.spec.join.charge). " + _both_sentence(charge.keys,
                                                                    charge.missing_at_both))
     elif _declared_keys(scan):
