@@ -343,3 +343,43 @@ def test_verify_rederives_gaps_and_refuses_tampering(run, tmp_path):
         assert "log.spec.join" in bad.output or "log.trials" in bad.output, bad.output
         bad = _cli("verify", tmp_path / "edited.json", "--log-spec", run["spec"])
         assert bad.exit_code == 1, (path, bad.output)
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_join_against_a_set_model(tmp_path, seed):
+    """Random tiny runs, random chunking: the streaming counts and the refused key equal those
+    of a plain set computation over the declared range (the definition of a gap)."""
+    rng = np.random.default_rng(seed)
+    universe = np.arange(20, 60)
+    at_a = universe[rng.random(universe.size) < 0.8]
+    at_b = universe[rng.random(universe.size) < 0.8]
+    both = np.intersect1d(at_a, at_b)
+    if both.size == 0:
+        return
+    seen = np.union1d(at_a, at_b)
+    first = int(rng.choice([seen[0], 20])) if seed % 2 else None
+    last = int(seen[-1]) + int(rng.integers(0, 3)) if seed % 3 == 0 else None
+    lo = first if first is not None else int(seen[0])
+    hi = last if last is not None else int(seen[-1])
+    missing = []
+    for k in range(lo, hi + 1):
+        ina, inb = k in set(at_a.tolist()), k in set(at_b.tolist())
+        if not (ina and inb):
+            missing.append((k, "both" if not (ina or inb) else ("A" if not ina else "B")))
+    _tiny(tmp_path, at_a, at_b)
+    for max_missing in (0, len(missing) // 2, len(missing)):
+        spec = _spec(tmp_path / f"s{max_missing}.toml", max_missing, first=first, last=last)
+        for chunk in (1, 7, 1 << 16):
+            if len(missing) > max_missing:
+                with pytest.raises(LogFormatError) as ei:
+                    _join(spec, chunk)
+                k, where = missing[max_missing]
+                msg = str(ei.value)
+                assert f"key {k}:" in msg, (msg, missing, max_missing, chunk)
+                assert ("both stations" in msg) == (where == "both"), msg
+                continue
+            n, rep = _join(spec, chunk)
+            assert n == rep["matched"] == both.size
+            assert rep["missing_at_a"] == sum(w == "A" for _, w in missing)
+            assert rep["missing_at_b"] == sum(w == "B" for _, w in missing)
+            assert rep["missing_at_both"] == sum(w == "both" for _, w in missing)

@@ -295,8 +295,11 @@ class _JoinState:
             return
         allowed = self.spec.max_missing - (self.missing_a + self.missing_b + self.missing_both)
         if n > allowed:
-            gap_keys = _gap_keys(union, prev, allowed + 1) if gaps else _EMPTY
-            self._refuse(miss_a, miss_b, gap_keys, allowed, pa, pb)
+            if gaps:
+                k = _kth_missing(miss_a, miss_b, union, prev, max(allowed, 0))
+                self._refuse(_EMPTY, _EMPTY, np.array([k], np.int64), 0, pa, pb,
+                             one_sided=(miss_a, miss_b))
+            self._refuse(miss_a, miss_b, _EMPTY, allowed, pa, pb)
         self.missing_a += miss_a.size
         self.missing_b += miss_b.size
         self.missing_both += gaps
@@ -330,7 +333,14 @@ class _JoinState:
                                      "in [join.first_key, join.last_key]")
 
     def _refuse(self, miss_a: np.ndarray, miss_b: np.ndarray, gap_keys: np.ndarray,
-                allowed: int, pa: Path, pb: Path) -> None:
+                allowed: int, pa: Path, pb: Path, one_sided: tuple | None = None) -> None:
+        if one_sided is not None:  # gap_keys holds the key refused: where is it missing?
+            k = int(gap_keys[0])
+            for w, arr in enumerate(one_sided):
+                if _contains(arr, k):
+                    miss_a, miss_b = (gap_keys, _EMPTY) if w == 0 else (_EMPTY, gap_keys)
+                    gap_keys = _EMPTY
+                    break
         keys = np.concatenate([miss_a, miss_b, gap_keys])
         where = np.concatenate([np.zeros(miss_a.size, np.int8), np.ones(miss_b.size, np.int8),
                                 np.full(gap_keys.size, 2, np.int8)])
@@ -349,20 +359,30 @@ class _JoinState:
                              f"at station {'B' if at == 'A' else 'A'}, {other.name}); {tail}")
 
 
-def _gap_keys(union: np.ndarray, prev: int, limit: int) -> np.ndarray:
-    """The first ``limit`` keys (at most) after ``prev`` and inside ``union`` that are not in
-    it (memory bounded by ``limit``, the spec's tolerance plus one)."""
-    d = np.diff(union, prepend=np.int64(prev)) - 1
-    out: list[np.ndarray] = []
-    got = 0
-    for i in np.flatnonzero(d > 0):
-        take = min(int(d[i]), limit - got)
-        start = int(union[i]) - int(d[i])
-        out.append(np.arange(start, start + take, dtype=np.int64))
-        got += take
-        if got >= limit:
-            break
-    return np.concatenate(out) if out else _EMPTY
+def _contains(arr: np.ndarray, k: int) -> bool:
+    """Whether the sorted array ``arr`` holds ``k``."""
+    i = int(np.searchsorted(arr, k))
+    return i < arr.size and int(arr[i]) == k
+
+
+def _kth_missing(miss_a: np.ndarray, miss_b: np.ndarray, union: np.ndarray, prev: int,
+                 k: int) -> int:
+    """The ``k``-th (from 0) smallest key missing somewhere in this round: at A (``miss_a``),
+    at B (``miss_b``) or at both (a key after ``prev``, up to ``union[-1]``, not in
+    ``union``), by bisection on the key (no list of gap keys is built: memory stays flat
+    whatever the tolerance)."""
+    def count(v: int) -> int:  # missing keys <= v
+        in_union = int(np.searchsorted(union, v, "right"))
+        return (int(np.searchsorted(miss_a, v, "right")) + int(np.searchsorted(miss_b, v, "right"))
+                + (v - prev) - in_union)
+    lo, hi = prev + 1, int(union[-1])
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if count(mid) >= k + 1:
+            hi = mid
+        else:
+            lo = mid + 1
+    return lo
 
 
 _EMPTY = np.zeros(0, np.int64)
