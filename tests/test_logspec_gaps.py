@@ -173,6 +173,23 @@ def test_non_integer_keys_error(tmp_path):
     assert "Traceback" not in r.output and len(r.output.strip().splitlines()) == 1
 
 
+def test_non_integer_parquet_keys_error(tmp_path):
+    """A float key column in Parquet with consecutive keys declared: one line naming the file
+    and the row, exit 2."""
+    pa = pytest.importorskip("pyarrow")
+    pq = pytest.importorskip("pyarrow.parquet")
+    for name, keys in (("a.parquet", [1.0, 2.0, 3.0]), ("b.parquet", [1, 2, 3])):
+        pq.write_table(pa.table({"pulse": keys, "basis": ["1"] * 3, "result": ["+1"] * 3}),
+                       tmp_path / name)
+    text = _spec(tmp_path / "s.toml", 1).read_text().replace(".csv", ".parquet")
+    spec = tmp_path / "s.toml"
+    spec.write_text(text)
+    r = _cli("inspect", "--log-spec", spec)
+    assert r.exit_code == 2, r.output
+    assert "a.parquet, row 0" in r.output and "expected integers" in r.output
+    assert "Traceback" not in r.output and len(r.output.strip().splitlines()) == 1
+
+
 # ------------------------------------------------------------------ the pattern count
 
 

@@ -270,9 +270,11 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
             f"at which station{' or at both' if charge.keys else ''}: chosen by the "
             "adversary) subtracted from the certified "
             "min-entropy (log.spec.join.charge). " + _both_sentence(charge.keys,
-                                                                   charge.missing_at_both))
+                                                                   charge.missing_at_both,
+                                                                   _key_range(scan)))
     elif _declared_keys(scan):
-        assumptions.append(_both_sentence(_declared_keys(scan), _missing_at_both(scan)))
+        assumptions.append(_both_sentence(_declared_keys(scan), _missing_at_both(scan),
+                                          _key_range(scan)))
     elif _dropped_trials(scan):  # a record from before the join charge (format /3 or older)
         assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=_dropped_trials(scan)))
     return assumptions
@@ -286,16 +288,33 @@ LEGACY_DROP_ASSUMPTION = (
     "electronics can cause a trial to go missing, the certificate does not hold.")
 
 
-def _both_sentence(keys: Any, both: int) -> str:
+def _both_sentence(keys: Any, both: int, key_range: Any = None) -> str:
     """What the record says about trials missing at both stations."""
     if keys == "consecutive":
+        first, last = (list(key_range) + [None, None])[:2] if isinstance(
+            key_range, (list, tuple)) else (None, None)
+        ends = []
+        if first is None:
+            ends.append("before the first key recorded")
+        if last is None:
+            ends.append("after the last key recorded")
+        rest = (" Trials " + " or ".join(ends) + " (no join.first_key / join.last_key "
+                "declared) would leave no gap: that none is missing there stays assumed."
+                if ends else "")
         return ("Trials missing at both stations: checked, the log spec declares the join keys "
-                "consecutive integers (join.keys), so every key missing inside the range is "
-                f"a visible gap ({both} found, log.spec.join.missing_at_both), counted against "
-                "join.max_missing and charged like a trial missing at one station.")
+                "consecutive integers (join.keys), so every key missing inside the range "
+                f"({'first key recorded' if first is None else first} to "
+                f"{'last key recorded' if last is None else last}) is a visible gap "
+                f"({both} found, log.spec.join.missing_at_both), counted against "
+                "join.max_missing and charged like a trial missing at one station." + rest)
     return ("A trial missing at both stations leaves no row for the join to see (the log spec "
             "declares no consecutive keys, join.keys): that every trial is logged stays "
             "assumed (above), not checked.")
+
+
+def _key_range(scan: LogScan) -> Any:
+    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
+    return join.get("key_range") if isinstance(join, Mapping) else None
 
 
 def _declared_keys(scan: LogScan) -> Any:
