@@ -276,19 +276,22 @@ class _JoinState:
                                      and spec.first_key is not None else None)
 
     def missing(self, miss_a: np.ndarray, miss_b: np.ndarray, pa: Path, pb: Path,
-                union: np.ndarray | None = None, ka: np.ndarray | None = None) -> None:
+                ka: np.ndarray | None = None, kb: np.ndarray | None = None,
+                matched: int = 0) -> None:
         """Count trials missing at A (``miss_a``: keys seen only at B) and at B, and with
-        consecutive keys the gaps before and inside ``union`` (the sorted keys of this round
-        at either station; ``ka`` those of A, to name the file of a key out of range); refuse,
-        naming the first key in key order beyond the spec's tolerance."""
+        consecutive keys the gaps before and among this round's keys (``ka`` of A, ``kb`` of
+        B, sorted, ``matched`` of them common: the round's keys number ka + kb - matched, so
+        no union is built unless a key is refused); refuse, naming the first key in key order
+        beyond the spec's tolerance."""
         gaps = 0
         prev = self.prev_key
-        if self.consecutive and union is not None and union.size:
-            self._check_range(union, ka, pa, pb)
-            lo, hi = int(union[0]), int(union[-1])
+        if self.consecutive and ka is not None and kb is not None and (ka.size or kb.size):
+            lo = min(int(k[0]) for k in (ka, kb) if k.size)
+            hi = max(int(k[-1]) for k in (ka, kb) if k.size)
+            self._check_range(lo, hi, ka, pa, pb)
             if prev is None:
                 prev = lo - 1  # no declared first key: the range starts at the first key seen
-            gaps = (lo - prev - 1) + (hi - lo - (union.size - 1))
+            gaps = (lo - prev - 1) + (hi - lo - (ka.size + kb.size - matched - 1))
             self.prev_key = hi
         n = miss_a.size + miss_b.size + gaps
         if n == 0:
@@ -296,7 +299,7 @@ class _JoinState:
         allowed = self.spec.max_missing - (self.missing_a + self.missing_b + self.missing_both)
         if n > allowed:
             if gaps:
-                k = _kth_missing(miss_a, miss_b, union, prev, max(allowed, 0))
+                k = _kth_missing(miss_a, miss_b, np.union1d(ka, kb), prev, max(allowed, 0))
                 self._refuse(_EMPTY, _EMPTY, np.array([k], np.int64), 0, pa, pb,
                              one_sided=(miss_a, miss_b))
             self._refuse(miss_a, miss_b, _EMPTY, allowed, pa, pb)
@@ -318,19 +321,16 @@ class _JoinState:
         self.missing_both += gaps
         self.prev_key = self.spec.last_key
 
-    def _check_range(self, union: np.ndarray, ka: np.ndarray | None, pa: Path,
-                     pb: Path) -> None:
+    def _check_range(self, lo: int, hi: int, ka: np.ndarray, pa: Path, pb: Path) -> None:
         first, last = self.spec.first_key, self.spec.last_key
-        for bad, k, what in ((first is not None and int(union[0]) < first, int(union[0]),
+        for bad, k, what in ((first is not None and lo < first, lo,
                               f"below join.first_key = {first}"),
-                             (last is not None and int(union[-1]) > last, int(union[-1]),
+                             (last is not None and hi > last, hi,
                               f"above join.last_key = {last}")):
             if bad:
-                at_a = ka is not None and ka.size and bool(
-                    ka[min(int(np.searchsorted(ka, k)), ka.size - 1)] == k)
-                raise LogFormatError(pa if at_a else pb, f"key {k}", f"trial key {what}: "
-                                     "the spec declares the run's consecutive keys to lie "
-                                     "in [join.first_key, join.last_key]")
+                raise LogFormatError(pa if _contains(ka, k) else pb, f"key {k}", f"trial key "
+                                     f"{what}: the spec declares the run's consecutive keys "
+                                     "to lie in [join.first_key, join.last_key]")
 
     def _refuse(self, miss_a: np.ndarray, miss_b: np.ndarray, gap_keys: np.ndarray,
                 allowed: int, pa: Path, pb: Path, one_sided: tuple | None = None) -> None:
@@ -486,11 +486,11 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
             st.finish(pa, pb)
             return
         if ba is None:
-            st.missing(bb["key"], _EMPTY, pa, pb, bb["key"], _EMPTY)
+            st.missing(bb["key"], _EMPTY, pa, pb, _EMPTY, bb["key"])
             bb = None
             continue
         if bb is None:
-            st.missing(_EMPTY, ba["key"], pa, pb, ba["key"], ba["key"])
+            st.missing(_EMPTY, ba["key"], pa, pb, ba["key"], _EMPTY)
             ba = None
             continue
         ka, kb = ba["key"], bb["key"]
@@ -501,7 +501,7 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
         if na == nb and np.array_equal(ka_, kb_):
             runs, tail = [(0, 0, na)], None
             if st.consecutive:
-                st.missing(_EMPTY, _EMPTY, pa, pb, ka_, ka_)
+                st.missing(_EMPTY, _EMPTY, pa, pb, ka_, kb_, na)
         else:
             runs, tail = _match_runs(ka_, kb_)
             miss_b = np.ones(na, bool)  # rows of A not matched: missing at B
@@ -512,8 +512,9 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
             if tail is not None:
                 miss_b[tail[0]] = False
                 miss_a[tail[1]] = False
-            st.missing(kb_[miss_a], ka_[miss_b], pa, pb,
-                       np.union1d(ka_, kb_) if st.consecutive else None, ka_)
+            st.missing(kb_[miss_a], ka_[miss_b], pa, pb, ka_, kb_,
+                       sum(d for _, _, d in runs) + (int(tail[0].size) if tail is not None
+                                                     else 0))
         parts = [(slice(i, i + d), slice(j, j + d)) for i, j, d in runs]
         if tail is not None and tail[0].size:
             parts.append(tail)
