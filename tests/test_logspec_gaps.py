@@ -400,3 +400,15 @@ def test_join_against_a_set_model(tmp_path, seed):
             assert rep["missing_at_a"] == sum(w == "A" for _, w in missing)
             assert rep["missing_at_b"] == sum(w == "B" for _, w in missing)
             assert rep["missing_at_both"] == sum(w == "both" for _, w in missing)
+
+
+def test_assumption_sentence_says_what_is_checked():
+    from dicert.stages.record import _both_sentence
+
+    s = _both_sentence("consecutive", 2, [10, 99])
+    assert "checked" in s and "(10 to 99)" in s and "(2 found" in s and "stays assumed" not in s
+    s = _both_sentence("consecutive", 0, [None, None])
+    assert "before the first key recorded or after the last key recorded" in s
+    assert "stays assumed" in s
+    s = _both_sentence(None, 0)
+    assert "stays assumed" in s and "not checked" in s
