@@ -556,13 +556,15 @@ def test_example_certify_and_verify_rerun_join(example, tmp_path):
     assert spec["content"] == text
     assert spec["sha256"] == hashlib.sha256(text.encode()).hexdigest()
     charge = spec["join"].pop("charge")
-    assert spec["join"] == {"matched": 3997, "missing_at_a": 0, "missing_at_b": 3,
-                            "duplicated_keys": 0, "out_of_order_keys": 0, "max_missing": 3,
-                            "first_key": 100007, "last_key": 128000}
-    # Dropped trials are charged, not assumed (tests/test_logspec_charge.py checks the values).
+    assert spec["join"] == {"matched": 3996, "missing_at_a": 0, "missing_at_b": 3,
+                            "duplicated_keys": 0, "out_of_order_keys": 0, "max_missing": 4,
+                            "first_key": 100001, "last_key": 104000, "keys": "consecutive",
+                            "key_range": [100001, 104000], "missing_at_both": 1}
+    # Dropped trials are charged, not assumed (tests/test_logspec_charge.py and
+    # tests/test_logspec_gaps.py check the values).
     assert (charge["dropped_trials"], charge["lost_test_rounds_charged"],
-            charge["raw_bits_subtracted"]) == (3, 3, 6)
-    assert any("Trials dropped by the station join (3," in a and "checked / charged" in a
+            charge["raw_bits_subtracted"], charge["missing_at_both"]) == (4, 4, 8, 1)
+    assert any("Trials dropped by the station join (4," in a and "checked / charged" in a
                for a in rec["assumptions"])
     assert not any("NOT charged" in a for a in rec["assumptions"])
     assert [f["name"] for f in rec["log"]["files"]] == ["station-a.csv", "station-b.csv"]
@@ -587,7 +589,7 @@ def test_example_certify_and_verify_rerun_join(example, tmp_path):
     ok2 = _cli("verify", out / "record.json", "--log-spec", renamed)
     assert ok2.exit_code == 4, ok2.output  # a renamed spec with the same content verifies
     # a changed tolerance in the spec: same trials, but not the spec certified
-    (example / "run.logspec.toml").write_text(text.replace("max_missing = 3", "max_missing = 4"))
+    (example / "run.logspec.toml").write_text(text.replace("max_missing = 4", "max_missing = 5"))
     bad = _cli("verify", out / "record.json", "--log-spec", example / "run.logspec.toml")
     assert bad.exit_code == 1 and "log.spec" in bad.output
     (example / "run.logspec.toml").write_text(text)
@@ -612,7 +614,7 @@ def test_convert_writes_joined_binary(example, tmp_path):
     out = tmp_path / "joined.btl"
     r = _cli("convert", "--log-spec", example / "run.logspec.toml", out, "--json")
     assert r.exit_code == 0, r.output
-    assert json.loads(r.output)["trials"] == 3997
+    assert json.loads(r.output)["trials"] == 3996
     a = read_trials(out)
     b = read_trials(example / "run.logspec.toml")
     np.testing.assert_array_equal(a.codes(), b.codes())
@@ -630,11 +632,12 @@ def test_inspect_and_entropy_accept_log_spec(example):
     r = _cli("inspect", "--log-spec", example / "run.logspec.toml", "--json")
     assert r.exit_code == 0, r.output
     doc = json.loads(r.output)
-    assert doc["trials"] == 3997 and doc["log_spec"]["join"]["missing_at_b"] == 3
+    assert doc["trials"] == 3996 and doc["log_spec"]["join"]["missing_at_b"] == 3
+    assert doc["log_spec"]["join"]["missing_at_both"] == 1
     r = _cli("entropy", "--log-spec", example / "run.logspec.toml", "--method", "analytic",
              "--json")
     assert r.exit_code == 0, r.output
-    assert json.loads(r.output)["log"]["trials"] == 3997
+    assert json.loads(r.output)["log"]["trials"] == 3996
 
 
 def test_errors_are_dicert_errors(tmp_path):

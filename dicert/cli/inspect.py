@@ -138,7 +138,9 @@ def inspect_cmd(
     if summary.log_spec is not None and summary.log_spec.get("join") is not None:
         j = summary.log_spec["join"]
         rows.append(Row("station join", None, f"{j['matched']:,} trials matched; missing at A "
-                        f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,} (tolerated: "
+                        f"{j['missing_at_a']:,}, at B {j['missing_at_b']:,}"
+                        + (f", at both {j['missing_at_both']:,} (consecutive keys)"
+                           if j.get("keys") else "") + " (tolerated: "
                         f"{j['max_missing']:,}); keys {j['first_key']} to {j['last_key']}"))
     render(con, f"Bell test summary: {log}", rows)
     from rich.table import Table

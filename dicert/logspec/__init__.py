@@ -28,7 +28,11 @@ the losing trials certifies local devices). ``[join] max_missing = N`` tolerates
 such trials in all (dropped, and counted in the join report that the record carries), and
 every analysis charges them (:mod:`dicert.logspec._charge`): each dropped trial counts as a
 lost test round, and its raw bits and the drop pattern are subtracted from the certified
-min-entropy; method ``pef`` refuses a join that dropped trials.
+min-entropy; method ``pef`` refuses a join that dropped trials. A trial missing at *both*
+stations leaves no row; ``[join] keys = "consecutive"`` (with optional ``first_key`` and
+``last_key``) declares the keys consecutive integers, and then each key missing inside the
+range is a gap (``missing_at_both``), refused or tolerated and charged like a one-sided drop
+(the streaming join remembers only the previous key).
 """
 
 from __future__ import annotations

@@ -39,6 +39,16 @@ pass a Bell test. So dropped trials are charged, never assumed harmless:
    above :data:`EXACT_PATTERN_LIMIT` the bound log2(N + 1) + max_j log2(C(n + N, j) 2^j) is
    evaluated with lgamma and a safety margin, again rounded up.
 
+4. **Trials missing at both stations.** Without a declaration such a trial leaves no row and
+   is invisible: that every trial is logged is only assumed. With ``[join] keys =
+   "consecutive"`` (optionally ``first_key``, ``last_key``) a key inside the range that no
+   station recorded is a gap: it counts against ``max_missing`` like a one-sided drop and is
+   charged exactly like one (a lost test round, its raw bits subtracted: the completed run
+   gives both stations a fixed outcome, still a local assignment). The pattern now has
+   three values per dropped trial (missing at A, at B, or at both), so with n matched trials
+   and at most N missing: |P| <= sum_{j<=N} C(n + N, j) 3^j (the same argument as in 3,
+   with 3 choices in place of 2; checked by enumeration for tiny n in the tests).
+
 A probability-estimation (``pef``) analysis multiplies trial-wise factors in log order and
 has no worst-case stand-in for a trial that is not there: it refuses a join that dropped
 trials (:func:`join_charge` with ``method = "pef"``).
@@ -76,6 +86,13 @@ CHARGE_METHOD = (
     "H_min^eps(X|E P) >= "
     "H_min^eps(X|E) - log2|P| for a classical P), rounded up")
 
+CHARGE_METHOD_GAPS = (
+    "the join keys are declared consecutive integers (join.keys), so each key inside the "
+    "range that no station recorded is a trial missing at both stations: counted in "
+    "missing_at_both and dropped_trials, charged as a lost test round with its raw bits, and "
+    "the drop pattern has three values per dropped trial (missing at A, at B, at both): "
+    "log2 sum_{j<=N} C(n+N, j) 3^j bits, rounded up")
+
 CHARGE_REFERENCES = (
     "A. Vitanov, F. Dupuis, M. Tomamichel, R. Renner, IEEE Trans. Inf. Theory 59, 2603 (2013) "
     "(chain rules for smooth min-entropy; the section is from memory)",
@@ -105,46 +122,65 @@ class JoinCharge:
     pattern_bits: float
     total_bits: float
     pattern_count_method: str
+    #: with ``[join] keys = "consecutive"``: the declaration and the trials missing at both
+    #: stations (already in ``dropped_trials``); both left out of :meth:`to_dict` without it
+    keys: str | None = None
+    missing_at_both: int = 0
 
     def to_dict(self) -> dict:
         d = dataclasses.asdict(self)
+        if self.keys is None:
+            del d["keys"], d["missing_at_both"]
+        else:
+            d["method_gaps"] = CHARGE_METHOD_GAPS
         d["method"] = CHARGE_METHOD
         d["references"] = list(CHARGE_REFERENCES)
         return d
 
 
-def pattern_count(n: int, max_missing: int) -> int:
-    """|P| bound sum_{j=0}^{N} C(n + N, j) 2^j, exactly (n matched trials, N = max_missing)."""
+def pattern_count(n: int, max_missing: int, choices: int = 2) -> int:
+    """|P| bound sum_{j=0}^{N} C(n + N, j) c^j, exactly (n matched trials, N = max_missing,
+    c = ``choices`` per dropped trial: 2 (missing at A or at B), 3 with consecutive keys
+    declared (or at both))."""
     n, big_n = _nonneg(n, "matched trials"), _nonneg(max_missing, "max_missing")
+    c = _choices(choices)
     m = n + big_n
     total = term = 1  # j = 0
     for j in range(big_n):
-        term = term * 2 * (m - j) // (j + 1)  # C(m, j+1) 2^(j+1), exact
+        term = term * c * (m - j) // (j + 1)  # C(m, j+1) c^(j+1), exact
         total += term
     return total
 
 
-def pattern_bits(n: int, max_missing: int) -> tuple[float, str]:
+def pattern_bits(n: int, max_missing: int, choices: int = 2) -> tuple[float, str]:
     """log2 of :func:`pattern_count`, rounded UP, and how it was computed."""
     n, big_n = _nonneg(n, "matched trials"), _nonneg(max_missing, "max_missing")
+    c = _choices(choices)
     if big_n == 0:
         return 0.0, "exact: no trial may be dropped (one pattern)"
     if big_n <= EXACT_PATTERN_LIMIT:
-        return log2_up(pattern_count(n, big_n)), "exact integer sum, log2 rounded up"
-    # at most N + 1 terms, each at most the largest; log C(m, j) 2^j is unimodal in j with its
-    # peak at j = floor((2m - 1) / 3) + 1 (the ratio of successive terms is 2 (m - j) / (j + 1))
+        return log2_up(pattern_count(n, big_n, c)), "exact integer sum, log2 rounded up"
+    # at most N + 1 terms, each at most the largest; log C(m, j) c^j is unimodal in j with its
+    # peak at j = floor((c m - 1) / (c + 1)) + 1 (the ratio of successive terms is
+    # c (m - j) / (j + 1))
     m = n + big_n
-    peak = min(big_n, (2 * m - 1) // 3 + 1)
+    peak = min(big_n, (c * m - 1) // (c + 1) + 1)
     best = -math.inf
     for j in {max(0, peak - 1), peak, min(big_n, peak + 1)}:
         nats = math.lgamma(m + 1) - math.lgamma(j + 1) - math.lgamma(m - j + 1)
         scale = math.lgamma(m + 1) + math.lgamma(j + 1) + math.lgamma(m - j + 1)
         nats += 1e-12 * scale + 1e-9  # lgamma's rounding, taken up
-        best = max(best, nats / math.log(2) * (1 + 1e-15) + j)
+        best = max(best, nats / math.log(2) * (1 + 1e-15) + j * math.log2(c) * (1 + 1e-15))
     bits = best + math.log2(big_n + 1) * (1 + 1e-15) + 1e-12
-    bits = min(bits, m * math.log2(3) * (1 + 1e-15) + 1e-12)  # the sum is < 3^m
-    return _up(bits), ("upper bound min(log2(N + 1) + max_j log2(C(n+N, j) 2^j), (n+N) log2 3) "
-                       "(lgamma with a margin), rounded up")
+    bits = min(bits, m * math.log2(c + 1) * (1 + 1e-15) + 1e-12)  # the sum is < (c + 1)^m
+    return _up(bits), (f"upper bound min(log2(N + 1) + max_j log2(C(n+N, j) {c}^j), (n+N) "
+                       f"log2 {c + 1}) (lgamma with a margin), rounded up")
+
+
+def _choices(c: Any) -> int:
+    if isinstance(c, bool) or c not in (2, 3):
+        raise ParameterError(f"station join: choices per dropped trial must be 2 or 3, got {c!r}")
+    return int(c)
 
 
 def log2_up(value: int) -> float:
@@ -207,7 +243,15 @@ def join_charge(join: Any, bits_per_trial: int, *, method: str | None = None,
     vals = {}
     for k in ("matched", "missing_at_a", "missing_at_b", "max_missing"):
         vals[k] = _nonneg(join.get(k), f"join.{k}")
-    dropped = vals["missing_at_a"] + vals["missing_at_b"]
+    keys = join.get("keys")
+    if keys is not None and keys != "consecutive":
+        raise ParameterError(f"{source}: join.keys must be \"consecutive\" or absent, got "
+                             f"{keys!r}")
+    both = _nonneg(join.get("missing_at_both"), "join.missing_at_both") if keys else 0
+    if not keys and "missing_at_both" in join:
+        raise ParameterError(f"{source}: join.missing_at_both without join.keys = "
+                             "\"consecutive\"")
+    dropped = vals["missing_at_a"] + vals["missing_at_b"] + both
     if dropped > vals["max_missing"]:
         raise ParameterError(f"{source}: the station join dropped {dropped} trials, more than "
                              f"its join.max_missing = {vals['max_missing']}")
@@ -218,9 +262,10 @@ def join_charge(join: Any, bits_per_trial: int, *, method: str | None = None,
             "that is not there: supply a complete join (join.max_missing = 0) or use method "
             "'martingale' or 'eat', which charge each dropped trial as a lost test round")
     bpt = _nonneg(bits_per_trial, "bits per trial")
-    pbits, how = pattern_bits(vals["matched"], vals["max_missing"])
+    pbits, how = pattern_bits(vals["matched"], vals["max_missing"], 3 if keys else 2)
     raw = dropped * bpt
-    return JoinCharge(dropped_trials=dropped, missing_at_a=vals["missing_at_a"],
+    return JoinCharge(keys=keys, missing_at_both=both,
+                      dropped_trials=dropped, missing_at_a=vals["missing_at_a"],
                       missing_at_b=vals["missing_at_b"], max_missing=vals["max_missing"],
                       matched_trials=vals["matched"], lost_test_rounds_charged=dropped,
                       bits_per_trial=bpt, raw_bits_subtracted=raw, pattern_bits=pbits,
@@ -247,6 +292,6 @@ def join_of(log_spec: Any) -> Mapping | None:
     return j if j is not None else None
 
 
-__all__ = ["CHARGE_METHOD", "CHARGE_REFERENCES", "EXACT_PATTERN_LIMIT", "JoinCharge",
+__all__ = ["CHARGE_METHOD", "CHARGE_METHOD_GAPS", "CHARGE_REFERENCES", "EXACT_PATTERN_LIMIT", "JoinCharge",
            "charge_for_log", "charged_counts", "join_charge", "join_of", "log2_up", "pattern_bits",
            "pattern_count"]

@@ -36,7 +36,13 @@ from dicert.logspec._readers import _READERS, implicit_spec
 class JoinReport:
     """What the station join found: trials matched, missing at A or at B (dropped, within the
     spec's ``join.max_missing``), and keys refused (always zero in a completed join: a
-    duplicated or out-of-order key stops the join with an error)."""
+    duplicated or out-of-order key stops the join with an error).
+
+    With ``[join] keys = "consecutive"`` also the declaration (``keys``, and the declared
+    ``key_range`` [first_key, last_key], either end None when not declared) and the trials
+    ``missing_at_both`` stations: keys inside the range that no station recorded (these count
+    against ``max_missing`` too). Without the declaration these three are left out of
+    :meth:`to_dict` (such a trial leaves no row: it is only assumed not to happen)."""
 
     matched: int
     missing_at_a: int
@@ -46,9 +52,18 @@ class JoinReport:
     max_missing: int
     first_key: int | None
     last_key: int | None
+    keys: str | None = None
+    key_range: tuple[int | None, int | None] | None = None
+    missing_at_both: int = 0
 
     def to_dict(self) -> dict:
-        return dataclasses.asdict(self)
+        d = dataclasses.asdict(self)
+        if self.keys is None:
+            for k in ("keys", "key_range", "missing_at_both"):
+                del d[k]
+        else:
+            d["key_range"] = list(self.key_range or (None, None))
+        return d
 
 
 class _Source:
@@ -235,40 +250,139 @@ class SpecLog:
         self.join_report = JoinReport(matched=state.matched, missing_at_a=state.missing_a,
                                       missing_at_b=state.missing_b, duplicated_keys=0,
                                       out_of_order_keys=0, max_missing=self.spec.max_missing,
-                                      first_key=state.first_key, last_key=state.last_key)
+                                      first_key=state.first_key, last_key=state.last_key,
+                                      keys=self.spec.keys,
+                                      key_range=(self.spec.first_key, self.spec.last_key)
+                                      if self.spec.keys is not None else None,
+                                      missing_at_both=state.missing_both)
         if state.matched == 0:
             raise LogFormatError(self.spec.path, "", "the stations share no trial key: the "
                                  "join is empty")
 
 
 class _JoinState:
+    """Counts of the join; with consecutive keys declared also the gaps (keys no station
+    recorded), from the previous key seen at either station (the only key remembered)."""
+
     def __init__(self, spec: LogSpec) -> None:
         self.spec = spec
-        self.matched = self.missing_a = self.missing_b = 0
+        self.matched = self.missing_a = self.missing_b = self.missing_both = 0
         self.first_key: int | None = None
         self.last_key: int | None = None
+        self.consecutive = spec.keys == "consecutive"
+        #: the last key seen at either station (gaps are counted from it); before any key,
+        #: first_key - 1 when a first key is declared (a gap at the start is visible)
+        self.prev_key: int | None = (spec.first_key - 1 if self.consecutive
+                                     and spec.first_key is not None else None)
 
-    def missing(self, miss_a: np.ndarray, miss_b: np.ndarray, pa: Path, pb: Path) -> None:
-        """Count trials missing at A (``miss_a``: keys seen only at B) and at B; refuse, naming
-        the first key in key order beyond the spec's tolerance."""
-        n = miss_a.size + miss_b.size
+    def missing(self, miss_a: np.ndarray, miss_b: np.ndarray, pa: Path, pb: Path,
+                ka: np.ndarray | None = None, kb: np.ndarray | None = None,
+                matched: int = 0) -> None:
+        """Count trials missing at A (``miss_a``: keys seen only at B) and at B, and with
+        consecutive keys the gaps before and among this round's keys (``ka`` of A, ``kb`` of
+        B, sorted, ``matched`` of them common: the round's keys number ka + kb - matched, so
+        no union is built unless a key is refused); refuse, naming the first key in key order
+        beyond the spec's tolerance."""
+        gaps = 0
+        prev = self.prev_key
+        if self.consecutive and ka is not None and kb is not None and (ka.size or kb.size):
+            lo = min(int(k[0]) for k in (ka, kb) if k.size)
+            hi = max(int(k[-1]) for k in (ka, kb) if k.size)
+            self._check_range(lo, hi, ka, pa, pb)
+            if prev is None:
+                prev = lo - 1  # no declared first key: the range starts at the first key seen
+            gaps = (lo - prev - 1) + (hi - lo - (ka.size + kb.size - matched - 1))
+            self.prev_key = hi
+        n = miss_a.size + miss_b.size + gaps
         if n == 0:
             return
-        allowed = self.spec.max_missing - (self.missing_a + self.missing_b)
+        allowed = self.spec.max_missing - (self.missing_a + self.missing_b + self.missing_both)
         if n > allowed:
-            keys = np.concatenate([miss_a, miss_b])
-            at_a = np.concatenate([np.ones(miss_a.size, bool), np.zeros(miss_b.size, bool)])
-            order = np.argsort(keys, kind="stable")
-            j = int(order[max(allowed, 0)])
-            k, at = int(keys[j]), ("A" if at_a[j] else "B")
-            here, other = (pa, pb) if at == "A" else (pb, pa)
-            raise LogFormatError(here, f"key {k}", f"trial missing at station {at} (present "
-                                 f"at station {'B' if at == 'A' else 'A'}, {other.name}); the "
-                                 f"spec tolerates {self.spec.max_missing} missing trials "
-                                 "(join.max_missing); silently dropping trials can bias the "
-                                 "test")
+            if gaps:
+                k = _kth_missing(miss_a, miss_b, np.union1d(ka, kb), prev, max(allowed, 0))
+                self._refuse(_EMPTY, _EMPTY, np.array([k], np.int64), 0, pa, pb,
+                             one_sided=(miss_a, miss_b))
+            self._refuse(miss_a, miss_b, _EMPTY, allowed, pa, pb)
         self.missing_a += miss_a.size
         self.missing_b += miss_b.size
+        self.missing_both += gaps
+
+    def finish(self, pa: Path, pb: Path) -> None:
+        """The gap after the last key seen, up to a declared last key."""
+        if not self.consecutive or self.spec.last_key is None or self.prev_key is None:
+            return
+        gaps = self.spec.last_key - self.prev_key
+        if gaps <= 0:
+            return
+        allowed = self.spec.max_missing - (self.missing_a + self.missing_b + self.missing_both)
+        if gaps > allowed:
+            self._refuse(_EMPTY, _EMPTY, np.array([self.prev_key + 1 + max(allowed, 0)],
+                                                  np.int64), 0, pa, pb)
+        self.missing_both += gaps
+        self.prev_key = self.spec.last_key
+
+    def _check_range(self, lo: int, hi: int, ka: np.ndarray, pa: Path, pb: Path) -> None:
+        first, last = self.spec.first_key, self.spec.last_key
+        for bad, k, what in ((first is not None and lo < first, lo,
+                              f"below join.first_key = {first}"),
+                             (last is not None and hi > last, hi,
+                              f"above join.last_key = {last}")):
+            if bad:
+                raise LogFormatError(pa if _contains(ka, k) else pb, f"key {k}", f"trial key "
+                                     f"{what}: the spec declares the run's consecutive keys "
+                                     "to lie in [join.first_key, join.last_key]")
+
+    def _refuse(self, miss_a: np.ndarray, miss_b: np.ndarray, gap_keys: np.ndarray,
+                allowed: int, pa: Path, pb: Path, one_sided: tuple | None = None) -> None:
+        if one_sided is not None:  # gap_keys holds the key refused: where is it missing?
+            k = int(gap_keys[0])
+            for w, arr in enumerate(one_sided):
+                if _contains(arr, k):
+                    miss_a, miss_b = (gap_keys, _EMPTY) if w == 0 else (_EMPTY, gap_keys)
+                    gap_keys = _EMPTY
+                    break
+        keys = np.concatenate([miss_a, miss_b, gap_keys])
+        where = np.concatenate([np.zeros(miss_a.size, np.int8), np.ones(miss_b.size, np.int8),
+                                np.full(gap_keys.size, 2, np.int8)])
+        order = np.argsort(keys, kind="stable")
+        j = int(order[max(allowed, 0)])
+        k, w = int(keys[j]), int(where[j])
+        tail = (f"the spec tolerates {self.spec.max_missing} missing trials "
+                "(join.max_missing); silently dropping trials can bias the test")
+        if w == 2:
+            raise LogFormatError(pa, f"key {k}", f"trial missing at both stations (no row in "
+                                 f"{pa.name} nor in {pb.name}; the spec declares consecutive "
+                                 f"keys, join.keys); {tail}")
+        at = "AB"[w]
+        here, other = (pa, pb) if at == "A" else (pb, pa)
+        raise LogFormatError(here, f"key {k}", f"trial missing at station {at} (present "
+                             f"at station {'B' if at == 'A' else 'A'}, {other.name}); {tail}")
+
+
+def _contains(arr: np.ndarray, k: int) -> bool:
+    """Whether the sorted array ``arr`` holds ``k``."""
+    i = int(np.searchsorted(arr, k))
+    return i < arr.size and int(arr[i]) == k
+
+
+def _kth_missing(miss_a: np.ndarray, miss_b: np.ndarray, union: np.ndarray, prev: int,
+                 k: int) -> int:
+    """The ``k``-th (from 0) smallest key missing somewhere in this round: at A (``miss_a``),
+    at B (``miss_b``) or at both (a key after ``prev``, up to ``union[-1]``, not in
+    ``union``), by bisection on the key (no list of gap keys is built: memory stays flat
+    whatever the tolerance)."""
+    def count(v: int) -> int:  # missing keys <= v
+        in_union = int(np.searchsorted(union, v, "right"))
+        return (int(np.searchsorted(miss_a, v, "right")) + int(np.searchsorted(miss_b, v, "right"))
+                + (v - prev) - in_union)
+    lo, hi = prev + 1, int(union[-1])
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if count(mid) >= k + 1:
+            hi = mid
+        else:
+            lo = mid + 1
+    return lo
 
 
 _EMPTY = np.zeros(0, np.int64)
@@ -369,13 +483,14 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
             else:
                 pb, bb = nxt
         if ba is None and bb is None:
+            st.finish(pa, pb)
             return
         if ba is None:
-            st.missing(bb["key"], _EMPTY, pa, pb)
+            st.missing(bb["key"], _EMPTY, pa, pb, _EMPTY, bb["key"])
             bb = None
             continue
         if bb is None:
-            st.missing(_EMPTY, ba["key"], pa, pb)
+            st.missing(_EMPTY, ba["key"], pa, pb, ba["key"], _EMPTY)
             ba = None
             continue
         ka, kb = ba["key"], bb["key"]
@@ -385,6 +500,8 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
         ka_, kb_ = ka[:na], kb[:nb]
         if na == nb and np.array_equal(ka_, kb_):
             runs, tail = [(0, 0, na)], None
+            if st.consecutive:
+                st.missing(_EMPTY, _EMPTY, pa, pb, ka_, kb_, na)
         else:
             runs, tail = _match_runs(ka_, kb_)
             miss_b = np.ones(na, bool)  # rows of A not matched: missing at B
@@ -395,7 +512,9 @@ def _merge_join(ia: Iterator, ib: Iterator, st: _JoinState, spec: LogSpec) -> It
             if tail is not None:
                 miss_b[tail[0]] = False
                 miss_a[tail[1]] = False
-            st.missing(kb_[miss_a], ka_[miss_b], pa, pb)
+            st.missing(kb_[miss_a], ka_[miss_b], pa, pb, ka_, kb_,
+                       sum(d for _, _, d in runs) + (int(tail[0].size) if tail is not None
+                                                     else 0))
         parts = [(slice(i, i + d), slice(j, j + d)) for i, j, d in runs]
         if tail is not None and tail[0].size:
             parts.append(tail)

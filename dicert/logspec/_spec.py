@@ -66,6 +66,13 @@ class LogSpec:
     layout: str  # "table" | "stations"
     sources: tuple[SourceSpec, ...]
     max_missing: int = 0
+    #: ``[join] keys``: "consecutive" (the keys are consecutive integers, so a trial missing at
+    #: both stations is a visible gap) or None (undeclared: such a trial stays invisible).
+    keys: str | None = None
+    #: ``[join] first_key`` / ``last_key`` (with keys = "consecutive"): the declared range of
+    #: the run's keys, so gaps before the first / after the last key seen are visible too.
+    first_key: int | None = None
+    last_key: int | None = None
 
     @property
     def has_test_flag(self) -> bool:
@@ -126,6 +133,7 @@ def load_spec(path: str | os.PathLike[str]) -> LogSpec:
                    "give exactly one of [table] (one combined table) or [stations.A] and "
                    "[stations.B] (one file set per station, joined by a trial key)")
     max_missing = 0
+    keys = first_key = last_key = None
     if has_table:
         if "join" in doc:
             raise _err(path, "join", "only a two-station spec is joined ([stations.A], "
@@ -145,15 +153,46 @@ def load_spec(path: str | os.PathLike[str]) -> LogSpec:
         if not isinstance(join, dict):
             raise _err(path, "join", "expected a table")
         for k in join:
-            if k != "max_missing":
-                raise _err(path, f"join.{k}", "unknown key (known: max_missing)")
+            if k not in JOIN_KEYS:
+                raise _err(path, f"join.{k}", f"unknown key (known: {', '.join(JOIN_KEYS)})")
         mm = join.get("max_missing", 0)
         if isinstance(mm, bool) or not isinstance(mm, int) or mm < 0:
             raise _err(path, "join.max_missing", f"expected a non-negative integer, got {mm!r}")
         max_missing = mm
+        keys, first_key, last_key = join_key_declaration(join, lambda k, m: _err(path, k, m))
         layout = "stations"
     return LogSpec(path=path, text=text, sha256=hashlib.sha256(raw).hexdigest(), layout=layout,
-                   sources=sources, max_missing=max_missing)
+                   sources=sources, max_missing=max_missing, keys=keys, first_key=first_key,
+                   last_key=last_key)
+
+
+#: The keys of a spec's ``[join]`` table.
+JOIN_KEYS = ("max_missing", "keys", "first_key", "last_key")
+#: The values of ``[join] keys``.
+KEY_DECLARATIONS = ("consecutive",)
+
+
+def join_key_declaration(join: Mapping, err) -> tuple[str | None, int | None, int | None]:
+    """``(keys, first_key, last_key)`` of a spec's ``[join]`` table (``err(key, problem)``
+    builds the exception for a bad value): keys = "consecutive" declares the join keys to be
+    consecutive integers, optionally from ``first_key`` to ``last_key``."""
+    keys = join.get("keys")
+    if keys is not None and keys not in KEY_DECLARATIONS:
+        raise err("join.keys", f"expected \"consecutive\" (the trial keys are consecutive "
+                  f"integers), got {keys!r}")
+    bounds = []
+    for k in ("first_key", "last_key"):
+        v = join.get(k)
+        if v is not None:
+            if keys is None:
+                raise err(f"join.{k}", "only with keys = \"consecutive\" (a key range "
+                          "declares where gaps are looked for)")
+            if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v < 10**18:
+                raise err(f"join.{k}", f"expected a non-negative integer below 10^18, got {v!r}")
+        bounds.append(v)
+    if None not in bounds and bounds[1] < bounds[0]:
+        raise err("join.last_key", f"{bounds[1]} is below join.first_key = {bounds[0]}")
+    return keys, bounds[0], bounds[1]
 
 
 def _source(path: Path, base: Path, tab: Any, label: str, prefix: str, roles: tuple,

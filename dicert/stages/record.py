@@ -267,9 +267,14 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
             f"a lost test round ({charge.lost_test_rounds_charged} charged) in the estimate "
             f"and the acceptance test, and {charge.raw_bits_subtracted} raw bits of dropped "
             f"trials plus {charge.pattern_bits:.6g} bits for the drop pattern (which trials, "
-            "at which station: chosen by the adversary) subtracted from the certified "
-            "min-entropy (log.spec.join.charge). A trial missing at both stations leaves no "
-            "row for the join to see: that every trial is logged stays assumed (above).")
+            f"at which station{' or at both' if charge.keys else ''}: chosen by the "
+            "adversary) subtracted from the certified "
+            "min-entropy (log.spec.join.charge). " + _both_sentence(charge.keys,
+                                                                   charge.missing_at_both,
+                                                                   _key_range(scan)))
+    elif _declared_keys(scan):
+        assumptions.append(_both_sentence(_declared_keys(scan), _missing_at_both(scan),
+                                          _key_range(scan)))
     elif _dropped_trials(scan):  # a record from before the join charge (format /3 or older)
         assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=_dropped_trials(scan)))
     return assumptions
@@ -281,6 +286,45 @@ LEGACY_DROP_ASSUMPTION = (
     "join.max_missing) went missing independently of the settings and outcomes: "
     "NOT checked, and nothing is charged for them; if the devices or the stations' "
     "electronics can cause a trial to go missing, the certificate does not hold.")
+
+
+def _both_sentence(keys: Any, both: int, key_range: Any = None) -> str:
+    """What the record says about trials missing at both stations."""
+    if keys == "consecutive":
+        first, last = (list(key_range) + [None, None])[:2] if isinstance(
+            key_range, (list, tuple)) else (None, None)
+        ends = []
+        if first is None:
+            ends.append("before the first key recorded")
+        if last is None:
+            ends.append("after the last key recorded")
+        rest = (" Trials " + " or ".join(ends) + " (no join.first_key / join.last_key "
+                "declared) would leave no gap: that none is missing there stays assumed."
+                if ends else "")
+        return ("Trials missing at both stations: checked, the log spec declares the join keys "
+                "consecutive integers (join.keys), so every key missing inside the range "
+                f"({'first key recorded' if first is None else first} to "
+                f"{'last key recorded' if last is None else last}) is a visible gap "
+                f"({both} found, log.spec.join.missing_at_both), counted against "
+                "join.max_missing and charged like a trial missing at one station." + rest)
+    return ("A trial missing at both stations leaves no row for the join to see (the log spec "
+            "declares no consecutive keys, join.keys): that every trial is logged stays "
+            "assumed (above), not checked.")
+
+
+def _key_range(scan: LogScan) -> Any:
+    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
+    return join.get("key_range") if isinstance(join, Mapping) else None
+
+
+def _declared_keys(scan: LogScan) -> Any:
+    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
+    return join.get("keys") if isinstance(join, Mapping) else None
+
+
+def _missing_at_both(scan: LogScan) -> int:
+    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
+    return int(join.get("missing_at_both") or 0) if isinstance(join, Mapping) else 0
 
 
 def _dropped_trials(scan: LogScan) -> int:

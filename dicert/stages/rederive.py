@@ -301,6 +301,12 @@ def _charged_join(body: Mapping[str, Any], scan: Any, protocol: Protocol) -> Any
         _require(join.get("max_missing") == _spec_max_missing(scan.log_spec),
                  "log.spec.join.max_missing", "differs from the recorded spec's "
                  "[join] max_missing")
+        keys, first, last = _spec_key_declaration(scan.log_spec)
+        _require(join.get("keys") == keys, "log.spec.join.keys",
+                 "differs from the recorded spec's [join] keys")
+        if keys is not None:
+            _require(join.get("key_range") == [first, last], "log.spec.join.key_range",
+                     "differs from the recorded spec's [join] first_key / last_key")
         try:
             join_charge(join, 2, method=protocol.method, source="the recorded join report")
         except ParameterError as exc:
@@ -318,6 +324,20 @@ def _spec_max_missing(log_spec: Any) -> Any:
         return None
     join = doc.get("join", {})
     return join.get("max_missing", 0) if isinstance(join, dict) else None
+
+
+def _spec_key_declaration(log_spec: Any) -> tuple[Any, Any, Any]:
+    """``[join] keys, first_key, last_key`` of a recorded spec's content (None when absent)."""
+    import tomllib
+
+    try:
+        doc = tomllib.loads(str(log_spec.get("content")))
+    except (tomllib.TOMLDecodeError, AttributeError):
+        return None, None, None
+    join = doc.get("join", {})
+    if not isinstance(join, dict):
+        return None, None, None
+    return join.get("keys"), join.get("first_key"), join.get("last_key")
 
 
 #: Record formats from before trials dropped by a station join were charged
