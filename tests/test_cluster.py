@@ -156,17 +156,25 @@ def test_worker_death_without_retries_fails_cleanly(local_cluster, address, kill
     probe = certify(d, uniform_protocol(), seed, tmp_path / "probe")
     assert probe.status == "certified"  # so the run below reaches the extraction
     out = tmp_path / "out"
+    # the extraction's first task kills its worker; no retry allowed
+    _certify_killed_without_retries(local_cluster, address, kill_marker, d, seed, out)
+
+
+def _certify_killed_without_retries(local_cluster, address, kill_marker, log, seed, out):
+    """certify on the cluster with retries off while the next task kills its worker: a clean
+    error, and nothing half-written (no record, no bits, no work or spill files)."""
+    from dicert.certify import certify
+
     sched = local_cluster.scheduler
     old = sched.allowed_failures
     sched.allowed_failures = 0
-    kill_marker.unlink()  # the extraction's first task kills its worker; no retry allowed
+    kill_marker.unlink()
     try:
         with pytest.raises(cluster.ClusterError, match="dask task"):
-            certify(d, uniform_protocol(), seed, out, scheduler=address)
+            certify(log, uniform_protocol(), seed, out, scheduler=address)
     finally:
         sched.allowed_failures = old
     assert kill_marker.exists()
-    # Nothing half-written: no record, no bits, no work or spill files.
     assert not out.exists() or os.listdir(out) == []
 
 
@@ -235,18 +243,8 @@ def test_worker_killed_during_the_scan(local_cluster, address, kill_marker, tmp_
                     scheduler=address)
     assert kill_marker.exists()  # a worker really died, and its task ran again
     assert _no_volatile(again.record) == _no_volatile(ref.record)
-    sched = local_cluster.scheduler
-    old = sched.allowed_failures
-    sched.allowed_failures = 0
-    kill_marker.unlink()
     out = tmp_path / "out"
-    try:
-        with pytest.raises(cluster.ClusterError, match="dask task"):
-            certify(d, uniform_protocol(), seed, out, scheduler=address)
-    finally:
-        sched.allowed_failures = old
-    assert kill_marker.exists()
-    assert not out.exists() or os.listdir(out) == []
+    _certify_killed_without_retries(local_cluster, address, kill_marker, d, seed, out)
     assert sorted(p.name for p in tmp_path.iterdir() if not p.name.endswith(".lock")) == \
         ["again", "log", "ref"]
 

@@ -26,9 +26,9 @@ import pytest
 from dicert.errors import ParameterError
 from dicert.logspec import (charged_counts, join_charge, pattern_bits, pattern_count)
 from dicert.logspec import _charge
-from tests.helpers import ROOT, sim_trials, uniform_protocol
+from tests.helpers import (ROOT, certify_spec_unsigned, cli, edit_join, seed_file, sim_trials,
+                           station_spec, uniform_protocol, write_station_csv)
 
-SIGN = ("+1", "-1")
 CLOCK = "2026-01-01T00:00:00Z"
 
 
@@ -147,20 +147,11 @@ def test_join_charge_values_and_malformed_report():
 # ------------------------------------------------------------------ end to end
 
 
-def _write_station(path: Path, keys, s, o, drop=()):
-    rows = [f"{int(k)},{'12'[int(s[i])]},{SIGN[int(o[i])]}" for i, k in enumerate(keys)
-            if int(k) not in drop]
-    path.write_text("pulse,basis,result\n" + "\n".join(rows) + "\n")
+_write_station = write_station_csv
 
 
 def _spec(path: Path, max_missing: int) -> Path:
-    lines = ['format = "dicert-logspec/1"', "[join]", f"max_missing = {max_missing}"]
-    for name, f in (("A", "a.csv"), ("B", "b.csv")):
-        lines += [f"[stations.{name}]", f'files = ["{f}"]', 'key = "pulse"',
-                  'setting = "basis"', 'outcome = "result"', f"[stations.{name}.values]",
-                  'setting = { "1" = 0, "2" = 1 }', 'outcome = { "+1" = 0, "-1" = 1 }']
-    path.write_text("\n".join(lines) + "\n")
-    return path
+    return station_spec(path, max_missing)
 
 
 def _clean_csv(path: Path, x, y, a, b):
@@ -169,10 +160,7 @@ def _clean_csv(path: Path, x, y, a, b):
     return path
 
 
-def _seed(tmp_path, n=8192):
-    p = tmp_path / "seed.bin"
-    p.write_bytes(bytes(np.random.default_rng(5).integers(0, 256, n, dtype=np.uint8)))
-    return p
+_seed = seed_file
 
 
 @pytest.fixture(scope="module")
@@ -328,12 +316,7 @@ def test_eat_protocol_charges_losses(tmp_path):
 # ------------------------------------------------------------------ pef, verify, CLI
 
 
-def _cli(*args):
-    from typer.testing import CliRunner
-
-    from dicert.cli.app import app
-
-    return CliRunner().invoke(app, list(map(str, args)))
+_cli = cli
 
 
 def test_pef_refuses_a_join_with_drops(run, tmp_path):
@@ -356,36 +339,18 @@ def test_pef_refuses_a_join_with_drops(run, tmp_path):
 
 
 def test_verify_round_trip_and_tampered_charge(run, tmp_path):
-    from dicert.audit.record import read_record, record_body, seal_record, write_record
-
-    seed = _seed(tmp_path)
-    out = tmp_path / "out"
-    r = _cli("certify", "--log-spec", run["spec"], "--protocol",
-             ROOT / "protocols" / "chsh-uniform.toml", "--seed", seed, "--out", out)
-    assert r.exit_code in (0, 3), r.output
-    rec = out / "record.json"
-    ok = _cli("verify", rec, "--log-spec", run["spec"], "--seed", seed)
-    assert ok.exit_code == 4, ok.output  # unsigned: integrity checked, authenticity not
+    seed, rec, body = certify_spec_unsigned(run["spec"], tmp_path)
     assert _cli("verify", rec).exit_code == 4
-    body = record_body(read_record(rec))
     for path, value in ((("charge", "pattern_bits"), 0.0),
                         (("charge", "raw_bits_subtracted"), 0),
                         (("charge", "lost_test_rounds_charged"), 0),
                         (("missing_at_b",), 0), (("missing_at_b",), 9),
                         (("missing_at_b",), "x"), (("max_missing",), 4)):
-        b = json.loads(json.dumps(body))
-        node = b["log"]["spec"]["join"]
-        for k in path[:-1]:
-            node = node[k]
-        node[path[-1]] = value
-        write_record(tmp_path / "edited.json", seal_record(b))
-        bad = _cli("verify", tmp_path / "edited.json")
+        bad = _cli("verify", edit_join(body, path, value, tmp_path))
         assert bad.exit_code == 1, (path, bad.output)
         assert "log.spec.join" in bad.output or "log.trials" in bad.output, bad.output
-    b = json.loads(json.dumps(body))
-    del b["log"]["spec"]["join"]["charge"]  # the charge removed: re-derived, so refused
-    write_record(tmp_path / "edited.json", seal_record(b))
-    bad = _cli("verify", tmp_path / "edited.json")
+    # the charge removed: it is re-derived, so the record is refused
+    bad = _cli("verify", edit_join(body, ("charge",), None, tmp_path))
     assert bad.exit_code == 1 and "log.spec.join" in bad.output, bad.output
 
 

@@ -24,33 +24,18 @@ import pytest
 
 from dicert.errors import LogFormatError
 from dicert.logspec import join_charge, load_spec, open_spec_log, pattern_bits, pattern_count
-from tests.helpers import ROOT, sim_trials, uniform_protocol
+from tests.helpers import (ROOT, certify_spec_unsigned, cli, edit_join, seed_file, sim_trials,
+                           station_spec, uniform_protocol, write_station_csv)
 
-SIGN = ("+1", "-1")
 CLOCK = "2026-01-01T00:00:00Z"
 
 
-def _write_station(path: Path, keys, s, o, drop=()):
-    rows = [f"{int(k)},{'12'[int(s[i])]},{SIGN[int(o[i])]}" for i, k in enumerate(keys)
-            if int(k) not in drop]
-    path.write_text("pulse,basis,result\n" + "\n".join(rows) + "\n")
+_write_station = write_station_csv
 
 
 def _spec(path: Path, max_missing: int, keys: str | None = "consecutive", first=None,
           last=None) -> Path:
-    lines = ['format = "dicert-logspec/1"', "[join]", f"max_missing = {max_missing}"]
-    if keys is not None:
-        lines.append(f'keys = "{keys}"')
-    if first is not None:
-        lines.append(f"first_key = {first}")
-    if last is not None:
-        lines.append(f"last_key = {last}")
-    for name, f in (("A", "a.csv"), ("B", "b.csv")):
-        lines += [f"[stations.{name}]", f'files = ["{f}"]', 'key = "pulse"',
-                  'setting = "basis"', 'outcome = "result"', f"[stations.{name}.values]",
-                  'setting = { "1" = 0, "2" = 1 }', 'outcome = { "+1" = 0, "-1" = 1 }']
-    path.write_text("\n".join(lines) + "\n")
-    return path
+    return station_spec(path, max_missing, keys, first, last)
 
 
 def _tiny(d: Path, keys_a, keys_b) -> None:
@@ -65,12 +50,7 @@ def _join(spec: Path, chunk: int = 1 << 16):
     return n, log.join_report.to_dict()
 
 
-def _cli(*args):
-    from typer.testing import CliRunner
-
-    from dicert.cli.app import app
-
-    return CliRunner().invoke(app, list(map(str, args)))
+_cli = cli
 
 
 # ------------------------------------------------------------------ spec keys
@@ -259,10 +239,7 @@ def test_join_charge_counts_gaps():
 # ------------------------------------------------------------------ certify and verify
 
 
-def _seed(tmp_path, n=8192):
-    p = tmp_path / "seed.bin"
-    p.write_bytes(bytes(np.random.default_rng(5).integers(0, 256, n, dtype=np.uint8)))
-    return p
+_seed = seed_file
 
 
 @pytest.fixture(scope="module")
@@ -331,34 +308,16 @@ def test_gap_beyond_tolerance_refused(run, tmp_path):
 
 
 def test_verify_rederives_gaps_and_refuses_tampering(run, tmp_path):
-    from dicert.audit.record import read_record, record_body, seal_record, write_record
-
-    seed = _seed(tmp_path)
-    out = tmp_path / "out"
-    r = _cli("certify", "--log-spec", run["spec"], "--protocol",
-             ROOT / "protocols" / "chsh-uniform.toml", "--seed", seed, "--out", out)
-    assert r.exit_code in (0, 3), r.output
-    rec = out / "record.json"
-    ok = _cli("verify", rec, "--log-spec", run["spec"], "--seed", seed)
-    assert ok.exit_code == 4, ok.output  # unsigned: integrity checked, authenticity not
-    body = record_body(read_record(rec))
+    seed, rec, body = certify_spec_unsigned(run["spec"], tmp_path)
     for path, value in ((("missing_at_both",), 0), (("missing_at_both",), 1),
                         (("keys",), None), (("key_range",), [1000, None]),
                         (("charge", "missing_at_both"), 0),
                         (("charge", "pattern_bits"), pattern_bits(5995, 8, 2)[0])):
-        b = json.loads(json.dumps(body))
-        node = b["log"]["spec"]["join"]
-        for k in path[:-1]:
-            node = node[k]
-        if value is None:
-            del node[path[-1]]
-        else:
-            node[path[-1]] = value
-        write_record(tmp_path / "edited.json", seal_record(b))
-        bad = _cli("verify", tmp_path / "edited.json")
+        edited = edit_join(body, path, value, tmp_path)
+        bad = _cli("verify", edited)
         assert bad.exit_code == 1, (path, bad.output)
         assert "log.spec.join" in bad.output or "log.trials" in bad.output, bad.output
-        bad = _cli("verify", tmp_path / "edited.json", "--log-spec", run["spec"])
+        bad = _cli("verify", edited, "--log-spec", run["spec"])
         assert bad.exit_code == 1, (path, bad.output)
 
 
