@@ -177,15 +177,21 @@ def test_gzip_compression_ratio_limit(tmp_path):
 
 
 def test_cli_gzip_bomb_bounded_memory(tmp_path):
-    # Peak resident memory of the child (getrusage, ru_maxrss in KiB on Linux) stays far below
-    # the 3 GiB the bomb expands to. Not a timing test: the limit is generous.
+    # Peak resident memory of the child stays far below the 3 GiB the bomb expands to. Not a
+    # timing test: the limit is generous. The child reads the high-water mark of its own
+    # address space (VmHWM, KiB): ru_maxrss keeps the forking parent's mark across exec on
+    # Linux, so it reported the size of the test process itself.
     p = tmp_path / "bomb.csv.gz"
     _gzip_bomb(p, 3072)
     code = ("import resource, sys\n"
             "from dicert.cli.app import app\n"
             "sys.argv = ['dicert', 'inspect', sys.argv[1]]\n"
             "try:\n    app()\nexcept SystemExit as exc:\n    rc = exc.code\n"
-            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
+            "try:\n"
+            "    with open('/proc/self/status') as fh:\n"
+            "        print(next(ln.split()[1] for ln in fh if ln.startswith('VmHWM:')))\n"
+            "except OSError:\n"
+            "    print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
             "sys.exit(rc)\n")
     proc = subprocess.run([sys.executable, "-c", code, str(p)], capture_output=True, text=True,
                           timeout=300)
