@@ -273,13 +273,23 @@ def join_charge(join: Any, bits_per_trial: int, *, method: str | None = None,
                       pattern_count_method=how)
 
 
+def charge_of(join: Any, bits_per_trial: int, *, method: str | None = None,
+              source: Any = "log spec") -> JoinCharge | None:
+    """The :class:`JoinCharge` of a join report, or None when there is nothing to charge (no
+    station join, or one that tolerates no missing trial and dropped none)."""
+    charge = join_charge(join, bits_per_trial, method=method, source=source)
+    if charge is None or (charge.max_missing == 0 and charge.dropped_trials == 0):
+        return None
+    return charge
+
+
 def charge_for_log(log_spec: Any, counts: Any, bits_per_trial: int, *,
                    method: str | None = None, source: Any = "log spec") -> tuple[Any, Any]:
-    """(charge, counts to analyse) for a log read through a log spec: without a station join
-    that may drop trials (join.max_missing = 0, or no join) (None, counts) unchanged; else the
-    :class:`JoinCharge` and the counts with the dropped trials as lost test rounds."""
-    charge = join_charge(join_of(log_spec), bits_per_trial, method=method, source=source)
-    if charge is None or (charge.max_missing == 0 and charge.dropped_trials == 0):
+    """(charge, counts to analyse) for a log read through a log spec: (None, counts) unchanged
+    when :func:`charge_of` finds nothing to charge; else the :class:`JoinCharge` and the
+    counts with the dropped trials as lost test rounds."""
+    charge = charge_of(join_of(log_spec), bits_per_trial, method=method, source=source)
+    if charge is None:
         return None, counts
     return charge, charged_counts(counts, charge.lost_test_rounds_charged)
 
@@ -293,5 +303,5 @@ def join_of(log_spec: Any) -> Mapping | None:
 
 
 __all__ = ["CHARGE_METHOD", "CHARGE_METHOD_GAPS", "CHARGE_REFERENCES", "EXACT_PATTERN_LIMIT", "JoinCharge",
-           "charge_for_log", "charged_counts", "join_charge", "join_of", "log2_up", "pattern_bits",
+           "charge_for_log", "charge_of", "charged_counts", "join_charge", "join_of", "log2_up", "pattern_bits",
            "pattern_count"]

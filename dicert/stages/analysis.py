@@ -182,15 +182,10 @@ def join_report_of(scan: LogScan) -> Any:
 def join_charge_for(join: Any, protocol: Protocol, source: Any = "log spec") -> Any:
     """The :class:`dicert.logspec.JoinCharge` of a join report under a protocol: None without
     a join or when the spec tolerates no missing trial (nothing can have been dropped)."""
-    if join is None:
-        return None
-    from dicert.logspec._charge import join_charge
+    from dicert.logspec._charge import charge_of
 
-    charge = join_charge(join, protocol.harvest.bits_per_trial, method=protocol.method,
-                         source=source)
-    if charge is None or (charge.max_missing == 0 and charge.dropped_trials == 0):
-        return None
-    return charge
+    return charge_of(join, protocol.harvest.bits_per_trial, method=protocol.method,
+                     source=source)
 
 
 def charged_for(join: Any, counts: np.ndarray, protocol: Protocol, eps_est: float,
