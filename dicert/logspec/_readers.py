@@ -450,20 +450,33 @@ def _parse_slow(data: bytes, ncol, delim: str, idx, maps, path, first_line, key_
     return {r: np.array(v, dtype=np.int64 if r == "key" else np.uint8) for r, v in cols.items()}
 
 
-class _ParquetFile:
-    """Streaming reader of one Parquet file, batch by batch (memory: about one row group)."""
+class _ColumnFile:
+    """A columnar file (Parquet, HDF5) read chunk by chunk by ``_chunks(chunk_trials, module)``
+    while a worker thread hashes its bytes (the optional extra's module is imported first)."""
+
+    what = ""
+    module = ""
 
     def __init__(self, src: SourceSpec, path: Path, limits) -> None:
         self.src, self.path = src, path
 
     def chunks(self, chunk_trials: int, hasher) -> Iterator[dict[str, np.ndarray]]:
-        pq = _need_extra("Parquet files", "pyarrow.parquet")
+        mod = _need_extra(self.what, self.module)
         bg = _BackgroundHash(self.path, hasher)
         try:
-            yield from self._chunks(chunk_trials, pq)
+            yield from self._chunks(chunk_trials, mod)
             bg.wait()
         finally:
             bg.cancel()
+
+    def _chunks(self, chunk_trials: int, mod) -> Iterator[dict[str, np.ndarray]]:
+        raise NotImplementedError
+
+
+class _ParquetFile(_ColumnFile):
+    """Streaming reader of one Parquet file, batch by batch (memory: about one row group)."""
+
+    what, module = "Parquet files", "pyarrow.parquet"
 
     def _chunks(self, chunk_trials: int, pq) -> Iterator[dict[str, np.ndarray]]:
         src, path = self.src, self.path
@@ -501,20 +514,10 @@ class _ParquetFile:
             raise LogFormatError(path, f"row {row}", f"cannot read ({_short(exc)})") from None
 
 
-class _Hdf5File:
+class _Hdf5File(_ColumnFile):
     """Streaming reader of one HDF5 file: one 1-D dataset per column, read slice by slice."""
 
-    def __init__(self, src: SourceSpec, path: Path, limits) -> None:
-        self.src, self.path = src, path
-
-    def chunks(self, chunk_trials: int, hasher) -> Iterator[dict[str, np.ndarray]]:
-        h5py = _need_extra("HDF5 files", "h5py")
-        bg = _BackgroundHash(self.path, hasher)
-        try:
-            yield from self._chunks(chunk_trials, h5py)
-            bg.wait()
-        finally:
-            bg.cancel()
+    what, module = "HDF5 files", "h5py"
 
     def _chunks(self, chunk_trials: int, h5py) -> Iterator[dict[str, np.ndarray]]:
         src, path = self.src, self.path
