@@ -259,6 +259,8 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
         if a not in assumptions:
             assumptions.append(str(a))
     charge = analysis.charge if analysis is not None else None
+    join = _join(scan)
+    dropped = int(join.get("missing_at_a") or 0) + int(join.get("missing_at_b") or 0)
     if charge is not None:
         assumptions.append(
             f"Trials dropped by the station join ({charge.dropped_trials}, at most "
@@ -271,12 +273,12 @@ def _assumptions(fin: Any, scan: LogScan, analysis: Analysis | None = None) -> l
             "adversary) subtracted from the certified "
             "min-entropy (log.spec.join.charge). " + _both_sentence(charge.keys,
                                                                    charge.missing_at_both,
-                                                                   _key_range(scan)))
-    elif _declared_keys(scan):
-        assumptions.append(_both_sentence(_declared_keys(scan), _missing_at_both(scan),
-                                          _key_range(scan)))
-    elif _dropped_trials(scan):  # a record from before the join charge (format /3 or older)
-        assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=_dropped_trials(scan)))
+                                                                   join.get("key_range")))
+    elif join.get("keys"):
+        assumptions.append(_both_sentence(join["keys"], int(join.get("missing_at_both") or 0),
+                                          join.get("key_range")))
+    elif dropped:  # a record from before the join charge (format /3 or older)
+        assumptions.append(LEGACY_DROP_ASSUMPTION.format(dropped=dropped))
     return assumptions
 
 
@@ -312,27 +314,12 @@ def _both_sentence(keys: Any, both: int, key_range: Any = None) -> str:
             "assumed (above), not checked.")
 
 
-def _key_range(scan: LogScan) -> Any:
-    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
-    return join.get("key_range") if isinstance(join, Mapping) else None
+def _join(scan: LogScan) -> Mapping:
+    """The scan's station-join report (empty without one)."""
+    from dicert.logspec._charge import join_of
 
-
-def _declared_keys(scan: LogScan) -> Any:
-    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
-    return join.get("keys") if isinstance(join, Mapping) else None
-
-
-def _missing_at_both(scan: LogScan) -> int:
-    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
-    return int(join.get("missing_at_both") or 0) if isinstance(join, Mapping) else 0
-
-
-def _dropped_trials(scan: LogScan) -> int:
-    """Trials the station join dropped (missing at one station) under the spec's tolerance."""
-    join = scan.log_spec.get("join") if isinstance(scan.log_spec, Mapping) else None
-    if not isinstance(join, Mapping):
-        return 0
-    return int(join.get("missing_at_a") or 0) + int(join.get("missing_at_b") or 0)
+    join = join_of(scan.log_spec)
+    return join if isinstance(join, Mapping) else {}
 
 
 def _blocks_section(block_series: Any, protocol: Protocol) -> dict | None:
