@@ -230,11 +230,12 @@ def _uncharged_drops(body: Mapping[str, Any]) -> int:
     """Trials a station join dropped in a record from before the join charge (else 0)."""
     from dicert.stages.rederive import UNCHARGED_FORMATS
 
+    from dicert.logspec._charge import join_of
+
     if body.get("format") not in UNCHARGED_FORMATS:
         return 0
     log = body.get("log")
-    spec = log.get("spec") if isinstance(log, Mapping) else None
-    join = spec.get("join") if isinstance(spec, Mapping) else None
+    join = join_of(log.get("spec") if isinstance(log, Mapping) else None)
     if not isinstance(join, Mapping):
         return 0
     n = [join.get(k) for k in ("missing_at_a", "missing_at_b")]
