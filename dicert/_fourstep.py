@@ -41,10 +41,27 @@ import numpy as np
 
 #: Bytes per complex value of the working array.
 _C = 16
-#: Target size in bytes of one block of rows or columns (a pass holds about six at once).
+#: Target size in bytes of one block of rows (the middle pass holds up to six at once: three
+#: pieces in flight, each with its lead rows, replaced by the result, and their partners).
 _PIECE = 32 << 20
+#: Target size in bytes of one block of columns, a slab (the column passes hold up to three).
+#: Wide slabs make the middle pass's transfers large: a block of rows is one piece of
+#: rows x slab values per slab (512 KB at the default budget), and direct transfers of a few
+#: hundred KB or more are needed to reach the disk's rate.
+_SLAB_PIECE = 64 << 20
 #: Columns per cache-sized tile of the column FFTs (a multiple of 8).
 _TILE = 16
+#: Alignment (bytes) of buffers, offsets and lengths for direct I/O on the work file.
+_ALIGN = 4096
+#: Use direct I/O (O_DIRECT, bypassing the page cache) for the work file where the file system
+#: allows it. Buffered writes of a work file of several GB fill the page cache with fresh pages,
+#: and on virtual machines whose memory the host backs lazily, every fresh page costs a fault
+#: in the host too (about 3 s per GB measured on the 2-core CI machine); direct transfers move
+#: the same bytes between a few reused buffers and the disk with almost no CPU time.
+DIRECT_IO = True
+#: Concurrent transfers per request (a queue depth of about four doubles the disk's rate for
+#: direct I/O on the CI machine).
+_IO_THREADS = 4
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -81,9 +98,10 @@ def plan_four_step(n: int, m: int, budget: int, row_length: int | None = None) -
             raise ValueError("row_length must be a power of two >= 8")
     N2 = _fast_length(-(-total // N1))
     # Blocks of a fixed size (not growing with n, so memory stays flat), within the budget:
-    # a pass holds about six blocks at once.
+    # three slabs or six blocks of rows at once (see _PIECE and _SLAB_PIECE).
     piece = max(1, min(_PIECE, budget // 12))
-    slab = 1 << max(3, min(N1.bit_length() - 1, (piece // (_C * N2)).bit_length() - 1))
+    slab_piece = max(1, min(_SLAB_PIECE, budget // 4))
+    slab = 1 << max(3, min(N1.bit_length() - 1, (slab_piece // (_C * N2)).bit_length() - 1))
     rows = max(1, piece // (_C * N1))
     fill = max(1, min(N2, piece // (4 * N1)))
     in_memory = _C * N1 * N2 <= budget // 4
@@ -120,7 +138,13 @@ class FileStore:
     """The N2 x N1 complex array in a file, stored as N1 / w column blocks ("slabs") of w
     columns, each an N2 x w row-major array. A slab is one contiguous read or write; a block
     of rows is one contiguous piece per slab. Only explicit reads and writes (no mapping), so
-    the file's pages never count as this process's memory."""
+    the file's pages never count as this process's memory.
+
+    When a row's piece of a slab is a multiple of :data:`_ALIGN` bytes and the file system
+    accepts it, every transfer is direct (O_DIRECT, see :data:`DIRECT_IO`) through buffers
+    aligned to :data:`_ALIGN` (an unaligned array is copied into one first), so the work file
+    does not pass through the page cache; each request is split into up to
+    :data:`_IO_THREADS` concurrent transfers."""
 
     def __init__(self, N2: int, N1: int, w: int, *, path: str | None = None,
                  fd: int | None = None, create: bool = False) -> None:
@@ -128,6 +152,7 @@ class FileStore:
         self.size = _C * N1 * N2
         self._own = fd is None
         self._fd = fd
+        self._dfd: int | None | bool = None  # None: not tried yet; False: not available
         if create:
             # Reserve the space now: a full disk is then an error before any work is done.
             os.posix_fallocate(self.fd, 0, self.size)
@@ -138,6 +163,25 @@ class FileStore:
             self._fd = os.open(self.path, os.O_RDWR)
         return self._fd
 
+    @property
+    def direct(self) -> bool:
+        """True when the transfers bypass the page cache (decided on first use)."""
+        return self._io_fd() != self.fd
+
+    def _io_fd(self) -> int:
+        """The descriptor every transfer uses: a direct one where possible, else :attr:`fd`.
+        All transfers of one store use the same one (no mixing of cached and direct I/O)."""
+        if self._dfd is None:
+            self._dfd = False
+            flag = getattr(os, "O_DIRECT", 0)
+            if DIRECT_IO and flag and (self.w * _C) % _ALIGN == 0:
+                where = self.path if self.path is not None else f"/proc/self/fd/{self.fd}"
+                try:
+                    self._dfd = os.open(where, os.O_RDWR | flag)
+                except OSError:  # (a file system without direct I/O, e.g. tmpfs)
+                    self._dfd = False
+        return self._dfd if self._dfd is not False else self.fd
+
     def __getstate__(self) -> dict:
         if self.path is None:
             raise TypeError("an anonymous temporary file cannot be shared with other processes")
@@ -146,54 +190,107 @@ class FileStore:
     def __setstate__(self, st: dict) -> None:
         self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
         self.size = _C * self.N1 * self.N2
-        self._own, self._fd = True, None
-
-    def _read(self, buf: np.ndarray, off: int) -> None:
-        _pread_all(self.fd, buf, off)
-
-    def _write(self, buf: np.ndarray, off: int) -> None:
-        _pwrite_all(self.fd, buf, off)
+        self._own, self._fd, self._dfd = True, None, None
 
     def _slab_offset(self, q: int) -> int:
         return q * self.N2 * self.w * _C
 
+    def _empty(self, shape: tuple[int, ...]) -> np.ndarray:
+        return aligned_empty(shape, np.complex128)
+
+    def _staged(self, v: np.ndarray) -> np.ndarray:
+        """``v`` itself if a transfer can use it as it is, else an aligned contiguous copy."""
+        if v.flags.c_contiguous and (not self.direct or v.ctypes.data % _ALIGN == 0):
+            return v
+        out = self._empty(v.shape)
+        out[...] = v
+        return out
+
+    def _contiguous(self, fn: Any, buf: np.ndarray, off: int) -> None:
+        """Move one contiguous buffer at ``off``, in up to _IO_THREADS aligned parts at once."""
+        raw = memoryview(buf).cast("B")
+        n = len(raw)
+        part = max(_ALIGN, -(-n // _IO_THREADS // _ALIGN) * _ALIGN)
+        fd = self._io_fd()
+        _io_map(lambda a: fn(fd, np.frombuffer(raw[a:a + part], dtype=np.uint8), off + a,
+                             self.fd), range(0, n, part))
+
+    def _by_slab(self, fn: Any, v: np.ndarray, r0: int) -> None:
+        """Rows r0 .. r0 + len(v) - 1: one vectored transfer per slab (each row's piece of a
+        slab is contiguous in the file and in ``v``), slabs moved concurrently."""
+        w, fd = self.w, self._io_fd()
+        _io_map(lambda q: fn(fd, [v[i, q * w:(q + 1) * w] for i in range(v.shape[0])],
+                             self._slab_offset(q) + r0 * w * _C, self.fd),
+                range(self.N1 // w))
+
     def rows(self, r0: int, r1: int) -> np.ndarray:
-        # Each row's piece of a slab is contiguous in the file and in the result: one
-        # vectored read per slab straight into the rows (no transposing copy).
-        w = self.w
-        out = np.empty((r1 - r0, self.N1), dtype=np.complex128)
-        for q in range(self.N1 // w):
-            _preadv_all(self.fd, [out[i, q * w:(q + 1) * w] for i in range(r1 - r0)],
-                        self._slab_offset(q) + r0 * w * _C)
+        out = self._empty((r1 - r0, self.N1))
+        self._by_slab(_preadv_all, out, r0)
         return out
 
     def put_rows(self, r0: int, v: np.ndarray) -> None:
-        w = self.w
-        v = np.ascontiguousarray(v)
-        for q in range(self.N1 // w):
-            _pwritev_all(self.fd, [v[i, q * w:(q + 1) * w] for i in range(v.shape[0])],
-                         self._slab_offset(q) + r0 * w * _C)
+        self._by_slab(_pwritev_all, self._staged(v), r0)
 
     def cols(self, c0: int, c1: int, nrows: int | None = None) -> np.ndarray:
         """Columns [c0, c1) (one whole slab), rows 0 .. nrows - 1 (default all)."""
         if c0 % self.w or c1 - c0 != self.w:
             raise ValueError("column blocks must be whole slabs")
-        out = np.empty((self.N2 if nrows is None else nrows, self.w), dtype=np.complex128)
-        self._read(out, self._slab_offset(c0 // self.w))
+        out = self._empty((self.N2 if nrows is None else nrows, self.w))
+        self._contiguous(_pread_all, out, self._slab_offset(c0 // self.w))
         return out
 
     def cols_into(self, c0: int, out: np.ndarray) -> None:
         """Rows 0 .. len(out) - 1 of the slab starting at column c0, read into ``out``."""
-        self._read(out, self._slab_offset(c0 // self.w))
+        buf = self._staged(out) if out.flags.c_contiguous else self._empty(out.shape)
+        self._contiguous(_pread_all, buf, self._slab_offset(c0 // self.w))
+        if buf is not out:
+            out[...] = buf
 
     def put_cols(self, c0: int, v: np.ndarray) -> None:
-        self._write(v, self._slab_offset(c0 // self.w))
+        self._contiguous(_pwrite_all, self._staged(v), self._slab_offset(c0 // self.w))
 
     def close(self) -> None:
+        if self._dfd is not None and self._dfd is not False:
+            with contextlib.suppress(OSError):
+                os.close(self._dfd)
+        self._dfd = None
         if self._fd is not None and self._own:
             with contextlib.suppress(OSError):
                 os.close(self._fd)
         self._fd = None
+
+
+def aligned_empty(shape: tuple[int, ...], dtype: Any) -> np.ndarray:
+    """An uninitialised C-contiguous array whose data starts on an :data:`_ALIGN` boundary."""
+    dtype = np.dtype(dtype)
+    nbytes = math.prod(shape) * dtype.itemsize
+    raw = np.empty(nbytes + _ALIGN, dtype=np.uint8)
+    off = (-raw.ctypes.data) % _ALIGN
+    return raw[off: off + nbytes].view(dtype).reshape(shape)
+
+
+_io_pool: Any = None
+
+
+def _io_map(fn: Any, items: Any) -> None:
+    """fn(item) for every item, up to :data:`_IO_THREADS` at once (the transfers release the
+    GIL); the first exception is raised once all have ended."""
+    global _io_pool
+    items = list(items)
+    if len(items) <= 1:
+        for it in items:
+            fn(it)
+        return
+    if _io_pool is None:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _io_pool = ThreadPoolExecutor(max_workers=_IO_THREADS, thread_name_prefix="dicert-io")
+    from concurrent.futures import wait
+
+    futures = [_io_pool.submit(fn, it) for it in items]
+    wait(futures)
+    for f in futures:
+        f.result()
 
 
 def _anonymous_fd(temp_dir: Any) -> int:
@@ -287,11 +384,17 @@ class PackedStore:
         self._fd = None
 
 
-def _pread_all(fd: int, buf: np.ndarray, off: int) -> None:
+# A transfer may move fewer bytes than asked (POSIX allows it); the rest then goes through
+# ``rest`` (the store's buffered descriptor), since on a direct descriptor the remainder's offset
+# and length need not be aligned. Linux keeps the two coherent: a direct read first writes back
+# cached pages of its range, and a direct write drops them.
+
+
+def _pread_all(fd: int, buf: np.ndarray, off: int, rest: int | None = None) -> None:
     view = memoryview(buf).cast("B")
     pos = 0
     while pos < len(view):
-        got = os.preadv(fd, [view[pos:]], off + pos)
+        got = os.preadv(fd if pos == 0 or rest is None else rest, [view[pos:]], off + pos)
         if got <= 0:
             raise OSError("short read from the extractor's work file")
         pos += got
@@ -303,10 +406,12 @@ def _iov_chunks(parts: list[np.ndarray]) -> list[list[memoryview]]:
     return [views[i:i + step] for i in range(0, len(views), step)]
 
 
-def _vectored_all(vectored, single, fd: int, parts: list[np.ndarray], off: int) -> None:
+def _vectored_all(vectored, single, fd: int, parts: list[np.ndarray], off: int,
+                  rest: int | None = None) -> None:
     """Move consecutive bytes at ``off`` to or from the (contiguous) arrays ``parts`` in turn
     with ``vectored`` (os.preadv / os.pwritev); a short transfer is finished piece by piece
-    with ``single`` (_pread_all / _pwrite_all)."""
+    with ``single`` (_pread_all / _pwrite_all) on ``rest`` (default ``fd``)."""
+    rest = fd if rest is None else rest
     for group in _iov_chunks(parts):
         want = sum(len(v) for v in group)
         got = vectored(fd, group, off)
@@ -315,26 +420,26 @@ def _vectored_all(vectored, single, fd: int, parts: list[np.ndarray], off: int) 
             for v in group:
                 if pos + len(v) > got:
                     start = max(0, got - pos)
-                    single(fd, np.frombuffer(v, dtype=np.uint8)[start:], off + pos + start)
+                    single(rest, np.frombuffer(v, dtype=np.uint8)[start:], off + pos + start)
                 pos += len(v)
         off += want
 
 
-def _preadv_all(fd: int, parts: list[np.ndarray], off: int) -> None:
+def _preadv_all(fd: int, parts: list[np.ndarray], off: int, rest: int | None = None) -> None:
     """Read consecutive bytes at ``off`` into the (contiguous) arrays ``parts`` in turn."""
-    _vectored_all(os.preadv, _pread_all, fd, parts, off)
+    _vectored_all(os.preadv, _pread_all, fd, parts, off, rest)
 
 
-def _pwritev_all(fd: int, parts: list[np.ndarray], off: int) -> None:
+def _pwritev_all(fd: int, parts: list[np.ndarray], off: int, rest: int | None = None) -> None:
     """Write the (contiguous) arrays ``parts`` one after the other from ``off``."""
-    _vectored_all(os.pwritev, _pwrite_all, fd, parts, off)
+    _vectored_all(os.pwritev, _pwrite_all, fd, parts, off, rest)
 
 
-def _pwrite_all(fd: int, buf: np.ndarray, off: int) -> None:
+def _pwrite_all(fd: int, buf: np.ndarray, off: int, rest: int | None = None) -> None:
     view = memoryview(np.ascontiguousarray(buf)).cast("B")
     pos = 0
     while pos < len(view):
-        pos += os.pwrite(fd, view[pos:], off + pos)
+        pos += os.pwrite(fd if pos == 0 or rest is None else rest, view[pos:], off + pos)
 
 
 def pack_sources(plan: FourStepPlan, x: Any, s: Any, dst: PackedStore, r0: int,
@@ -385,15 +490,28 @@ def _roots(r: np.ndarray, L: int, sign: int) -> np.ndarray:
     return re + (1j * sign) * im
 
 
+def _near_root_divisor(N: int) -> int:
+    """The divisor of N closest to sqrt(N) (from below), so that the two twiddle tables of
+    :class:`_Twiddles` have about sqrt(N) rows each. (A power-of-two split fails for the
+    5-smooth column lengths with few factors of 2, e.g. 3645 = 5 * 3**6, where one table held
+    every factor and cost one cosine and sine per element.)"""
+    best = 1
+    for d in range(1, math.isqrt(N) + 1):
+        if N % d == 0:
+            best = d
+    return best
+
+
 class _Twiddles:
     """The twiddle factors exp(sign * 2 pi i * (j1 * k2 mod L) / L) of the columns
-    j1 in [c0, c0 + w), all rows k2, as two small tables: with k2 = h * S + l the factor is
+    j1 in [c0, c0 + w), all rows k2, as two small tables: with k2 = h * S + l (S a divisor of
+    N2 near its square root, see :func:`_near_root_divisor`) the factor is
     the product of exp(.. (j1 * h * S mod L) ..) and exp(.. (j1 * l mod L) ..), each from an
     exactly reduced integer (see :func:`_roots`; error ~1 ulp each, ~2 ulp for the product).
     Computed once per slab, applied tile by tile."""
 
     def __init__(self, N2: int, c0: int, w: int, L: int, sign: int) -> None:
-        self.S = S = min(64, N2 & -N2)  # a power of two dividing N2
+        self.S = S = _near_root_divisor(N2)
         self.c0 = c0
         j = np.arange(c0, c0 + w, dtype=np.int64)[None, :]
         hi = np.arange(N2 // S, dtype=np.int64)[:, None] * S
@@ -443,6 +561,13 @@ def _window(plan: FourStepPlan, x: Any, s: Any, P0: int, cnt: int) -> tuple[np.n
 
 def columns_first(plan: FourStepPlan, packed: PackedStore, dst: Any, c0: int, c1: int,
                   workers: int = 1) -> None:
+    """Columns [c0, c1) (one slab) of the forward pass, computed (:func:`first_compute`) and
+    stored in ``dst``."""
+    dst.put_cols(c0, first_compute(plan, packed, c0, c1, workers))
+
+
+def first_compute(plan: FourStepPlan, packed: PackedStore, c0: int, c1: int,
+                  workers: int = 1) -> np.ndarray:
     """Columns [c0, c1) (one slab) of z = s' + i x from the packed bits: length-N2 FFTs down
     each column, times the twiddles w**(j1*k2).
 
@@ -453,7 +578,7 @@ def columns_first(plan: FourStepPlan, packed: PackedStore, dst: Any, c0: int, c1
     import scipy.fft as sfft
 
     sp, xp = packed.slab(c0 // plan.slab)
-    t = np.empty((plan.N2, c1 - c0), dtype=np.complex128)
+    t = aligned_empty((plan.N2, c1 - c0), np.complex128)
     tw = _Twiddles(plan.N2, c0, c1 - c0, plan.L, -1)
     tb = _TILE // 8
     for q in range(0, (c1 - c0) // 8, tb):
@@ -463,7 +588,7 @@ def columns_first(plan: FourStepPlan, packed: PackedStore, dst: Any, c0: int, c1
         u = sfft.fft(u, axis=0, overwrite_x=True, workers=workers)
         tw.apply(u, c0 + 8 * q)
         t[:, 8 * q: 8 * q + u.shape[1]] = u
-    dst.put_cols(c0, t)
+    return t
 
 
 def _product(Z: np.ndarray, partner: np.ndarray) -> np.ndarray:
@@ -478,31 +603,59 @@ def _product(Z: np.ndarray, partner: np.ndarray) -> np.ndarray:
 
 def rows_middle(plan: FourStepPlan, src: Any, dst: Any, r0: int, r1: int,
                 workers: int = 1) -> None:
-    """Row FFTs, spectrum product, inverse row FFTs, for lead rows [r0, r1).
+    """Row FFTs, spectrum product, inverse row FFTs, for lead rows [r0, r1): read
+    (:func:`middle_read`), computed (:func:`middle_compute`) and written (:func:`put_all`)."""
+    put_all(dst, middle_compute(plan, middle_read(plan, src, r0, r1), workers))
 
-    Lead rows are 0 .. N2 // 2; row r pairs with row (N2 - r) mod N2, which holds the
-    frequencies -k of row r (reversed; row 0 and, for even N2, row N2/2 pair with themselves).
-    """
-    import scipy.fft as sfft
 
+def _self_paired(N2: int) -> tuple[int, ...]:
+    return (0, N2 // 2) if N2 % 2 == 0 and N2 > 1 else (0,)
+
+
+def middle_read(plan: FourStepPlan, src: Any, r0: int, r1: int) -> tuple:
+    """The rows the lead rows [r0, r1) need: each lead row r pairs with row (N2 - r) mod N2,
+    which holds the frequencies -k of row r (reversed; row 0 and, for even N2, row N2/2 pair
+    with themselves)."""
     N2 = plan.N2
-    for r in ((0, N2 // 2) if N2 % 2 == 0 and N2 > 1 else (0,)):
-        if r0 <= r < r1:
-            Z = sfft.fft(src.rows(r, r + 1)[0], workers=workers)
-            partner = np.roll(Z[::-1], 1) if r == 0 else Z[::-1]
-            dst.put_rows(r, sfft.ifft(_product(Z, partner), workers=workers)[None, :])
+    single = [(r, src.rows(r, r + 1)[0]) for r in _self_paired(N2) if r0 <= r < r1]
     lo = max(r0, 1)
     hi = min(r1, (N2 + 1) // 2)  # lead rows with a distinct partner: 1 .. ceil(N2/2) - 1
     if hi <= lo:
-        return
-    X = sfft.fft(src.rows(lo, hi), axis=1, overwrite_x=True, workers=workers)
-    Y = sfft.fft(src.rows(N2 - hi + 1, N2 - lo + 1)[::-1], axis=1, overwrite_x=True,
-                 workers=workers)
-    # Only the lead rows are kept: the product spectrum is that of a real sequence, so the
-    # partner rows follow from them (see :func:`columns_inverse`).
-    PX = _product(X, Y[:, ::-1])
-    del X, Y
-    dst.put_rows(lo, sfft.ifft(PX, axis=1, overwrite_x=True, workers=workers))
+        return single, lo, hi, None, None
+    return single, lo, hi, src.rows(lo, hi), src.rows(N2 - hi + 1, N2 - lo + 1)
+
+
+def middle_compute(plan: FourStepPlan, data: tuple, workers: int = 1) -> list:
+    """The inverse row transforms of the product spectrum for the rows read by
+    :func:`middle_read`, as (first row, rows) pieces for :func:`put_all`.
+
+    Each row is transformed, multiplied and transformed back on its own, so that its
+    few MB stay in the cache through the whole sequence (a block at a time would stream the
+    block through memory once per operation). Only the lead rows are kept: the product
+    spectrum is that of a real sequence, so the partner rows follow from them (see
+    :func:`columns_inverse`)."""
+    import scipy.fft as sfft
+
+    single, lo, hi, lead, partner = data
+    out = []
+    for r, row in single:
+        Z = sfft.fft(row, workers=workers)
+        mirror = np.roll(Z[::-1], 1) if r == 0 else Z[::-1]
+        out.append((r, sfft.ifft(_product(Z, mirror), workers=workers)[None, :]))
+    if lead is not None:
+        k = hi - lo
+        for i in range(k):  # (the result replaces each lead row once it is transformed)
+            X = sfft.fft(lead[i], workers=workers)
+            # partner row of lead row lo + i is N2 - lo - i, i.e. partner[k - 1 - i]
+            Y = sfft.fft(partner[k - 1 - i], overwrite_x=True, workers=workers)
+            lead[i] = sfft.ifft(_product(X, Y[::-1]), overwrite_x=True, workers=workers)
+        out.append((lo, lead))
+    return out
+
+
+def put_all(dst: Any, pieces: list) -> None:
+    for r, rows in pieces:
+        dst.put_rows(r, rows)
 
 
 def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
@@ -510,25 +663,39 @@ def columns_inverse(plan: FourStepPlan, src: Any, c0: int, c1: int,
     """Conjugate twiddles and inverse column FFTs of columns [c0, c1); returns the packed
     output bits of those columns for rows 0 .. J-1 (J = ceil(m / N1)), shape (J, (c1-c0)/8),
     and the largest distance of a wanted value from an integer."""
+    return inverse_compute(plan, inverse_read(plan, src, c0, c1), c0, c1, workers)
+
+
+def inverse_read(plan: FourStepPlan, src: Any, c0: int, c1: int) -> np.ndarray:
+    """The stored rows 0 .. H of columns [c0, c1), an (H + 1) x (c1 - c0) array."""
+    t = aligned_empty((plan.H + 1, c1 - c0), np.complex128)
+    if hasattr(src, "cols_into"):
+        src.cols_into(c0, t)
+    else:
+        t[...] = src.cols(c0, c1, plan.H + 1)
+    return t
+
+
+def inverse_compute(plan: FourStepPlan, t: np.ndarray, c0: int, c1: int,
+                    workers: int = 1) -> tuple[np.ndarray, float]:
+    """The rest of :func:`columns_inverse` once the stored rows 0 .. H are read (``t``, from
+    :func:`inverse_read`); the other rows are filled in tile by tile."""
     import scipy.fft as sfft
 
     N1, m = plan.N1, plan.m
     J = -(-m // N1)
     N2, H = plan.N2, plan.H
-    t = np.empty((N2, c1 - c0), dtype=np.complex128)
-    if hasattr(src, "cols_into"):
-        src.cols_into(c0, t[:H + 1])
-    else:
-        t[:H + 1] = src.cols(c0, c1, H + 1)
     # Q(-k) = -conj(Q(k)) for the stored Q = 4i x (spectrum of a real sequence), hence for the
     # row inverse transforms E: E[N2 - k2, j1] = -exp(-2 pi i j1 / N1) conj(E[k2, j1]).
-    if N2 - 1 > H:
-        f = -_roots(np.arange(c0, c1), N1, -1)
-        t[H + 1:] = f[None, :] * np.conj(t[1: N2 - H][::-1])
+    f = -_roots(np.arange(c0, c1), N1, -1) if N2 - 1 > H else None
     vals = np.empty((J, c1 - c0), dtype=np.float64)  # position j2*N1 + c0 + col
     tw = _Twiddles(N2, c0, c1 - c0, plan.L, +1)
     for q in range(0, c1 - c0, _TILE):  # tiles of columns, as in columns_first
-        u = np.ascontiguousarray(t[:, q:q + _TILE])
+        u = np.empty((N2, min(_TILE, c1 - c0 - q)), dtype=np.complex128)
+        u[:H + 1] = t[:, q:q + _TILE]
+        if f is not None:
+            np.multiply(f[None, q:q + _TILE], np.conj(t[1: N2 - H, q:q + _TILE][::-1]),
+                        out=u[H + 1:])
         tw.apply(u, c0 + q)
         u = sfft.ifft(u, axis=0, overwrite_x=True, workers=workers)
         np.multiply(u.imag[:J], 0.25, out=vals[:, q:q + _TILE])
@@ -552,9 +719,10 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
               progress: Any = None) -> tuple[bytes, float, int]:
     """The whole computation in this process; returns (output bytes, max deviation, pieces).
 
-    With ``workers`` > 1, two pieces of a pass run at once on two threads (numpy, the FFTs and
-    the file reads and writes release the GIL), so one piece's reads and writes overlap the
-    other's arithmetic.
+    Each pass is a pipeline (:func:`_pipeline`): the reads of the next pieces and the writes
+    of finished ones run on an I/O thread while ``workers`` threads (at most two) compute, so
+    the transfers of the work file overlap the arithmetic (numpy, the FFTs and the file
+    transfers release the GIL).
     """
     import threading
     from concurrent.futures import ThreadPoolExecutor
@@ -573,38 +741,108 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
 
     threads = 2 if workers > 1 else 1
     fft_workers = 1 if threads > 1 else workers
-    pool = ThreadPoolExecutor(max_workers=threads)
+    cpu = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="dicert-fft")
+    io = ThreadPoolExecutor(max_workers=1, thread_name_prefix="dicert-transfer")
 
-    def each(fn: Any, jobs: list[tuple[int, int]]) -> list[Any]:
-        def run(job: tuple[int, int]) -> Any:
-            res = fn(*job)
-            tick()
-            return res
-        return list(pool.map(run, jobs))
+    def run(jobs: list[tuple[int, int]], compute: Any, read: Any = None,
+            write: Any = None) -> list[Any]:
+        return _pipeline(cpu, io, jobs, compute, read, write, ahead=threads + 1, tick=tick)
 
     # One work array: the middle pass writes its rows in place (each row is read once, before
-    # it is overwritten, and the threads' row blocks are disjoint).
+    # it is overwritten, by the piece that overwrites it; the pieces' rows are disjoint).
     opened: list[Any] = []
     try:
         x.read_bytes(0, 1)  # open the sources here, not in two threads at once
         s.read_bytes(0, 1)
         packed = open_packed(plan, temp_dir)
         opened.append(packed)
-        each(lambda r0, r1: pack_sources(plan, x, s, packed, r0, r1), pieces["pack"])
+        run(pieces["pack"], lambda job, _: pack_sources(plan, x, s, packed, *job))
         a = open_store(plan, plan.N2, temp_dir)
         opened.append(a)
-        each(lambda c0, c1: columns_first(plan, packed, a, c0, c1, fft_workers),
-             pieces["first"])
+        run(pieces["first"], lambda job, _: first_compute(plan, packed, *job, fft_workers),
+            write=lambda job, t: a.put_cols(job[0], t))
         packed.close()
-        each(lambda r0, r1: rows_middle(plan, a, a, r0, r1, fft_workers), pieces["middle"])
-        got = each(lambda c0, c1: columns_inverse(plan, a, c0, c1, fft_workers),
-                   pieces["inverse"])
+        run(pieces["middle"], lambda job, d: middle_compute(plan, d, fft_workers),
+            read=lambda job: middle_read(plan, a, *job), write=lambda job, w: put_all(a, w))
+        got = run(pieces["inverse"], lambda job, t: inverse_compute(plan, t, *job, fft_workers),
+                  read=lambda job: inverse_read(plan, a, *job))
         out, dev = assemble(plan, got, pieces["inverse"])
     finally:
-        pool.shutdown()
+        cpu.shutdown()
+        io.shutdown()
         for st in opened:
             st.close()
     return out, dev, total
+
+
+def _pipeline(cpu: Any, io: Any, jobs: list, compute: Any, read: Any, write: Any, *,
+              ahead: int, tick: Any) -> list[Any]:
+    """compute(job, read(job)) for every job on the ``cpu`` pool, with read(job) and
+    write(job, result) (either may be None) on the ``io`` pool, at most ``ahead`` jobs in
+    flight (which bounds the memory held). Returns the computed results (None for jobs
+    whose result was written). Every job ends (or fails) before this returns; the first
+    exception, if any, is then raised."""
+    import threading
+    from concurrent.futures import Future, wait
+
+    slots = threading.Semaphore(ahead)
+    results: list[Any] = [None] * len(jobs)
+    futures: list[Future] = []
+    failed = threading.Event()
+
+    def fetch(job: Any, box: list) -> None:
+        box.append(read(job))
+
+    def written(f: Future) -> None:
+        if f.exception() is not None:
+            failed.set()  # (before the slot is freed, so no further piece is admitted)
+        slots.release()
+        if f.exception() is None:
+            tick()
+
+    def work(i: int, job: Any, fr: Future | None, box: list) -> None:
+        handed = False
+        try:
+            if failed.is_set():
+                return
+            if fr is not None:
+                fr.result()
+            data = box.pop() if box else None  # (held by nothing else once taken)
+            res = compute(job, data)
+            del data
+            if write is None:
+                results[i] = res
+                tick()
+                return
+            fw = io.submit(write, job, res)
+            del res
+            futures.append(fw)
+            fw.add_done_callback(written)
+            handed = True
+        except BaseException:
+            failed.set()
+            raise
+        finally:
+            if not handed:
+                slots.release()
+
+    for i, job in enumerate(jobs):
+        slots.acquire()
+        if failed.is_set():
+            slots.release()
+            break
+        box: list = []
+        fr = io.submit(fetch, job, box) if read is not None else None
+        futures.append(cpu.submit(work, i, job, fr, box))
+    while True:  # (writes are appended while the computations end)
+        pending = [f for f in futures if not f.done()]
+        if not pending:
+            break
+        wait(pending)
+    for f in futures:
+        if f.exception() is not None:
+            raise f.exception()
+    return results
 
 
 def plan_pieces(plan: FourStepPlan) -> dict[str, list[tuple[int, int]]]:

@@ -6,6 +6,7 @@ test_extract.py; common practice), the tiled path, and the pinned digests of fix
 
 from __future__ import annotations
 
+import fcntl
 import math
 import os
 
@@ -97,15 +98,16 @@ def test_guard_failure_recomputes_exactly(rng):
 
 def test_default_budget_does_not_grow_with_the_input():
     # Plans for 2^24 ... 2^34 input bits all keep their blocks within fixed sizes.
-    piece = _fourstep._PIECE
+    piece, slab_piece = _fourstep._PIECE, _fourstep._SLAB_PIECE
     for k in (24, 28, 30, 32, 34):
         n = 1 << k
         plan = _fourstep.plan_four_step(n, n // 2, MEMORY_BUDGET)
         assert plan.L >= n + n // 2 - 1
-        assert 16 * plan.N2 * plan.slab <= piece or plan.slab == 8
+        assert 16 * plan.N2 * plan.slab <= slab_piece or plan.slab == 8
         assert 16 * plan.N1 * plan.rows <= piece or plan.rows == 1
         assert 4 * plan.N1 * plan.fill <= piece
-        assert 12 * piece <= MEMORY_BUDGET
+        # three pieces in flight: three slabs, or three times lead rows and partners
+        assert 3 * slab_piece <= MEMORY_BUDGET and 6 * piece <= MEMORY_BUDGET
         assert not plan.in_memory
 
 
@@ -208,13 +210,19 @@ def test_twiddles_follow_the_four_step_definition():
 
 def test_short_reads_and_writes_of_the_work_file(rng, tmp_path, monkeypatch):
     # POSIX allows preadv/pwritev to move fewer bytes than asked (IEEE Std 1003.1, read()
-    # and write()); the work file's I/O must finish the rest. Every call is cut to 1000 bytes.
+    # and write()); the work file's I/O must finish the rest. Every call is cut to 1000 bytes,
+    # or to one 4096-byte block on a direct (O_DIRECT) descriptor, whose transfers move whole
+    # blocks (Linux open(2), "O_DIRECT").
     n, m = 12000, 2500
     x, s = random_case(rng, n, m, 1)
     real_r, real_w, real_pw = os.preadv, os.pwritev, os.pwrite
 
-    def cut(views, limit=1000):
-        out, left = [], limit
+    def limit(fd):
+        direct = fcntl.fcntl(fd, fcntl.F_GETFL) & getattr(os, "O_DIRECT", 0)
+        return 4096 if direct else 1000
+
+    def cut(fd, views):
+        out, left = [], limit(fd)
         for v in views:
             if left <= 0:
                 break
@@ -222,9 +230,92 @@ def test_short_reads_and_writes_of_the_work_file(rng, tmp_path, monkeypatch):
             left -= len(out[-1])
         return out
 
-    monkeypatch.setattr(os, "preadv", lambda fd, views, off: real_r(fd, cut(views), off))
-    monkeypatch.setattr(os, "pwritev", lambda fd, views, off: real_w(fd, cut(views), off))
-    monkeypatch.setattr(os, "pwrite", lambda fd, data, off: real_pw(fd, data[:1000], off))
+    monkeypatch.setattr(os, "preadv", lambda fd, views, off: real_r(fd, cut(fd, views), off))
+    monkeypatch.setattr(os, "pwritev", lambda fd, views, off: real_w(fd, cut(fd, views), off))
+    monkeypatch.setattr(os, "pwrite",
+                        lambda fd, data, off: real_pw(fd, data[:limit(fd)], off))
     res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=500_000,
                            temp_dir=tmp_path)
     assert res.output == oracle(x, s, n, m)
+
+
+@pytest.mark.parametrize("direct", [True, False])
+def test_direct_and_buffered_work_file_give_the_dense_result(rng, tmp_path, monkeypatch, direct):
+    # The work file is moved by direct I/O (O_DIRECT) where the file system allows it and by
+    # buffered I/O otherwise; both must give the dense definition's bits.
+    n, m = 12000, 2500
+    x, s = random_case(rng, n, m, 1)
+    monkeypatch.setattr(_fourstep, "DIRECT_IO", direct)
+    used = []
+    real = _fourstep.FileStore.put_cols
+
+    def spy(self, c0, v):
+        used.append(self.direct)
+        return real(self, c0, v)
+
+    monkeypatch.setattr(_fourstep.FileStore, "put_cols", spy)
+    res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=500_000,
+                           temp_dir=tmp_path)
+    assert res.output == oracle(x, s, n, m)
+    assert used, "the work file was not used"
+    if not direct:
+        assert not any(used)
+    elif not any(used):
+        pytest.skip("this file system refuses direct I/O")
+    else:
+        assert all(used)
+
+
+def test_pipeline_failure_ends_every_piece_and_raises(tmp_path):
+    # A failing piece (in its read, its computation or its write) must make the pass raise
+    # once every piece in flight has ended, and must not hang the submitting thread.
+    from concurrent.futures import ThreadPoolExecutor
+
+    for stage in ("read", "compute", "write"):
+        started, ended = [], []
+
+        def read(job, stage=stage):
+            if stage == "read" and job == 3:
+                raise OSError("read failed")
+            return job
+
+        def compute(job, data, stage=stage):
+            started.append(job)
+            if stage == "compute" and job == 3:
+                raise ValueError("compute failed")
+            ended.append(job)
+            return data
+
+        def write(job, res, stage=stage):
+            if stage == "write" and job == 3:
+                raise OSError("write failed")
+
+        cpu, io = ThreadPoolExecutor(2), ThreadPoolExecutor(1)
+        try:
+            with pytest.raises((OSError, ValueError), match="failed"):
+                _fourstep._pipeline(cpu, io, list(range(40)), compute, read, write, ahead=3,
+                                    tick=lambda: None)
+        finally:
+            cpu.shutdown(wait=True)
+            io.shutdown(wait=True)
+        assert len(started) < 40  # it stopped admitting pieces
+        assert set(ended) <= set(started)
+
+
+def test_twiddles_for_an_odd_column_length():
+    import mpmath
+
+    # N2 = 3645 = 5 * 3**6 (no factor 2): the two tables split k2 by a divisor near sqrt(N2)
+    # and each factor must still be exp(sign 2 pi i (j1 k2 mod L) / L) to a few ulp
+    # (checked against mpmath at 50 digits).
+    N1, N2 = 1 << 15, 3645
+    L, c0, w = N1 * N2, N1 - 16, 16
+    assert _fourstep._near_root_divisor(N2) == 45
+    t = np.ones((N2, w), dtype=np.complex128)
+    _fourstep._twiddle(t, c0, L, -1)
+    for k2 in (0, 1, 44, 45, 46, 1822, N2 - 1):
+        for j in (0, 9, 15):
+            r = ((c0 + j) * k2) % L
+            with mpmath.workdps(50):
+                ref = mpmath.expjpi(-2 * mpmath.mpf(r) / L)
+            assert abs(t[k2, j] - complex(ref)) <= 4e-16
