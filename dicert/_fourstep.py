@@ -281,13 +281,14 @@ def _io_map(fn: Any, items: Any) -> None:
         for it in items:
             fn(it)
         return
-    if _io_pool is None:
+    if _io_pool is None or _io_pool[0] != os.getpid():  # (a forked child has no threads)
         from concurrent.futures import ThreadPoolExecutor
 
-        _io_pool = ThreadPoolExecutor(max_workers=_IO_THREADS, thread_name_prefix="dicert-io")
+        _io_pool = (os.getpid(),
+                    ThreadPoolExecutor(max_workers=_IO_THREADS, thread_name_prefix="dicert-io"))
     from concurrent.futures import wait
 
-    futures = [_io_pool.submit(fn, it) for it in items]
+    futures = [_io_pool[1].submit(fn, it) for it in items]
     wait(futures)
     for f in futures:
         f.result()
