@@ -171,6 +171,10 @@ def _need(e: np.ndarray, k: int, name: str) -> None:
 # --------------------------------------------------------------------------- SP 800-22
 
 
+#: Elements per chunk where a test would otherwise make temporaries as large as its input.
+_CHUNK = 1 << 22
+
+
 def frequency_test(bits: Any) -> TestResult:
     """SP 800-22 rev. 1a section 2.1, frequency (monobit) test.
 
@@ -235,7 +239,8 @@ def runs_test(bits: Any) -> TestResult:
     n = e.size
     pi = int(np.count_nonzero(e)) / n
     tau = 2.0 / math.sqrt(n)
-    v = 1 + int(np.count_nonzero(e[1:] != e[:-1]))
+    v = 1 + sum(int(np.count_nonzero(e[k + 1:j + 1] != e[k:j]))
+                for k in range(0, n - 1, _CHUNK) for j in (min(k + _CHUNK, n - 1),))
     if abs(pi - 0.5) >= tau or pi in (0.0, 1.0):  # (pi in {0, 1} only matters for n < 17)
         return _result("runs", "SP 800-22 2.3", float(v), 0.0, n >= 100,
                        {"n": n, "pi": pi, "V": v},
@@ -365,7 +370,11 @@ def mcv_estimate(samples: Any, bits_per_sample: int = 1) -> McvEstimate:
                              f"shape {s.shape}")
     if s.dtype.kind not in "biu" or int(s.min()) < 0:
         raise ParameterError("MCV estimate needs non-negative integer samples")
-    counts = np.bincount(s.astype(np.int64, copy=False))
+    # by chunks: bincount casts its input to intp (8 bytes per sample), which for the bits of a
+    # large output would be a copy eight times its size
+    counts = np.zeros(int(s.max()) + 1, dtype=np.int64)
+    for k in range(0, s.size, _CHUNK):
+        counts += np.bincount(s[k:k + _CHUNK], minlength=counts.size)
     mode = int(np.argmax(counts))
     L = s.size
     p_hat = int(counts[mode]) / L

@@ -293,8 +293,8 @@ def test_pipeline_failure_ends_every_piece_and_raises(tmp_path):
         cpu, io = ThreadPoolExecutor(2), ThreadPoolExecutor(1)
         try:
             with pytest.raises((OSError, ValueError), match="failed"):
-                _fourstep._pipeline(cpu, io, list(range(40)), compute, read, write, ahead=3,
-                                    tick=lambda: None)
+                _fourstep._pipeline(cpu, (io, io), list(range(40)), compute, read, write,
+                                    ahead=3, tick=lambda: None)
         finally:
             cpu.shutdown(wait=True)
             io.shutdown(wait=True)

@@ -261,3 +261,21 @@ def test_cli_refuses_a_device_in_one_line_with_exit_2():
     assert err.splitlines() == [err] and "/dev/zero" in err and "Traceback" not in r.output
     r = CliRunner().invoke(app, ["health", "/dev/zero", "--input-bits", "4096", "--json"])
     assert r.exit_code == 1  # all zeros: the frequency test fails (SP 800-22 section 2.1)
+
+
+@pytest.mark.parametrize("n", [2, 7, 8, 9, 50, 51])
+def test_chunked_runs_and_mcv_match_their_definitions(monkeypatch, n):
+    # The runs count V (SP 800-22 rev. 1a section 2.3.4, step 3: V = 1 + #{k: e_k != e_(k+1)})
+    # and the MCV count (SP 800-90B section 6.3.1) are taken chunk by chunk so that a large
+    # output needs no temporaries as large as itself; with 7-element chunks every boundary
+    # case occurs, and both must equal the direct whole-array computation.
+    import dicert.health as H
+
+    monkeypatch.setattr(H, "_CHUNK", 7)
+    e = np.random.default_rng(n).integers(0, 2, n).astype(np.uint8)
+    v = 1 + int(np.count_nonzero(e[1:] != e[:-1]))
+    assert H.runs_test(e).statistic == v  # (reported whether or not the test is run)
+    got = H.mcv_estimate(e)
+    assert got.p_hat == np.bincount(e).max() / n
+    byte_samples = np.random.default_rng(1).integers(0, 256, n).astype(np.uint8)
+    assert H.mcv_estimate(byte_samples).p_hat == np.bincount(byte_samples).max() / n
