@@ -145,7 +145,11 @@ def as_bits(bits: Any, n_bits: int | None = None) -> np.ndarray:
     if isinstance(bits, (str, os.PathLike)):
         bits = read_bits_file(bits, n_bits)
     if isinstance(bits, (bytes, bytearray, memoryview)):
-        arr = np.unpackbits(np.frombuffer(bytes(bits), dtype=np.uint8))
+        packed = np.frombuffer(bits, dtype=np.uint8)
+        if isinstance(n_bits, (int, np.integer)) and not isinstance(n_bits, bool) \
+                and 0 < n_bits <= 8 * packed.size:
+            packed = packed[: -(-int(n_bits) // 8)]  # unpack only the bytes used
+        arr = np.unpackbits(packed)
     else:
         arr = np.asarray(bits)
         if arr.ndim != 1:
