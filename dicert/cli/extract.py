@@ -29,7 +29,7 @@ def extract_cmd(
     out: Annotated[Path, typer.Option("--out", help="Output file (ceil(m/8) bytes, zero-padded), written atomically.")],
     n_bits: Annotated[int | None, typer.Option("--input-bits", help="Use only the first N input bits (default: 8 x file size).")] = None,
     memory_mib: Annotated[int | None, typer.Option("--memory-mib", help="Memory budget for the working arrays in MiB (default 512, whatever the input size).")] = None,
-    work_dir: Annotated[Path | None, typer.Option("--work-dir", help="Directory for the private temporary work files of large extractions (default: the system temporary directory; a RAM-backed tmpfs is fastest).")] = None,
+    work_dir: Annotated[Path | None, typer.Option("--work-dir", help="Directory for the private temporary work files of large extractions, about 16 (n + m) bytes (default: the system temporary directory). On a disk they move by direct I/O, outside the page cache; a RAM-backed tmpfs would hold them in memory.")] = None,
     scheduler: Annotated[str | None, typer.Option("--scheduler", envvar="DICERT_SCHEDULER", help="dask.distributed scheduler address: run the pieces of a large extraction on its workers (needs dicert[cluster]; --work-dir must be shared by all workers).")] = None,
     as_json: JsonFlag = False,
 ) -> None:
