@@ -15,7 +15,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from dicert import _fourstep
+from dicert import _fourstep, _workfile
 from dicert.errors import ParameterError
 from dicert.extract import MEMORY_BUDGET, extract_toeplitz
 
@@ -245,7 +245,7 @@ def test_direct_and_buffered_work_file_give_the_dense_result(rng, tmp_path, monk
     # buffered I/O otherwise; both must give the dense definition's bits.
     n, m = 12000, 2500
     x, s = random_case(rng, n, m, 1)
-    monkeypatch.setattr(_fourstep, "DIRECT_IO", direct)
+    monkeypatch.setattr(_workfile, "DIRECT_IO", direct)
     used = []
     real = _fourstep.FileStore.put_cols
 

@@ -140,28 +140,7 @@ def run(quick: bool = False) -> list[BenchResult]:
                                value=t_dig / t_base, unit="x", higher_is_better=False,
                                note=f"{t_dig:.2f} s (SHA-256 of each file computed in a worker "
                                "thread while it is decoded; informational)"))
-        # Lower bounds: pyarrow decoding alone, one thread per station as inspect reads them
-        # (all three columns; the key columns only). No join of these files can be faster
-        # than its decoding, whatever the join does.
-        dec_code = ("import sys, threading, pyarrow.parquet as pq\n"
-                    "cols = sys.argv[1].split(',')\n"
-                    "def go(p):\n"
-                    "    f = pq.ParquetFile(p, buffer_size=1 << 20, pre_buffer=False)\n"
-                    "    for bt in f.iter_batches(batch_size=1 << 19, use_threads=False,"
-                    " columns=cols):\n"
-                    "        [bt.column(c).to_numpy(zero_copy_only=False) for c in cols]\n"
-                    "ts = [threading.Thread(target=go, args=(p,)) for p in sys.argv[2:]]\n"
-                    "[t.start() for t in ts]; [t.join() for t in ts]\n")
-        for cols, what in (("pulse,basis,result", "all three columns"),
-                           ("pulse", "the int64 key columns only")):
-            dec_cmd = [py, "-c", dec_code, cols, str(a), str(b)]
-            t_dec = min(peak_rss_mb_of(dec_cmd)[0] for _ in range(2))
-            out.append(BenchResult(
-                suite=SUITE, name=f"pyarrow decoding alone of {what}, two threads "
-                                  f"({n:.0e} trials) / numpy pass",
-                value=t_dec / t_base, unit="x", higher_is_better=False,
-                note=f"{t_dec:.2f} s (informational: a lower bound for any join of these "
-                     f"files; the whole join is {t_join / t_dec:.2f}x of it)"))
+        out += _decode_bounds(py, a, b, n, t_base, t_join)
         a.unlink()
         b.unlink()
         ca, cb = tmp / "a.csv", tmp / "b.csv"
@@ -180,3 +159,31 @@ def run(quick: bool = False) -> list[BenchResult]:
                                f"{n_csv / t_join / 1e6:.1f} M trials/s; peak {rss:.0f} MB "
                                "(informational)"))
     return out
+
+
+def _decode_bounds(py: str, a: Path, b: Path, n: int, t_base: float,
+                   t_join: float) -> list[BenchResult]:
+    res: list[BenchResult] = []
+    # Lower bounds: pyarrow decoding alone, one thread per station as inspect reads them
+    # (all three columns; the key columns only). No join of these files can be faster
+    # than its decoding, whatever the join does.
+    dec_code = ("import sys, threading, pyarrow.parquet as pq\n"
+                "cols = sys.argv[1].split(',')\n"
+                "def go(p):\n"
+                "    f = pq.ParquetFile(p, buffer_size=1 << 20, pre_buffer=False)\n"
+                "    for bt in f.iter_batches(batch_size=1 << 19, use_threads=False,"
+                " columns=cols):\n"
+                "        [bt.column(c).to_numpy(zero_copy_only=False) for c in cols]\n"
+                "ts = [threading.Thread(target=go, args=(p,)) for p in sys.argv[2:]]\n"
+                "[t.start() for t in ts]; [t.join() for t in ts]\n")
+    for cols, what in (("pulse,basis,result", "all three columns"),
+                       ("pulse", "the int64 key columns only")):
+        dec_cmd = [py, "-c", dec_code, cols, str(a), str(b)]
+        t_dec = min(peak_rss_mb_of(dec_cmd)[0] for _ in range(2))
+        res.append(BenchResult(
+            suite=SUITE, name=f"pyarrow decoding alone of {what}, two threads "
+                              f"({n:.0e} trials) / numpy pass",
+            value=t_dec / t_base, unit="x", higher_is_better=False,
+            note=f"{t_dec:.2f} s (informational: a lower bound for any join of these "
+                 f"files; the whole join is {t_join / t_dec:.2f}x of it)"))
+    return res
