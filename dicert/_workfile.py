@@ -8,6 +8,7 @@ through aligned buffers, each request split into a few concurrent transfers.
 from __future__ import annotations
 
 import contextlib
+import errno
 import math
 import os
 import tempfile
@@ -77,6 +78,7 @@ class FileStore:
         self._own = fd is None
         self._fd = fd
         self._dfd: int | None | bool = None  # None: not tried yet; False: not available
+        self._refused = False  # direct transfers refused: buffered from then on
         if create:
             # Reserve the space now: a full disk is then an error before any work is done.
             os.posix_fallocate(self.fd, 0, self.size)
@@ -104,7 +106,7 @@ class FileStore:
                     self._dfd = os.open(where, os.O_RDWR | flag)
                 except OSError:  # (a file system without direct I/O, e.g. tmpfs)
                     self._dfd = False
-        return self._dfd if self._dfd is not False else self.fd
+        return self._dfd if self._dfd is not False and not self._refused else self.fd
 
     def __getstate__(self) -> dict:
         if self.path is None:
@@ -114,7 +116,7 @@ class FileStore:
     def __setstate__(self, st: dict) -> None:
         self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
         self.size = _C * self.N1 * self.N2
-        self._own, self._fd, self._dfd = True, None, None
+        self._own, self._fd, self._dfd, self._refused = True, None, None, False
 
     def _slab_offset(self, q: int) -> int:
         return q * self.N2 * self.w * _C
@@ -135,17 +137,31 @@ class FileStore:
         raw = memoryview(buf).cast("B")
         n = len(raw)
         part = max(_ALIGN, -(-n // _IO_THREADS // _ALIGN) * _ALIGN)
-        fd = self._io_fd()
-        _io_map(lambda a: fn(fd, np.frombuffer(raw[a:a + part], dtype=np.uint8), off + a,
-                             self.fd), range(0, n, part))
+        self._transfer(lambda fd, a: fn(fd, np.frombuffer(raw[a:a + part], dtype=np.uint8),
+                                        off + a, self.fd), range(0, n, part))
 
     def _by_slab(self, fn: Any, v: np.ndarray, r0: int) -> None:
         """Rows r0 .. r0 + len(v) - 1: one vectored transfer per slab (each row's piece of a
         slab is contiguous in the file and in ``v``), slabs moved concurrently."""
-        w, fd = self.w, self._io_fd()
-        _io_map(lambda q: fn(fd, [v[i, q * w:(q + 1) * w] for i in range(v.shape[0])],
-                             self._slab_offset(q) + r0 * w * _C, self.fd),
-                range(self.N1 // w))
+        w = self.w
+        self._transfer(lambda fd, q: fn(fd, [v[i, q * w:(q + 1) * w] for i in range(v.shape[0])],
+                                        self._slab_offset(q) + r0 * w * _C, self.fd),
+                       range(self.N1 // w))
+
+    def _transfer(self, each: Any, items: Any) -> None:
+        """each(fd, item) for every item, concurrently. A file system that accepts a direct
+        descriptor but refuses its transfers (EINVAL, e.g. for a stricter alignment) loses it:
+        the request is redone buffered (the same bytes at the same offsets), and so is every
+        later one."""
+        items = list(items)
+        fd = self._io_fd()
+        try:
+            _io_map(lambda it: each(fd, it), items)
+        except OSError as exc:
+            if fd == self.fd or exc.errno != errno.EINVAL:
+                raise
+            self._refused = True
+            _io_map(lambda it: each(self.fd, it), items)
 
     def rows(self, r0: int, r1: int) -> np.ndarray:
         out = self._empty((r1 - r0, self.N1))
