@@ -12,6 +12,7 @@ import errno
 import math
 import os
 import tempfile
+import threading
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -98,15 +99,22 @@ class FileStore:
         """The descriptor every transfer uses: a direct one where possible, else :attr:`fd`.
         All transfers of one store use the same one (no mixing of cached and direct I/O)."""
         if self._dfd is None:
-            self._dfd = False
-            flag = getattr(os, "O_DIRECT", 0)
-            if DIRECT_IO and flag and (self.w * _C) % _ALIGN == 0:
-                where = self.path if self.path is not None else f"/proc/self/fd/{self.fd}"
-                try:
-                    self._dfd = os.open(where, os.O_RDWR | flag)
-                except OSError:  # (a file system without direct I/O, e.g. tmpfs)
-                    self._dfd = False
+            with _open_lock:  # (two transfer threads may ask first at once)
+                if self._dfd is None:
+                    self._dfd = self._open_direct()
         return self._dfd if self._dfd is not False and not self._refused else self.fd
+
+    def _open_direct(self) -> int | bool:
+        """A second descriptor of the file opened for direct I/O, or False where the layout is
+        not aligned or the file system refuses (e.g. tmpfs)."""
+        flag = getattr(os, "O_DIRECT", 0)
+        if not (DIRECT_IO and flag and (self.w * _C) % _ALIGN == 0):
+            return False
+        where = self.path if self.path is not None else f"/proc/self/fd/{self.fd}"
+        try:
+            return os.open(where, os.O_RDWR | flag)
+        except OSError:
+            return False
 
     def __getstate__(self) -> dict:
         if self.path is None:
@@ -210,6 +218,7 @@ def aligned_empty(shape: tuple[int, ...], dtype: Any) -> np.ndarray:
 
 
 _io_pool: Any = None
+_open_lock = threading.Lock()
 
 
 def _io_map(fn: Any, items: Any) -> None:
