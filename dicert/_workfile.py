@@ -60,7 +60,36 @@ class ArrayStore:
         pass
 
 
-class FileStore:
+class _WorkFile:
+    """A private work file: opened on first use, and sent to another process (a cluster
+    worker) by its path only, which the copy opens again."""
+
+    N2: int
+    N1: int
+    w: int
+    path: str | None
+    _fd: int | None
+    _own: bool
+
+    @property
+    def fd(self) -> int:
+        if self._fd is None:  # opened on first use (a copy sent to a worker opens its own)
+            self._fd = os.open(self.path, os.O_RDWR)
+        return self._fd
+
+    def __getstate__(self) -> dict:
+        if self.path is None:
+            raise TypeError("an anonymous temporary file cannot be shared with other processes")
+        return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
+
+    def _close_fd(self) -> None:
+        if self._fd is not None and self._own:
+            with contextlib.suppress(OSError):
+                os.close(self._fd)
+        self._fd = None
+
+
+class FileStore(_WorkFile):
     """The N2 x N1 complex array in a file, stored as N1 / w column blocks ("slabs") of w
     columns, each an N2 x w row-major array. A slab is one contiguous read or write; a block
     of rows is one contiguous piece per slab. Only explicit reads and writes (no mapping), so
@@ -83,12 +112,6 @@ class FileStore:
         if create:
             # Reserve the space now: a full disk is then an error before any work is done.
             os.posix_fallocate(self.fd, 0, self.size)
-
-    @property
-    def fd(self) -> int:
-        if self._fd is None:  # opened on first use (a copy sent to a worker opens its own)
-            self._fd = os.open(self.path, os.O_RDWR)
-        return self._fd
 
     @property
     def direct(self) -> bool:
@@ -115,11 +138,6 @@ class FileStore:
             return os.open(where, os.O_RDWR | flag)
         except OSError:
             return False
-
-    def __getstate__(self) -> dict:
-        if self.path is None:
-            raise TypeError("an anonymous temporary file cannot be shared with other processes")
-        return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
 
     def __setstate__(self, st: dict) -> None:
         self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
@@ -202,10 +220,7 @@ class FileStore:
             with contextlib.suppress(OSError):
                 os.close(self._dfd)
         self._dfd = None
-        if self._fd is not None and self._own:
-            with contextlib.suppress(OSError):
-                os.close(self._fd)
-        self._fd = None
+        self._close_fd()
 
 
 def aligned_empty(shape: tuple[int, ...], dtype: Any) -> np.ndarray:
@@ -272,7 +287,7 @@ def named_store(plan: FourStepPlan, rows: int, temp_dir: Any) -> FileStore:
     return FileStore(rows, plan.N1, plan.slab, path=path, create=True)
 
 
-class PackedStore:
+class PackedStore(_WorkFile):
     """s' and x packed 8 positions per byte, in the slab layout of :class:`FileStore`
     (slab q, row j2: w / 8 bytes), so a column block is one contiguous read: L / 4 bytes in
     all, in memory or in a private file."""
@@ -285,17 +300,6 @@ class PackedStore:
         self.mem = np.zeros(2 * self.S * self.part, dtype=np.uint8) if memory else None
         self._fd = fd
         self._own = True
-
-    @property
-    def fd(self) -> int:
-        if self._fd is None:
-            self._fd = os.open(self.path, os.O_RDWR)
-        return self._fd
-
-    def __getstate__(self) -> dict:
-        if self.path is None:
-            raise TypeError("an anonymous temporary file cannot be shared with other processes")
-        return {"N2": self.N2, "N1": self.N1, "w": self.w, "path": self.path}
 
     def __setstate__(self, st: dict) -> None:
         self.N2, self.N1, self.w, self.path = st["N2"], st["N1"], st["w"], st["path"]
@@ -328,10 +332,7 @@ class PackedStore:
         return out[0], out[1]
 
     def close(self) -> None:
-        if self._fd is not None and self._own:
-            with contextlib.suppress(OSError):
-                os.close(self._fd)
-        self._fd = None
+        self._close_fd()
 
 
 # A transfer may move fewer bytes than asked (POSIX allows it); the rest then goes through
