@@ -296,7 +296,8 @@ def _longest_runs(blocks: np.ndarray) -> np.ndarray:
         k = chunk.shape[0]
         padded = np.zeros((k, M + 1), dtype=np.int8)
         padded[:, :M] = chunk
-        flat = np.concatenate(([0], padded.ravel(), [0]))
+        edge = np.zeros(1, dtype=np.int8)  # (an int list here would make the chunk int64)
+        flat = np.concatenate((edge, padded.ravel(), edge))
         d = np.diff(flat)
         starts = np.flatnonzero(d == 1)
         ends = np.flatnonzero(d == -1)
