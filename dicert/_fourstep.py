@@ -421,9 +421,10 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
                   read=lambda job: inverse_read(plan, a, *job))
         out, dev = assemble(plan, got, pieces["inverse"])
     finally:
-        cpu.shutdown()
+        # (on an interrupt, pieces not yet started are dropped, not run)
+        cpu.shutdown(cancel_futures=True)
         for pool in io:
-            pool.shutdown()
+            pool.shutdown(cancel_futures=True)
         for st in opened:
             st.close()
     return out, dev, total
