@@ -10,7 +10,9 @@ Full size only, two series (issue 14):
 
 * scaling: whole-process ``certify`` of simulated (invented) binary logs of 1e7, 5e7, 1e8 and
   2e8 trials: time (target <= 25 s at 2e8) and peak memory, whose largest / smallest ratio
-  shows that memory stays flat (target <= 1.2, and <= 1 GiB);
+  shows that memory stays flat (target <= 1.2, and <= 1 GiB), with the work folder's
+  direct-I/O rate measured in the same run (from 2e8 trials on, the extraction's transfers set
+  its time);
 * cluster: ``certify`` of a 16-file log in one process and with ``--scheduler`` on a
   2-worker ``distributed.LocalCluster`` started here (or ``DICERT_BENCH_SCHEDULER``), when
   the optional extra ``dicert[cluster]`` is installed: wall times and identical records.
@@ -124,6 +126,7 @@ def scaling(tmp: Path, sizes: tuple[int, ...] = SCALING_TRIALS) -> list[BenchRes
             unit="MB", target=1024.0, higher_is_better=False))
         for p in (log, seed):
             p.unlink()
+    res += _disk_context(tmp, ext["raw_bits"] + ext["output_bits"])
     if len(rss_seen) > 1:
         res.append(BenchResult(
             suite=SUITE, name=f"certify peak memory, largest / smallest over "
@@ -131,6 +134,56 @@ def scaling(tmp: Path, sizes: tuple[int, ...] = SCALING_TRIALS) -> list[BenchRes
             value=max(rss_seen) / min(rss_seen), unit="x", target=1.2, higher_is_better=False,
             note=" -> ".join(f"{r:.0f}" for r in rss_seen) + " MB"))
     return res
+
+
+def direct_io_rate(folder: Path, total: int = 2 << 30, chunk: int = 16 << 20,
+                   depth: int = 4) -> tuple[float, float] | None:
+    """(write, read) rate in GB/s of direct I/O (O_DIRECT) in ``folder``, ``depth`` transfers
+    of ``chunk`` bytes at a time, as the extractor's work file moves; None where the file
+    system refuses direct I/O."""
+    import mmap
+    from concurrent.futures import ThreadPoolExecutor
+
+    flag = getattr(os, "O_DIRECT", 0)
+    path = folder / "direct-io-probe.part"
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_EXCL | flag, 0o600)
+    except OSError:
+        return None
+    try:
+        os.posix_fallocate(fd, 0, total)
+        bufs = [mmap.mmap(-1, chunk) for _ in range(depth)]
+        offs = range(0, total, chunk)
+        rates = []
+        with ThreadPoolExecutor(depth) as pool:
+            for op in (lambda i, o: os.pwrite(fd, bufs[i % depth], o),
+                       lambda i, o: os.preadv(fd, [bufs[i % depth]], o)):
+                t = time.perf_counter()
+                list(pool.map(op, range(len(offs)), offs))
+                rates.append(total / (time.perf_counter() - t) / 1e9)
+        return rates[0], rates[1]
+    except OSError:
+        return None
+    finally:
+        os.close(fd)
+        path.unlink()
+
+
+def _disk_context(tmp: Path, positions: int) -> list[BenchResult]:
+    """Informational: the work folder's direct-I/O rate now, and the time the largest run's
+    extraction needs for its transfers alone at that rate (it writes and reads 16 bytes per
+    position of the transform once, then 8 bytes per position once more)."""
+    rate = direct_io_rate(tmp)
+    if rate is None:
+        return []
+    w, r = rate
+    floor = 24 * positions / 1e9 / w + 24 * positions / 1e9 / r
+    return [BenchResult(
+        suite=SUITE, name="direct I/O rate of the work folder (2 GiB written, read back)",
+        value=min(w, r), unit="GB/s", higher_is_better=True,
+        note=f"write {w:.2f} GB/s, read {r:.2f} GB/s (informational: the largest certify's "
+             f"extraction moves about {48 * positions / 1e9:.0f} GB, {floor:.1f} s at these "
+             f"rates; on a shared virtual disk they vary from run to run)")]
 
 
 def on_cluster(tmp: Path, files: int = 16, per_file: int = 2_500_000) -> list[BenchResult]:
