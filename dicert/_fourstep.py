@@ -371,9 +371,9 @@ def run_local(plan: FourStepPlan, x: Any, s: Any, *, workers: int = 1, temp_dir:
     """The whole computation in this process; returns (output bytes, max deviation, pieces).
 
     Each pass is a pipeline (:func:`_pipeline`): the reads of the next pieces and the writes
-    of finished ones run on an I/O thread while ``workers`` threads (at most two) compute, so
-    the transfers of the work file overlap the arithmetic (numpy, the FFTs and the file
-    transfers release the GIL).
+    of finished ones run on two transfer threads while ``workers`` threads (at most two)
+    compute, so the transfers of the work file overlap the arithmetic (numpy, the FFTs and the
+    file transfers release the GIL).
     """
     import threading
     from concurrent.futures import ThreadPoolExecutor
@@ -434,10 +434,10 @@ def _pipeline(cpu: Any, io: Any, jobs: list, compute: Any, read: Any, write: Any
               ahead: int, tick: Any) -> list[Any]:
     """compute(job, read(job)) for every job on the ``cpu`` pool, with read(job) and
     write(job, result) (either may be None) on the ``io`` pools (one for reads, one for
-    writes), at most ``ahead`` jobs in
-    flight (which bounds the memory held). Returns the computed results (None for jobs
-    whose result was written). Every job ends (or fails) before this returns; the first
-    exception, if any, is then raised."""
+    writes), at most ``ahead`` jobs in flight (which bounds the memory held). Returns the
+    computed results (None for jobs whose result was written). Every job ends (or fails)
+    before this returns; the first exception, if any, is then raised, and no job is admitted
+    after a failure."""
     import threading
     from concurrent.futures import Future, wait
 
