@@ -35,14 +35,9 @@ from typing import Any
 
 import numpy as np
 
-from dicert._workfile import (  # noqa: F401  (the work-file layer, re-exported)
+from dicert._workfile import (  # noqa: F401  (named_store: re-exported for dicert.cluster)
     _C,
-    ArrayStore,
-    FileStore,
     PackedStore,
-    _anonymous_fd,
-    _pread_all,
-    _pwrite_all,
     aligned_empty,
     named_store,
     open_packed,
@@ -54,8 +49,8 @@ from dicert._workfile import (  # noqa: F401  (the work-file layer, re-exported)
 _PIECE = 32 << 20
 #: Target size in bytes of one block of columns, a slab (the column passes hold up to three).
 #: Wide slabs make the middle pass's transfers large: a block of rows is one piece of
-#: rows x slab values per slab (512 KB at the default budget), and direct transfers of a few
-#: hundred KB or more are needed to reach the disk's rate.
+#: rows x slab values per slab (256 KB for the 2e8-trial certify at the default budget), and
+#: direct transfers of a few hundred KB or more are needed to reach the disk's rate.
 _SLAB_PIECE = 64 << 20
 #: Columns per cache-sized tile of the column FFTs (a multiple of 8).
 _TILE = 16

@@ -392,6 +392,7 @@ def _pwrite_all(fd: int, buf: np.ndarray, off: int, rest: int | None = None) -> 
     while pos < len(view):
         pos += os.pwrite(fd if pos == 0 or rest is None else rest, view[pos:], off + pos)
 
+
 def open_packed(plan: FourStepPlan, temp_dir: Any = None, *, named: bool = False) -> PackedStore:
     if plan.in_memory and not named:
         return PackedStore(plan, memory=True)

@@ -248,13 +248,13 @@ def test_direct_and_buffered_work_file_give_the_dense_result(rng, tmp_path, monk
     x, s = random_case(rng, n, m, 1)
     monkeypatch.setattr(_workfile, "DIRECT_IO", direct)
     used = []
-    real = _fourstep.FileStore.put_cols
+    real = _workfile.FileStore.put_cols
 
     def spy(self, c0, v):
         used.append(self.direct)
         return real(self, c0, v)
 
-    monkeypatch.setattr(_fourstep.FileStore, "put_cols", spy)
+    monkeypatch.setattr(_workfile.FileStore, "put_cols", spy)
     res = extract_toeplitz(x, s, m, n_bits=n, strategy="four-step", memory_budget=500_000,
                            temp_dir=tmp_path)
     assert res.output == oracle(x, s, n, m)
